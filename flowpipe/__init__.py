@@ -1,0 +1,28 @@
+"""flowpipe: kinematics of gridded wind fields.
+
+Public API (re-exports only)::
+
+    import flowpipe as fp
+    wind = fp.open_wind(paths)      # canonical, lazy xarray.Dataset
+    grid = fp.describe_grid(wind)   # global/regional, equiangular/Gaussian, weights
+    fp.write(dataset, "out.nc")     # CF-annotated, atomic
+"""
+
+from ._version import __version__
+from .errors import FlowpipeError, InputError, UsageError
+from .grid import GridInfo, describe_grid
+from .ingest import open_wind
+from .inspection import describe_wind
+from .store import write
+
+__all__ = [
+    "FlowpipeError",
+    "GridInfo",
+    "InputError",
+    "UsageError",
+    "__version__",
+    "describe_grid",
+    "describe_wind",
+    "open_wind",
+    "write",
+]

@@ -1,0 +1,75 @@
+"""Command line: argument parsing only; every command calls the Python API.
+
+Each command lives in a module of this package that defines ``register``
+(adds its sub-parser) and ``run`` (takes the parsed arguments, returns the
+exit code).
+"""
+
+from __future__ import annotations
+
+import argparse
+import importlib
+import sys
+from collections.abc import Sequence
+
+from .._version import __version__
+from ..errors import FlowpipeError
+
+COMMANDS = ("inspect", "decompose", "advect", "map", "run")
+
+#: Exit code for an unexpected internal failure (a bug): distinct from the
+#: contract's 1 (some batch inputs failed) and 2 (usage or unusable input).
+EXIT_INTERNAL = 3
+
+
+class _Parser(argparse.ArgumentParser):
+    """argparse, with usage errors in the contract's one-line form."""
+
+    def error(self, message: str):  # type: ignore[override]
+        print(f"flowpipe: error: {message} (see '{self.prog} --help')", file=sys.stderr)
+        sys.exit(2)
+
+
+def build_parser() -> argparse.ArgumentParser:
+    """The ``flowpipe`` argument parser with every command registered."""
+    common = argparse.ArgumentParser(add_help=False)
+    common.add_argument("--debug", action="store_true",
+                        help="show the full Python traceback when something fails")
+    parser = _Parser(
+        prog="flowpipe", parents=[common],
+        description="Kinematics of gridded wind fields: Helmholtz decomposition, vorticity "
+        "and divergence, parcel trajectories, CF NetCDF and maps.",
+    )
+    parser.add_argument("--version", action="version", version=f"flowpipe {__version__}")
+    sub = parser.add_subparsers(dest="command", metavar="COMMAND", required=True)
+    for name in COMMANDS:
+        module = importlib.import_module(f"{__name__}.{name}")
+        command = module.register(sub, common)
+        command.set_defaults(handler=module.run)
+    return parser
+
+
+def main(argv: Sequence[str] | None = None) -> int:
+    """Entry point of the ``flowpipe`` command; returns the exit code."""
+    parser = build_parser()
+    args = parser.parse_args(argv)
+    try:
+        return int(args.handler(args))
+    except FlowpipeError as exc:
+        if args.debug:
+            raise
+        print(f"flowpipe: error: {exc}", file=sys.stderr)
+        return exc.exit_code
+    except KeyboardInterrupt:
+        print("flowpipe: interrupted", file=sys.stderr)
+        return 130
+    except Exception as exc:  # a bug: one line, unless --debug
+        if args.debug:
+            raise
+        print(f"flowpipe: error: internal error ({type(exc).__name__}: {exc}); rerun with "
+              "--debug for the traceback and report it", file=sys.stderr)
+        return EXIT_INTERNAL
+
+
+if __name__ == "__main__":  # pragma: no cover
+    sys.exit(main())

@@ -1,0 +1,57 @@
+"""``flowpipe inspect FILE... [--json]``: what flowpipe finds in each file."""
+
+from __future__ import annotations
+
+import argparse
+import json
+
+from ..inspection import inspect_file
+
+
+def register(sub: argparse._SubParsersAction, common: argparse.ArgumentParser) -> argparse.ArgumentParser:
+    parser = sub.add_parser(
+        "inspect", parents=[common], help="describe the wind, grid and times found in files",
+        description="Describe the wind variables, grid, levels and times flowpipe finds in "
+        "each file, and how many points are missing.",
+    )
+    parser.add_argument("files", nargs="+", metavar="FILE", help="NetCDF files or globs")
+    parser.add_argument("--json", action="store_true", help="print one JSON object per file")
+    parser.add_argument("--u", metavar="NAME", help="name of the eastward wind variable")
+    parser.add_argument("--v", metavar="NAME", help="name of the northward wind variable")
+    return parser
+
+
+def run(args: argparse.Namespace) -> int:
+    for path in args.files:
+        report = inspect_file(path, u=args.u, v=args.v)
+        if args.json:
+            print(json.dumps(report))
+        else:
+            print(format_report(report))
+    return 0
+
+
+def format_report(report: dict) -> str:
+    """The short human-readable summary of one file."""
+    levels = report["levels"]
+    level_text = (f"{len(levels)} {report['level_type']} levels "
+                  f"({', '.join(f'{x:g}' for x in levels)} {report['level_units']})"
+                  if levels else "no vertical dimension")
+    vertical = report["vertical_velocity"] or "none"
+    missing = ", ".join(f"{k} {n}" for k, n in report["missing"].items())
+    lines = [
+        f"{report['file']}",
+        f"  wind       u = {report['u']}, v = {report['v']} (vertical velocity: {vertical})",
+        f"  grid       {report['grid']}, {report['latitudes']} latitudes"
+        f"{' with pole rows' if report['poles'] else ''}, {report['nlat']} x {report['nlon']}"
+        f" (lat {report['latitude_range'][0]:g}..{report['latitude_range'][1]:g},"
+        f" lon {report['longitude_range'][0]:g}..{report['longitude_range'][1]:g})",
+        f"  vertical   {level_text}",
+        f"  time       {report['times']} times"
+        + (f", {report['time_range'][0]} .. {report['time_range'][1]} ({report['calendar']})"
+           if report["times"] else ""),
+        f"  missing    {missing}",
+    ]
+    if report["other_variables"]:
+        lines.append(f"  also       {', '.join(report['other_variables'])}")
+    return "\n".join(lines)

@@ -1,0 +1,262 @@
+"""What kind of horizontal grid a wind field is on, and its quadrature weights.
+
+The canonical wind Dataset (see :mod:`flowpipe.ingest`) has 1-D ``latitude``
+(ascending, south to north) and ``longitude`` (ascending) coordinates in
+degrees. :func:`describe_grid` reads them and answers the questions every stage
+asks: is the grid global in longitude, are the latitudes equiangular (with or
+without rows on the poles) or Gaussian, and which spherical-harmonic geometry,
+if any, the grid is.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from functools import cached_property
+from typing import Literal
+
+import numpy as np
+import xarray as xr
+
+#: Tolerance, in degrees, for equal spacing and for matching Gauss-Legendre
+#: nodes when coordinates are stored in double precision.
+TOLERANCE_FLOAT64 = 1e-6
+#: Tolerance, in degrees, when coordinates are stored in single precision: a
+#: float32 latitude near 90 degrees carries a rounding error of up to 3.8e-6.
+TOLERANCE_FLOAT32 = 2e-5
+
+GridKind = Literal["global", "regional"]
+LatitudeKind = Literal["equiangular", "gaussian", "irregular"]
+
+
+def gaussian_latitudes(nlat: int) -> np.ndarray:
+    """Gaussian latitudes in degrees, ascending (south to north).
+
+    Parameters
+    ----------
+    nlat : int
+        Number of latitudes.
+
+    Returns
+    -------
+    numpy.ndarray
+        ``arcsin`` of the Gauss-Legendre nodes, in degrees.
+
+    References
+    ----------
+    Gauss-Legendre quadrature nodes as computed by
+    :func:`numpy.polynomial.legendre.leggauss` (Golub & Welsch 1969,
+    "Calculation of Gauss quadrature rules", Math. Comp. 23, 221-230).
+    """
+    nodes, _ = np.polynomial.legendre.leggauss(nlat)
+    return np.degrees(np.arcsin(nodes))
+
+
+@dataclass(frozen=True, eq=False)
+class GridInfo:
+    """Description of a canonical latitude-longitude grid.
+
+    Attributes
+    ----------
+    latitude, longitude : numpy.ndarray
+        Coordinates in degrees, ascending.
+    kind : {"global", "regional"}
+        ``"global"`` when the longitudes are equally spaced and span 360 degrees.
+    latitudes : {"equiangular", "gaussian", "irregular"}
+        How the latitude rows are spaced.
+    poles : bool
+        True when the grid has a row on each pole.
+    """
+
+    latitude: np.ndarray
+    longitude: np.ndarray
+    kind: GridKind
+    latitudes: LatitudeKind
+    poles: bool
+
+    @property
+    def nlat(self) -> int:
+        return int(self.latitude.size)
+
+    @property
+    def nlon(self) -> int:
+        return int(self.longitude.size)
+
+    @property
+    def dlat(self) -> float:
+        """Mean latitude spacing in degrees."""
+        return float((self.latitude[-1] - self.latitude[0]) / max(self.nlat - 1, 1))
+
+    @property
+    def dlon(self) -> float:
+        """Mean longitude spacing in degrees."""
+        return float((self.longitude[-1] - self.longitude[0]) / max(self.nlon - 1, 1))
+
+    @cached_property
+    def geometry(self) -> str | None:
+        """The ducc0 ring geometry of a complete global grid, else None.
+
+        ``"CC"`` for equiangular rows including both poles, ``"F1"`` for
+        equiangular rows offset half a spacing from the poles, ``"GL"`` for
+        Gaussian rows. Any other grid cannot be transformed exactly.
+        """
+        if self.kind != "global":
+            return None
+        if self.latitudes == "gaussian":
+            return "GL"
+        if self.latitudes != "equiangular":
+            return None
+        tol = _tolerance(self.latitude)
+        if self.poles and abs(self.dlat - 180.0 / (self.nlat - 1)) < tol:
+            return "CC"
+        if abs(self.dlat - 180.0 / self.nlat) < tol and abs(self.latitude[0] + 90 - self.dlat / 2) < tol:
+            return "F1"
+        return None
+
+    @property
+    def spectral(self) -> bool:
+        """True when spherical-harmonic transforms apply to this grid."""
+        return self.geometry is not None
+
+    def ring_weights(self) -> np.ndarray:
+        """Quadrature weight of each latitude row, in ascending latitude order.
+
+        For a complete global grid these are the exact weights of the ring
+        geometry (Clenshaw-Curtis, Fejer's first rule or Gauss-Legendre), so
+        that ``sum_j w_j / nlon * sum_i f_ij`` integrates ``f`` over the unit
+        sphere exactly for band-limited ``f``; they sum to ``4 pi``. For other
+        grids they are the areas of the cells between row mid-points (unit
+        sphere), summed along the row.
+
+        Returns
+        -------
+        numpy.ndarray
+            One weight per latitude row.
+
+        References
+        ----------
+        Waldvogel (2006), "Fast construction of the Fejer and Clenshaw-Curtis
+        quadrature rules", BIT Numer. Math. 46, 195-202; Gauss-Legendre weights
+        as in :func:`numpy.polynomial.legendre.leggauss`. The ring weights
+        themselves come from :func:`ducc0.sht.experimental.get_gridweights`.
+        """
+        if self.geometry is not None:
+            import ducc0
+
+            # ducc0 orders rings north to south; all three rules are symmetric.
+            return ducc0.sht.experimental.get_gridweights(self.geometry, self.nlat)[::-1].copy()
+        return self.cell_areas().sum(axis=1)
+
+    def cell_areas(self) -> np.ndarray:
+        """Area of each grid cell on the unit sphere, shape ``(nlat, nlon)``.
+
+        Cell edges lie half-way between neighbouring coordinates (clipped to
+        the poles); the outer edges are as far out as the inner ones.
+
+        Returns
+        -------
+        numpy.ndarray
+            Areas in steradians.
+
+        References
+        ----------
+        The area of a latitude-longitude cell, ``dlambda * (sin phi2 - sin phi1)``
+        (common practice).
+        """
+        lat_edges = np.clip(_edges(self.latitude), -90.0, 90.0)
+        lon_edges = _edges(self.longitude)
+        band = np.diff(np.sin(np.radians(lat_edges)))
+        width = np.diff(np.radians(lon_edges))
+        return np.outer(band, width)
+
+    def as_dict(self) -> dict:
+        """The JSON-friendly summary used by ``flowpipe inspect --json``."""
+        return {
+            "grid": self.kind,
+            "latitudes": self.latitudes,
+            "poles": self.poles,
+            "nlat": self.nlat,
+            "nlon": self.nlon,
+            "geometry": self.geometry,
+            "latitude_range": [float(self.latitude[0]), float(self.latitude[-1])],
+            "longitude_range": [float(self.longitude[0]), float(self.longitude[-1])],
+        }
+
+
+def _edges(centres: np.ndarray) -> np.ndarray:
+    mid = 0.5 * (centres[1:] + centres[:-1])
+    first = centres[0] - (mid[0] - centres[0]) if centres.size > 1 else centres[0] - 0.5
+    last = centres[-1] + (centres[-1] - mid[-1]) if centres.size > 1 else centres[-1] + 0.5
+    return np.concatenate([[first], mid, [last]])
+
+
+def _tolerance(values: np.ndarray) -> float:
+    return TOLERANCE_FLOAT32 if values.dtype == np.float32 else TOLERANCE_FLOAT64
+
+
+def _equally_spaced(values: np.ndarray) -> bool:
+    if values.size < 3:
+        return True
+    steps = np.diff(values.astype(np.float64))
+    return bool(np.max(np.abs(steps - steps.mean())) < _tolerance(values))
+
+
+def classify(latitude: np.ndarray, longitude: np.ndarray) -> GridInfo:
+    """Classify a grid from ascending 1-D latitudes and longitudes in degrees.
+
+    Parameters
+    ----------
+    latitude, longitude : numpy.ndarray
+        Ascending coordinates in degrees (the canonical orientation).
+
+    Returns
+    -------
+    GridInfo
+
+    References
+    ----------
+    Gaussian latitudes are recognised against the Gauss-Legendre nodes of
+    :func:`numpy.polynomial.legendre.leggauss`; a grid is global when its
+    longitudes are equally spaced and ``nlon * dlon = 360`` (common practice).
+    """
+    lat = np.asarray(latitude)
+    lon = np.asarray(longitude)
+    tol_lon = _tolerance(lon)
+    nlon = lon.size
+    global_lon = (
+        nlon > 2 and _equally_spaced(lon) and abs(nlon * (lon[-1] - lon[0]) / (nlon - 1) - 360.0) < nlon * tol_lon
+    )
+    tol = _tolerance(lat)
+    poles = bool(lat.size > 1 and abs(lat[0] + 90.0) < tol and abs(lat[-1] - 90.0) < tol)
+    if lat.size > 2 and np.max(np.abs(lat.astype(np.float64) - gaussian_latitudes(lat.size))) < tol:
+        spacing: LatitudeKind = "gaussian"
+    elif _equally_spaced(lat):
+        spacing = "equiangular"
+    else:
+        spacing = "irregular"
+    return GridInfo(
+        latitude=lat.astype(np.float64),
+        longitude=lon.astype(np.float64),
+        kind="global" if global_lon else "regional",
+        latitudes=spacing,
+        poles=poles,
+    )
+
+
+def describe_grid(ds: xr.Dataset | xr.DataArray) -> GridInfo:
+    """Describe the horizontal grid of a canonical wind Dataset or DataArray.
+
+    Parameters
+    ----------
+    ds : xarray.Dataset or xarray.DataArray
+        With 1-D ascending ``latitude`` and ``longitude`` coordinates, as
+        returned by :func:`flowpipe.open_wind`.
+
+    Returns
+    -------
+    GridInfo
+
+    References
+    ----------
+    See :func:`classify`.
+    """
+    return classify(ds["latitude"].values, ds["longitude"].values)

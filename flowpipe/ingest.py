@@ -1,0 +1,425 @@
+"""Open gridded wind files as one canonical, lazily loaded Dataset.
+
+The canonical wind Dataset every stage receives:
+
+* dimensions, in this order where present: any extra leading dimensions
+  (ensemble members, say), ``time``, ``level``, ``latitude``, ``longitude``;
+* ``latitude`` ascending (south to north), ``longitude`` ascending; on a global
+  grid longitudes lie in ``[0, 360)`` and a repeated wrap-around column is
+  dropped; on a limited-area grid they are continuous across the date line;
+* ``u`` and ``v`` in m s-1 with ``standard_name`` ``eastward_wind`` /
+  ``northward_wind`` and the name they had in the file in ``source_name``;
+* ``omega`` (Pa s-1, ``lagrangian_tendency_of_air_pressure``) or ``w``
+  (m s-1, ``upward_air_velocity``) when the file has a vertical velocity;
+* ``level`` in hPa (``air_pressure``, ``positive = "down"``) for pressure
+  levels, in m (``height``) for height levels, untouched otherwise, with the
+  attribute ``level_type`` on the Dataset (``pressure``, ``height``, ``other``
+  or ``none``);
+* every other data variable on the same grid, under its own name (so it can
+  be sampled along trajectories);
+* times as in the file: numpy datetimes for the standard calendars, cftime
+  objects for ``360_day``, ``noleap`` and the others;
+* missing values (``_FillValue`` / ``missing_value``) as NaN;
+* dask-backed, one whole latitude-longitude slab per chunk by default.
+"""
+
+from __future__ import annotations
+
+import glob
+import os
+from collections.abc import Iterable, Mapping
+from pathlib import Path
+
+import cf_units
+import cf_xarray  # noqa: F401  (registers the .cf accessor)
+import numpy as np
+import xarray as xr
+
+from .errors import InputError
+
+#: Standard names that identify the eastward and northward wind (CF 1.11
+#: standard-name table), in order of preference.
+U_STANDARD_NAMES = ("eastward_wind", "x_wind")
+V_STANDARD_NAMES = ("northward_wind", "y_wind")
+#: Short names in common use when a file carries no standard names (common practice).
+U_SHORT_NAMES = ("u", "ua", "uwnd", "U", "u10", "U10", "UGRD", "ugrd", "10u", "uas")
+V_SHORT_NAMES = ("v", "va", "vwnd", "V", "v10", "V10", "VGRD", "vgrd", "10v", "vas")
+#: Vertical velocities: canonical name, standard name, units, short names.
+VERTICAL_VELOCITIES = (
+    ("omega", "lagrangian_tendency_of_air_pressure", "Pa s-1", ("omega", "wap", "OMEGA", "w_p")),
+    ("w", "upward_air_velocity", "m s-1", ("w", "wa", "W")),
+)
+CANONICAL_DIMS = ("time", "level", "latitude", "longitude")
+DEFAULT_CHUNKS = {"time": 1, "level": 1, "latitude": -1, "longitude": -1}
+
+
+def expand_paths(paths: str | os.PathLike | Iterable[str | os.PathLike]) -> list[Path]:
+    """Expand a path, a glob or a list of them into a sorted list of files."""
+    items = [paths] if isinstance(paths, str | os.PathLike) else list(paths)
+    found: list[Path] = []
+    for item in items:
+        text = os.fspath(item)
+        if glob.has_magic(text):
+            matches = sorted(glob.glob(text))
+            if not matches:
+                raise InputError(f"{text}: no file matches this pattern")
+            found.extend(Path(m) for m in matches)
+        elif Path(text).is_file():
+            found.append(Path(text))
+        else:
+            raise InputError(f"{text}: no such file")
+    if not found:
+        raise InputError("no input files given")
+    return found
+
+
+def open_wind(
+    paths: str | os.PathLike | Iterable[str | os.PathLike],
+    u: str | None = None,
+    v: str | None = None,
+    chunks: Mapping[str, int] | None = None,
+) -> xr.Dataset:
+    """Open one file, several files or a glob as one canonical wind Dataset.
+
+    Parameters
+    ----------
+    paths : str, path or iterable of them
+        NetCDF files or glob patterns. Several files are combined along time.
+    u, v : str, optional
+        Names of the eastward and northward wind variables, when they cannot
+        be found by CF standard name or common short name.
+    chunks : mapping, optional
+        Dask chunk sizes by canonical dimension name; the default is one whole
+        latitude-longitude slab per chunk.
+
+    Returns
+    -------
+    xarray.Dataset
+        The canonical wind Dataset described in this module's docstring.
+
+    Raises
+    ------
+    flowpipe.errors.InputError
+        With a one-line message naming the file and the problem.
+    """
+    files = expand_paths(paths)
+    parts = [_open_one(path, u, v) for path in files]
+    ds = _combine(parts, files)
+    wanted = dict(DEFAULT_CHUNKS)
+    wanted.update(chunks or {})
+    ds = ds.chunk({d: c for d, c in wanted.items() if d in ds.dims})
+    ds.attrs["input_files"] = "\n".join(str(p) for p in files)
+    return ds
+
+
+def _open_one(path: Path, u: str | None, v: str | None) -> xr.Dataset:
+    try:
+        raw = xr.open_dataset(
+            path, chunks={}, decode_times=xr.coders.CFDatetimeCoder(use_cftime=None)
+        )
+    except Exception as exc:  # netCDF4/HDF5 raise many types for unreadable files
+        reason = str(exc).splitlines()[0] if str(exc) else type(exc).__name__
+        raise InputError(
+            f"{path}: cannot be read as NetCDF ({reason}); check that the file is complete "
+            "and is NetCDF-3 or NetCDF-4"
+        ) from exc
+    try:
+        return _canonical(raw, path, u, v)
+    except InputError:
+        raw.close()
+        raise
+
+
+def _find_variable(
+    ds: xr.Dataset, explicit: str | None, standard_names: tuple[str, ...], short_names: tuple[str, ...]
+) -> str | None:
+    if explicit is not None:
+        return explicit if explicit in ds.data_vars else None
+    for name in standard_names:
+        for height_suffix in ("", "_at_10m"):  # some writers append the height
+            found = ds.cf.standard_names.get(name + height_suffix)
+            if found:
+                return found[0]
+    for name in short_names:
+        if name in ds.data_vars:
+            return name
+    return None
+
+
+def _coordinate(ds: xr.Dataset, da: xr.DataArray, key: str, axis: str) -> str | None:
+    """Name of the 1-D coordinate of ``da`` for a CF key, found by cf-xarray."""
+    candidates = list(ds.cf.coordinates.get(key, [])) + list(ds.cf.axes.get(axis, []))
+    for name in candidates:
+        if name in da.coords or name in da.dims:
+            return name
+    return None
+
+
+def _canonical(raw: xr.Dataset, path: Path, u_name: str | None, v_name: str | None) -> xr.Dataset:
+    names = [_find_variable(raw, u_name, U_STANDARD_NAMES, U_SHORT_NAMES),
+             _find_variable(raw, v_name, V_STANDARD_NAMES, V_SHORT_NAMES)]
+    if None in names:
+        missing = [
+            f"--{which} {given}" if given else which
+            for which, given, found in (("u", u_name, names[0]), ("v", v_name, names[1]))
+            if found is None
+        ]
+        present = ", ".join(sorted(map(str, raw.data_vars))) or "none"
+        raise InputError(
+            f"{path}: no wind variable found for {' and '.join(missing)}; variables present: "
+            f"{present}; name them with --u NAME --v NAME (open_wind(u=..., v=...))"
+        )
+    un, vn = names
+    if raw[un].dims != raw[vn].dims or any(
+        not np.array_equal(raw[un][d].values, raw[vn][d].values)
+        for d in raw[un].dims if d in raw[un].coords and d in raw[vn].coords
+    ):
+        raise InputError(
+            f"{path}: u ({un}{raw[un].dims}) and v ({vn}{raw[vn].dims}) are on different grids; "
+            "interpolate them onto one grid first"
+        )
+    ds = raw
+    lat = _coordinate(ds, ds[un], "latitude", "Y")
+    lon = _coordinate(ds, ds[un], "longitude", "X")
+    if lat is None or lon is None:
+        ds = ds.cf.guess_coord_axis()
+        lat = lat or _coordinate(ds, ds[un], "latitude", "Y")
+        lon = lon or _coordinate(ds, ds[un], "longitude", "X")
+    if lat is None or lon is None:
+        raise InputError(
+            f"{path}: {un} has no latitude/longitude coordinates that CF attributes identify "
+            "(units degrees_north / degrees_east or standard_name latitude / longitude); add them"
+        )
+    if ds[lat].ndim != 1 or ds[lon].ndim != 1:
+        raise InputError(
+            f"{path}: {un} is on a curvilinear grid (2-D {lat}/{lon}); flowpipe supports 1-D "
+            "latitude-longitude grids only so far: regrid to a regular latitude-longitude grid first"
+        )
+    vert = _coordinate(ds, ds[un], "vertical", "Z")
+    time = _coordinate(ds, ds[un], "time", "T")
+    if vert is not None and ds[vert].ndim == 0:  # a single level, such as 10 m: a 2-D field
+        ds = ds.drop_vars(vert)
+        vert = None
+    if time is not None and ds[time].ndim == 0:  # one time per file, as a scalar coordinate
+        ds = ds.expand_dims(time)
+    renames = {lat: "latitude", lon: "longitude"}
+    if vert is not None:
+        renames[vert] = "level"
+    if time is not None:
+        renames[time] = "time"
+    for old, new in renames.items():
+        if ds[old].ndim != 1 or ds[old].dims[0] != old:
+            raise InputError(f"{path}: coordinate {old} is not a 1-D dimension coordinate of {un}")
+        if new != old and new in ds.variables and new not in renames:
+            ds = ds.drop_vars(new)
+    ds = ds.rename(renames)
+    spatial = set(ds[un].dims)
+    keep = [name for name in ds.data_vars if set(ds[name].dims) <= spatial and
+            {"latitude", "longitude"} <= set(ds[name].dims)]
+    ds = ds[keep]
+    ds = _to_canonical_variables(ds, path, un, vn)
+    ds = _orient(ds, path)
+    ds = _vertical(ds, path)
+    _probe(ds, path)
+    extra = [d for d in ds["u"].dims if d not in CANONICAL_DIMS]
+    order = extra + [d for d in CANONICAL_DIMS if d in ds["u"].dims]
+    ds = ds.transpose(*order, ...)
+    ds.attrs = {"level_type": ds.attrs["level_type"]}
+    if "title" in raw.attrs:
+        ds.attrs["input_title"] = str(raw.attrs["title"])
+    return ds
+
+
+def _velocity(da: xr.DataArray, path: Path, name: str, target: str) -> xr.DataArray:
+    units = da.attrs.get("units")
+    if units is None:
+        raise InputError(
+            f"{path}: variable {name} has no units attribute; add one (for example units = "
+            f"\"{target}\") so that flowpipe cannot mistake knots for m s-1"
+        )
+    try:
+        unit = cf_units.Unit(units)
+    except ValueError as exc:
+        raise InputError(f"{path}: variable {name} has units {units!r}, which UDUNITS does not know") from exc
+    if not unit.is_convertible(target):
+        raise InputError(
+            f"{path}: variable {name} has units {units!r}, which is not a {target} quantity; "
+            "check that the right variable was picked (--u/--v) and its units attribute"
+        )
+    factor = float(unit.convert(1.0, target))
+    out = da * factor if factor != 1.0 else da.copy()
+    out.attrs = {k: v for k, v in da.attrs.items() if k not in ("units", "scale_factor", "add_offset")}
+    out.attrs["units"] = target
+    out.attrs["source_name"] = name
+    out.attrs["source_units"] = units
+    out.encoding = {}
+    return out
+
+
+def _to_canonical_variables(ds: xr.Dataset, path: Path, un: str, vn: str) -> xr.Dataset:
+    out = {}
+    out["u"] = _velocity(ds[un], path, un, "m s-1").assign_attrs(
+        standard_name="eastward_wind", long_name="eastward wind")
+    out["v"] = _velocity(ds[vn], path, vn, "m s-1").assign_attrs(
+        standard_name="northward_wind", long_name="northward wind")
+    used = {un, vn}
+    for canonical, standard_name, units, short in VERTICAL_VELOCITIES:
+        found = _find_variable(ds, None, (standard_name,), short)
+        if found is not None and found not in used and found in ds.data_vars:
+            out[canonical] = _velocity(ds[found], path, found, units).assign_attrs(
+                standard_name=standard_name)
+            used.add(found)
+            break
+    for name in ds.data_vars:
+        if name not in used and name not in out:
+            out[name] = ds[name]
+    return xr.Dataset(out)
+
+
+def _strictly_monotonic(values: np.ndarray) -> int:
+    """+1 ascending, -1 descending, 0 neither (or repeated values)."""
+    if values.size < 2:
+        return 1
+    steps = np.diff(values)
+    if np.all(steps > 0):
+        return 1
+    if np.all(steps < 0):
+        return -1
+    return 0
+
+
+def _orient(ds: xr.Dataset, path: Path) -> xr.Dataset:
+    lat = ds["latitude"].values.astype(np.float64)
+    direction = _strictly_monotonic(lat)
+    if direction == 0:
+        raise InputError(f"{path}: latitude is not strictly monotonic (repeated or unordered values)")
+    if np.nanmax(np.abs(lat)) > 90.0 + 1e-6:
+        raise InputError(f"{path}: latitude has values beyond +/-90 degrees; check its units")
+    if direction < 0:
+        ds = ds.isel(latitude=slice(None, None, -1))
+
+    lon = ds["longitude"].values.astype(np.float64)
+    unwrapped = np.unwrap(lon, period=360.0)
+    direction = _strictly_monotonic(unwrapped)
+    if direction == 0:
+        raise InputError(f"{path}: longitude is not strictly monotonic (repeated or unordered values)")
+    if direction < 0:
+        ds = ds.isel(longitude=slice(None, None, -1))
+        unwrapped = unwrapped[::-1]
+    n = unwrapped.size
+    if n > 2 and abs(unwrapped[-1] - unwrapped[0] - 360.0) < 1e-6 * 360.0:
+        ds = ds.isel(longitude=slice(0, n - 1))  # a repeated wrap-around column
+        unwrapped = unwrapped[:-1]
+        n -= 1
+    step = (unwrapped[-1] - unwrapped[0]) / max(n - 1, 1)
+    if n > 2 and abs(n * step - 360.0) < 1e-4 * n:
+        wrapped = np.mod(unwrapped, 360.0)
+        start = int(np.argmin(wrapped))
+        ds = ds.roll(longitude=-start, roll_coords=False)
+        new_lon = np.roll(wrapped, -start)
+    else:
+        new_lon = unwrapped - 360.0 * np.round(unwrapped.mean() / 360.0)
+    lon_attrs = dict(ds["longitude"].attrs, units="degrees_east", standard_name="longitude")
+    lat_attrs = dict(ds["latitude"].attrs, units="degrees_north", standard_name="latitude")
+    ds = ds.assign_coords(
+        longitude=("longitude", new_lon, lon_attrs),
+        latitude=("latitude", ds["latitude"].values.astype(np.float64), lat_attrs),
+    )
+    for name in ("latitude", "longitude"):
+        ds[name].attrs.pop("bounds", None)
+        ds[name].encoding = {}
+    return ds
+
+
+def _vertical(ds: xr.Dataset, path: Path) -> xr.Dataset:
+    if "level" not in ds.dims:
+        ds.attrs["level_type"] = "none"
+        ds = ds.drop_vars("level", errors="ignore")
+        return ds
+    level = ds["level"]
+    if _strictly_monotonic(level.values) == 0:
+        raise InputError(f"{path}: vertical coordinate is not strictly monotonic")
+    units = level.attrs.get("units")
+    kind = "other"
+    values = level.values
+    attrs = dict(level.attrs)
+    if units:
+        try:
+            unit = cf_units.Unit(units)
+        except ValueError:
+            unit = None
+        if unit is not None and unit.is_convertible("Pa"):
+            values = unit.convert(values.astype(np.float64), "hPa")
+            attrs.update(units="hPa", standard_name="air_pressure", positive="down", axis="Z")
+            kind = "pressure"
+        elif unit is not None and unit.is_convertible("m"):
+            values = unit.convert(values.astype(np.float64), "m")
+            attrs.update(units="m", standard_name=attrs.get("standard_name", "height"),
+                         positive="up", axis="Z")
+            kind = "height"
+    ds = ds.assign_coords(level=("level", values, attrs))
+    ds["level"].encoding = {}
+    ds.attrs["level_type"] = kind
+    return ds
+
+
+def _probe(ds: xr.Dataset, path: Path) -> None:
+    """Read one value at the far end of each wind variable, to catch truncated files early."""
+    for name in ("u", "v"):
+        da = ds[name]
+        try:
+            da.isel({d: -1 for d in da.dims}).values
+        except Exception as exc:
+            raise InputError(
+                f"{path}: variable {name} cannot be read ({str(exc).splitlines()[0]}); "
+                "the file is probably truncated"
+            ) from exc
+
+
+def _combine(parts: list[xr.Dataset], files: list[Path]) -> xr.Dataset:
+    first = parts[0]
+    for part, path in zip(parts[1:], files[1:], strict=True):
+        for coord in ("latitude", "longitude", "level"):
+            a = first[coord].values if coord in first.coords else None
+            b = part[coord].values if coord in part.coords else None
+            if (a is None) != (b is None) or (a is not None and (a.shape != b.shape or not np.allclose(a, b))):
+                raise InputError(f"{path}: its {coord} differs from that of {files[0]}; "
+                                 "files combined in one run must share one grid")
+        if set(part.data_vars) != set(first.data_vars):
+            raise InputError(f"{path}: its variables differ from those of {files[0]}")
+    if len(parts) == 1:
+        return first
+    if "time" not in first.dims:
+        raise InputError(f"{files[0]}: several files were given but they have no time "
+                         "dimension to combine them along")
+    ds = xr.concat(parts, dim="time", data_vars="all", coords="minimal", compat="override",
+                   join="override", combine_attrs="drop_conflicts")
+    times = ds["time"].values
+    order = np.argsort(times, kind="stable")
+    sorted_times = times[order]
+    if any(sorted_times[i] == sorted_times[i + 1] for i in range(len(sorted_times) - 1)):
+        raise InputError("the input files repeat one or more times; give each time once")
+    if not np.array_equal(order, np.arange(order.size)):
+        ds = ds.isel(time=order)
+    return ds
+
+
+def missing_counts(ds: xr.Dataset, names: Iterable[str] = ("u", "v")) -> dict[str, int]:
+    """Number of missing (NaN) points of each named variable (computes).
+
+    Raises
+    ------
+    flowpipe.errors.InputError
+        When a variable has no valid point at all.
+    """
+    import dask
+
+    names = [n for n in names if n in ds]
+    counts = dask.compute(*[ds[n].isnull().sum() for n in names])
+    result = {n: int(c) for n, c in zip(names, counts, strict=True)}
+    for name, count in result.items():
+        if count == ds[name].size:
+            source = ds[name].attrs.get("source_name", name)
+            raise InputError(f"{ds.attrs.get('input_files', '?').splitlines()[0]}: variable "
+                             f"{source} has no valid value (every point is missing)")
+    return result

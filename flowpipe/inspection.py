@@ -1,0 +1,52 @@
+"""A description of one input file: what ``flowpipe inspect`` prints."""
+
+from __future__ import annotations
+
+import os
+
+import numpy as np
+import xarray as xr
+
+from .grid import describe_grid
+from .ingest import missing_counts, open_wind
+
+
+def _time_text(value) -> str:
+    if isinstance(value, np.datetime64):
+        return np.datetime_as_string(value, unit="s") + "Z"
+    return value.isoformat()  # cftime datetimes
+
+
+def describe_wind(wind: xr.Dataset) -> dict:
+    """Describe a canonical wind Dataset as a JSON-friendly dict (computes missing counts).
+
+    The keys are those of the contract's ``inspect --json`` (``u``, ``v``,
+    ``grid``, ``latitudes``, ``poles``, ``nlat``, ``nlon``, ``levels``,
+    ``times``) and a few more.
+    """
+    grid = describe_grid(wind)
+    vertical = next((n for n in ("omega", "w") if n in wind), None)
+    times = wind["time"].values if "time" in wind.dims else np.array([])
+    report = {
+        "u": wind["u"].attrs["source_name"],
+        "v": wind["v"].attrs["source_name"],
+        "u_units": wind["u"].attrs["source_units"],
+        "vertical_velocity": wind[vertical].attrs["source_name"] if vertical else None,
+        **grid.as_dict(),
+        "level_type": wind.attrs.get("level_type", "none"),
+        "levels": [float(x) for x in wind["level"].values] if "level" in wind.dims else None,
+        "level_units": wind["level"].attrs.get("units") if "level" in wind.dims else None,
+        "times": int(times.size),
+        "time_range": [_time_text(times[0]), _time_text(times[-1])] if times.size else None,
+        "calendar": (wind["time"].encoding.get("calendar", "standard")
+                     if "time" in wind.dims else None),
+        "missing": missing_counts(wind, ("u", "v", "omega", "w")),
+        "other_variables": sorted(str(n) for n in wind.data_vars if n not in ("u", "v", "omega", "w")),
+    }
+    return report
+
+
+def inspect_file(path: str | os.PathLike, u: str | None = None, v: str | None = None) -> dict:
+    """Open one file (or glob) and describe it, with ``file`` naming it."""
+    wind = open_wind(path, u=u, v=v)
+    return {"file": os.fspath(path), **describe_wind(wind)}
