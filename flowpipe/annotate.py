@@ -1,21 +1,46 @@
-"""CF-1.11 and ACDD-1.3 attributes for everything flowpipe writes."""
+"""CF-1.11 and ACDD-1.3 attributes for everything flowpipe writes.
+
+Stages set what only they know (``title``, ``summary``, ``references`` naming
+the published methods, method parameters) with :func:`global_attrs`; the
+writer then calls :func:`complete`, which fills in everything that can be read
+off the Dataset itself: coordinate attributes, ACDD ``coverage_content_type``,
+geospatial and time coverage, keywords, and the caution in ``comment``.
+Nothing a stage has set is overwritten.
+"""
 
 from __future__ import annotations
 
 import datetime as _dt
 import sys
+from collections.abc import Hashable
 
+import cf_units
+import numpy as np
 import xarray as xr
 
 from ._version import __version__
 
 CONVENTIONS = "CF-1.11, ACDD-1.3"
 
+#: The CF standard-name table the names are taken from (version 93, the one
+#: compliance-checker 6.1 ships and checks against).
+STANDARD_NAME_VOCABULARY = "CF Standard Name Table v93"
+
 #: The caution every output carries (README, NetCDF ``comment``, map footers).
 CAUTION = (
     "Analysis diagnostics computed by flowpipe from gridded model winds. Not a certified "
     "dispersion, hazard or warning product: for decisions about hazardous releases or public "
     "safety defer to the responsible authorities, local regulations and licensed practice."
+)
+
+#: The caution in a few words, for places with little room (map footers).
+CAUTION_SHORT = "Analysis diagnostics; not a certified dispersion, hazard or warning product."
+
+#: Used when a stage names no references: the conventions the metadata follow.
+DEFAULT_REFERENCES = (
+    "NetCDF Climate and Forecast (CF) Metadata Conventions 1.11, https://cfconventions.org; "
+    "Attribute Convention for Data Discovery 1.3 (Earth Science Information Partners), "
+    "https://wiki.esipfed.org/Attribute_Convention_for_Data_Discovery_1-3"
 )
 
 #: Output variables of the contract: standard_name (or None), units, long_name.
@@ -35,6 +60,22 @@ VARIABLES: dict[str, tuple[str | None, str, str]] = {
                    "northward component of the harmonic (non-divergent and irrotational) wind"),
 }
 
+#: Attributes of dimension coordinates, by standard name: long_name, axis (CF 1.11 section 4).
+COORDINATES: dict[str, tuple[str, str]] = {
+    "latitude": ("latitude", "Y"),
+    "longitude": ("longitude", "X"),
+    "time": ("time", "T"),
+    "air_pressure": ("pressure level", "Z"),
+    "height": ("height above the surface", "Z"),
+    "altitude": ("altitude", "Z"),
+}
+
+#: CF 1.11 section 4.4.1: a time coordinate of the standard calendars should
+#: say how leap seconds are handled; flowpipe's times (numpy, cftime) ignore them.
+TIME_UNITS_METADATA = "leap_seconds: none"
+
+_VERTICAL = ("air_pressure", "height", "altitude")
+
 
 def variable_attrs(name: str) -> dict[str, str]:
     """CF attributes of a contract output variable."""
@@ -51,7 +92,10 @@ def now_iso() -> str:
 
 
 def global_attrs(ds: xr.Dataset, *, title: str, summary: str, references: str) -> dict[str, str]:
-    """The global attributes of a flowpipe output (ACDD-1.3 discovery set)."""
+    """The global attributes of a flowpipe output (ACDD-1.3 discovery set).
+
+    ``history`` gets one more line (time and command) after the one ``ds`` has.
+    """
     created = now_iso()
     inputs = ds.attrs.get("input_files", "")
     command = " ".join(sys.argv) if sys.argv and sys.argv[0] else "flowpipe (Python API)"
@@ -68,3 +112,149 @@ def global_attrs(ds: xr.Dataset, *, title: str, summary: str, references: str) -
         "comment": CAUTION,
         "input_files": inputs,
     }
+
+
+def complete(ds: xr.Dataset) -> xr.Dataset:
+    """A shallow copy of ``ds`` with every CF / ACDD attribute flowpipe can infer.
+
+    Fills in, without overwriting what is set: the contract's attributes of
+    its variables; ``long_name``, ``axis`` and ``coverage_content_type`` of
+    coordinates; ``units_metadata`` of times; ``coverage_content_type`` of
+    data variables; for CF trajectories, the coordinates attribute (by making
+    time, latitude, longitude and the vertical position coordinates); and
+    the global ACDD set, including geospatial and time coverage and keywords.
+    ``Conventions`` is always flowpipe's, and ``comment`` always includes
+    :data:`CAUTION`.
+    """
+    out = ds.copy()
+    if str(out.attrs.get("featureType", "")).lower() == "trajectory":
+        located = [name for name in out.data_vars if _is_location(out[name])]
+        out = out.set_coords(located)
+    for name in list(out.variables):
+        _complete_variable(out, name)
+    attrs = dict(out.attrs)
+    if "date_created" not in attrs:  # not yet annotated by a stage
+        stage = global_attrs(
+            out,
+            title=attrs.get("title", f"flowpipe output: {', '.join(map(str, out.data_vars))}"),
+            summary=attrs.get("summary", "Wind-field kinematics computed by flowpipe."),
+            references=attrs.get("references", DEFAULT_REFERENCES),
+        )
+        attrs.update(stage)
+    attrs.setdefault("references", DEFAULT_REFERENCES)
+    attrs["Conventions"] = CONVENTIONS
+    comment = str(attrs.get("comment", ""))
+    if CAUTION not in comment:
+        attrs["comment"] = f"{comment}\n{CAUTION}" if comment else CAUTION
+    for key, value in _discovery(out).items():
+        attrs.setdefault(key, value)
+    out.attrs = attrs
+    return out
+
+
+def _is_location(da: xr.DataArray) -> bool:
+    standard_name = da.attrs.get("standard_name")
+    return standard_name in ("latitude", "longitude", "time", *_VERTICAL) or (
+        da.name == "time" and np.issubdtype(da.dtype, np.datetime64))
+
+
+def _complete_variable(ds: xr.Dataset, name: Hashable) -> None:
+    var = ds.variables[name]
+    attrs = dict(var.attrs)
+    if name in VARIABLES:
+        for key, value in variable_attrs(str(name)).items():
+            attrs.setdefault(key, value)
+    if _is_time(var):
+        attrs.setdefault("standard_name", "time")
+        if _standard_calendar(var):
+            attrs.setdefault("units_metadata", TIME_UNITS_METADATA)
+    standard_name = attrs.get("standard_name")
+    if _is_temperature(attrs.get("units")):
+        attrs.setdefault("units_metadata", "temperature: on_scale"
+                         if str(standard_name).endswith("temperature") else "temperature: unknown")
+    is_coordinate = name in ds.coords
+    if standard_name in COORDINATES:
+        long_name, axis = COORDINATES[standard_name]
+        attrs.setdefault("long_name", long_name)
+        if name in ds.dims:  # CF 1.11 section 4: axis on coordinate variables
+            attrs.setdefault("axis", axis)
+    attrs.setdefault("long_name", str(standard_name or name).replace("_", " "))
+    if "flag_values" in attrs:
+        attrs["flag_values"] = np.asarray(attrs["flag_values"]).astype(var.dtype)
+    if standard_name in COORDINATES or (is_coordinate and name in ds.dims):
+        content = "coordinate"
+    elif "flag_values" in attrs or "flag_masks" in attrs:
+        content = "qualityInformation"
+    elif "cf_role" in attrs:
+        content = "referenceInformation"
+    else:
+        content = "modelResult"
+    attrs.setdefault("coverage_content_type", content)
+    var.attrs = attrs
+
+
+def _is_temperature(units: object) -> bool:
+    """True for units of temperature, which CF 1.11 section 3.1.2 asks to qualify."""
+    try:
+        return isinstance(units, str) and cf_units.Unit(units).is_convertible("K")
+    except ValueError:
+        return False
+
+
+def _is_time(var: xr.Variable) -> bool:
+    values = var.values if var.dtype == object and var.size else None
+    return np.issubdtype(var.dtype, np.datetime64) or (
+        values is not None and hasattr(values.flat[0], "calendar"))
+
+
+def _standard_calendar(var: xr.Variable) -> bool:
+    if np.issubdtype(var.dtype, np.datetime64):
+        return True
+    return getattr(var.values.flat[0], "calendar", "") in ("standard", "gregorian",
+                                                           "proleptic_gregorian")
+
+
+def _find(ds: xr.Dataset, standard_names: tuple[str, ...]) -> xr.DataArray | None:
+    for name in ds.variables:
+        if ds.variables[name].attrs.get("standard_name") in standard_names:
+            return ds[name]
+    return None
+
+
+def _time_text(value) -> str:
+    if isinstance(value, np.datetime64):
+        return f"{np.datetime_as_string(value, unit='s')}Z"
+    return value.isoformat()
+
+
+def _discovery(ds: xr.Dataset) -> dict[str, object]:
+    """ACDD-1.3 coverage, keyword and vocabulary attributes read off the Dataset."""
+    found: dict[str, object] = {}
+    names = sorted({str(ds[n].attrs["standard_name"]) for n in ds.data_vars
+                    if "standard_name" in ds[n].attrs})
+    found["keywords"] = ", ".join(names) if names else "wind kinematics"
+    found["keywords_vocabulary"] = STANDARD_NAME_VOCABULARY
+    found["standard_name_vocabulary"] = STANDARD_NAME_VOCABULARY
+    for key, standard_name, units in (("lat", "latitude", "degrees_north"),
+                                      ("lon", "longitude", "degrees_east")):
+        da = _find(ds, (standard_name,))
+        if da is not None and da.size and np.isfinite(da.values).any():
+            found[f"geospatial_{key}_min"] = float(np.nanmin(da.values))
+            found[f"geospatial_{key}_max"] = float(np.nanmax(da.values))
+            found[f"geospatial_{key}_units"] = units
+    vertical = _find(ds, _VERTICAL)
+    if vertical is not None and vertical.size and np.isfinite(vertical.values).any():
+        found["geospatial_vertical_min"] = float(np.nanmin(vertical.values))
+        found["geospatial_vertical_max"] = float(np.nanmax(vertical.values))
+        found["geospatial_vertical_units"] = str(vertical.attrs.get("units", ""))
+        found["geospatial_vertical_positive"] = str(
+            vertical.attrs.get("positive", "down" if vertical.attrs["standard_name"] ==
+                               "air_pressure" else "up"))
+    time = next((ds[n] for n in ds.variables if _is_time(ds.variables[n])), None)
+    if time is not None:
+        values = time.values.ravel()
+        values = values[~xr.DataArray(values).isnull().values]
+        if values.size:
+            found["time_coverage_start"] = _time_text(values.min())
+            found["time_coverage_end"] = _time_text(values.max())
+    return found

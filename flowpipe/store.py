@@ -4,44 +4,67 @@ A file appears under its final name only when it is complete: it is written
 to a temporary name in the target directory, flushed to disk, then renamed
 (``os.replace`` is atomic on POSIX file systems), and the directory entry is
 flushed too. A crash leaves at most a hidden ``.NAME.tmp-*`` file behind,
-never a half-written file under the final name.
+never a half-written file under the final name. A file that is one of the
+inputs of the run is never overwritten.
 """
 
 from __future__ import annotations
 
 import contextlib
+import math
 import os
 import uuid
-from collections.abc import Iterator
+from collections.abc import Iterable, Iterator
 from pathlib import Path
 
 import numpy as np
 import xarray as xr
 
+from . import annotate
 from .errors import UsageError
 
 #: The netCDF default fill value for 32- and 64-bit floats (NetCDF User Guide,
 #: ``NC_FILL_FLOAT`` / ``NC_FILL_DOUBLE``).
 FILL_FLOAT = 9.969209968386869e36
 
+#: Dimensions a reader wants whole: one horizontal slab, one track, one spectrum.
+WHOLE_DIMS = ("latitude", "longitude", "obs", "total_wavenumber")
+
+#: Smallest chunk worth having: HDF5 chunks much below some tens of KiB cost more
+#: in index and per-chunk overhead than they save (HDF5 documentation, "Chunking
+#: in HDF5"; common practice).
+MIN_CHUNK_BYTES = 64 * 1024
+
+#: Times are stored as float64 seconds: whole seconds stay exact (53-bit mantissa)
+#: and missing times (NaT, as in padded trajectories) become the fill value.
+TIME_UNITS = "seconds since 1970-01-01 00:00:00"
+
 
 @contextlib.contextmanager
-def atomic_path(path: str | os.PathLike, protect: tuple[str, ...] = ()) -> Iterator[Path]:
+def atomic_path(path: str | os.PathLike, protect: Iterable[str | os.PathLike] = ()) -> Iterator[Path]:
     """Yield a temporary path beside ``path``; rename it to ``path`` on success.
+
+    The temporary name keeps the suffix of ``path`` so that writers which
+    choose the format from it (matplotlib) see the right one.
 
     Parameters
     ----------
     path : path-like
         The final name.
-    protect : tuple of str
+    protect : iterable of path-like
         Paths that must never be overwritten (the inputs of the run).
+
+    Raises
+    ------
+    flowpipe.errors.UsageError
+        When ``path`` is one of ``protect``.
     """
     final = Path(path)
-    final.parent.mkdir(parents=True, exist_ok=True)
     for item in protect:
         if item and final.exists() and Path(item).exists() and os.path.samefile(item, final):
             raise UsageError(f"{final}: is one of the inputs; choose another output name")
-    tmp = final.parent / f".{final.name}.tmp-{os.getpid()}-{uuid.uuid4().hex[:8]}"
+    final.parent.mkdir(parents=True, exist_ok=True)
+    tmp = final.parent / f".{final.name}.tmp-{os.getpid()}-{uuid.uuid4().hex[:8]}{final.suffix}"
     try:
         yield tmp
         with open(tmp, "rb+") as handle:
@@ -57,56 +80,97 @@ def atomic_path(path: str | os.PathLike, protect: tuple[str, ...] = ()) -> Itera
             tmp.unlink()
 
 
+def sources(ds: xr.Dataset) -> list[str]:
+    """Files ``ds`` was read from: its ``input_files`` and the files behind its variables."""
+    found = [line for line in str(ds.attrs.get("input_files", "")).splitlines() if line]
+    for item in (ds, *ds.variables.values()):
+        source = item.encoding.get("source")
+        if source:
+            found.append(str(source))
+    return found
+
+
+def chunk_sizes(dims: tuple[str, ...], shape: tuple[int, ...], itemsize: int) -> tuple[int, ...]:
+    """HDF5 chunk shape: whole :data:`WHOLE_DIMS`, one step of the others.
+
+    Reading one time and level (one map) or one trajectory then touches one
+    chunk. When that is smaller than :data:`MIN_CHUNK_BYTES`, the innermost
+    other dimensions grow until it is not.
+    """
+    sizes = [n if d in WHOLE_DIMS else 1 for d, n in zip(dims, shape, strict=True)]
+    for axis in reversed(range(len(dims))):
+        if dims[axis] in WHOLE_DIMS:
+            continue
+        rest = math.prod(sizes) // sizes[axis] * itemsize
+        sizes[axis] = max(1, min(shape[axis], -(-MIN_CHUNK_BYTES // max(rest, 1))))
+        if math.prod(sizes) * itemsize >= MIN_CHUNK_BYTES:
+            break
+    return tuple(max(1, s) for s in sizes)
+
+
 def _encoding(ds: xr.Dataset, float32: bool) -> dict[str, dict]:
     encoding: dict[str, dict] = {}
     for name, var in ds.variables.items():
+        old = var.encoding
         enc: dict = {}
-        if name in ds.coords and name in ds.dims:
+        is_dim = name in ds.dims
+        if np.issubdtype(var.dtype, np.datetime64) or var.attrs.get("standard_name") == "time":
+            enc.update(units=old.get("units", TIME_UNITS) if is_dim else TIME_UNITS,
+                       dtype=np.float64)
+            if "calendar" in old:
+                enc["calendar"] = old["calendar"]
+            enc["_FillValue"] = None if is_dim else FILL_FLOAT
+        elif is_dim:
             enc["_FillValue"] = None
         elif np.issubdtype(var.dtype, np.floating):
-            dtype = np.float32 if float32 else var.dtype
-            enc.update(zlib=True, complevel=4, shuffle=True, dtype=dtype, _FillValue=FILL_FLOAT)
-            if var.ndim:
-                enc["chunksizes"] = tuple(
-                    n if d in ("latitude", "longitude", "obs", "total_wavenumber") else 1
-                    for d, n in zip(var.dims, var.shape, strict=True)
-                )
-        elif np.issubdtype(var.dtype, np.integer) and name not in ds.coords:
-            enc.update(zlib=True, complevel=4, shuffle=True)
-        if name == "time" or np.issubdtype(var.dtype, np.datetime64):
-            enc.pop("dtype", None)
-            if "units" not in var.encoding:
-                enc["units"] = "hours since 1970-01-01 00:00:00"
-            enc["dtype"] = np.float64
-        encoding[name] = enc
+            enc.update(zlib=True, complevel=4, shuffle=True, _FillValue=FILL_FLOAT,
+                       dtype=np.dtype(np.float32 if float32 else var.dtype))
+        elif np.issubdtype(var.dtype, np.integer):
+            enc.update(zlib=True, complevel=4, shuffle=True, _FillValue=None)
+        if enc.get("zlib") and var.ndim:
+            itemsize = np.dtype(enc.get("dtype", var.dtype)).itemsize
+            enc["chunksizes"] = chunk_sizes(tuple(map(str, var.dims)), var.shape, itemsize)
+        encoding[str(name)] = enc
     return encoding
 
 
 def write(ds: xr.Dataset, path: str | os.PathLike, *, float32: bool = False) -> Path:
-    """Write a Dataset to NetCDF-4 atomically, with CF encodings.
+    """Write a Dataset to NetCDF-4 atomically, CF-1.11 and ACDD-1.3 annotated.
 
-    Data variables are compressed (zlib level 4 with shuffle) and chunked one
+    Attributes are completed by :func:`flowpipe.annotate.complete`; data
+    variables are compressed (zlib level 4 with shuffle) and chunked one
     horizontal slab (or one trajectory) at a time; missing values are written
-    as the netCDF default fill value.
+    as the netCDF default fill value. Encodings the variables carried from the
+    files they were read from are not reused.
 
     Parameters
     ----------
     ds : xarray.Dataset
         What to write; dask-backed data are computed while writing.
     path : path-like
-        The final file name.
+        The final file name; never one of the files ``ds`` was read from.
     float32 : bool
-        Store floating-point data variables in single precision: about seven
-        significant digits (a relative rounding error of at most 6e-8), ample
-        for plotting and most diagnostics and half the size.
+        Store floating-point data variables (not coordinates or times) in
+        single precision: a 24-bit significand, about seven significant digits,
+        so a relative rounding error of at most 2**-24 (6.0e-8) per value
+        (IEEE 754 binary32), ample for plotting and most diagnostics at half
+        the size. Values beyond about 3.4e38 cannot be stored.
 
     Returns
     -------
     pathlib.Path
         The path written.
+
+    Raises
+    ------
+    flowpipe.errors.UsageError
+        When ``path`` is one of the files ``ds`` was read from.
     """
     final = Path(path)
-    protect = tuple(ds.attrs.get("input_files", "").splitlines())
-    with atomic_path(final, protect) as tmp:
-        ds.to_netcdf(tmp, engine="netcdf4", format="NETCDF4", encoding=_encoding(ds, float32))
+    out = annotate.complete(ds)
+    encoding = _encoding(out, float32)
+    for var in out.variables.values():
+        var.encoding = {}
+    with atomic_path(final, sources(ds)) as tmp:
+        out.to_netcdf(tmp, engine="netcdf4", format="NETCDF4", encoding=encoding)
     return final
