@@ -222,9 +222,8 @@ def classify(latitude: np.ndarray, longitude: np.ndarray) -> GridInfo:
     lon = np.asarray(longitude)
     tol_lon = _tolerance(lon)
     nlon = lon.size
-    global_lon = (
-        nlon > 2 and _equally_spaced(lon) and abs(nlon * (lon[-1] - lon[0]) / (nlon - 1) - 360.0) < nlon * tol_lon
-    )
+    span = nlon * (lon[-1] - lon[0]) / max(nlon - 1, 1)  # nlon * spacing
+    global_lon = nlon > 2 and _equally_spaced(lon) and abs(span - 360.0) < nlon * tol_lon
     tol = _tolerance(lat)
     poles = bool(lat.size > 1 and abs(lat[0] + 90.0) < tol and abs(lat[-1] - 90.0) < tol)
     if lat.size > 2 and np.max(np.abs(lat.astype(np.float64) - gaussian_latitudes(lat.size))) < tol:

@@ -112,7 +112,28 @@ def open_wind(
     return ds
 
 
+def _check_classic_size(path: Path) -> None:
+    """Refuse a truncated NetCDF-3 file, which the netCDF library reads as fill values.
+
+    SciPy's reader maps the file and lays each variable over it at the offset
+    the header gives, which fails when the data run past the end of the file.
+    """
+    import scipy.io
+
+    with open(path, "rb") as handle:
+        if handle.read(4) not in (b"CDF\x01", b"CDF\x02"):  # classic and 64-bit offset
+            return
+    try:
+        scipy.io.netcdf_file(path, mode="r", mmap=True).close()
+    except Exception as exc:
+        raise InputError(
+            f"{path}: the NetCDF-3 file is shorter than its header says (truncated?); "
+            "copy or download it again"
+        ) from exc
+
+
 def _open_one(path: Path, u: str | None, v: str | None) -> xr.Dataset:
+    _check_classic_size(path)
     try:
         raw = xr.open_dataset(
             path, chunks={}, decode_times=xr.coders.CFDatetimeCoder(use_cftime=None)
@@ -299,7 +320,7 @@ def _orient(ds: xr.Dataset, path: Path) -> xr.Dataset:
         ds = ds.isel(latitude=slice(None, None, -1))
 
     lon = ds["longitude"].values.astype(np.float64)
-    unwrapped = np.unwrap(lon, period=360.0)
+    unwrapped = lon if _strictly_monotonic(lon) else np.unwrap(lon, period=360.0)
     direction = _strictly_monotonic(unwrapped)
     if direction == 0:
         raise InputError(f"{path}: longitude is not strictly monotonic (repeated or unordered values)")
@@ -311,6 +332,13 @@ def _orient(ds: xr.Dataset, path: Path) -> xr.Dataset:
         ds = ds.isel(longitude=slice(0, n - 1))  # a repeated wrap-around column
         unwrapped = unwrapped[:-1]
         n -= 1
+    steps = np.diff(unwrapped)
+    if n > 2 and steps.max() > 360.0 - (unwrapped[-1] - unwrapped[0]) + 1e-6:
+        # Stored in ascending order with the gap inside (say -175..-150, 170..180):
+        # the domain really starts after its largest internal step.
+        cut = int(np.argmax(steps)) + 1
+        ds = ds.isel(longitude=np.r_[cut:n, 0:cut])
+        unwrapped = np.r_[unwrapped[cut:], unwrapped[:cut] + 360.0]
     step = (unwrapped[-1] - unwrapped[0]) / max(n - 1, 1)
     if n > 2 and abs(n * step - 360.0) < 1e-4 * n:
         wrapped = np.mod(unwrapped, 360.0)
@@ -368,7 +396,7 @@ def _probe(ds: xr.Dataset, path: Path) -> None:
     for name in ("u", "v"):
         da = ds[name]
         try:
-            da.isel({d: -1 for d in da.dims}).values
+            da.isel({d: -1 for d in da.dims}).load()
         except Exception as exc:
             raise InputError(
                 f"{path}: variable {name} cannot be read ({str(exc).splitlines()[0]}); "
@@ -382,7 +410,9 @@ def _combine(parts: list[xr.Dataset], files: list[Path]) -> xr.Dataset:
         for coord in ("latitude", "longitude", "level"):
             a = first[coord].values if coord in first.coords else None
             b = part[coord].values if coord in part.coords else None
-            if (a is None) != (b is None) or (a is not None and (a.shape != b.shape or not np.allclose(a, b))):
+            same = (a is None and b is None) or (
+                a is not None and b is not None and a.shape == b.shape and np.allclose(a, b))
+            if not same:
                 raise InputError(f"{path}: its {coord} differs from that of {files[0]}; "
                                  "files combined in one run must share one grid")
         if set(part.data_vars) != set(first.data_vars):

@@ -69,7 +69,3 @@ def main(argv: Sequence[str] | None = None) -> int:
         print(f"flowpipe: error: internal error ({type(exc).__name__}: {exc}); rerun with "
               "--debug for the traceback and report it", file=sys.stderr)
         return EXIT_INTERNAL
-
-
-if __name__ == "__main__":  # pragma: no cover
-    sys.exit(main())

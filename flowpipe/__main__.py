@@ -1,0 +1,7 @@
+"""``python -m flowpipe``: the same as the ``flowpipe`` command."""
+
+import sys
+
+from .cli import main
+
+sys.exit(main())
