@@ -1,0 +1,435 @@
+"""Spherical-harmonic engine: Helmholtz decomposition of a wind on the sphere.
+
+Plain NumPy kernels on one latitude-longitude slab at a time, on top of the
+spin-weighted transforms of ducc0. Arrays come and go in the canonical
+orientation of :mod:`flowpipe.ingest` (latitudes ascending, south to north,
+along the second-last axis); ducc0 orders rings north to south, so the engine
+flips rows on the way in and out.
+
+Conventions
+-----------
+* ``u = -(1/a) dpsi/dphi + (1/(a cos phi)) dchi/dlambda`` and
+  ``v = (1/(a cos phi)) dpsi/dlambda + (1/a) dchi/dphi``; the relative
+  vorticity is ``laplacian(psi)`` and the divergence ``laplacian(chi)``.
+* The spin-1 map handed to ducc0 is ``[v_theta, v_phi] = [-v, u]`` (theta is
+  colatitude). Its gradient (E) and curl (B) coefficients are
+  ``sqrt(l(l+1))/a`` times the coefficients of ``chi`` and ``psi``.
+* Coefficients are complex arrays in the packed order of ducc0 (``m`` major,
+  ``m = 0..N``, then ``l = m..N``), orthonormal on the unit sphere.
+* ``psi`` and ``chi`` are defined up to a constant: their ``l = 0``
+  coefficient is zero, which makes their global area-weighted mean zero.
+
+Pole rows
+---------
+On a grid with rows on the poles (geometry ``"CC"``) the ``nlon`` values of a
+pole row all describe one and the same horizontal vector, seen from ``nlon``
+meridians: eastward and northward directions at a pole depend on the
+meridian along which it is approached. A consistent pole row is therefore
+``u = -W_x sin(lambda) + W_y cos(lambda)``,
+``v = s (-W_x cos(lambda) - W_y sin(lambda))`` with ``s = +1`` at the north
+pole and ``-1`` at the south pole, ``(W_x, W_y)`` the Cartesian components of
+the pole vector. Before the analysis each pole row is replaced by its
+least-squares fit of this form; any other content of a pole row (a constant
+written by a model that averaged the row, say) cannot belong to a smooth
+vector field and is discarded.
+"""
+
+from __future__ import annotations
+
+import ducc0
+import numpy as np
+
+from .errors import UsageError
+
+_SHT = ducc0.sht.experimental
+
+#: ducc0 ring geometries for which the vector analysis is exact.
+GEOMETRIES = ("CC", "F1", "GL")
+
+
+def max_truncation(geometry: str, nlat: int, nlon: int) -> int:
+    """The largest triangular truncation a complete global grid resolves.
+
+    Parameters
+    ----------
+    geometry : {"CC", "F1", "GL"}
+        ducc0 ring geometry.
+    nlat, nlon : int
+        Number of latitude rows and of longitudes.
+
+    Returns
+    -------
+    int
+        ``min(lmax, (nlon - 1) // 2)`` with ``lmax = nlat - 2`` for ``"CC"``
+        and ``nlat - 1`` for ``"F1"`` and ``"GL"``: the highest degree the
+        analysis recovers exactly and the highest order the longitudes carry
+        without aliasing onto the Nyquist frequency.
+
+    References
+    ----------
+    Reinecke, Belkner & Carron (2023), "Improved cosmic microwave background
+    (de-)lensing using general spherical harmonic transforms", Astron.
+    Astrophys. 678, A165 (the ducc0 transforms and their exactness limits, as
+    listed in :func:`ducc0.sht.experimental.analysis_2d`).
+    """
+    if geometry not in GEOMETRIES:
+        raise UsageError(f"geometry {geometry!r} is not one of {', '.join(GEOMETRIES)}")
+    lmax = nlat - 2 if geometry == "CC" else nlat - 1
+    return int(min(lmax, (nlon - 1) // 2))
+
+
+def degrees(truncation: int) -> np.ndarray:
+    """Total wavenumber ``l`` of every coefficient in ducc0's packed order.
+
+    Parameters
+    ----------
+    truncation : int
+        Triangular truncation ``N``.
+
+    Returns
+    -------
+    numpy.ndarray
+        Integer array of length ``(N + 1)(N + 2) / 2``.
+
+    References
+    ----------
+    Packed ``m``-major storage of :mod:`ducc0.sht` (the healpy convention;
+    Gorski et al. 2005, "HEALPix: a framework for high-resolution
+    discretization and fast analysis of data distributed on the sphere",
+    Astrophys. J. 622, 759-771).
+    """
+    return np.concatenate([np.arange(m, truncation + 1) for m in range(truncation + 1)])
+
+
+def orders(truncation: int) -> np.ndarray:
+    """Zonal wavenumber ``m`` of every coefficient in ducc0's packed order.
+
+    Parameters
+    ----------
+    truncation : int
+        Triangular truncation ``N``.
+
+    Returns
+    -------
+    numpy.ndarray
+        Integer array of length ``(N + 1)(N + 2) / 2``.
+
+    References
+    ----------
+    As :func:`degrees`.
+    """
+    return np.concatenate([np.full(truncation + 1 - m, m) for m in range(truncation + 1)])
+
+
+def consistent_pole_rows(
+    u: np.ndarray, v: np.ndarray, longitude: np.ndarray
+) -> tuple[np.ndarray, np.ndarray]:
+    """Replace the two pole rows of a wind by the one vector each describes.
+
+    Parameters
+    ----------
+    u, v : numpy.ndarray
+        Eastward and northward wind, shape ``(nlat, nlon)``, rows ascending
+        from the south pole (first row) to the north pole (last row).
+    longitude : numpy.ndarray
+        Longitudes in degrees, equally spaced over the full circle.
+
+    Returns
+    -------
+    u, v : numpy.ndarray
+        Copies whose pole rows are the least-squares fit of a single
+        horizontal vector per pole (see the module docstring).
+
+    References
+    ----------
+    The representation of a tangent vector at a pole in the local
+    east-north bases of the meridians through it (common practice; see e.g.
+    Swarztrauber 1981, "The approximation of vector functions and their
+    derivatives on the sphere", SIAM J. Numer. Anal. 18, 191-210, section 2).
+    """
+    u = np.array(u, dtype=np.float64)
+    v = np.array(v, dtype=np.float64)
+    lam = np.radians(longitude)
+    s, c = np.sin(lam), np.cos(lam)
+    for row, sign in ((0, -1.0), (-1, 1.0)):
+        vn = sign * v[row]
+        wx = -np.mean(s * u[row] + c * vn)
+        wy = np.mean(c * u[row] - s * vn)
+        u[row] = -wx * s + wy * c
+        v[row] = sign * (-wx * c - wy * s)
+    return u, v
+
+
+def vector_analysis(
+    u: np.ndarray, v: np.ndarray, geometry: str, truncation: int, radius: float, nthreads: int = 1
+) -> tuple[np.ndarray, np.ndarray]:
+    """Streamfunction and velocity-potential coefficients of a wind.
+
+    Parameters
+    ----------
+    u, v : numpy.ndarray
+        Eastward and northward wind in m s-1, shape ``(nlat, nlon)``,
+        latitudes ascending, longitudes from 0 eastward.
+    geometry : {"CC", "F1", "GL"}
+        ducc0 ring geometry of the grid.
+    truncation : int
+        Triangular truncation ``N``, at most :func:`max_truncation`.
+    radius : float
+        Radius of the sphere in m.
+    nthreads : int
+        Threads ducc0 may use.
+
+    Returns
+    -------
+    psi, chi : numpy.ndarray
+        Complex coefficients (packed, see the module docstring) of the
+        streamfunction and of the velocity potential in m2 s-1, with zero
+        ``l = 0`` coefficient.
+
+    Notes
+    -----
+    One spin-1 analysis gives the gradient and curl coefficients ``E`` and
+    ``B`` of the wind; ``chi_lm = a E_lm / sqrt(l(l+1))`` and
+    ``psi_lm = a B_lm / sqrt(l(l+1))``. Pole rows are made consistent first
+    (:func:`consistent_pole_rows`).
+
+    References
+    ----------
+    Helmholtz decomposition with vector spherical harmonics: Swarztrauber
+    (1981), "The approximation of vector functions and their derivatives on
+    the sphere", SIAM J. Numer. Anal. 18, 191-210; spin-weighted transforms:
+    Reinecke & Seljebotn (2013), "Libsharp - spherical harmonic transforms
+    revisited", Astron. Astrophys. 554, A112, and Reinecke, Belkner & Carron
+    (2023), Astron. Astrophys. 678, A165 (ducc0).
+    """
+    if geometry == "CC":
+        u, v = consistent_pole_rows(u, v, np.arange(u.shape[-1]) * 360.0 / u.shape[-1])
+    spin_map = np.empty((2,) + u.shape, dtype=np.float64)
+    spin_map[0] = -v[::-1]
+    spin_map[1] = u[::-1]
+    eb = _SHT.analysis_2d(map=spin_map, spin=1, lmax=truncation, geometry=geometry,
+                          nthreads=nthreads)
+    ell = degrees(truncation).astype(np.float64)
+    factor = np.zeros_like(ell)
+    factor[ell > 0] = radius / np.sqrt(ell[ell > 0] * (ell[ell > 0] + 1.0))
+    return eb[1] * factor, eb[0] * factor
+
+
+def scalar_synthesis(
+    alm: np.ndarray, geometry: str, nlat: int, nlon: int, truncation: int, nthreads: int = 1
+) -> np.ndarray:
+    """Grid values of a scalar field from its spherical-harmonic coefficients.
+
+    Parameters
+    ----------
+    alm : numpy.ndarray
+        Complex coefficients, packed, triangular truncation ``N``.
+    geometry : {"CC", "F1", "GL"}
+        ducc0 ring geometry of the output grid.
+    nlat, nlon : int
+        Output grid size.
+    truncation : int
+        ``N``.
+    nthreads : int
+        Threads ducc0 may use.
+
+    Returns
+    -------
+    numpy.ndarray
+        Shape ``(nlat, nlon)``, latitudes ascending.
+
+    References
+    ----------
+    Reinecke & Seljebotn (2013), "Libsharp - spherical harmonic transforms
+    revisited", Astron. Astrophys. 554, A112 (the transform ducc0 implements).
+    """
+    out = _SHT.synthesis_2d(alm=alm[None], spin=0, lmax=truncation, geometry=geometry,
+                            ntheta=nlat, nphi=nlon, nthreads=nthreads)
+    return out[0, ::-1]
+
+
+def gradient_synthesis(
+    alm: np.ndarray, geometry: str, nlat: int, nlon: int, truncation: int, radius: float,
+    nthreads: int = 1,
+) -> tuple[np.ndarray, np.ndarray]:
+    """Eastward and northward components of the gradient of a scalar field.
+
+    Parameters
+    ----------
+    alm : numpy.ndarray
+        Complex coefficients of the scalar field, packed, truncation ``N``.
+    geometry : {"CC", "F1", "GL"}
+        ducc0 ring geometry of the output grid.
+    nlat, nlon : int
+        Output grid size.
+    truncation : int
+        ``N``.
+    radius : float
+        Radius of the sphere in m.
+    nthreads : int
+        Threads ducc0 may use.
+
+    Returns
+    -------
+    east, north : numpy.ndarray
+        ``(1/(a cos phi)) df/dlambda`` and ``(1/a) df/dphi``, each of shape
+        ``(nlat, nlon)`` with latitudes ascending. The divergent wind is the
+        gradient of ``chi``; the rotational wind is ``(-north, east)`` of the
+        gradient of ``psi``.
+
+    References
+    ----------
+    The gradient as a spin-1 synthesis of ``sqrt(l(l+1))`` times the scalar
+    coefficients: Reinecke, Belkner & Carron (2023), Astron. Astrophys. 678,
+    A165 (ducc0, mode ``"DERIV1"``); Swarztrauber (1981), SIAM J. Numer. Anal.
+    18, 191-210.
+    """
+    out = _SHT.synthesis_2d(alm=alm[None] / radius, spin=1, lmax=truncation, geometry=geometry,
+                            ntheta=nlat, nphi=nlon, mode="DERIV1", nthreads=nthreads)
+    return out[1, ::-1], -out[0, ::-1]
+
+
+def laplacian(alm: np.ndarray, truncation: int, radius: float) -> np.ndarray:
+    """Coefficients of the Laplacian of a scalar field on the sphere.
+
+    Parameters
+    ----------
+    alm : numpy.ndarray
+        Complex coefficients, packed, truncation ``N``.
+    truncation : int
+        ``N``.
+    radius : float
+        Radius of the sphere in m.
+
+    Returns
+    -------
+    numpy.ndarray
+        ``-l(l+1)/a**2`` times ``alm``.
+
+    References
+    ----------
+    Spherical harmonics are eigenfunctions of the Laplace-Beltrami operator
+    with eigenvalue ``-l(l+1)/a**2`` (e.g. Arfken, Weber & Harris 2013,
+    "Mathematical Methods for Physicists", 7th ed., section 15.5).
+    """
+    ell = degrees(truncation).astype(np.float64)
+    return alm * (-ell * (ell + 1.0) / radius**2)
+
+
+def truncate(alm: np.ndarray, truncation: int, new_truncation: int) -> np.ndarray:
+    """Keep only the coefficients of degree ``l <= new_truncation``.
+
+    Parameters
+    ----------
+    alm : numpy.ndarray
+        Complex coefficients, packed, truncation ``truncation``.
+    truncation, new_truncation : int
+        Old and new triangular truncation, ``new_truncation <= truncation``.
+
+    Returns
+    -------
+    numpy.ndarray
+        Packed coefficients at the new truncation.
+
+    References
+    ----------
+    Triangular truncation of a spherical-harmonic expansion (Machenhauer
+    1979, "The spectral method", in GARP Publ. Ser. 17, vol. II, WMO, 121-275).
+    """
+    keep = (degrees(truncation) <= new_truncation) & (orders(truncation) <= new_truncation)
+    return alm[keep]
+
+
+def energy_per_degree(alm: np.ndarray, truncation: int, radius: float) -> np.ndarray:
+    """Kinetic energy per total wavenumber of a rotational or divergent wind.
+
+    Parameters
+    ----------
+    alm : numpy.ndarray
+        Complex coefficients of ``psi`` (rotational wind) or ``chi``
+        (divergent wind), packed, truncation ``N``.
+    truncation : int
+        ``N``.
+    radius : float
+        Radius of the sphere in m.
+
+    Returns
+    -------
+    numpy.ndarray
+        ``E(l)`` for ``l = 0..N`` in m2 s-2: the contribution of degree ``l``
+        to the global area mean of ``(u**2 + v**2) / 2``, so that
+        ``sum(E)`` is that mean.
+
+    Notes
+    -----
+    ``E(l) = l(l+1) / (8 pi a**2) * (|c_l0|**2 + 2 sum_{m>0} |c_lm|**2)``:
+    the ``m < 0`` coefficients of a real field are the conjugates of the
+    ``m > 0`` ones and the harmonics are orthonormal on the unit sphere.
+
+    References
+    ----------
+    Parseval's identity for vector spherical harmonics and the kinetic-energy
+    spectrum ``l(l+1)/(4 a**2) |psi_l|**2``: Boer (1983), "Homogeneous and
+    isotropic turbulence on the sphere", J. Atmos. Sci. 40, 154-163;
+    Koshyk & Hamilton (2001), "The horizontal kinetic energy spectrum and
+    spectral budget simulated by a high-resolution troposphere-stratosphere-
+    mesosphere GCM", J. Atmos. Sci. 58, 329-348, eq. 2.
+    """
+    ell = degrees(truncation)
+    weight = np.where(orders(truncation) == 0, 1.0, 2.0)
+    power = np.bincount(ell, weights=weight * np.abs(alm) ** 2, minlength=truncation + 1)
+    ls = np.arange(truncation + 1, dtype=np.float64)
+    return ls * (ls + 1.0) * power / (8.0 * np.pi * radius**2)
+
+
+def deformation_synthesis(
+    psi: np.ndarray, chi: np.ndarray, geometry: str, nlat: int, nlon: int, truncation: int,
+    radius: float, nthreads: int = 1,
+) -> tuple[np.ndarray, np.ndarray]:
+    """Stretching and shearing deformation of a wind from its ``psi`` and ``chi``.
+
+    Parameters
+    ----------
+    psi, chi : numpy.ndarray
+        Complex coefficients of the streamfunction and velocity potential,
+        packed, truncation ``N``.
+    geometry : {"CC", "F1", "GL"}
+        ducc0 ring geometry of the output grid.
+    nlat, nlon : int
+        Output grid size.
+    truncation : int
+        ``N``.
+    radius : float
+        Radius of the sphere in m.
+    nthreads : int
+        Threads ducc0 may use.
+
+    Returns
+    -------
+    stretching, shearing : numpy.ndarray
+        In s-1, shape ``(nlat, nlon)``, latitudes ascending:
+        ``(1/(a cos phi)) du/dlambda - (v tan phi)/a - (1/a) dv/dphi`` and
+        ``(1/(a cos phi)) dv/dlambda + (cos phi/a) d(u/cos phi)/dphi``.
+
+    Notes
+    -----
+    The trace-free rate-of-strain tensor of a horizontal wind is a spin-2
+    field. Its gradient and curl coefficients are
+    ``sqrt((l-1)(l+2)) sqrt(l(l+1)) / a**2`` times those of ``chi`` and
+    ``psi``, so one spin-2 synthesis gives both components, exactly and
+    without metric terms that are singular at the poles.
+
+    References
+    ----------
+    Components of the rate of strain in spherical coordinates: Batchelor
+    (1967), "An Introduction to Fluid Dynamics", Cambridge University Press,
+    appendix 2. Spin-2 harmonics and the edth operator: Newman & Penrose
+    (1966), "Note on the Bondi-Metzner-Sachs group", J. Math. Phys. 7,
+    863-870; transforms: Reinecke & Seljebotn (2013), Astron. Astrophys. 554,
+    A112.
+    """
+    ell = degrees(truncation).astype(np.float64)
+    factor = np.sqrt(np.maximum((ell - 1.0) * (ell + 2.0), 0.0) * ell * (ell + 1.0)) / radius**2
+    out = _SHT.synthesis_2d(alm=np.stack([chi * factor, psi * factor]), spin=2, lmax=truncation,
+                            geometry=geometry, ntheta=nlat, nphi=nlon, nthreads=nthreads)
+    return out[0, ::-1], out[1, ::-1]

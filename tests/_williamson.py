@@ -1,0 +1,88 @@
+"""Analytic wind fields on global grids, for the checks of the spectral stage.
+
+Williamson, Drake, Hack, Jakob & Swarztrauber (1992), "A standard test set for
+numerical approximations to the shallow water equations in spherical
+geometry", J. Comput. Phys. 102, 211-224: test case 2 (steady zonal flow,
+section 3.2) and test case 6 (Rossby-Haurwitz wave, section 3.6).
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import xarray as xr
+
+#: Radius of the Earth in the test set, Williamson et al. (1992), section 2.
+A = 6.37122e6
+#: Test case 2: u0 = 2 pi a / (12 days), Williamson et al. (1992), section 3.2.
+U0 = 2.0 * np.pi * A / (12.0 * 86400.0)
+#: Test case 6: omega = K = 7.848e-6 s-1 and R = 4, Williamson et al. (1992), section 3.6.
+RH_OMEGA = RH_K = 7.848e-6
+RH_R = 4
+
+
+def latitudes(geometry: str, nlat: int) -> np.ndarray:
+    """Ascending latitudes in degrees of a CC, F1 or GL grid.
+
+    CC and F1: equally spaced with / without pole rows (Clenshaw-Curtis and
+    Fejer's first rule, *common practice*); GL: Gauss-Legendre nodes from
+    numpy.polynomial.legendre.leggauss (the reference library).
+    """
+    if geometry == "CC":
+        return np.linspace(-90.0, 90.0, nlat)
+    if geometry == "F1":
+        step = 180.0 / nlat
+        return -90.0 + step / 2 + step * np.arange(nlat)
+    return np.degrees(np.arcsin(np.polynomial.legendre.leggauss(nlat)[0]))
+
+
+def mesh(lat_deg: np.ndarray, nlon: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Longitudes in degrees and the 2-D latitude/longitude arrays in radians."""
+    lon = np.arange(nlon) * 360.0 / nlon
+    phi, lam = np.meshgrid(np.radians(lat_deg), np.radians(lon), indexing="ij")
+    return lon, phi, lam
+
+
+def case2(phi: np.ndarray, lam: np.ndarray, alpha: float) -> dict[str, np.ndarray]:
+    """Test case 2 wind, streamfunction and relative vorticity (section 3.2)."""
+    c, s, cl, sl = np.cos(phi), np.sin(phi), np.cos(lam), np.sin(lam)
+    u = U0 * (c * np.cos(alpha) + cl * s * np.sin(alpha))
+    v = -U0 * sl * np.sin(alpha)
+    shape = s * np.cos(alpha) - cl * c * np.sin(alpha)
+    return {"u": u, "v": v, "psi": -A * U0 * shape, "zeta": 2.0 * U0 / A * shape}
+
+
+def case6(phi: np.ndarray, lam: np.ndarray) -> dict[str, np.ndarray]:
+    """Test case 6 (Rossby-Haurwitz wave, R = 4) wind, psi and zeta (section 3.6)."""
+    w, k, r = RH_OMEGA, RH_K, RH_R
+    c, s = np.cos(phi), np.sin(phi)
+    u = A * w * c + A * k * c ** (r - 1) * (r * s**2 - c**2) * np.cos(r * lam)
+    v = -A * k * r * c ** (r - 1) * s * np.sin(r * lam)
+    psi = -A**2 * w * s + A**2 * k * c**r * s * np.cos(r * lam)
+    zeta = 2 * w * s - k * s * c**r * (r**2 + 3 * r + 2) * np.cos(r * lam)
+    return {"u": u, "v": v, "psi": psi, "zeta": zeta}
+
+
+def wind_dataset(u: np.ndarray, v: np.ndarray, lat: np.ndarray, lon: np.ndarray,
+                 levels: np.ndarray | None = None) -> xr.Dataset:
+    """A Dataset in the canonical form of flowpipe.ingest (optionally with levels)."""
+    dims = ["latitude", "longitude"]
+    coords = {
+        "latitude": ("latitude", lat, {"units": "degrees_north", "standard_name": "latitude"}),
+        "longitude": ("longitude", lon, {"units": "degrees_east", "standard_name": "longitude"}),
+    }
+    if levels is not None:
+        dims = ["level", *dims]
+        coords["level"] = ("level", levels, {"units": "hPa", "standard_name": "air_pressure"})
+    ds = xr.Dataset(
+        {"u": (dims, u, {"units": "m s-1", "standard_name": "eastward_wind"}),
+         "v": (dims, v, {"units": "m s-1", "standard_name": "northward_wind"})},
+        coords=coords,
+    )
+    ds.attrs["level_type"] = "pressure" if levels is not None else "none"
+    return ds
+
+
+def relative_max_error(result: np.ndarray, exact: np.ndarray) -> float:
+    """max |(result - exact) - mean(result - exact)| / max |exact| (the mean removed)."""
+    diff = np.asarray(result) - exact
+    return float(np.max(np.abs(diff - diff.mean())) / np.max(np.abs(exact)))
