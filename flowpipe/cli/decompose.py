@@ -1,15 +1,69 @@
-"""``flowpipe decompose``: placeholder until its issue lands."""
+"""``flowpipe decompose FILE... -o OUT.nc``: the Helmholtz split of a wind, to NetCDF."""
 
 from __future__ import annotations
 
 import argparse
 
+import xarray as xr
+
+from ..decompose import METHODS, decompose
 from ..errors import UsageError
+from ..ingest import open_wind
+from ..kinematics import kinematics
+from ..store import write
 
 
 def register(sub: argparse._SubParsersAction, common: argparse.ArgumentParser) -> argparse.ArgumentParser:
-    return sub.add_parser("decompose", parents=[common], help="(not available yet)")
+    parser = sub.add_parser(
+        "decompose", parents=[common],
+        help="streamfunction, velocity potential, vorticity, divergence, rotational and "
+        "divergent winds",
+        description="Split the wind into its rotational and divergent parts (Helmholtz "
+        "decomposition) and write them, with vorticity and divergence, to CF NetCDF. Complete "
+        "global grids use spherical harmonics; limited-area or gappy grids the regional solver.",
+    )
+    parser.add_argument("files", nargs="+", metavar="FILE", help="NetCDF files or globs")
+    parser.add_argument("-o", "--output", required=True, metavar="OUT.nc", help="file to write")
+    parser.add_argument("--method", choices=METHODS, default="auto",
+                        help="spectral (complete global grids), regional, or auto (default)")
+    parser.add_argument("--truncation", type=int, metavar="N",
+                        help="triangular truncation of the spectral method (default: the "
+                        "largest the grid resolves)")
+    parser.add_argument("--levels", type=_levels, metavar="L1,L2,...",
+                        help="only these levels, comma-separated, in the file's level units "
+                        "after conversion (hPa or m)")
+    parser.add_argument("--scheme", default="variational",
+                        help="limited-area scheme of the regional method (default: variational)")
+    parser.add_argument("--kinematics", action="store_true",
+                        help="also write absolute vorticity, deformation and kinetic-energy "
+                        "diagnostics with their spectra (spectral method only)")
+    parser.add_argument("--float32", action="store_true",
+                        help="store the fields in single precision (half the size)")
+    parser.add_argument("--u", metavar="NAME", help="name of the eastward wind variable")
+    parser.add_argument("--v", metavar="NAME", help="name of the northward wind variable")
+    return parser
+
+
+def _levels(text: str) -> list[float]:
+    try:
+        values = [float(item) for item in text.split(",") if item.strip()]
+    except ValueError:
+        raise argparse.ArgumentTypeError(
+            f"{text!r} is not a comma-separated list of numbers, e.g. 850,500") from None
+    if not values:
+        raise argparse.ArgumentTypeError("give at least one level, e.g. 850,500")
+    return values
 
 
 def run(args: argparse.Namespace) -> int:
-    raise UsageError("'flowpipe decompose' is not available in this version yet")
+    wind = open_wind(args.files, u=args.u, v=args.v)
+    parts = decompose(wind, method=args.method, truncation=args.truncation, levels=args.levels,
+                      scheme=args.scheme)
+    if args.kinematics:
+        if parts.attrs.get("method") != "spectral":
+            raise UsageError("--kinematics needs the spectral method (a complete global grid "
+                             "without missing values); drop --kinematics")
+        extra = kinematics(wind, truncation=args.truncation, levels=args.levels)
+        parts = xr.merge([parts, extra], combine_attrs="override")
+    write(parts, args.output, float32=args.float32)
+    return 0
