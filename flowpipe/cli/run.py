@@ -1,15 +1,41 @@
-"""``flowpipe run``: placeholder until its issue lands."""
+"""``flowpipe run CONFIG.toml``: the nightly batch."""
 
 from __future__ import annotations
 
 import argparse
+import sys
 
-from ..errors import UsageError
+from ..pipeline import run as run_pipeline
 
 
 def register(sub: argparse._SubParsersAction, common: argparse.ArgumentParser) -> argparse.ArgumentParser:
-    return sub.add_parser("run", parents=[common], help="(not available yet)")
+    parser = sub.add_parser(
+        "run", parents=[common], help="run the batch job a TOML config describes",
+        description="Run the stages a TOML config describes (decompose, advect, maps) over its "
+        "inputs. Reruns redo only what changed; exit code 1 when some inputs failed.",
+    )
+    parser.add_argument("config", metavar="CONFIG.toml", help="the batch config")
+    parser.add_argument("--force", action="store_true", help="redo every output")
+    parser.add_argument("--workers", type=int, metavar="N",
+                        help="threads of dask's local scheduler (default: [run] workers or cores)")
+    parser.add_argument("--scheduler", metavar="ADDRESS",
+                        help="a dask.distributed scheduler, tcp://HOST:PORT")
+    parser.add_argument("--quiet", action="store_true", help="no progress on the terminal")
+    return parser
 
 
 def run(args: argparse.Namespace) -> int:
-    raise UsageError("'flowpipe run' is not available in this version yet")
+    if args.workers is not None and args.workers < 1:
+        print("flowpipe: error: --workers must be at least 1", file=sys.stderr)
+        return 2
+    summary = run_pipeline(args.config, force=args.force, workers=args.workers,
+                           scheduler=args.scheduler, quiet=args.quiet)
+    if not args.quiet:
+        if summary.written or summary.failures:
+            print(f"flowpipe: {len(summary.written)} written, {len(summary.up_to_date)} up to date, "
+                  f"{len(summary.failures)} failed; see {summary.report}")
+        else:
+            print(f"flowpipe: everything is up to date, nothing written ({summary.report})")
+    for unit, error in summary.failures.items():
+        print(f"flowpipe: error: {unit}: {error}", file=sys.stderr)
+    return summary.exit_code

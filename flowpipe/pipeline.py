@@ -1,0 +1,394 @@
+"""The nightly job: config → stages → outputs, idempotent and crash-safe.
+
+A run works on *units*: each input file on its own, or (``[input] combine =
+true``) all input files as one series. For every unit the stages run in
+order (decompose, advect, maps), each only when its table is in the config.
+An output is redone only when it is missing, or when an input it came from,
+the config tables it depends on or the flowpipe version changed since it was
+written (``--force`` redoes everything). Every file is written under a
+temporary name and renamed when complete, and the manifest is rewritten
+(atomically) after each output, so a run killed at any moment leaves only
+complete files under final names and the next run finishes the work.
+"""
+
+from __future__ import annotations
+
+import contextlib
+import logging
+import os
+import sys
+import time
+import traceback
+from collections.abc import Callable, Iterator
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+import dask
+
+from . import bookkeeping
+from ._version import __version__
+from .annotate import now_iso
+from .config import Config, load_config, render_template
+from .errors import FlowpipeError
+
+log = logging.getLogger("flowpipe.run")
+LOG_NAME = "flowpipe.log"
+
+
+@dataclass
+class Unit:
+    """One piece of work: an output stem and the input files it is made from."""
+
+    stem: str
+    inputs: list[Path]
+
+
+@dataclass
+class RunSummary:
+    """What a run did; ``exit_code`` follows the contract (0 all fine, 1 some failed)."""
+
+    written: list[Path] = field(default_factory=list)
+    up_to_date: list[Path] = field(default_factory=list)
+    failures: dict[str, str] = field(default_factory=dict)
+    manifest: Path | None = None
+    report: Path | None = None
+
+    @property
+    def exit_code(self) -> int:
+        return 1 if self.failures else 0
+
+
+def units_of(config: Config) -> list[Unit]:
+    """The units of work a config describes."""
+    if config.section("input")["combine"]:
+        return [Unit(config.section("input")["name"], list(config.inputs))]
+    stems: dict[str, int] = {}
+    units = []
+    for path in config.inputs:
+        stem = path.stem
+        stems[stem] = stems.get(stem, 0) + 1
+        units.append(Unit(stem if stems[stem] == 1 else f"{stem}-{stems[stem]}", [path]))
+    return units
+
+
+class Progress:
+    """A progress bar on an interactive terminal, plain log lines otherwise (cron)."""
+
+    def __init__(self, total: int, quiet: bool) -> None:
+        self.total, self.done, self.quiet = total, 0, quiet
+        self.bar = not quiet and sys.stderr.isatty()
+
+    def step(self, text: str) -> None:
+        self.done += 1
+        if self.bar:
+            width = 30
+            filled = int(width * self.done / max(self.total, 1))
+            sys.stderr.write(f"\r[{'#' * filled}{'.' * (width - filled)}] {self.done}/{self.total} "
+                             f"{text[:60]:<60}")
+            if self.done == self.total:
+                sys.stderr.write("\n")
+            sys.stderr.flush()
+
+    def close(self) -> None:
+        if self.bar and self.done < self.total:
+            sys.stderr.write("\n")
+
+
+class Runner:
+    """Runs the stages of a config over its units; see the module docstring."""
+
+    def __init__(self, config: Config, force: bool, progress: Progress) -> None:
+        self.config = config
+        self.force = force
+        self.progress = progress
+        self.out = config.output_dir
+        self.previous = bookkeeping.read_manifest(self.out)
+        self.summary = RunSummary()
+        known = self.previous.get("inputs", {})
+        self.fingerprints = {str(p): bookkeeping.fingerprint(p, known.get(str(p)))
+                             for p in config.inputs}
+        self.manifest: dict[str, Any] = {
+            "flowpipe_version": __version__,
+            "config": str(config.path.resolve()),
+            "started": now_iso(),
+            "finished": None,
+            "status": "running",
+            "versions": _versions(),
+            "inputs": self.fingerprints,
+            "outputs": dict(self.previous.get("outputs", {})),
+            "units": {},
+            "timings": {},
+        }
+
+    # -- bookkeeping ---------------------------------------------------------
+    def _save(self) -> None:
+        bookkeeping.write_json(self.out / bookkeeping.MANIFEST_NAME, self.manifest)
+
+    def _record(self, out: Path, stage: str, unit: Unit, depends: list[dict], digest: str) -> None:
+        self.manifest["outputs"][self._rel(out)] = {
+            "stage": stage, "unit": unit.stem, "depends_on": depends, "config": digest,
+            "flowpipe_version": __version__, "written": now_iso(),
+        }
+        self.summary.written.append(out)
+        self._save()
+
+    def _rel(self, path: Path) -> str:
+        return os.path.relpath(path, self.out)
+
+    def _current(self, out: Path, depends: list[dict], digest: str) -> bool:
+        if self.force or not out.exists():
+            return False
+        old = self.previous.get("outputs", {}).get(self._rel(out))
+        if not old or old.get("config") != digest or old.get("flowpipe_version") != __version__:
+            return False
+        fields = ("path", "size", "mtime_ns", "sha256")
+        return [{k: d[k] for k in fields} for d in old.get("depends_on", [])] == [
+            {k: d[k] for k in fields} for d in depends]
+
+    def _produce(self, stage: str, unit: Unit, out: Path, depends: list[dict], digest: str,
+                 make: Callable[[Path], None]) -> bool:
+        """Make one output unless it is up to date; True when it exists afterwards."""
+        if self._current(out, depends, digest):
+            self.summary.up_to_date.append(out)
+            log.info("%s: up to date", self._rel(out))
+            return True
+        started = time.perf_counter()
+        make(out)
+        elapsed = time.perf_counter() - started
+        timings = self.manifest["timings"]
+        timings[stage] = round(timings.get(stage, 0.0) + elapsed, 3)
+        stages = self.manifest["units"].setdefault(unit.stem, {"stages": {}})["stages"]
+        stages.setdefault(stage, {"seconds": 0.0, "status": "ok"})
+        stages[stage]["seconds"] = round(stages[stage]["seconds"] + elapsed, 3)
+        self._record(out, stage, unit, depends, digest)
+        log.info("%s: written in %.2f s", self._rel(out), elapsed)
+        return True
+
+    # -- stages --------------------------------------------------------------
+    def _inputs_of(self, unit: Unit) -> list[dict]:
+        return [self.fingerprints[str(p)] for p in unit.inputs]
+
+    def _wind(self, unit: Unit):
+        from .ingest import open_wind
+
+        section = self.config.section("input")
+        return open_wind(unit.inputs, u=section["u"], v=section["v"])
+
+    def decompose(self, unit: Unit) -> Path:
+        from .decompose import decompose
+        from .store import write
+
+        cfg = self.config.section("decompose")
+        out = render_template(cfg["output"], self.out, stem=unit.stem)
+        digest = bookkeeping.section_hash(self.config.section("input"), cfg)
+
+        def make(path: Path) -> None:
+            parts = decompose(self._wind(unit), method=cfg["method"], truncation=cfg["truncation"],
+                              levels=cfg["levels"], scheme=cfg["scheme"])
+            write(parts, path, float32=cfg["float32"])
+
+        self._produce("decompose", unit, out, self._inputs_of(unit), digest, make)
+        return out
+
+    def advect(self, unit: Unit) -> Path:
+        from .parcels import advect, read_starts
+        from .store import write
+
+        cfg = self.config.section("advect")
+        out = render_template(cfg["output"], self.out, stem=unit.stem)
+        depends = self._inputs_of(unit)
+        starts_file = (self.config.path.parent / cfg["starts_file"]).resolve() if cfg[
+            "starts_file"] else None
+        if starts_file is not None:
+            depends = depends + [bookkeeping.fingerprint(starts_file)]
+        digest = bookkeeping.section_hash(self.config.section("input"), cfg)
+
+        def make(path: Path) -> None:
+            starts = read_starts(starts_file) if starts_file else [tuple(s) for s in cfg["starts"]]
+            tracks = advect(self._wind(unit), starts, hours=cfg["hours"], backward=cfg["backward"],
+                            step_minutes=cfg["step_minutes"], vertical=cfg["vertical"],
+                            sample=tuple(cfg["sample"]))
+            write(tracks, path)
+
+        self._produce("advect", unit, out, depends, digest, make)
+        return out
+
+    def maps(self, unit: Unit, sources: dict[str, Path]) -> None:
+        import xarray as xr
+
+        from .maps import render_to_file
+
+        cfg = self.config.section("maps")
+        digest = bookkeeping.section_hash(cfg)
+        parts = sources.get("decompose")
+        if parts is not None and parts.exists():
+            depends = [bookkeeping.fingerprint(parts)]
+            with xr.open_dataset(parts) as ds:
+                levels = ([float(x) for x in ds["level"].values] if "level" in ds.dims else [None])
+                first_time = ds["time"].values[0] if "time" in ds.dims else None
+            wanted = cfg["levels"] if cfg["levels"] is not None else levels
+            for name in cfg["fields"]:
+                for level in wanted:
+                    out = render_template(cfg["output"], self.out, stem=unit.stem, field=name,
+                                          level=_level_text(level), time=_time_text(first_time))
+                    self._produce("maps", unit, out, depends, digest,
+                                  lambda p, n=name, lv=level: render_to_file(
+                                      parts, p, field=n, level=lv, time=first_time))
+        tracks = sources.get("advect")
+        if cfg["trajectories"] and tracks is not None and tracks.exists():
+            out = render_template(cfg["output"], self.out, stem=unit.stem, field="trajectories",
+                                  level="all", time="all")
+            self._produce("maps", unit, out, [bookkeeping.fingerprint(tracks)], digest,
+                          lambda p: render_to_file(tracks, p))
+
+    # -- the run -------------------------------------------------------------
+    def run(self, units: list[Unit]) -> RunSummary:
+        for unit in units:
+            record = self.manifest["units"].setdefault(unit.stem, {"stages": {}})
+            record["inputs"] = [str(p) for p in unit.inputs]
+            sources: dict[str, Path] = {}
+            for stage in ("decompose", "advect", "maps"):
+                if not self.config.has(stage):
+                    continue
+                try:
+                    if stage == "maps":
+                        self.maps(unit, sources)
+                    else:
+                        sources[stage] = getattr(self, stage)(unit)
+                except Exception as exc:  # one bad input must not sink the rest
+                    message = str(exc).splitlines()[0] if str(exc) else type(exc).__name__
+                    if not isinstance(exc, FlowpipeError):
+                        message = f"{type(exc).__name__}: {message}"
+                        log.debug("%s", traceback.format_exc())
+                    record["stages"][stage] = {"status": "failed", "error": message}
+                    record["status"] = "failed"
+                    record["error"] = f"{stage}: {message}"
+                    self.summary.failures[unit.stem] = f"{stage}: {message}"
+                    log.error("%s: %s failed: %s", unit.stem, stage, message)
+                    self._save()
+                    break
+                finally:
+                    self.progress.step(f"{stage} {unit.stem}")
+            record.setdefault("status", "ok")
+        live = {self._rel(p) for p in self.summary.written + self.summary.up_to_date}
+        self.manifest["outputs"] = {k: v for k, v in self.manifest["outputs"].items()
+                                    if k in live or (self.out / k).exists()}
+        self.manifest["finished"] = now_iso()
+        self.manifest["status"] = "failed" if self.summary.failures else "ok"
+        self._save()
+        self.summary.manifest = self.out / bookkeeping.MANIFEST_NAME
+        return self.summary
+
+
+def _level_text(level: float | None) -> str:
+    return "all" if level is None else f"{level:g}"
+
+
+def _time_text(value: Any) -> str:
+    if value is None:
+        return "all"
+    text = str(value)
+    return text[:16].replace(":", "").replace("-", "")
+
+
+def _versions() -> dict[str, str]:
+    import importlib.metadata as md
+
+    versions = {"python": sys.version.split()[0]}
+    for name in ("numpy", "scipy", "xarray", "dask", "ducc0", "netCDF4", "cf-xarray", "cf-units",
+                 "matplotlib", "cartopy"):
+        with contextlib.suppress(md.PackageNotFoundError):
+            versions[name] = md.version(name)
+    return versions
+
+
+@contextlib.contextmanager
+def _scheduler(workers: int | None, scheduler: str | None, processes: bool) -> Iterator[None]:
+    """Dask's local scheduler with ``workers``, or a dask.distributed cluster."""
+    if scheduler:
+        from distributed import Client
+
+        try:
+            client = Client(scheduler, timeout="20s")
+        except OSError as exc:
+            raise FlowpipeError(f"cannot reach the dask scheduler at {scheduler} ({exc}); "
+                                "check the address and that the scheduler runs") from exc
+        log.info("using the dask.distributed scheduler at %s", scheduler)
+        with client:
+            yield
+        return
+    kind = "processes" if processes else "threads"
+    with dask.config.set(scheduler=kind, num_workers=workers or os.cpu_count() or 1):
+        yield
+
+
+@contextlib.contextmanager
+def _logging(directory: Path, quiet: bool) -> Iterator[None]:
+    directory.mkdir(parents=True, exist_ok=True)
+    handler = logging.FileHandler(directory / LOG_NAME)
+    handler.setFormatter(logging.Formatter("%(asctime)s %(levelname)s %(message)s"))
+    handlers: list[logging.Handler] = [handler]
+    if not quiet and not sys.stderr.isatty():
+        console = logging.StreamHandler(sys.stderr)
+        console.setFormatter(logging.Formatter("flowpipe: %(message)s"))
+        handlers.append(console)
+    previous = log.level
+    log.setLevel(logging.INFO)
+    for h in handlers:
+        log.addHandler(h)
+    try:
+        yield
+    finally:
+        for h in handlers:
+            log.removeHandler(h)
+            h.close()
+        log.setLevel(previous)
+
+
+def run(config_path: str | os.PathLike, *, force: bool = False, workers: int | None = None,
+        scheduler: str | None = None, quiet: bool = False) -> RunSummary:
+    """Run a batch config; see the module docstring.
+
+    Parameters
+    ----------
+    config_path : path-like
+        The TOML config (schema in ``configs/README.md``).
+    force : bool
+        Redo every output, even those that are up to date.
+    workers : int, optional
+        Threads (or processes, ``[run] processes = true``) of dask's local
+        scheduler; defaults to ``[run] workers`` or the number of cores.
+    scheduler : str, optional
+        Address of a dask.distributed scheduler (``tcp://HOST:PORT``); the
+        same graph then runs on that cluster. Defaults to ``[run] scheduler``.
+    quiet : bool
+        No progress bar or log lines on the terminal (the log file is kept).
+
+    Returns
+    -------
+    RunSummary
+    """
+    from .report import write_report
+
+    config = load_config(config_path)
+    settings = config.tables.get("run", {})
+    workers = workers or settings.get("workers")
+    scheduler = scheduler or settings.get("scheduler")
+    units = units_of(config)
+    n_steps = len(units) * sum(config.has(s) for s in ("decompose", "advect", "maps"))
+    with bookkeeping.RunLock(config.output_dir), _logging(config.output_dir, quiet):
+        progress = Progress(n_steps, quiet)
+        log.info("run of %s: %d unit(s), flowpipe %s", config.path, len(units), __version__)
+        try:
+            with _scheduler(workers, scheduler, settings.get("processes", False)):
+                runner = Runner(config, force, progress)
+                summary = runner.run(units)
+        finally:
+            progress.close()
+        if not summary.written and not summary.failures:
+            log.info("everything is up to date: nothing written")
+        summary.report = write_report(config.output_dir, runner.manifest)
+        log.info("%d written, %d up to date, %d failed", len(summary.written),
+                 len(summary.up_to_date), len(summary.failures))
+    return summary
