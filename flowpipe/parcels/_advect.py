@@ -1,0 +1,507 @@
+"""The trajectory stage: starts and a lazy wind Dataset in, a CF trajectory Dataset out."""
+
+from __future__ import annotations
+
+import datetime as _dt
+import math
+import re
+from collections.abc import Sequence
+from dataclasses import dataclass
+
+import cftime
+import numpy as np
+import pandas as pd
+import xarray as xr
+
+from .. import annotate
+from ..constants import EARTH_RADIUS
+from ..errors import InputError, UsageError
+from ..grid import describe_grid
+from . import _kernels as K
+from ._geometry import latitude_longitude, unit_vectors
+from ._window import SliceGrid, SliceWindow, slice_grid
+from .starts import as_start_table
+
+#: Default Courant number: a parcel crosses at most half a grid spacing per step.
+COURANT = 0.5
+#: Default interval between recorded positions, in minutes.
+RECORD_MINUTES = 60.0
+#: Most corrector iterations of the Petterssen scheme and their convergence
+#: threshold (radians on the unit sphere, level units; about 6 mm on Earth).
+PETTERSSEN_ITERATIONS = 10
+PETTERSSEN_TOLERANCE = 1e-9
+#: Vertical velocities: name, level type they need, factor to level units per second.
+VERTICAL = {"omega": ("pressure", 0.01), "w": ("height", 1.0)}
+SCHEMES = {"rk4": K.RK4, "petterssen": K.PETTERSSEN}
+#: Seconds within which two times count as equal (rounding of time coordinates).
+TIME_TOLERANCE = 1e-3
+
+_ISO = re.compile(r"^(-?\d{4})-(\d{2})-(\d{2})(?:[T ](\d{2}):(\d{2})(?::(\d{2})(\.\d*)?)?)?"
+                  r"\s*(?:Z|[+-]00:?00)?$")
+
+
+@dataclass(frozen=True)
+class _Clock:
+    """Input times as seconds from the first one."""
+
+    reference: object           # numpy datetime64 or cftime datetime
+    seconds: np.ndarray
+    steady: bool
+
+    def bracket(self, t: float) -> tuple[int, int, float]:
+        """Input time indices around ``t`` and the weight of the later one."""
+        s = self.seconds
+        if self.steady or s.size == 1:
+            return 0, 0, 0.0
+        k = int(np.clip(np.searchsorted(s, t, side="right") - 1, 0, s.size - 2))
+        w = float(np.clip((t - s[k]) / (s[k + 1] - s[k]), 0.0, 1.0))
+        if w <= 1e-12:
+            return k, k, 0.0
+        if w >= 1.0 - 1e-12:
+            return k + 1, k + 1, 0.0
+        return k, k + 1, w
+
+    def parse(self, text: str, origin: str) -> float:
+        """Seconds from the reference of an ISO 8601 time."""
+        match = _ISO.match(text.strip())
+        if not match:
+            raise InputError(f"{origin}: time {text!r} is not ISO 8601 (YYYY-MM-DDTHH:MM[:SS])")
+        y, mo, d, h, mi, sec = (int(g) if g else 0 for g in match.groups()[:6])
+        frac = float(match.group(7) or 0.0)
+        try:
+            if isinstance(self.reference, np.datetime64):
+                when = np.datetime64(f"{y:04d}-{mo:02d}-{d:02d}T{h:02d}:{mi:02d}:{sec:02d}", "s")
+                return float((when - self.reference) / np.timedelta64(1, "s")) + frac
+            when = cftime.datetime(y, mo, d, h, mi, sec, calendar=self.reference.calendar)
+            return (when - self.reference).total_seconds() + frac
+        except ValueError as exc:
+            raise InputError(f"{origin}: time {text!r} is not a valid date ({exc})") from None
+
+    def text(self, t: float) -> str:
+        return _iso(self.times(np.array([t]))[0])
+
+    def times(self, seconds: np.ndarray) -> np.ndarray:
+        """Times (same kind as the input's) at ``seconds`` from the reference."""
+        if isinstance(self.reference, np.datetime64):
+            return self.reference + np.round(seconds * 1e9).astype("timedelta64[ns]")
+        flat = [self.reference + _dt.timedelta(seconds=float(s)) for s in seconds.ravel()]
+        return np.array(flat, dtype=object).reshape(seconds.shape)
+
+
+def _iso(value) -> str:
+    if isinstance(value, np.datetime64):
+        return np.datetime_as_string(value, unit="s") + "Z"
+    return value.isoformat()
+
+
+def _clock(wind: xr.Dataset, steady: bool) -> _Clock:
+    if "time" not in wind.dims:
+        if not steady:
+            raise InputError(f"{_name(wind)}: the wind has no time; give --steady (steady=True) "
+                             "to follow parcels through this one frozen field")
+        return _Clock(np.datetime64("1970-01-01T00:00:00", "ns"), np.array([0.0]), True)
+    values = wind["time"].values
+    if values.size == 1 and not steady:
+        raise InputError(f"{_name(wind)}: the wind has a single time ({_iso(values[0])}); "
+                         "give --steady (steady=True) to follow parcels through it as a frozen "
+                         "field, or give more input times")
+    reference = values[0]
+    if np.issubdtype(values.dtype, np.datetime64):
+        seconds = (values - reference) / np.timedelta64(1, "s")
+    else:
+        seconds = np.array([(t - reference).total_seconds() for t in values])
+    return _Clock(reference, np.asarray(seconds, dtype=np.float64), steady)
+
+
+def _name(wind: xr.Dataset) -> str:
+    files = wind.attrs.get("input_files", "")
+    return files.splitlines()[0] if files else "the wind"
+
+
+def _check_wind(wind: xr.Dataset, vertical: str | None, sample: Sequence[str]) -> float:
+    """Validate the request against the wind; return the vertical-velocity scale."""
+    for name in ("u", "v"):
+        if name not in wind:
+            raise InputError(f"{_name(wind)}: no {name} variable; open the input with "
+                             "flowpipe.open_wind")
+    extra = [d for d in wind["u"].dims if d not in ("time", "level", "latitude", "longitude")]
+    if extra:
+        raise UsageError(f"{_name(wind)}: the wind has extra dimensions {extra}; select one "
+                         f"member first (for example wind.isel({extra[0]}=0))")
+    level_type = wind.attrs.get("level_type", "none")
+    scale = 0.0
+    if vertical is not None:
+        if vertical not in VERTICAL:
+            raise UsageError(f"vertical = {vertical!r}; choose omega or w (or none for "
+                             "level-following 2-D trajectories)")
+        needed, scale = VERTICAL[vertical]
+        if vertical not in wind:
+            raise InputError(f"{_name(wind)}: 3-D trajectories with --vertical {vertical} need "
+                             f"a vertical velocity {vertical!r}, which the input lacks; leave out "
+                             "--vertical for level-following trajectories")
+        if level_type != needed or "level" not in wind.dims:
+            raise InputError(f"{_name(wind)}: --vertical {vertical} needs {needed} levels, but "
+                             f"the input has {level_type} levels")
+    for name in sample:
+        if name not in wind:
+            raise UsageError(f"--sample {name}: no such variable in {_name(wind)} (variables: "
+                             f"{', '.join(sorted(map(str, wind.data_vars)))})")
+        if not set(wind[name].dims) <= set(wind["u"].dims) or not {
+                "latitude", "longitude"} <= set(wind[name].dims):
+            raise UsageError(f"--sample {name}: dimensions {wind[name].dims} are not on the "
+                             "wind's grid")
+    return scale
+
+
+def _level_text(wind: xr.Dataset) -> str:
+    units = wind["level"].attrs.get("units", "")
+    return f"{', '.join(f'{x:g}' for x in wind['level'].values)} {units}".strip()
+
+
+def _resolve_starts(table: pd.DataFrame, wind: xr.Dataset, clock: _Clock, grid_kind: str,
+                    hours: float, sign: float) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Latitudes, longitudes, levels and start seconds of every row, each checked."""
+    lat = table["latitude"].to_numpy(dtype=np.float64)
+    lon = table["longitude"].to_numpy(dtype=np.float64)
+    level = table["level"].to_numpy(dtype=np.float64)
+    start = np.empty(lat.size)
+    glat = wind["latitude"].values
+    glon = wind["longitude"].values
+    levels = wind["level"].values.astype(np.float64) if "level" in wind.dims else None
+    default = clock.seconds[-1] if sign < 0 and not clock.steady else 0.0
+    span = hours * 3600.0
+    for i, origin in enumerate(table["origin"]):
+        if not -90.0 <= lat[i] <= 90.0 or not np.isfinite(lon[i]):
+            raise InputError(f"{origin}: latitude {lat[i]:g} is outside -90..90 degrees")
+        if grid_kind == "regional":
+            shifted = glon[0] + (lon[i] - glon[0]) % 360.0
+            if not (glat[0] <= lat[i] <= glat[-1] and shifted <= glon[-1] + K.EDGE_TOLERANCE):
+                raise InputError(
+                    f"{origin}: ({lat[i]:g}, {lon[i]:g}) lies outside the limited-area domain "
+                    f"(latitude {glat[0]:g}..{glat[-1]:g}, longitude {glon[0]:g}..{glon[-1]:g})")
+        if levels is None:
+            if np.isfinite(level[i]):
+                raise InputError(f"{origin}: level {level[i]:g} given but the input has no "
+                                 "levels; give LAT,LON only")
+        elif not np.isfinite(level[i]):
+            if levels.size > 1:
+                raise InputError(f"{origin}: no level given; the input has levels "
+                                 f"{_level_text(wind)}: give LAT,LON,LEVEL")
+            level[i] = levels[0]
+        elif not levels.min() - 1e-9 <= level[i] <= levels.max() + 1e-9:
+            raise InputError(f"{origin}: level {level[i]:g} is outside the input's vertical "
+                             f"range ({_level_text(wind)})")
+        when = table["time"].iloc[i]
+        start[i] = default if when is None or (isinstance(when, float) and np.isnan(when)) \
+            else clock.parse(str(when), origin)
+        if clock.steady:
+            continue
+        end = start[i] + sign * span
+        first, last = clock.seconds[0], clock.seconds[-1]
+        for t, what in ((start[i], "starts"), (end, "ends")):
+            if not first - TIME_TOLERANCE <= t <= last + TIME_TOLERANCE:
+                raise InputError(
+                    f"{origin}: the trajectory {what} at {clock.text(t)}, outside the input "
+                    f"times {clock.text(first)} .. {clock.text(last)}; shorten --hours, move "
+                    "the start time or give more input")
+    return lat, lon, level, start
+
+
+def _courant_step(field: np.ndarray, grid: SliceGrid, raw_levels: np.ndarray | None,
+                  vertical_scale: float, courant: float) -> float:
+    """The largest step (s) that keeps the Courant number at most ``courant``.
+
+    Parameters
+    ----------
+    field : numpy.ndarray, shape (nlev, nlat, nlon, ncomp)
+        One prepared time slice (Cartesian wind, then vertical velocity).
+    grid : SliceGrid
+    raw_levels : numpy.ndarray or None
+        Levels in hPa or m.
+    vertical_scale : float
+        As in :func:`flowpipe.parcels._kernels.advance`.
+    courant : float
+        Largest fraction of a grid spacing crossed in one step.
+
+    Returns
+    -------
+    float
+        ``courant * min(a dphi, a dlambda) / max |V|`` (horizontal spacing
+        measured as at the equator, since positions are advanced in Cartesian
+        coordinates, so the converging meridians do not shrink the step), and
+        for 3-D runs also at most ``courant * min dlevel / max |dlevel/dt|``.
+
+    References
+    ----------
+    Courant, Friedrichs & Lewy (1928), "Ueber die partiellen
+    Differenzengleichungen der mathematischen Physik", Math. Ann. 100, 32-74;
+    for trajectories the rule of crossing a fraction of a grid box per step
+    follows e.g. Stohl (1998), Atmos. Environ. 32, 947-966, section 3
+    (from memory).
+    """
+    speed = float(np.nanmax(np.linalg.norm(field[..., :3], axis=-1), initial=0.0))
+    spacing = np.radians(min(np.min(np.diff(grid.latitude)), np.min(np.diff(grid.longitude))))
+    step = courant * EARTH_RADIUS * spacing / max(speed, 1.0)
+    if vertical_scale and raw_levels is not None and raw_levels.size > 1:
+        rate = float(np.nanmax(np.abs(field[..., 3]), initial=0.0)) * vertical_scale
+        if rate > 0:
+            step = min(step, courant * float(np.min(np.abs(np.diff(np.sort(raw_levels))))) / rate)
+    return step
+
+
+def advect(
+    wind: xr.Dataset,
+    starts,
+    hours: float,
+    backward: bool = False,
+    step_minutes: float | None = None,
+    vertical: str | None = None,
+    sample: Sequence[str] = (),
+    steady: bool = False,
+    scheme: str = "rk4",
+    record_minutes: float = RECORD_MINUTES,
+    courant: float = COURANT,
+) -> xr.Dataset:
+    """Follow air parcels through a wind field, forward or backward in time.
+
+    Parameters
+    ----------
+    wind : xarray.Dataset
+        Canonical wind Dataset (:func:`flowpipe.open_wind`); read one time
+        slice at a time.
+    starts : start table, CSV path or iterable of (lat, lon[, level])
+        See :mod:`flowpipe.parcels.starts`. A start without a time begins at
+        the first input time going forward and at the last going backward.
+    hours : float
+        Length of every trajectory, > 0.
+    backward : bool
+        Integrate backward in time ("where did the air come from").
+    step_minutes : float, optional
+        Integration step; by default the Courant rule of
+        :func:`_courant_step` (Courant number ``courant``) rounded down to a
+        whole fraction of the record interval. It may not exceed the input
+        interval.
+    vertical : {"omega", "w"}, optional
+        3-D trajectories with the vertical velocity ``omega`` (Pa s-1, on
+        pressure levels) or ``w`` (m s-1, on height levels); by default
+        parcels stay on their start level (level-following 2-D).
+    sample : sequence of str
+        Input variables interpolated along the paths at the recorded times.
+    steady : bool
+        Treat the wind as frozen at its first time (required for a single
+        time).
+    scheme : {"rk4", "petterssen"}
+        Classical fourth-order Runge-Kutta, or the iterative scheme of
+        Petterssen (1940).
+    record_minutes : float
+        Positions are recorded every ``max(1, round(record_minutes / step))``
+        steps and at the end.
+    courant : float
+        Courant number of the automatic step.
+
+    Returns
+    -------
+    xarray.Dataset
+        A CF discrete-sampling-geometry trajectory Dataset, dimensions
+        ``(trajectory, obs)``: ``time``, ``latitude``, ``longitude``, the
+        level (``air_pressure`` or ``height``) when the input has levels,
+        ``trajectory`` (``cf_role = trajectory_id``), ``status`` (flag values
+        and meanings) and the sampled variables. Positions after a parcel
+        stops (left the domain, reached the lowest or highest level, met
+        missing wind) are missing; ``time`` keeps the schedule.
+
+    Raises
+    ------
+    flowpipe.errors.InputError, flowpipe.errors.UsageError
+        For starts outside the domain, the vertical range or the input
+        times (naming the row), ``hours <= 0``, a step longer than the input
+        interval, 3-D without a vertical velocity, or a single time without
+        ``steady``.
+
+    References
+    ----------
+    The kernels: :func:`flowpipe.parcels._kernels.advance` (Runge-Kutta,
+    Petterssen 1940) and :func:`flowpipe.parcels._kernels.interpolate`; CF
+    discrete sampling geometries: CF Conventions 1.11, chapter 9 and
+    appendix H.4 (trajectories).
+    """
+    if not hours > 0 or not math.isfinite(hours):
+        raise UsageError(f"--hours {hours:g}: give a positive length in hours")
+    if scheme not in SCHEMES:
+        raise UsageError(f"scheme {scheme!r}: choose rk4 or petterssen")
+    if not record_minutes > 0:
+        raise UsageError(f"record_minutes {record_minutes:g}: must be positive")
+    if not courant > 0:
+        raise UsageError(f"courant {courant:g}: must be positive")
+    sample = tuple(sample)
+    vertical_scale = _check_wind(wind, vertical, sample)
+    clock = _clock(wind, steady)
+    grid_info = describe_grid(wind)
+    periodic = grid_info.kind == "global"
+    sign = -1.0 if backward else 1.0
+    table = as_start_table(starts)
+    lat, lon, level, start = _resolve_starts(table, wind, clock, grid_info.kind, hours, sign)
+
+    grid = slice_grid(wind, periodic)
+    names = (vertical,) if vertical else ()
+    winds = SliceWindow(wind, grid, True, names)
+    raw_levels = wind["level"].values.astype(np.float64) if "level" in wind.dims else None
+    interval = float(np.min(np.diff(clock.seconds))) if clock.seconds.size > 1 and not steady \
+        else math.inf
+    record = record_minutes * 60.0
+    if step_minutes is None:
+        first_slot = winds.slots_for([clock.bracket(float(start.min()))[0]])[0]
+        step = min(_courant_step(winds.field[first_slot], grid, raw_levels, vertical_scale,
+                                 courant), interval, record)
+        step = record / math.ceil(record / step - 1e-9)
+    else:
+        step = float(step_minutes) * 60.0
+        if not step > 0:
+            raise UsageError(f"--step-minutes {step_minutes:g}: must be positive")
+        if step > interval + TIME_TOLERANCE:
+            raise UsageError(f"--step-minutes {step_minutes:g} is longer than the input interval "
+                             f"({interval / 60:g} minutes); give at most {interval / 60:g}")
+    schedule = _schedule(hours * 3600.0, step, record)
+
+    samples = SliceWindow(wind, grid, False, sample) if sample else None
+    n = lat.size
+    nobs = schedule.offsets.size
+    out_pos = np.full((n, nobs, 3), np.nan)
+    out_level = np.full((n, nobs), np.nan)
+    out_sample = np.full((n, nobs, len(sample)), np.nan)
+    status = np.full(n, K.ACTIVE, dtype=np.int8)
+    level_for = level if raw_levels is not None else np.zeros(n)
+    for t0 in np.unique(start):
+        members = np.flatnonzero(start == t0)
+        pos = unit_vectors(lat[members], lon[members])
+        lev = level_for[members].copy()
+        st = status[members]
+        _integrate(pos, lev, st, float(t0), sign, schedule, clock, winds, samples, grid,
+                   vertical_scale, SCHEMES[scheme], out_pos, out_level, out_sample, members)
+        status[members] = st
+    status[status == K.ACTIVE] = K.COMPLETED
+
+    return _trajectory_dataset(
+        wind, clock, start, sign, schedule.offsets, out_pos, out_level, out_sample, status,
+        sample, grid_info.kind, raw_levels is not None, dict(
+            integration_scheme="classical fourth-order Runge-Kutta" if scheme == "rk4"
+            else "Petterssen (1940) iterative scheme",
+            time_step_seconds=step, direction="backward" if backward else "forward",
+            trajectory_hours=float(hours),
+            vertical_motion=vertical or "none (level-following)",
+            steady_wind="yes" if clock.steady else "no"))
+
+
+@dataclass(frozen=True)
+class _Schedule:
+    steps: np.ndarray       # length of each step (s, positive)
+    recorded: np.ndarray    # bool per step: record after it
+    offsets: np.ndarray     # seconds from the start of each recorded obs (0 first)
+
+
+def _schedule(total: float, step: float, record: float) -> _Schedule:
+    nsteps = max(1, math.ceil(total / step - 1e-9))
+    steps = np.full(nsteps, step)
+    steps[-1] = total - step * (nsteps - 1)
+    every = max(1, round(record / step))
+    recorded = (np.arange(1, nsteps + 1) % every == 0)
+    recorded[-1] = True
+    ends = np.cumsum(steps)
+    return _Schedule(steps, recorded, np.concatenate([[0.0], ends[recorded]]))
+
+
+def _integrate(pos, lev, status, t0, sign, schedule, clock, winds, samples, grid,
+               vertical_scale, scheme, out_pos, out_level, out_sample, members) -> None:
+    """Integrate one group of parcels sharing a start time, recording as scheduled."""
+    args = grid.kernel_args()
+    lowest_at_top = grid.log_levels
+
+    def record(obs: int, t: float) -> None:
+        alive = status == K.ACTIVE
+        out_pos[members[alive], obs] = pos[alive]
+        out_level[members[alive], obs] = lev[alive]
+        if samples is not None:
+            k0, k1, w = clock.bracket(t)
+            s0, s1 = samples.slots_for([k0, k1])
+            values = np.empty((pos.shape[0], len(samples.names)))
+            K.sample(pos, lev, status, samples.field, s0, s1, w, *args, values)
+            out_sample[members, obs] = values
+
+    record(0, t0)
+    t = t0
+    obs = 1
+    slot0 = np.empty(3, dtype=np.int64)
+    slot1 = np.empty(3, dtype=np.int64)
+    weight = np.empty(3)
+    for length, recorded in zip(schedule.steps, schedule.recorded, strict=True):
+        h = sign * length
+        brackets = [clock.bracket(t + f * h) for f in (0.0, 0.5, 1.0)]
+        slots = winds.slots_for([k for b in brackets for k in b[:2]])
+        for i, b in enumerate(brackets):
+            slot0[i], slot1[i], weight[i] = slots[2 * i], slots[2 * i + 1], b[2]
+        K.advance(pos, lev, status, h, winds.field, slot0, slot1, weight, *args,
+                  vertical_scale, lowest_at_top, EARTH_RADIUS, scheme, PETTERSSEN_ITERATIONS,
+                  PETTERSSEN_TOLERANCE)
+        t += h
+        if recorded:
+            record(obs, t)
+            obs += 1
+        if not np.any(status == K.ACTIVE):
+            break
+
+
+def _trajectory_dataset(wind, clock, start, sign, offsets, out_pos, out_level, out_sample,
+                        status, sample, kind, has_levels, method) -> xr.Dataset:
+    n, nobs = out_level.shape
+    lat, lon = latitude_longitude(out_pos)
+    lon0 = float(wind["longitude"].values[0]) if kind == "regional" else 0.0
+    lon = lon0 + np.mod(lon - lon0, 360.0)
+    dims = ("trajectory", "obs")
+    times = clock.times(start[:, None] + sign * offsets[None, :])
+    coords = {
+        "trajectory": ("trajectory", np.arange(1, n + 1, dtype=np.int32),
+                       {"cf_role": "trajectory_id", "long_name": "trajectory number"}),
+        "time": (dims, times, {"standard_name": "time", "long_name": "time of the position"}),
+        "latitude": (dims, lat, {"standard_name": "latitude", "units": "degrees_north",
+                                 "long_name": "parcel latitude"}),
+        "longitude": (dims, lon, {"standard_name": "longitude", "units": "degrees_east",
+                                  "long_name": "parcel longitude"}),
+    }
+    level_type = wind.attrs.get("level_type")
+    if has_levels:
+        level_attrs = {k: v for k, v in wind["level"].attrs.items()
+                       if k in ("units", "standard_name", "positive", "long_name")}
+        name = {"pressure": "air_pressure", "height": "height"}.get(level_type, "level")
+        if level_type == "pressure":
+            level_attrs.update(standard_name="air_pressure", units="hPa", positive="down")
+        elif level_type == "height":
+            level_attrs.update(standard_name="height", units="m", positive="up")
+        level_attrs.update(long_name="parcel vertical position", axis="Z")
+        coords[name] = (dims, out_level, level_attrs)
+    data = {"status": ("trajectory", status, {
+        "long_name": "how the trajectory ended",
+        "standard_name": "status_flag",
+        "flag_values": np.arange(len(K.STATUS_MEANINGS), dtype=np.int8),
+        "flag_meanings": " ".join(K.STATUS_MEANINGS)})}
+    for i, name in enumerate(sample):
+        attrs = {k: v for k, v in wind[name].attrs.items()
+                 if k in ("units", "standard_name", "long_name")}
+        attrs["long_name"] = f"{attrs.get('long_name', name)} along the trajectory"
+        data[name] = (dims, out_sample[:, :, i], attrs)
+    ds = xr.Dataset(data, coords=coords)
+    epoch = _iso(clock.reference).rstrip("Z").replace("T", " ")
+    ds["time"].encoding = {"units": f"seconds since {epoch}"}
+    if not isinstance(clock.reference, np.datetime64):
+        ds["time"].encoding["calendar"] = clock.reference.calendar
+    attrs = annotate.global_attrs(
+        wind, title="flowpipe parcel trajectories",
+        summary=f"{method['direction'].capitalize()} trajectories of {n} air parcels over "
+        f"{method['trajectory_hours']:g} h through gridded model winds. {annotate.CAUTION}",
+        references="Kutta (1901), Z. Math. Phys. 46, 435-453; Petterssen (1940), Weather "
+        "Analysis and Forecasting; CF Conventions 1.11, chapter 9")
+    attrs["featureType"] = "trajectory"
+    attrs.update(method)
+    if clock.steady and "time" not in wind.dims:
+        attrs["time_note"] = "the input has no time: times count from an arbitrary 1970-01-01"
+    ds.attrs = attrs
+    return ds

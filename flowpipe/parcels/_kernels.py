@@ -1,0 +1,361 @@
+"""Compiled kernels: space-time sampling and one integration step for many parcels.
+
+Positions are unit vectors ``(x, y, z)`` on the sphere (``z`` towards the
+north pole, ``x`` towards longitude 0), so nothing is singular at the poles.
+Fields are stacked time slices ``field[slot, level, lat, lon, component]``;
+the driver (:mod:`flowpipe.parcels._window`) keeps only the slices that
+bracket the current step in those slots and tells the kernels which slot
+pair and time weight belong to each stage time.
+
+Status codes: ``ACTIVE`` (-1) marks a parcel still being integrated; the
+others are the flag values written to the output (see ``STATUS_MEANINGS``).
+"""
+
+from __future__ import annotations
+
+import math
+
+import numba
+import numpy as np
+
+ACTIVE = -1
+COMPLETED = 0
+LEFT_DOMAIN = 1
+REACHED_LOWEST = 2
+REACHED_HIGHEST = 3
+MISSING_WIND = 4
+#: Output flag meanings, in the order of the flag values 0, 1, 2, ...
+STATUS_MEANINGS = ("completed", "left_domain", "reached_lowest_level", "reached_highest_level",
+                   "met_missing_wind")
+
+RK4 = 0
+PETTERSSEN = 1
+
+#: Longitudes and latitudes within this many degrees outside the grid still
+#: count as inside (rounding of coordinates read from files; common practice).
+EDGE_TOLERANCE = 1e-9
+
+
+@numba.njit(cache=True)
+def _locate(coord, uniform, value):
+    """Cell index ``i`` and fraction ``f`` with ``value = coord[i] + f * (coord[i+1] - coord[i])``.
+
+    ``inside`` is False when ``value`` lies outside ``[coord[0], coord[-1]]``;
+    the index is then clamped to the nearest cell and the fraction to [0, 1].
+    """
+    n = coord.shape[0]
+    if n == 1:
+        return 0, 0.0, abs(value - coord[0]) <= EDGE_TOLERANCE
+    inside = coord[0] - EDGE_TOLERANCE <= value <= coord[n - 1] + EDGE_TOLERANCE
+    if uniform:
+        pos = (value - coord[0]) / (coord[1] - coord[0])
+        i = int(math.floor(pos))
+        i = min(max(i, 0), n - 2)
+    else:
+        lo, hi = 0, n - 1
+        while hi - lo > 1:
+            mid = (lo + hi) // 2
+            if coord[mid] <= value:
+                lo = mid
+            else:
+                hi = mid
+        i = lo
+    f = (value - coord[i]) / (coord[i + 1] - coord[i])
+    f = min(max(f, 0.0), 1.0)
+    return i, f, inside
+
+
+@numba.njit(cache=True)
+def interpolate(field, s0, s1, wt, px, py, pz, level, lat, lat_uniform, lon, lon_uniform,
+                periodic, levels, log_levels, out):
+    """Sample every component of ``field`` at one position and time.
+
+    Linear in time between slots ``s0`` and ``s1`` (weight ``wt`` on ``s1``),
+    bilinear in latitude-longitude index space, linear in the vertical
+    coordinate (``log`` of pressure when ``log_levels``). The vertical
+    coordinate is clamped to the range of ``levels``: leaving it is judged by
+    the caller.
+
+    Parameters
+    ----------
+    field : ndarray, shape (nslot, nlev, nlat, nlon, ncomp)
+    s0, s1 : int
+        Slots of the earlier and later time slice.
+    wt : float
+        Time weight of ``s1`` in [0, 1].
+    px, py, pz : float
+        Unit vector of the position.
+    level : float
+        Vertical coordinate (hPa or m); ignored when there is one level.
+    lat, lon : ndarray
+        Ascending grid coordinates in degrees (``lat`` includes any virtual
+        pole rows).
+    lat_uniform, lon_uniform, periodic : bool
+        Equal spacing of each axis; longitudes wrap round the globe.
+    levels : ndarray
+        Ascending vertical interpolation coordinates (``log p`` or height).
+    log_levels : bool
+        Interpolate in the logarithm of ``level``.
+    out : ndarray, shape (ncomp,)
+        Receives the sampled values.
+
+    Returns
+    -------
+    int
+        ``ACTIVE`` on success, ``LEFT_DOMAIN`` outside a limited-area grid,
+        ``MISSING_WIND`` when a value needed is missing (NaN).
+
+    References
+    ----------
+    Bilinear interpolation on a rectilinear grid: Press, Teukolsky, Vetterling
+    & Flannery (2007), Numerical Recipes, 3rd ed., section 3.6, eq. 3.6.5.
+    Interpolating the Cartesian components of the wind rather than ``u, v``
+    keeps the interpolant smooth across the poles, as in the Cartesian
+    trajectory formulation of Stohl, Wotawa, Seibert & Kromp-Kolb (1995),
+    J. Appl. Meteor. 34, 2149-2165 (from memory); linear interpolation in
+    log-pressure is common practice.
+    """
+    ncomp = field.shape[4]
+    lat_deg = math.degrees(math.asin(min(max(pz, -1.0), 1.0)))
+    lon_deg = math.degrees(math.atan2(py, px))
+    j, fy, inside = _locate(lat, lat_uniform, lat_deg)
+    if not inside:
+        return LEFT_DOMAIN
+    nlon = lon.shape[0]
+    if periodic:
+        pos = ((lon_deg - lon[0]) % 360.0) / (lon[1] - lon[0])
+        i = int(math.floor(pos))
+        fx = pos - i
+        if i >= nlon:
+            i -= nlon
+        i1 = i + 1 if i + 1 < nlon else 0
+    else:
+        shifted = lon[0] + (lon_deg - lon[0]) % 360.0
+        if shifted > lon[nlon - 1] + EDGE_TOLERANCE and 360.0 - (shifted - lon[0]) <= EDGE_TOLERANCE:
+            shifted -= 360.0  # just west of the western edge, within rounding
+        i, fx, inside = _locate(lon, lon_uniform, shifted)
+        if not inside:
+            return LEFT_DOMAIN
+        i1 = i + 1
+    nlev = levels.shape[0]
+    if nlev > 1:
+        s = math.log(level) if log_levels else level
+        k, fz, _ = _locate(levels, False, s)
+        k1 = k + 1
+    else:
+        k, fz, k1 = 0, 0.0, 0
+    for c in range(ncomp):
+        out[c] = 0.0
+    for ts in range(2):
+        wtime = wt if ts == 1 else 1.0 - wt
+        if wtime == 0.0:
+            continue
+        slot = s1 if ts == 1 else s0
+        for kz in range(2):
+            wz = fz if kz == 1 else 1.0 - fz
+            if wz == 0.0:
+                continue
+            kk = k1 if kz == 1 else k
+            for jy in range(2):
+                wy = fy if jy == 1 else 1.0 - fy
+                if wy == 0.0:
+                    continue
+                jj = j + jy
+                for ix in range(2):
+                    wx = fx if ix == 1 else 1.0 - fx
+                    if wx == 0.0:
+                        continue
+                    ii = i1 if ix == 1 else i
+                    weight = wtime * wz * wy * wx
+                    for c in range(ncomp):
+                        out[c] += weight * field[slot, kk, jj, ii, c]
+    for c in range(ncomp):
+        if math.isnan(out[c]):
+            return MISSING_WIND
+    return ACTIVE
+
+
+@numba.njit(cache=True)
+def _rate(field, s0, s1, wt, px, py, pz, level, lat, lat_uniform, lon, lon_uniform, periodic,
+          levels, log_levels, vertical_scale, radius, work, rate):
+    """Time derivative of the state ``(x, y, z, level)`` at one point.
+
+    The interpolated Cartesian wind is projected on the tangent plane of the
+    normalised position and divided by the radius, so that the rate keeps
+    the length of the position vector constant; the vertical rate is the
+    vertical velocity times ``vertical_scale`` (0 for level-following runs).
+    """
+    norm = math.sqrt(px * px + py * py + pz * pz)
+    qx, qy, qz = px / norm, py / norm, pz / norm
+    flag = interpolate(field, s0, s1, wt, qx, qy, qz, level, lat, lat_uniform, lon, lon_uniform,
+                       periodic, levels, log_levels, work)
+    if flag != ACTIVE:
+        return flag
+    vx, vy, vz = work[0], work[1], work[2]
+    radial = vx * qx + vy * qy + vz * qz
+    rate[0] = (vx - radial * qx) / radius
+    rate[1] = (vy - radial * qy) / radius
+    rate[2] = (vz - radial * qz) / radius
+    rate[3] = work[3] * vertical_scale if vertical_scale != 0.0 else 0.0
+    return ACTIVE
+
+
+@numba.njit(cache=True)
+def advance(pos, level, status, h, field, slot0, slot1, weight, lat, lat_uniform, lon,
+            lon_uniform, periodic, levels, log_levels, vertical_scale, lowest_at_top_of_range,
+            radius, scheme, iterations, tolerance):
+    """Advance every active parcel by one time step ``h`` (seconds, negative backward).
+
+    Parameters
+    ----------
+    pos : ndarray, shape (n, 3)
+        Unit position vectors, updated in place.
+    level : ndarray, shape (n,)
+        Vertical coordinates (hPa or m), updated in place.
+    status : ndarray of int8, shape (n,)
+        ``ACTIVE`` parcels are advanced; a parcel that leaves the domain,
+        meets missing wind or leaves the vertical range keeps its last
+        position and gets the matching status.
+    h : float
+        Time step in seconds.
+    field : ndarray, shape (nslot, nlev, nlat, nlon, ncomp)
+        Cartesian wind components (m s-1) and, when ``ncomp == 4``, the
+        vertical velocity.
+    slot0, slot1, weight : ndarray, shape (3,)
+        Slots and time weights at the stage times ``t``, ``t + h/2``,
+        ``t + h``.
+    lat, lat_uniform, lon, lon_uniform, periodic, levels, log_levels
+        As in :func:`interpolate`.
+    vertical_scale : float
+        Factor from the vertical velocity to level units per second
+        (0.01 for omega in Pa s-1 on hPa levels, 1 for w on height levels,
+        0 for level-following runs).
+    lowest_at_top_of_range : bool
+        True when the largest vertical coordinate is the lowest level
+        (pressure).
+    radius : float
+        Sphere radius in m.
+    scheme : int
+        ``RK4`` or ``PETTERSSEN``.
+    iterations : int
+        Most corrector iterations of the Petterssen scheme.
+    tolerance : float
+        Convergence of the Petterssen iteration (radians and level units).
+
+    References
+    ----------
+    The classical fourth-order Runge-Kutta method: Kutta (1901), "Beitrag zur
+    naeherungsweisen Integration totaler Differentialgleichungen", Z. Math.
+    Phys. 46, 435-453; Butcher (2016), Numerical Methods for Ordinary
+    Differential Equations, 3rd ed., section 23. The iterative scheme:
+    Petterssen (1940), Weather Analysis and Forecasting, McGraw-Hill,
+    pp. 221-223 (from memory). Integrating in 3-D Cartesian coordinates with
+    renormalisation after each step avoids the polar singularity of
+    latitude-longitude equations (common practice).
+    """
+    n = pos.shape[0]
+    ncomp = field.shape[4]
+    work = np.empty(ncomp)
+    k1 = np.empty(4)
+    k2 = np.empty(4)
+    k3 = np.empty(4)
+    k4 = np.empty(4)
+    mean_rate = np.empty(4)
+    nlev = levels.shape[0]
+    for p in range(n):
+        if status[p] != ACTIVE:
+            continue
+        x0, y0, z0, l0 = pos[p, 0], pos[p, 1], pos[p, 2], level[p]
+        flag = _rate(field, slot0[0], slot1[0], weight[0], x0, y0, z0, l0, lat, lat_uniform, lon,
+                     lon_uniform, periodic, levels, log_levels, vertical_scale, radius, work, k1)
+        if scheme == RK4:
+            if flag == ACTIVE:
+                flag = _rate(field, slot0[1], slot1[1], weight[1], x0 + 0.5 * h * k1[0],
+                             y0 + 0.5 * h * k1[1], z0 + 0.5 * h * k1[2], l0 + 0.5 * h * k1[3],
+                             lat, lat_uniform, lon, lon_uniform, periodic, levels, log_levels,
+                             vertical_scale, radius, work, k2)
+            if flag == ACTIVE:
+                flag = _rate(field, slot0[1], slot1[1], weight[1], x0 + 0.5 * h * k2[0],
+                             y0 + 0.5 * h * k2[1], z0 + 0.5 * h * k2[2], l0 + 0.5 * h * k2[3],
+                             lat, lat_uniform, lon, lon_uniform, periodic, levels, log_levels,
+                             vertical_scale, radius, work, k3)
+            if flag == ACTIVE:
+                flag = _rate(field, slot0[2], slot1[2], weight[2], x0 + h * k3[0], y0 + h * k3[1],
+                             z0 + h * k3[2], l0 + h * k3[3], lat, lat_uniform, lon, lon_uniform,
+                             periodic, levels, log_levels, vertical_scale, radius, work, k4)
+            for c in range(4):
+                mean_rate[c] = (k1[c] + 2.0 * k2[c] + 2.0 * k3[c] + k4[c]) / 6.0
+        else:
+            # Petterssen: first guess with the initial rate, then correct with
+            # the mean of the rates at both ends until the end point settles.
+            for c in range(4):
+                mean_rate[c] = k1[c]
+            for _ in range(iterations):
+                if flag != ACTIVE:
+                    break
+                flag = _rate(field, slot0[2], slot1[2], weight[2], x0 + h * mean_rate[0],
+                             y0 + h * mean_rate[1], z0 + h * mean_rate[2],
+                             l0 + h * mean_rate[3], lat, lat_uniform,
+                             lon, lon_uniform, periodic, levels, log_levels, vertical_scale,
+                             radius, work, k2)
+                change = 0.0
+                for c in range(4):
+                    mean = 0.5 * (k1[c] + k2[c])
+                    change = max(change, abs(h * (mean - mean_rate[c])))
+                    mean_rate[c] = mean
+                if change < tolerance:
+                    break
+        if flag != ACTIVE:
+            status[p] = flag
+            continue
+        x1, y1, z1 = x0 + h * mean_rate[0], y0 + h * mean_rate[1], z0 + h * mean_rate[2]
+        l1 = l0 + h * mean_rate[3]
+        norm = math.sqrt(x1 * x1 + y1 * y1 + z1 * z1)
+        x1, y1, z1 = x1 / norm, y1 / norm, z1 / norm
+        if not periodic:  # the end point itself must lie inside a limited-area domain
+            flag = interpolate(field, slot0[2], slot1[2], weight[2], x1, y1, z1, l1, lat,
+                               lat_uniform, lon, lon_uniform, periodic, levels, log_levels, work)
+            if flag == LEFT_DOMAIN:
+                status[p] = flag
+                continue
+        if vertical_scale != 0.0 and nlev > 1:
+            if log_levels:
+                s = math.log(l1) if l1 > 0.0 else -math.inf  # zero pressure: above the top
+            else:
+                s = l1
+            if s < levels[0] - EDGE_TOLERANCE:
+                status[p] = REACHED_HIGHEST if lowest_at_top_of_range else REACHED_LOWEST
+                continue
+            if s > levels[nlev - 1] + EDGE_TOLERANCE:
+                status[p] = REACHED_LOWEST if lowest_at_top_of_range else REACHED_HIGHEST
+                continue
+        pos[p, 0], pos[p, 1], pos[p, 2], level[p] = x1, y1, z1, l1
+
+
+@numba.njit(cache=True)
+def sample(pos, level, status, field, s0, s1, wt, lat, lat_uniform, lon, lon_uniform, periodic,
+           levels, log_levels, out):
+    """Sample ``field`` at the positions of the active parcels (NaN elsewhere).
+
+    Parameters
+    ----------
+    pos, level, status
+        As in :func:`advance`.
+    field, s0, s1, wt, lat, lat_uniform, lon, lon_uniform, periodic, levels, log_levels
+        As in :func:`interpolate`.
+    out : ndarray, shape (n, ncomp)
+        Receives the values.
+
+    References
+    ----------
+    See :func:`interpolate`.
+    """
+    ncomp = field.shape[4]
+    work = np.empty(ncomp)
+    for p in range(pos.shape[0]):
+        flag = MISSING_WIND
+        if status[p] == ACTIVE:
+            flag = interpolate(field, s0, s1, wt, pos[p, 0], pos[p, 1], pos[p, 2], level[p], lat,
+                               lat_uniform, lon, lon_uniform, periodic, levels, log_levels, work)
+        for c in range(ncomp):
+            out[p, c] = work[c] if flag == ACTIVE else np.nan

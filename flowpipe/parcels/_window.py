@@ -1,0 +1,175 @@
+"""Streaming the wind through time: only the slices bracketing the current step are loaded.
+
+A :class:`SliceWindow` owns a small stack of prepared time slices (three
+slots: one step of at most one input interval touches at most three input
+times) and loads a slice from the lazy canonical Dataset only when a stage
+time needs it, overwriting a slot that the current step no longer uses. A
+series of hundreds of input times therefore costs the memory of three.
+
+Preparing a slice turns ``u, v`` into Cartesian components (pole-safe), puts
+the vertical axis in ascending interpolation order, and on a global grid
+closes the latitude range with pole rows: a pole row present in the input,
+or a virtual one added beyond the last row, carries the mean Cartesian
+vector of the row nearest the pole (one well-defined vector at the pole).
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+import xarray as xr
+
+from ._geometry import cartesian_wind
+
+
+@dataclass(frozen=True)
+class SliceGrid:
+    """The grid as the kernels see it (see :func:`flowpipe.parcels._kernels.interpolate`)."""
+
+    latitude: np.ndarray          # ascending, with pole rows on global grids
+    lat_uniform: bool
+    longitude: np.ndarray         # ascending
+    lon_uniform: bool
+    periodic: bool
+    levels: np.ndarray            # ascending interpolation coordinates (log p or z)
+    log_levels: bool
+    level_order: np.ndarray       # input level indices in the order of ``levels``
+    add_south: bool               # a virtual pole row is added south of the input rows
+    add_north: bool
+
+    def kernel_args(self) -> tuple:
+        """The grid arguments of the kernels, in their order."""
+        return (self.latitude, self.lat_uniform, self.longitude, self.lon_uniform,
+                self.periodic, self.levels, self.log_levels)
+
+
+def _uniform(values: np.ndarray) -> bool:
+    if values.size < 3:
+        return True
+    steps = np.diff(values)
+    return bool(np.max(np.abs(steps - steps.mean())) <= 1e-9 * max(1.0, np.abs(values).max()))
+
+
+def slice_grid(wind: xr.Dataset, periodic: bool) -> SliceGrid:
+    """Describe the grid of a canonical wind Dataset for the kernels.
+
+    Parameters
+    ----------
+    wind : xarray.Dataset
+        Canonical wind Dataset.
+    periodic : bool
+        True on a global grid.
+
+    Returns
+    -------
+    SliceGrid
+
+    References
+    ----------
+    Interpolation in log-pressure on pressure levels (common practice).
+    """
+    lat = wind["latitude"].values.astype(np.float64)
+    add_south = periodic and lat[0] > -90.0 + 1e-9
+    add_north = periodic and lat[-1] < 90.0 - 1e-9
+    full_lat = np.concatenate([[-90.0] if add_south else [], lat, [90.0] if add_north else []])
+    lon = wind["longitude"].values.astype(np.float64)
+    log_levels = wind.attrs.get("level_type") == "pressure"
+    if "level" in wind.dims:
+        raw = wind["level"].values.astype(np.float64)
+        coord = np.log(raw) if log_levels else raw
+        order = np.argsort(coord)
+        levels = coord[order]
+    else:
+        order = np.array([0])
+        levels = np.array([0.0])
+    return SliceGrid(full_lat, _uniform(full_lat), lon, _uniform(lon), periodic, levels,
+                     log_levels, order, add_south, add_north)
+
+
+def _close_poles(values: np.ndarray, grid: SliceGrid, input_lat: np.ndarray) -> np.ndarray:
+    """Give pole rows (existing or added) the ring mean of the row nearest the pole."""
+    if not grid.periodic:
+        return values
+    rows = [values]
+    if grid.add_south:
+        rows.insert(0, values[:, :1].mean(axis=2, keepdims=True).repeat(values.shape[2], axis=2))
+    elif abs(input_lat[0] + 90.0) <= 1e-9:
+        values[:, 0] = values[:, 0].mean(axis=1, keepdims=True)
+    if grid.add_north:
+        rows.append(values[:, -1:].mean(axis=2, keepdims=True).repeat(values.shape[2], axis=2))
+    elif abs(input_lat[-1] - 90.0) <= 1e-9:
+        values[:, -1] = values[:, -1].mean(axis=1, keepdims=True)
+    return np.concatenate(rows, axis=1) if len(rows) > 1 else values
+
+
+def _levels_first(da: xr.DataArray, nlev: int) -> np.ndarray:
+    """Values of one time slice as ``(level, lat, lon)``, broadcasting 2-D fields over levels."""
+    values = np.asarray(da.values, dtype=np.float64)
+    if "level" not in da.dims:
+        values = np.broadcast_to(values[None], (nlev,) + values.shape)
+    return values
+
+
+class SliceWindow:
+    """Prepared time slices of some variables, loaded on demand into a few slots.
+
+    Parameters
+    ----------
+    wind : xarray.Dataset
+        Canonical wind Dataset (lazy).
+    grid : SliceGrid
+    wind_components : bool
+        Prepare ``u, v`` (and ``vertical``) as Cartesian wind components;
+        otherwise prepare the variables ``names`` as scalars.
+    names : tuple of str
+        The scalar variables, or the vertical velocity (empty for none).
+    slots : int
+        How many slices are held at once.
+    """
+
+    def __init__(self, wind: xr.Dataset, grid: SliceGrid, wind_components: bool,
+                 names: tuple[str, ...], slots: int = 3):
+        self.wind = wind
+        self.grid = grid
+        self.wind_components = wind_components
+        self.names = names
+        self.input_lat = wind["latitude"].values.astype(np.float64)
+        ncomp = (3 + len(names)) if wind_components else len(names)
+        shape = (slots, grid.levels.size, grid.latitude.size, grid.longitude.size, ncomp)
+        self.field = np.empty(shape)
+        self.held: list[int | None] = [None] * slots
+        self.loads = 0
+
+    def _prepare(self, index: int) -> np.ndarray:
+        wanted = (("u", "v") if self.wind_components else ()) + self.names
+        part = self.wind[list(wanted)]
+        if "time" in part.dims:
+            part = part.isel(time=index)
+        part = part.compute()
+        nlev = self.grid.levels.size
+        columns = []
+        if self.wind_components:
+            u = _levels_first(part["u"], nlev)
+            v = _levels_first(part["v"], nlev)
+            columns.extend(np.moveaxis(cartesian_wind(u, v, self.input_lat,
+                                                      self.grid.longitude), -1, 0))
+        columns.extend(_levels_first(part[name], nlev) for name in self.names)
+        stacked = np.stack([_close_poles(np.array(c[self.grid.level_order]), self.grid,
+                                         self.input_lat) for c in columns], axis=-1)
+        return stacked
+
+    def slots_for(self, indices: list[int]) -> list[int]:
+        """Slots holding the input time ``indices``, loading those not yet held."""
+        needed = set(indices)
+        result = {}
+        for index in needed:
+            if index in self.held:
+                result[index] = self.held.index(index)
+        for index in sorted(needed - set(result)):
+            slot = next(s for s, held in enumerate(self.held) if held not in needed)
+            self.field[slot] = self._prepare(index)
+            self.held[slot] = index
+            self.loads += 1
+            result[index] = slot
+        return [result[i] for i in indices]
