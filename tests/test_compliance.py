@@ -1,0 +1,235 @@
+"""Every kind of NetCDF flowpipe writes is CF-1.11 clean and ACDD-1.3 annotated.
+
+External checks:
+* compliance-checker (IOOS), suite ``cf:1.11``, which implements the NetCDF
+  Climate and Forecast (CF) Metadata Conventions 1.11 (Eaton et al., 2023)
+  with the CF standard-name table it ships (version 93): zero errors (its
+  high-priority failures, printed under "Errors");
+* compliance-checker suite ``acdd:1.3`` and the attribute list of the
+  Attribute Convention for Data Discovery 1.3 (Earth Science Information
+  Partners, https://wiki.esipfed.org/Attribute_Convention_for_Data_Discovery_1-3):
+  every "highly recommended" attribute present;
+* UDUNITS-2 (through cf-units): units of each standard name convertible to
+  the canonical units of the CF standard-name table.
+"""
+
+from __future__ import annotations
+
+import json
+import xml.etree.ElementTree as ET
+from pathlib import Path
+
+import cf_units
+import compliance_checker
+import numpy as np
+import pytest
+import xarray as xr
+from compliance_checker.runner import CheckSuite, ComplianceChecker
+
+import flowpipe as fp
+from flowpipe import annotate
+
+ROOT = Path(__file__).resolve().parents[1]
+GLOBAL = ROOT / "sample_data" / "demo_global.nc"
+REGIONAL = ROOT / "sample_data" / "demo_regional.nc"
+#: Earth radius for the synthetic fields only (any plausible value will do).
+RADIUS = 6.371e6
+
+
+def _ddx(field: np.ndarray, coordinate: np.ndarray, axis: int) -> np.ndarray:
+    return np.gradient(field, coordinate, axis=axis)
+
+
+def decomposition_like(wind: xr.Dataset, harmonic: bool = False) -> xr.Dataset:
+    """A Dataset with the contract's variables on the grid of a canonical wind.
+
+    Smooth synthetic streamfunction and velocity potential; their winds from
+    centred differences (u_psi = -dpsi/(a dphi), v_psi = dpsi/(a cos phi dlambda),
+    u_chi = dchi/(a cos phi dlambda), v_chi = dchi/(a dphi)); vorticity and
+    divergence from the same formulas applied to the synthetic winds.
+    """
+    phi = np.radians(wind["latitude"].values)[:, None]
+    lam = np.radians(wind["longitude"].values)[None, :]
+    shape = wind["u"].shape
+    lead = np.arange(int(np.prod(shape[:-2]))).reshape(shape[:-2] + (1, 1))
+    coslat = np.maximum(np.cos(phi), 1e-6)
+    psi = RADIUS * (-15.0 * np.sin(phi) + 8.0 * np.cos(phi) ** 2 * np.sin(phi)
+                    * np.sin(2 * lam + 0.2 * lead))
+    chi = RADIUS * 1.5 * np.cos(phi) ** 3 * np.sin(lam - 0.1 * lead) * (1 + 0.2 * np.sin(phi))
+    fields = {
+        "streamfunction": psi,
+        "velocity_potential": chi,
+        "u_rotational": -_ddx(psi, phi[:, 0], -2) / RADIUS,
+        "v_rotational": _ddx(psi, lam[0], -1) / (RADIUS * coslat),
+        "u_divergent": _ddx(chi, lam[0], -1) / (RADIUS * coslat),
+        "v_divergent": _ddx(chi, phi[:, 0], -2) / RADIUS,
+    }
+    fields["vorticity"] = (_ddx(fields["v_rotational"], lam[0], -1)
+                           - _ddx(fields["u_rotational"] * coslat, phi[:, 0], -2)) / (
+        RADIUS * coslat)
+    fields["divergence"] = (_ddx(fields["u_divergent"], lam[0], -1)
+                            + _ddx(fields["v_divergent"] * coslat, phi[:, 0], -2)) / (
+        RADIUS * coslat)
+    if harmonic:
+        fields["u_harmonic"] = np.full(shape, 1.5)
+        fields["v_harmonic"] = np.full(shape, -0.5)
+    ds = xr.Dataset(
+        {name: (wind["u"].dims, np.broadcast_to(value, shape).astype(np.float64),
+                annotate.variable_attrs(name)) for name, value in fields.items()},
+        coords={name: wind[name] for name in wind["u"].dims},
+    )
+    ds.attrs.update(annotate.global_attrs(
+        wind, title="synthetic decomposition", summary="Synthetic fields for tests.",
+        references="none: synthetic"))
+    ds.attrs["input_files"] = wind.attrs["input_files"]
+    return ds
+
+
+def trajectory_like(ntraj: int = 5, nobs: int = 31, vertical: bool = True,
+                    backward: bool = False) -> xr.Dataset:
+    """A CF trajectory Dataset (incomplete multidimensional array, CF 1.11 H.4.2)."""
+    sign = -1 if backward else 1
+    hours = sign * np.arange(nobs, dtype=np.float64)
+    start = np.datetime64("2026-01-12T00:00", "ns")
+    time = start + (hours * 3600e9).astype("m8[ns]")
+    k = np.arange(ntraj, dtype=np.float64)[:, None]
+    lat = 50.0 + 2.0 * k + 0.25 * np.abs(hours)[None, :] * np.cos(0.1 * hours + k)
+    lon = -25.0 + 3.0 * k + 0.8 * np.abs(hours)[None, :]
+    pressure = 850.0 - 10.0 * np.abs(hours)[None, :] * (1 + 0.2 * k)
+    ta = 270.0 - 0.1 * np.abs(hours)[None, :] - k
+    variables = {
+        "time": (("trajectory", "obs"), np.broadcast_to(time, (ntraj, nobs)).copy(),
+                 {"standard_name": "time"}),
+        "latitude": (("trajectory", "obs"), lat,
+                     {"standard_name": "latitude", "units": "degrees_north"}),
+        "longitude": (("trajectory", "obs"), lon,
+                      {"standard_name": "longitude", "units": "degrees_east"}),
+        "trajectory": ("trajectory", np.arange(ntraj, dtype=np.int32),
+                       {"cf_role": "trajectory_id", "long_name": "trajectory number"}),
+        "status": ("trajectory", np.array([0, 1, 2, 0, 0][:ntraj] + [0] * (ntraj - 5),
+                                          dtype=np.int8),
+                   {"flag_values": [0, 1, 2],
+                    "flag_meanings": "completed left_the_domain hit_the_ground",
+                    "long_name": "how the trajectory ended"}),
+        "ta": (("trajectory", "obs"), ta, {"standard_name": "air_temperature", "units": "K"}),
+    }
+    if vertical:
+        variables["pressure"] = (("trajectory", "obs"), pressure,
+                                 {"standard_name": "air_pressure", "units": "hPa",
+                                  "positive": "down"})
+    ds = xr.Dataset(variables, attrs={"featureType": "trajectory"})
+    cut = nobs * 2 // 3  # the second track ends early: padded with missing values
+    for name in ("latitude", "longitude", "ta", *(("pressure",) if vertical else ())):
+        ds[name][1, cut:] = np.nan
+    ds["time"][1, cut:] = np.datetime64("NaT", "ns")
+    return ds
+
+
+def check(path: Path, suites: tuple[str, ...] = ("cf:1.11", "acdd:1.3")) -> dict:
+    """Run compliance-checker in-process; its JSON report, by suite."""
+    CheckSuite.load_all_available_checkers()
+    report = path.with_suffix(".json")
+    ComplianceChecker.run_checker(str(path), list(suites), 0, "normal",
+                                  output_filename=str(report), output_format="json")
+    return json.loads(report.read_text())
+
+
+def _failures(result: dict, priority: str) -> list[str]:
+    return [f"{item['name']}: {msg}" for item in result[f"{priority}_priorities"]
+            for msg in item["msgs"]]
+
+
+@pytest.fixture(scope="module")
+def outputs(tmp_path_factory) -> dict[str, Path]:
+    """One small file of each kind flowpipe writes."""
+    directory = tmp_path_factory.mktemp("outputs")
+    wind = fp.open_wind(GLOBAL).isel(time=slice(0, 2))
+    regional = fp.open_wind(REGIONAL).isel(time=slice(0, 1))
+    parts = decomposition_like(wind)
+    kinds = {
+        "global-decomposition": (parts, False),
+        "regional-decomposition": (decomposition_like(regional, harmonic=True), False),
+        "kinematics-float32": (parts[["vorticity", "divergence"]], True),
+        "trajectories-3d": (trajectory_like(), False),
+        "trajectories-2d": (trajectory_like(vertical=False, backward=True), False),
+    }
+    return {kind: fp.write(ds, directory / f"{kind}.nc", float32=single)
+            for kind, (ds, single) in kinds.items()}
+
+
+@pytest.fixture(scope="module")
+def reports(outputs) -> dict[str, dict]:
+    return {kind: check(path) for kind, path in outputs.items()}
+
+
+KINDS = ("global-decomposition", "regional-decomposition", "kinematics-float32",
+         "trajectories-3d", "trajectories-2d")
+
+
+@pytest.mark.parametrize("kind", KINDS)
+def test_cf_1_11_no_errors(reports, kind):
+    # compliance-checker cf:1.11: high-priority failures are the report's "Errors".
+    result = reports[kind]["cf:1.11"]
+    assert _failures(result, "high") == []
+    assert result["high_count"] == 0
+    # and nothing among its warnings either (CF 1.11 recommendations)
+    assert _failures(result, "medium") == []
+
+
+#: ACDD 1.3 highly recommends a standard_name on every variable, but the CF
+#: standard-name table (v93) has none for the parts of the wind in the
+#: contract's table (marked "-"): the only failures allowed.
+NO_STANDARD_NAME = {
+    f'variable "{name}" missing the following attributes:: standard_name'
+    for name, (standard_name, _, _) in annotate.VARIABLES.items() if standard_name is None
+}
+
+
+@pytest.mark.parametrize("kind", KINDS)
+def test_acdd_1_3_highly_recommended_present(reports, kind):
+    # compliance-checker acdd:1.3 "Highly Recommended" = ACDD-1.3 highly recommended set.
+    failures = set(_failures(reports[kind]["acdd:1.3"], "high"))
+    assert failures <= NO_STANDARD_NAME
+
+
+@pytest.mark.parametrize("kind", KINDS)
+def test_acdd_discovery_attributes(outputs, kind):
+    # ACDD 1.3 (ESIP): title, summary, keywords (highly recommended); history,
+    # date_created (ISO 8601), source, references, comment (recommended/suggested);
+    # Conventions lists both conventions (ACDD 1.3, "Conventions").
+    with xr.open_dataset(outputs[kind]) as ds:
+        attrs = ds.attrs
+    for key in ("title", "summary", "keywords", "history", "date_created", "source",
+                "references", "comment", "geospatial_lat_min", "geospatial_lon_max",
+                "time_coverage_start", "time_coverage_end"):
+        assert str(attrs.get(key, "")).strip(), key
+    assert "CF-1.11" in attrs["Conventions"] and "ACDD-1.3" in attrs["Conventions"]
+    assert annotate.CAUTION in attrs["comment"]
+    assert attrs["source"] == f"flowpipe {fp.__version__}"
+    np.datetime64(attrs["date_created"].rstrip("Z"))  # ISO 8601, or this raises
+
+
+def _standard_name_table() -> dict[str, str]:
+    table = Path(compliance_checker.__file__).parent / "data" / "cf-standard-name-table.xml"
+    root = ET.parse(table).getroot()
+    units = {entry.get("id"): entry.findtext("canonical_units") or ""
+             for entry in root.iter("entry")}
+    # an alias is a valid name too (CF standard-name table, "alias" elements)
+    units.update({alias.get("id"): units[alias.findtext("entry_id")]
+                  for alias in root.iter("alias") if alias.findtext("entry_id") in units})
+    return units
+
+
+def test_contract_standard_names_and_units(outputs):
+    # CF standard-name table v93 (shipped with compliance-checker): each name of the
+    # contract exists and its units convert to the table's canonical units (UDUNITS-2).
+    table = _standard_name_table()
+    with xr.open_dataset(outputs["regional-decomposition"]) as ds:
+        for name, (standard_name, units, _) in annotate.VARIABLES.items():
+            assert ds[name].attrs["units"] == units
+            if standard_name is None:
+                assert "standard_name" not in ds[name].attrs
+                continue
+            assert ds[name].attrs["standard_name"] == standard_name
+            assert standard_name in table, standard_name
+            assert cf_units.Unit(units).is_convertible(cf_units.Unit(table[standard_name]))
