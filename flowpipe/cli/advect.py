@@ -1,15 +1,68 @@
-"""``flowpipe advect``: placeholder until its issue lands."""
+"""``flowpipe advect``: parcel trajectories written as a CF trajectory file."""
 
 from __future__ import annotations
 
 import argparse
 
-from ..errors import UsageError
+import numpy as np
+import pandas as pd
+
+from ..ingest import open_wind
+from ..parcels import advect, read_starts
+from ..parcels._kernels import STATUS_MEANINGS
+from ..parcels.starts import parse_start
+from ..store import write
 
 
 def register(sub: argparse._SubParsersAction, common: argparse.ArgumentParser) -> argparse.ArgumentParser:
-    return sub.add_parser("advect", parents=[common], help="(not available yet)")
+    parser = sub.add_parser(
+        "advect", parents=[common], help="follow air parcels forward or backward in time",
+        description="Follow air parcels through the winds of FILE... (one time series, read a "
+        "time slice at a time) and write their trajectories as a CF trajectory file. "
+        "Trajectories are analysis diagnostics, not a dispersion or warning product.",
+    )
+    parser.add_argument("files", nargs="+", metavar="FILE", help="NetCDF files or globs")
+    parser.add_argument("-o", "--output", required=True, metavar="OUT.nc",
+                        help="the trajectory file to write")
+    where = parser.add_mutually_exclusive_group(required=True)
+    where.add_argument("--start", action="append", metavar="LAT,LON[,LEVEL]",
+                       help="a start point (repeatable); LEVEL in hPa or m as the input's levels")
+    where.add_argument("--starts", metavar="FILE.csv",
+                       help="start points: a header row latitude,longitude[,level][,time]")
+    parser.add_argument("--hours", required=True, type=float, metavar="H",
+                        help="length of each trajectory in hours")
+    parser.add_argument("--backward", action="store_true",
+                        help="integrate backward in time (where did the air come from)")
+    parser.add_argument("--step-minutes", type=float, metavar="M",
+                        help="integration step (default: a Courant-number rule)")
+    parser.add_argument("--sample", metavar="VAR,...",
+                        help="input variables to interpolate along the trajectories")
+    parser.add_argument("--vertical", choices=("omega", "w"),
+                        help="3-D trajectories with this vertical velocity (default: parcels "
+                        "stay on their level)")
+    parser.add_argument("--steady", action="store_true",
+                        help="treat the wind as frozen at its first time (needed for one time)")
+    parser.add_argument("--scheme", choices=("rk4", "petterssen"), default="rk4",
+                        help="integration scheme (default: fourth-order Runge-Kutta)")
+    parser.add_argument("--u", metavar="NAME", help="name of the eastward wind variable")
+    parser.add_argument("--v", metavar="NAME", help="name of the northward wind variable")
+    return parser
 
 
 def run(args: argparse.Namespace) -> int:
-    raise UsageError("'flowpipe advect' is not available in this version yet")
+    if args.starts:
+        starts = read_starts(args.starts)
+    else:
+        starts = pd.DataFrame([parse_start(text, i) for i, text in enumerate(args.start, 1)])
+    wind = open_wind(args.files, u=args.u, v=args.v)
+    sample = [name.strip() for name in args.sample.split(",") if name.strip()] \
+        if args.sample else []
+    tracks = advect(wind, starts, hours=args.hours, backward=args.backward,
+                    step_minutes=args.step_minutes, vertical=args.vertical, sample=sample,
+                    steady=args.steady, scheme=args.scheme)
+    path = write(tracks, args.output)
+    counts = np.bincount(tracks["status"].values, minlength=len(STATUS_MEANINGS))
+    summary = ", ".join(f"{meaning.replace('_', ' ')} {count}"
+                        for meaning, count in zip(STATUS_MEANINGS, counts, strict=True) if count)
+    print(f"wrote {path}: {tracks.sizes['trajectory']} trajectories ({summary})")
+    return 0
