@@ -5,14 +5,18 @@ Public API (re-exports only)::
     import flowpipe as fp
     wind = fp.open_wind(paths)      # canonical, lazy xarray.Dataset
     grid = fp.describe_grid(wind)   # global/regional, equiangular/Gaussian, weights
+    parts = fp.decompose(wind)      # Helmholtz decomposition (contract variables)
+    kin = fp.kinematics(wind)       # absolute vorticity, deformation, energy spectra
     fp.write(dataset, "out.nc")     # CF-annotated, atomic
 """
 
 from ._version import __version__
+from .decompose import decompose
 from .errors import FlowpipeError, InputError, UsageError
 from .grid import GridInfo, describe_grid
 from .ingest import open_wind
 from .inspection import describe_wind
+from .kinematics import kinematics
 from .store import write
 
 __all__ = [
@@ -21,8 +25,10 @@ __all__ = [
     "InputError",
     "UsageError",
     "__version__",
+    "decompose",
     "describe_grid",
     "describe_wind",
+    "kinematics",
     "open_wind",
     "write",
 ]

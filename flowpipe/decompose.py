@@ -312,11 +312,14 @@ def apply_slab_kernel(
         u, v = u.chunk(whole), v.chunk(whole)
         n_tasks = int(np.prod([len(c) for c in u.chunks[:-2]]))
     kernel = partial(over_slabs, slab_kernel, nthreads=transform_threads(n_tasks), **kwargs)
-    return xr.apply_ufunc(
+    outputs = xr.apply_ufunc(
         kernel, u, v, input_core_dims=[HORIZONTAL, HORIZONTAL], output_core_dims=core_dims,
         dask="parallelized", output_dtypes=[np.float64] * len(core_dims),
-        dask_gufunc_kwargs={"output_sizes": sizes or {}}, keep_attrs=False,
+        dask_gufunc_kwargs={"output_sizes": sizes or {}}, keep_attrs=True,
     )
+    for out in outputs:  # keep the coordinates' attributes, not those of u
+        out.attrs = {}
+    return outputs
 
 
 def helmholtz_slab(

@@ -60,10 +60,12 @@ def max_truncation(geometry: str, nlat: int, nlon: int) -> int:
     Returns
     -------
     int
-        ``min(lmax, (nlon - 1) // 2)`` with ``lmax = nlat - 2`` for ``"CC"``
-        and ``nlat - 1`` for ``"F1"`` and ``"GL"``: the highest degree the
-        analysis recovers exactly and the highest order the longitudes carry
-        without aliasing onto the Nyquist frequency.
+        ``min(lmax, (nlon - 1) // 2)``, ``lmax`` the highest degree the
+        analysis recovers exactly (``nlat - 2`` for ``"CC"``, ``nlat - 1``
+        for ``"F1"`` and ``"GL"``, from
+        :func:`ducc0.sht.experimental.maximum_safe_l`), ``(nlon - 1) // 2``
+        the highest order the longitudes carry without reaching the Nyquist
+        frequency.
 
     References
     ----------
@@ -74,8 +76,7 @@ def max_truncation(geometry: str, nlat: int, nlon: int) -> int:
     """
     if geometry not in GEOMETRIES:
         raise UsageError(f"geometry {geometry!r} is not one of {', '.join(GEOMETRIES)}")
-    lmax = nlat - 2 if geometry == "CC" else nlat - 1
-    return int(min(lmax, (nlon - 1) // 2))
+    return int(min(_SHT.maximum_safe_l(geometry, nlat), (nlon - 1) // 2))
 
 
 def degrees(truncation: int) -> np.ndarray:

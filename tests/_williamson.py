@@ -86,3 +86,53 @@ def relative_max_error(result: np.ndarray, exact: np.ndarray) -> float:
     """max |(result - exact) - mean(result - exact)| / max |exact| (the mean removed)."""
     diff = np.asarray(result) - exact
     return float(np.max(np.abs(diff - diff.mean())) / np.max(np.abs(exact)))
+
+
+def harmonic(degree: int, order: int, coefficient: complex, phi: np.ndarray,
+             lam: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Re(c Y_l^m) and its eastward and northward derivatives on the unit sphere.
+
+    From scipy.special.sph_harm_y (the reference library), whose ``diff_n=1``
+    returns the derivatives in colatitude and longitude; eastward derivative
+    ``(1/cos phi) d/dlambda``, northward ``d/dphi = -d/dtheta``.
+    """
+    from scipy.special import sph_harm_y
+
+    theta = np.pi / 2 - phi
+    y, dy = sph_harm_y(degree, order, theta, lam, diff_n=1)
+    value = np.real(coefficient * y)
+    east = np.real(coefficient * dy[..., 1]) / np.cos(phi)
+    north = -np.real(coefficient * dy[..., 0])
+    return value, east, north
+
+
+#: Harmonic content of the field of :func:`potential_flow`: (l, m, coefficient).
+CHI_TERMS = ((3, 2, 2.0e6 - 1.0e6j), (1, 0, 1.5e6), (6, 5, 0.8e6j))
+PSI_TERMS = ((4, 1, 3.0e6 + 2.0e6j), (2, 0, -2.5e6))
+
+
+def potential_flow(phi: np.ndarray, lam: np.ndarray, chi_terms=CHI_TERMS,
+                   psi_terms=PSI_TERMS) -> dict[str, np.ndarray]:
+    """Wind from chi and psi built of spherical harmonics (in m2 s-1, radius A).
+
+    u = -(1/a) dpsi/dphi + (1/(a cos phi)) dchi/dlambda, v = (1/(a cos phi))
+    dpsi/dlambda + (1/a) dchi/dphi; the Laplacian of Re(c Y_l^m) is
+    -l(l+1)/a**2 Re(c Y_l^m) (textbook identity, e.g. Arfken, Weber & Harris
+    2013, Mathematical Methods for Physicists, 7th ed., section 15.5).
+    """
+    out = {k: np.zeros_like(phi) for k in ("chi", "psi", "delta", "zeta", "u_div", "v_div",
+                                          "u_rot", "v_rot")}
+    for terms, potential, laplacian in ((chi_terms, "chi", "delta"), (psi_terms, "psi", "zeta")):
+        for degree, order, coefficient in terms:
+            value, east, north = harmonic(degree, order, coefficient, phi, lam)
+            out[potential] += value
+            out[laplacian] += -degree * (degree + 1) / A**2 * value
+            if potential == "chi":
+                out["u_div"] += east / A
+                out["v_div"] += north / A
+            else:
+                out["u_rot"] += -north / A
+                out["v_rot"] += east / A
+    out["u"] = out["u_rot"] + out["u_div"]
+    out["v"] = out["v_rot"] + out["v_div"]
+    return out
