@@ -1,15 +1,54 @@
-"""``flowpipe map``: placeholder until its issue lands."""
+"""``flowpipe map FILE.nc -o OUT.png``: draw a field or the trajectories of a file."""
 
 from __future__ import annotations
 
 import argparse
+import re
+import sys
+import warnings
 
-from ..errors import UsageError
+from ..maps import PROJECTIONS, MapWarning, render, save
 
 
 def register(sub: argparse._SubParsersAction, common: argparse.ArgumentParser) -> argparse.ArgumentParser:
-    return sub.add_parser("map", parents=[common], help="(not available yet)")
+    parser = sub.add_parser(
+        "map", parents=[common], help="draw a map of a field or of trajectories to a PNG file",
+        description="Draw one horizontal slab of a field (filled contours, with the matching "
+        "wind as arrows) or the tracks of a trajectory file, and write it as a PNG image.",
+    )
+    parser.add_argument("file", metavar="FILE.nc", help="a flowpipe output or any CF NetCDF file")
+    parser.add_argument("-o", "--output", required=True, metavar="OUT.png",
+                        help="the image to write (written atomically)")
+    parser.add_argument("--field", metavar="NAME",
+                        help="variable to draw (default: streamfunction, velocity_potential, "
+                        "vorticity or divergence, else the first mappable one); for "
+                        "trajectories, a sampled variable to colour the tracks by")
+    parser.add_argument("--level", type=float, metavar="L",
+                        help="vertical level, in the file's units (default: the first)")
+    parser.add_argument("--time", metavar="T", help="valid time, ISO 8601 (default: the first)")
+    parser.add_argument("--projection", choices=PROJECTIONS, default="auto",
+                        help="map projection (default: chosen from the domain)")
+    parser.add_argument("--size", type=parse_size, default=(1200, 800), metavar="WxH",
+                        help="image size in pixels (default: 1200x800)")
+    return parser
+
+
+def parse_size(text: str) -> tuple[int, int]:
+    """``1200x800`` -> (1200, 800)."""
+    match = re.fullmatch(r"\s*(\d+)\s*[xX]\s*(\d+)\s*", text)
+    if not match or min(int(match[1]), int(match[2])) < 100:
+        raise argparse.ArgumentTypeError(
+            f"{text!r}: give WIDTHxHEIGHT in pixels, each at least 100 (for example 1200x800)")
+    return int(match[1]), int(match[2])
 
 
 def run(args: argparse.Namespace) -> int:
-    raise UsageError("'flowpipe map' is not available in this version yet")
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always", MapWarning)
+        figure = render(args.file, field=args.field, level=args.level, time=args.time,
+                        projection=args.projection, size=args.size)
+        save(figure, args.output, protect=(args.file,))
+    for warning in caught:
+        if issubclass(warning.category, MapWarning):
+            print(f"flowpipe: warning: {warning.message}", file=sys.stderr)
+    return 0

@@ -1,0 +1,581 @@
+"""Maps of flowpipe outputs, and of any CF file with a mappable field.
+
+Two kinds of figure:
+
+* a **field map**: one horizontal slab of a scalar field in filled contours
+  with a colour bar; signed quantities on a diverging colour map centred on
+  zero, magnitudes on a sequential one; the matching wind (rotational with
+  streamfunction and vorticity, divergent with velocity potential and
+  divergence, the full wind with anything else) as thinned arrows with a
+  reference arrow;
+* a **track map** of a CF trajectory file (``featureType = "trajectory"``):
+  each track coloured by its pressure, height or elapsed time (or any sampled
+  variable), start points marked.
+
+The projection follows the domain: the whole globe (Equal Earth), a polar cap
+(polar stereographic) or a limited area (Lambert azimuthal equal-area centred
+on the domain). Coastlines come from GSHHS data already on disk; nothing is
+ever downloaded, and without coastline data the map is drawn without them,
+with a :class:`MapWarning`.
+"""
+
+from __future__ import annotations
+
+import datetime as _dt
+import os
+import re
+import warnings
+from collections.abc import Hashable, Iterable
+from pathlib import Path
+
+import matplotlib
+
+matplotlib.use("Agg")  # no screen: render to files only
+
+import cartopy  # noqa: E402
+import cartopy.crs as ccrs  # noqa: E402
+import cartopy.feature as cfeature  # noqa: E402
+import cf_xarray  # noqa: E402, F401  (registers the .cf accessor)
+import numpy as np  # noqa: E402
+import shapefile  # noqa: E402  (pyshp, cartopy's shapefile reader)
+import xarray as xr  # noqa: E402
+from cartopy.util import add_cyclic_point  # noqa: E402
+from matplotlib import patheffects  # noqa: E402
+from matplotlib.collections import LineCollection  # noqa: E402
+from matplotlib.colors import Normalize  # noqa: E402
+from matplotlib.figure import Figure  # noqa: E402
+from matplotlib.layout_engine import ConstrainedLayoutEngine  # noqa: E402
+from matplotlib.ticker import MaxNLocator  # noqa: E402
+
+from ._version import __version__  # noqa: E402
+from .annotate import CAUTION_SHORT  # noqa: E402
+from .errors import InputError, UsageError  # noqa: E402
+from .store import atomic_path  # noqa: E402
+
+#: Where Debian's python-cartopy-data puts Natural Earth and GSHHS files.
+COASTLINE_DIRS: tuple[str, ...] = ("/usr/share/cartopy/data",)
+#: The coarse GSHHS shoreline file, relative to a cartopy data directory.
+GSHHS_COARSE = Path("shapefiles", "gshhs", "c", "GSHHS_c_L1.shp")
+
+#: Perceptually uniform colour maps shipped with matplotlib: cividis is also
+#: optimised for colour-vision deficiency (Nunez, Anderton & Renslow 2018,
+#: PLoS ONE 13, e0199239); berlin is one of the scientific colour maps of
+#: Crameri, Shephard & Heron (2020, Nature Communications 11, 5444).
+SEQUENTIAL = "cividis"
+DIVERGING = "berlin"
+TRACKS = "viridis"
+
+#: Fields that are signed by nature, whatever the values in one slab.
+SIGNED = ("streamfunction", "velocity_potential", "vorticity", "divergence",
+          "atmosphere_horizontal_streamfunction", "atmosphere_horizontal_velocity_potential",
+          "atmosphere_relative_vorticity", "divergence_of_wind", "eastward_wind",
+          "northward_wind")
+
+#: The wind drawn over each contract field (the part of the wind it describes).
+WIND_FOR = {
+    "streamfunction": ("u_rotational", "v_rotational"),
+    "vorticity": ("u_rotational", "v_rotational"),
+    "velocity_potential": ("u_divergent", "v_divergent"),
+    "divergence": ("u_divergent", "v_divergent"),
+}
+#: Preferred default fields of a decomposition file, in order.
+DEFAULT_FIELDS = ("streamfunction", "velocity_potential", "vorticity", "divergence")
+
+#: Projection names accepted by ``projection=`` and ``--projection``.
+PROJECTIONS = ("auto", "globe", "north-cap", "south-cap", "area", "lat-lon")
+
+#: Longitude span (degrees) from which a domain counts as going round the globe.
+WRAP_SPAN = 330.0
+#: A domain round the globe that stays poleward of this latitude is a polar cap.
+CAP_EDGE = 15.0
+#: Arrows across the map's shorter side.
+ARROWS = 20
+
+
+class MapWarning(UserWarning):
+    """A map was drawn without something it would normally have (coastlines)."""
+
+
+def render(
+    source: str | os.PathLike | xr.Dataset,
+    field: str | None = None,
+    level: float | None = None,
+    time: str | None = None,
+    projection: str | ccrs.Projection | None = None,
+    size: tuple[int, int] = (1200, 800),
+    dpi: int = 100,
+) -> Figure:
+    """Draw a map of a file or Dataset and return the matplotlib figure.
+
+    Parameters
+    ----------
+    source : path or xarray.Dataset
+        A flowpipe output, or any CF file whose field has latitude and
+        longitude coordinates; a CF trajectory file gives a track map.
+    field : str, optional
+        The variable to map (default: streamfunction, velocity potential,
+        vorticity or divergence, whichever comes first, else the first
+        mappable variable). For tracks, a sampled variable to colour them by.
+    level : float, optional
+        Value of the vertical coordinate, in the file's units (default: the first).
+    time : str, optional
+        Valid time, ISO 8601 (default: the first).
+    projection : str or cartopy projection, optional
+        One of :data:`PROJECTIONS` or a cartopy projection (default: from the domain).
+    size : (int, int)
+        Width and height of the image in pixels.
+    dpi : int
+        Pixels per inch (sets the size of text and lines relative to the image).
+
+    Returns
+    -------
+    matplotlib.figure.Figure
+
+    Raises
+    ------
+    flowpipe.errors.InputError
+        Unknown field, level or time (the message lists those available), or
+        no latitude/longitude coordinates to map.
+    flowpipe.errors.UsageError
+        Unknown projection name, or level/time given for a track map.
+    """
+    ds, label = _open(source)
+    width, height = size
+    fig = Figure(figsize=(width / dpi, height / dpi), dpi=dpi)
+    fig.set_layout_engine(ConstrainedLayoutEngine(rect=(0, 0.035, 1, 0.965)))
+    if str(ds.attrs.get("featureType", "")).lower() == "trajectory":
+        if level is not None or time is not None:
+            raise UsageError(f"{label}: level and time do not apply to a trajectory file; "
+                             "leave them out")
+        _track_map(fig, ds, label, field, projection)
+    else:
+        _field_map(fig, ds, label, field, level, time, projection)
+    fig.text(0.005, 0.005, f"{Path(label).name} | flowpipe {__version__} | {CAUTION_SHORT}",
+             fontsize=6, color="0.3", ha="left", va="bottom")
+    return fig
+
+
+def save(fig: Figure, path: str | os.PathLike, protect: Iterable[str | os.PathLike] = ()) -> Path:
+    """Write a figure to a PNG file atomically, at the figure's own size."""
+    with atomic_path(path, protect) as tmp:
+        fig.savefig(tmp, format="png", dpi=fig.dpi)
+    return Path(path)
+
+
+def _open(source: str | os.PathLike | xr.Dataset) -> tuple[xr.Dataset, str]:
+    if isinstance(source, xr.Dataset):
+        name = source.encoding.get("source") or source.attrs.get("title", "dataset")
+        return source, Path(str(name)).name
+    path = Path(source)
+    if not path.is_file():
+        raise InputError(f"{path}: no such file")
+    try:
+        ds = xr.open_dataset(path, decode_times=xr.coders.CFDatetimeCoder(use_cftime=None))
+    except Exception as exc:  # netCDF4/HDF5 raise many types for unreadable files
+        raise InputError(f"{path}: cannot be read as NetCDF ({exc})") from exc
+    return ds, str(path)
+
+
+# ---------------------------------------------------------------- coordinates
+
+def _coordinate(ds: xr.Dataset, da: xr.DataArray, key: str, axis: str) -> Hashable | None:
+    """The coordinate of ``da`` that cf-xarray identifies as ``key`` (or by axis)."""
+    for candidates in (ds.cf.coordinates.get(key, []), ds.cf.axes.get(axis, [])):
+        for name in candidates:
+            if name in da.coords or name in da.dims:
+                return name
+    return None
+
+
+def _horizontal(ds: xr.Dataset, da: xr.DataArray) -> tuple[Hashable, Hashable] | None:
+    lat = _coordinate(ds, da, "latitude", "Y")
+    lon = _coordinate(ds, da, "longitude", "X")
+    if lat is None or lon is None:
+        guessed = ds.cf.guess_coord_axis()
+        lat = lat or _coordinate(guessed, da, "latitude", "Y")
+        lon = lon or _coordinate(guessed, da, "longitude", "X")
+    if lat is None or lon is None or ds[lat].ndim != 1 or ds[lon].ndim != 1:
+        return None
+    return lat, lon
+
+
+def _mappable(ds: xr.Dataset) -> list[str]:
+    return [str(n) for n in ds.data_vars if _horizontal(ds, ds[n]) is not None]
+
+
+def _time_text(value: object) -> str:
+    """ISO 8601 text of a numpy or cftime time, to the minute, UTC."""
+    if isinstance(value, np.datetime64):
+        return f"{np.datetime_as_string(value, unit='m')}Z"
+    return f"{value.isoformat(timespec='minutes')}Z" if hasattr(value, "isoformat") else str(value)
+
+
+def _parse_time(text: str, label: str) -> str:
+    try:
+        parsed = _dt.datetime.fromisoformat(text.replace("Z", "+00:00"))
+    except ValueError as exc:
+        raise InputError(f"{label}: time {text!r} is not ISO 8601 (for example "
+                         "2026-01-12T06:00)") from exc
+    if parsed.tzinfo is not None:
+        parsed = parsed.astimezone(_dt.UTC).replace(tzinfo=None)
+    return f"{parsed.isoformat(timespec='minutes')}Z"
+
+
+def _select(ds: xr.Dataset, da: xr.DataArray, label: str, level: float | None,
+            time: str | None) -> tuple[dict, list[str]]:
+    """Indexers of one horizontal slab, and words for the title."""
+    indexers: dict = {}
+    words: list[str] = []
+    vertical = _coordinate(ds, da, "vertical", "Z")
+    if vertical is not None and vertical in da.dims:
+        values = ds[vertical].values
+        units = ds[vertical].attrs.get("units", "")
+        if level is None:
+            index = 0
+        else:
+            hits = np.flatnonzero(np.isclose(values, level, rtol=1e-6, atol=1e-9))
+            if not hits.size:
+                available = ", ".join(f"{x:g}" for x in values)
+                raise InputError(f"{label}: level {level:g} is not in {da.name}; available "
+                                 f"levels ({units}): {available}")
+            index = int(hits[0])
+        indexers[vertical] = index
+        words.append(f"{values[index]:g} {units}".strip())
+    elif level is not None:
+        raise InputError(f"{label}: {da.name} has no vertical coordinate; leave out the level")
+    tname = _coordinate(ds, da, "time", "T")
+    if tname is not None and tname in da.dims:
+        texts = [_time_text(t) for t in ds[tname].values]
+        index = 0 if time is None else (texts.index(_parse_time(time, label))
+                                        if _parse_time(time, label) in texts else -1)
+        if index < 0:
+            raise InputError(f"{label}: time {time} is not in {da.name}; available times: "
+                             f"{', '.join(texts)}")
+        indexers[tname] = index
+        words.append(f"valid {texts[index]}")
+    elif tname is not None and ds[tname].size == 1:
+        words.append(f"valid {_time_text(ds[tname].values.ravel()[0])}")
+    elif time is not None:
+        raise InputError(f"{label}: {da.name} has no time coordinate; leave out the time")
+    return indexers, words
+
+
+# ---------------------------------------------------------------- projection
+
+def _lon_span(lon: np.ndarray) -> tuple[float, float]:
+    """Centre and span (degrees) of longitudes, across the date line if need be."""
+    wrapped = np.sort(np.mod(lon[np.isfinite(lon)], 360.0))
+    gaps = np.diff(np.append(wrapped, wrapped[0] + 360.0))
+    widest = int(np.argmax(gaps))
+    start = wrapped[(widest + 1) % wrapped.size]
+    span = 360.0 - gaps[widest]
+    return float(np.mod(start + span / 2 + 180.0, 360.0) - 180.0), float(span)
+
+
+def _domain_projection(lat: np.ndarray, lon: np.ndarray, name: str | ccrs.Projection | None,
+                       step: float = 0.0) -> tuple[ccrs.Projection, list[float] | None]:
+    """The projection for points spread over ``lat``/``lon``, and the extent to show.
+
+    ``step`` is the grid spacing, so that a grid with one column short of 360
+    degrees still counts as going round the globe.
+    """
+    if isinstance(name, ccrs.Projection):
+        return name, None
+    name = name or "auto"
+    if name not in PROJECTIONS:
+        raise UsageError(f"projection {name!r} is unknown; choose one of {', '.join(PROJECTIONS)}")
+    lat = lat[np.isfinite(lat)]
+    centre_lon, span = _lon_span(lon)
+    south, north = float(lat.min()), float(lat.max())
+    if name == "auto":
+        if span + step < WRAP_SPAN:
+            name = "area"
+        elif south >= CAP_EDGE:
+            name = "north-cap"
+        elif north <= -CAP_EDGE:
+            name = "south-cap"
+        else:
+            name = "globe"
+    if name == "globe":
+        return ccrs.EqualEarth(central_longitude=centre_lon if span < WRAP_SPAN else 0.0), None
+    if name in ("north-cap", "south-cap"):
+        north_cap = name == "north-cap"
+        edge = (min(max(south, CAP_EDGE), 80.0) if north_cap
+                else max(min(north, -CAP_EDGE), -80.0))
+        proj = ccrs.NorthPolarStereo() if north_cap else ccrs.SouthPolarStereo()
+        return proj, [-180.0, 180.0, edge, 90.0] if north_cap else [-180.0, 180.0, -90.0, edge]
+    pad_lon, pad_lat = max(0.05 * span, 0.5), max(0.05 * (north - south), 0.5)
+    extent = [centre_lon - span / 2 - pad_lon, centre_lon + span / 2 + pad_lon,
+              max(south - pad_lat, -90.0), min(north + pad_lat, 90.0)]
+    if name == "lat-lon":
+        return ccrs.PlateCarree(central_longitude=centre_lon), extent
+    centre_lat = (south + north) / 2
+    return ccrs.LambertAzimuthalEqualArea(central_longitude=centre_lon,
+                                          central_latitude=centre_lat), extent
+
+
+def _map_axes(fig: Figure, proj: ccrs.Projection, extent: list[float] | None):
+    ax = fig.add_subplot(projection=proj)
+    if extent is None:
+        ax.set_global()
+    elif isinstance(proj, ccrs.Stereographic):
+        ax.set_extent(extent, crs=ccrs.PlateCarree())
+        theta = np.linspace(0, 2 * np.pi, 200)  # a round cap, not a square
+        circle = matplotlib.path.Path(np.column_stack([np.cos(theta), np.sin(theta)]) * 0.5 + 0.5)
+        ax.set_boundary(circle, transform=ax.transAxes)
+    else:
+        centre = (extent[0] + extent[1]) / 2
+        ax.set_extent([extent[0] - centre, extent[1] - centre, extent[2], extent[3]],
+                      crs=ccrs.PlateCarree(central_longitude=centre))
+    _coastlines(ax)
+    grid = ax.gridlines(draw_labels=True, linewidth=0.4, color="0.5", alpha=0.7, linestyle=":")
+    grid.top_labels = grid.right_labels = False
+    grid.xlabel_style = grid.ylabel_style = {"size": 7}
+    return ax
+
+
+def _coastlines(ax) -> bool:
+    """Draw GSHHS coarse shorelines found on disk; warn (and draw none) without them."""
+    configured = cartopy.config.get("pre_existing_data_dir") or ""
+    for directory in (configured, *COASTLINE_DIRS):
+        if directory and (Path(directory) / GSHHS_COARSE).is_file():
+            cartopy.config["pre_existing_data_dir"] = directory
+            shapefile.VERBOSE = False  # GSHHS polygons are fine; pyshp's notes are noise
+            ax.add_feature(
+                cfeature.GSHHSFeature(scale="coarse", levels=[1]), facecolor="none",
+                edgecolor="black", linewidth=0.6, zorder=3,
+                path_effects=[patheffects.withStroke(linewidth=1.8, foreground="white")])
+            return True
+    searched = ", ".join(d for d in (configured, *COASTLINE_DIRS) if d)
+    warnings.warn(f"no coastline data found (looked for {GSHHS_COARSE} in {searched}); the map "
+                  "has no coastlines: install the python-cartopy-data package", MapWarning,
+                  stacklevel=3)
+    return False
+
+
+# ---------------------------------------------------------------- field maps
+
+def _units_text(units: str) -> str:
+    """UDUNITS text with exponents raised: ``m2 s-1`` -> m² s⁻¹ (mathtext)."""
+    return re.sub(r"\b([A-Za-z]+)(-?\d+)\b", r"\1$^{\2}$", units)
+
+
+def _contour_levels(low: float, high: float, signed: bool) -> np.ndarray:
+    """Round contour levels just covering [low, high]; symmetric about 0 when signed."""
+    if signed:
+        top = max(abs(low), abs(high)) or 1.0
+        positive = MaxNLocator(nbins=7).tick_values(0.0, top)
+        positive = positive[: int(np.searchsorted(positive, top * (1 - 1e-12))) + 1]
+        return np.concatenate([-positive[:0:-1], positive])
+    if high <= low:
+        low, high = low - 0.5 * (abs(low) or 1.0), high + 0.5 * (abs(high) or 1.0)
+    ticks = MaxNLocator(nbins=14).tick_values(low, high)
+    first = int(np.searchsorted(ticks, low * (1 + 1e-12) if low < 0 else low * (1 - 1e-12),
+                                side="right")) - 1
+    last = int(np.searchsorted(ticks, high * (1 - 1e-12) if high > 0 else high * (1 + 1e-12)))
+    return ticks[max(first, 0): last + 1]
+
+
+def _nice(value: float) -> float:
+    """1, 2 or 5 times a power of ten, close to ``value`` (for the reference arrow)."""
+    exponent = np.floor(np.log10(value))
+    mantissa = value / 10.0**exponent
+    return float(min((1.0, 2.0, 5.0, 10.0), key=lambda m: abs(m - mantissa)) * 10.0**exponent)
+
+
+def _wind_names(ds: xr.Dataset, field: str) -> tuple[str, str] | None:
+    pair = WIND_FOR.get(field)
+    if pair is None and field[:2] in ("u_", "v_"):
+        pair = (f"u_{field[2:]}", f"v_{field[2:]}")
+    if pair is None:
+        east = ds.cf.standard_names.get("eastward_wind", [])
+        north = ds.cf.standard_names.get("northward_wind", [])
+        pair = (east[0], north[0]) if east and north else None
+    if pair is None or not all(n in ds.data_vars for n in pair):
+        return None
+    return pair
+
+
+def _field_map(fig: Figure, ds: xr.Dataset, label: str, field: str | None, level: float | None,
+               time: str | None, projection: str | ccrs.Projection | None) -> None:
+    mappable = _mappable(ds)
+    if not mappable:
+        raise InputError(f"{label}: no variable has latitude/longitude coordinates to map "
+                         "(units degrees_north / degrees_east or standard_name latitude / "
+                         "longitude); variables present: "
+                         f"{', '.join(map(str, ds.data_vars)) or 'none'}")
+    if field is None:
+        field = next((f for f in DEFAULT_FIELDS if f in mappable), mappable[0])
+    if field not in mappable:
+        raise InputError(f"{label}: no mappable field {field!r}; fields in the file: "
+                         f"{', '.join(mappable)}")
+    da = ds[field]
+    lat_name, lon_name = _horizontal(ds, da)
+    indexers, words = _select(ds, da, label, level, time)
+    others = {d: 0 for d in da.dims if d not in (lat_name, lon_name, *indexers)}
+    words += [f"{d} {ds[d].values[0] if d in ds.coords else 0}" for d in others]
+    indexers.update(others)
+
+    def slab(name: str) -> xr.DataArray:
+        return ds[name].isel(indexers).transpose(lat_name, lon_name).sortby([lat_name, lon_name])
+
+    data = slab(field)
+    values = np.asarray(data.values, dtype=np.float64)
+    lat = data[lat_name].values.astype(np.float64)
+    lon = data[lon_name].values.astype(np.float64)
+    if not np.isfinite(values).any():
+        raise InputError(f"{label}: {field} has no valid value in this slab ({', '.join(words)})")
+    step = float(np.median(np.diff(lon))) if lon.size > 1 else 0.0
+    proj, extent = _domain_projection(lat, lon, projection, step)
+    ax = _map_axes(fig, proj, extent)
+
+    low, high = float(np.nanmin(values)), float(np.nanmax(values))
+    names = (field, str(da.attrs.get("standard_name", "")))
+    signed = any(n in SIGNED for n in names) or low < 0 < high
+    levels = _contour_levels(low, high, signed)
+    filled, lon_c = values, lon
+    if _lon_span(lon)[1] + step >= WRAP_SPAN:
+        # start the columns at the map's own edge and close the circle there, so
+        # that no filled contour has to cross the edge (which cartopy misdraws)
+        edge = float(getattr(proj, "proj4_params", {}).get("lon_0", 0.0)) - 180.0
+        order = np.argsort(np.mod(lon - edge, 360.0))
+        filled, lon_c = add_cyclic_point(values[:, order],
+                                         coord=np.mod(lon[order] - edge, 360.0) + edge)
+    contours = ax.contourf(lon_c, lat, filled, levels=levels, cmap=DIVERGING if signed else
+                           SEQUENTIAL, norm=Normalize(levels[0], levels[-1]),
+                           transform=ccrs.PlateCarree(), zorder=1)
+    units = str(da.attrs.get("units", ""))
+    bar = fig.colorbar(contours, ax=ax, shrink=0.85, pad=0.02)
+    long_name = str(da.attrs.get("long_name", field))
+    bar.set_label(long_name + (f" ({_units_text(units)})" if units else ""))
+    bar.formatter.set_powerlimits((-3, 4))
+    bar.update_ticks()
+
+    title = long_name[:1].upper() + long_name[1:]
+    wind = _wind_names(ds, field)
+    if wind is not None:
+        kind = wind[0][2:] if wind[0].startswith("u_") else ""
+        title += f", with the {kind} wind".replace("  ", " ")
+        _arrows(ax, slab(wind[0]), slab(wind[1]), lat, lon)
+    ax.set_title(f"{title}\n{' | '.join(words)}", loc="left", fontsize=10)
+
+
+def _arrows(ax, u: xr.DataArray, v: xr.DataArray, lat: np.ndarray, lon: np.ndarray) -> None:
+    """Thinned wind arrows (regridded in map space) with a labelled reference arrow."""
+    uu = np.asarray(u.values, dtype=np.float64)
+    vv = np.asarray(v.values, dtype=np.float64)
+    speed = np.hypot(uu, vv)
+    if not np.isfinite(speed).any() or np.nanmax(speed) == 0:
+        return
+    reference = _nice(float(np.nanpercentile(speed, 90)))
+    arrows = ax.quiver(lon, lat, uu, vv, transform=ccrs.PlateCarree(), regrid_shape=ARROWS,
+                       color="white", edgecolor="black", linewidth=0.5, zorder=4,
+                       scale=reference * ARROWS * 1.5, scale_units="width", width=0.0022)
+    ax.quiverkey(arrows, X=0.9, Y=1.03, U=reference, label=f"{reference:g} m s$^{{-1}}$",
+                 labelpos="E", coordinates="axes", fontproperties={"size": 8},
+                 color="black")
+
+
+# ---------------------------------------------------------------- track maps
+
+def _track_variables(ds: xr.Dataset, label: str) -> dict[str, xr.DataArray]:
+    found: dict[str, xr.DataArray] = {}
+    for key, standard_name, units in (("latitude", "latitude", "degrees_north"),
+                                      ("longitude", "longitude", "degrees_east")):
+        names = [n for n in ds.variables if ds[n].attrs.get("standard_name") == standard_name
+                 or (ds[n].attrs.get("units") == units and ds[n].ndim == 2)]
+        if not names:
+            raise InputError(f"{label}: a trajectory file without {key} (standard_name "
+                             f"{standard_name}); it cannot be mapped")
+        found[key] = ds[names[0]]
+    times = [n for n in ds.variables if ds[n].attrs.get("standard_name") == "time"
+             or (n == "time" and ds[n].ndim == 2)]
+    if times:
+        found["time"] = ds[times[0]]
+    for n in ds.variables:
+        if found["latitude"].dims != ds[n].dims:
+            continue
+        standard_name = ds[n].attrs.get("standard_name", "")
+        if standard_name in ("air_pressure", "height", "altitude") or (
+                n in ("pressure", "level", "height") and "units" in ds[n].attrs):
+            found["vertical"] = ds[n]
+            break
+    return found
+
+
+def _track_map(fig: Figure, ds: xr.Dataset, label: str, field: str | None,
+               projection: str | ccrs.Projection | None) -> None:
+    found = _track_variables(ds, label)
+    lat = np.asarray(found["latitude"].values, dtype=np.float64)
+    lon = np.asarray(found["longitude"].values, dtype=np.float64)
+    if lat.ndim == 1:
+        lat, lon = lat[None, :], lon[None, :]
+    if not np.isfinite(lat).any():
+        raise InputError(f"{label}: the trajectories have no valid position")
+    if field is not None:
+        candidates = [str(n) for n in ds.data_vars if ds[n].dims == found["latitude"].dims]
+        if field not in candidates:
+            raise InputError(f"{label}: no variable {field!r} along the trajectories; "
+                             f"variables along them: {', '.join(candidates) or 'none'}")
+        colour, colour_label = ds[field], field
+    elif "vertical" in found:
+        colour, colour_label = found["vertical"], str(found["vertical"].attrs.get(
+            "standard_name", found["vertical"].name)).replace("_", " ")
+    else:
+        colour, colour_label = None, "time since start (hours)"
+    times = found.get("time")
+    elapsed = None
+    if times is not None and np.issubdtype(times.dtype, np.datetime64):
+        t = times.values.reshape(lat.shape)
+        elapsed = (t - t[:, :1]) / np.timedelta64(1, "h")
+    if colour is None:
+        if elapsed is None:
+            raise InputError(f"{label}: no pressure, height or numpy-decodable time to colour "
+                             "the tracks by; name a variable along them")
+        values = elapsed
+    else:
+        values = np.asarray(colour.values, dtype=np.float64).reshape(lat.shape)
+        units = str(colour.attrs.get("units", ""))
+        colour_label += f" ({_units_text(units)})" if units else ""
+
+    proj, extent = _domain_projection(lat.ravel(), lon.ravel(), projection)
+    ax = _map_axes(fig, proj, extent)
+    xyz = proj.transform_points(ccrs.Geodetic(), lon.ravel(), lat.ravel())
+    x, y = xyz[:, 0].reshape(lat.shape), xyz[:, 1].reshape(lat.shape)
+    segments = np.stack([np.stack([x[:, :-1], y[:, :-1]], -1),
+                         np.stack([x[:, 1:], y[:, 1:]], -1)], axis=2).reshape(-1, 2, 2)
+    middle = 0.5 * (values[:, :-1] + values[:, 1:]).ravel()
+    width = abs(proj.x_limits[1] - proj.x_limits[0])
+    keep = (np.isfinite(segments).all(axis=(1, 2)) & np.isfinite(middle)
+            & (np.abs(segments[:, 1, 0] - segments[:, 0, 0]) < 0.5 * width))
+    norm = Normalize(float(np.nanmin(values)), float(np.nanmax(values)))
+    lines = LineCollection(segments[keep], array=middle[keep], cmap=TRACKS, norm=norm,
+                           linewidths=1.8, zorder=4, transform=proj)
+    ax.add_collection(lines)
+    first = np.argmax(np.isfinite(lat) & np.isfinite(lon), axis=1)
+    rows = np.arange(lat.shape[0])
+    ax.scatter(lon[rows, first], lat[rows, first], transform=ccrs.PlateCarree(), marker="o",
+               s=28, facecolor="white", edgecolor="black", linewidth=1.0, zorder=5, label="start")
+    ax.legend(loc="lower left", fontsize=7, framealpha=0.8)
+    bar = fig.colorbar(lines, ax=ax, shrink=0.85, pad=0.02)
+    bar.set_label(colour_label)
+    if colour is not None and colour.attrs.get("positive") == "down":
+        bar.ax.invert_yaxis()  # pressure: higher in the atmosphere at the top
+    ax.set_title(_track_title(lat.shape[0], times, elapsed, colour_label), loc="left", fontsize=10)
+
+
+def _track_title(count: int, times: xr.DataArray | None, elapsed: np.ndarray | None,
+                 colour_label: str) -> str:
+    head = f"{count} trajector{'y' if count == 1 else 'ies'}, coloured by {colour_label}"
+    if times is None:
+        return head
+    start = _time_text(times.values.reshape(elapsed.shape if elapsed is not None else (-1,))
+                       .ravel()[0])
+    if elapsed is None or not np.isfinite(elapsed).any():
+        return f"{head}\nfrom {start}"
+    reach = float(np.nanmax(elapsed)) if np.nanmax(elapsed) > 0 else float(np.nanmin(elapsed))
+    direction = "forward" if reach >= 0 else "backward"
+    return f"{head}\n{direction} {abs(reach):g} h from {start}"
+
+
+__all__ = ["MapWarning", "PROJECTIONS", "render", "save"]
