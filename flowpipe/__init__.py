@@ -8,6 +8,7 @@ Public API (re-exports only)::
     parts = fp.decompose(wind)      # Helmholtz decomposition (contract variables)
     kin = fp.kinematics(wind)       # absolute vorticity, deformation, energy spectra
     fp.write(dataset, "out.nc")     # CF-annotated, atomic
+    fig = fp.render("out.nc")       # matplotlib figure of a field or of trajectories
 """
 
 from ._version import __version__
@@ -30,5 +31,15 @@ __all__ = [
     "describe_wind",
     "kinematics",
     "open_wind",
+    "render",
     "write",
 ]
+
+
+def __getattr__(name: str):
+    # maps pull in matplotlib and cartopy: import them only when a map is wanted
+    if name == "render":
+        from .maps import render
+
+        return render
+    raise AttributeError(f"module 'flowpipe' has no attribute {name!r}")
