@@ -68,6 +68,21 @@ def write_json(path: Path, data: dict[str, Any]) -> None:
         tmp.write_text(json.dumps(data, indent=2, sort_keys=True, default=str) + "\n")
 
 
+def sweep_temporaries(directory: Path) -> list[Path]:
+    """Remove the temporary files an interrupted run left in ``directory``.
+
+    Call it only while holding the :class:`RunLock`: then no other run is
+    writing there, and every hidden ``.NAME.tmp-*`` file is a leftover.
+    """
+    removed = []
+    for path in directory.rglob(".*.tmp-*"):
+        with contextlib.suppress(FileNotFoundError):
+            path.unlink()
+            removed.append(path)
+            log.warning("removed %s, left by an interrupted run", path.name)
+    return removed
+
+
 def _alive(pid: int) -> bool:
     try:
         os.kill(pid, 0)

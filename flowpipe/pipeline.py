@@ -192,7 +192,7 @@ class Runner:
         return out
 
     def advect(self, unit: Unit) -> Path:
-        from .parcels import advect, read_starts
+        from .parcels import advect
         from .store import write
 
         cfg = self.config.section("advect")
@@ -205,7 +205,7 @@ class Runner:
         digest = bookkeeping.section_hash(self.config.section("input"), cfg)
 
         def make(path: Path) -> None:
-            starts = read_starts(starts_file) if starts_file else [tuple(s) for s in cfg["starts"]]
+            starts = starts_file or [tuple(s) for s in cfg["starts"]]
             tracks = advect(self._wind(unit), starts, hours=cfg["hours"], backward=cfg["backward"],
                             step_minutes=cfg["step_minutes"], vertical=cfg["vertical"],
                             sample=tuple(cfg["sample"]))
@@ -217,7 +217,7 @@ class Runner:
     def maps(self, unit: Unit, sources: dict[str, Path]) -> None:
         import xarray as xr
 
-        from .maps import render_to_file
+        from .maps import render, save
 
         cfg = self.config.section("maps")
         digest = bookkeeping.section_hash(cfg)
@@ -233,14 +233,13 @@ class Runner:
                     out = render_template(cfg["output"], self.out, stem=unit.stem, field=name,
                                           level=_level_text(level), time=_time_text(first_time))
                     self._produce("maps", unit, out, depends, digest,
-                                  lambda p, n=name, lv=level: render_to_file(
-                                      parts, p, field=n, level=lv, time=first_time))
+                                  lambda p, n=name, lv=level: save(render(parts, field=n, level=lv), p))
         tracks = sources.get("advect")
         if cfg["trajectories"] and tracks is not None and tracks.exists():
             out = render_template(cfg["output"], self.out, stem=unit.stem, field="trajectories",
                                   level="all", time="all")
             self._produce("maps", unit, out, [bookkeeping.fingerprint(tracks)], digest,
-                          lambda p: render_to_file(tracks, p))
+                          lambda p: save(render(tracks), p))
 
     # -- the run -------------------------------------------------------------
     def run(self, units: list[Unit]) -> RunSummary:
@@ -377,7 +376,8 @@ def run(config_path: str | os.PathLike, *, force: bool = False, workers: int | N
     scheduler = scheduler or settings.get("scheduler")
     units = units_of(config)
     n_steps = len(units) * sum(config.has(s) for s in ("decompose", "advect", "maps"))
-    with bookkeeping.RunLock(config.output_dir), _logging(config.output_dir, quiet):
+    with _logging(config.output_dir, quiet), bookkeeping.RunLock(config.output_dir):
+        bookkeeping.sweep_temporaries(config.output_dir)
         progress = Progress(n_steps, quiet)
         log.info("run of %s: %d unit(s), flowpipe %s", config.path, len(units), __version__)
         try:

@@ -1,0 +1,250 @@
+"""The nightly job: idempotent, crash-safe, fault-tolerant, locked, observable.
+
+What "complete" means for a file is checked with general-purpose readers:
+NetCDF with the netCDF-C library (through xarray), PNG with matplotlib's
+reader, JSON with :mod:`json`, HTML with :mod:`html.parser` (the HTML Living
+Standard's tree of elements, read leniently).
+"""
+
+from __future__ import annotations
+
+import html.parser
+import json
+import os
+import shutil
+import signal
+import subprocess
+import sys
+import time
+from pathlib import Path
+
+import matplotlib.image
+import numpy as np
+import pytest
+import xarray as xr
+from windfiles import Encoding, encode, reference_field
+
+from flowpipe.bookkeeping import LOCK_NAME
+from flowpipe.cli import main
+from flowpipe.pipeline import run
+
+ROOT = Path(__file__).resolve().parents[1]
+LAT, LON, LEVELS = np.linspace(-90, 90, 37), np.arange(0.0, 360.0, 5.0), np.array([850.0, 500.0])
+
+
+def _inputs(directory: Path, n: int) -> list[Path]:
+    paths = []
+    for k in range(n):
+        sub = directory / f"in{k}"
+        sub.mkdir(parents=True)
+        ref = reference_field(LAT, LON, LEVELS, 3)
+        ref = {name: values * (1.0 + 0.1 * k) for name, values in ref.items()}
+        (path,) = encode(ref, LAT, LON, LEVELS, Encoding(), sub)
+        paths.append(path.rename(directory / f"model_{k}.nc"))
+        sub.rmdir()
+    return paths
+
+
+def _config(directory: Path, inputs: list[Path], maps: bool = True, advect: bool = True,
+            prefix: str = "") -> Path:
+    body = f"[input]\npaths = {json.dumps([prefix + p.name for p in inputs])}\n\n[decompose]\n\n"
+    if advect:
+        body += "[advect]\nstarts = [[50.0, 10.0, 850.0], [-20.0, 200.0, 500.0]]\nhours = 6\n\n"
+    if maps:
+        body += "[maps]\nfields = [\"streamfunction\"]\nlevels = [500.0]\n\n"
+    body += "[output]\ndirectory = \"out\"\n"
+    path = directory / "night.toml"
+    path.write_text(body)
+    return path
+
+
+def _final_files(out: Path) -> list[Path]:
+    return sorted(p for p in out.iterdir() if p.is_file() and not p.name.startswith("."))
+
+
+def _mtimes(out: Path) -> dict[str, int]:
+    return {p.name: p.stat().st_mtime_ns for p in _final_files(out) if p.suffix in (".nc", ".png")}
+
+
+class _Links(html.parser.HTMLParser):
+    def __init__(self) -> None:
+        super().__init__()
+        self.links: set[str] = set()
+        self.images: set[str] = set()
+        self.external: list[str] = []
+
+    def handle_starttag(self, tag, attrs):
+        attrs = dict(attrs)
+        for key in ("href", "src"):
+            value = attrs.get(key)
+            if value:
+                (self.links if key == "href" else self.images).add(value)
+                if "://" in value or value.startswith("//"):
+                    self.external.append(value)
+
+
+def _check_complete(path: Path) -> None:
+    if path.suffix == ".nc":
+        with xr.open_dataset(path) as ds:
+            ds.load()
+    elif path.suffix == ".png":
+        assert matplotlib.image.imread(path).size > 0
+    elif path.suffix in (".json",):
+        json.loads(path.read_text())
+
+
+@pytest.fixture(scope="module")
+def first_run(tmp_path_factory):
+    directory = tmp_path_factory.mktemp("night")
+    inputs = _inputs(directory, 2)
+    config = _config(directory, inputs)
+    summary = run(config, quiet=True)
+    return directory, inputs, config, summary
+
+
+def test_run_writes_outputs_manifest_and_report(first_run):
+    directory, inputs, _, summary = first_run
+    out = directory / "out"
+    assert summary.exit_code == 0
+    names = {p.name for p in _final_files(out)}
+    for stem in ("model_0", "model_1"):
+        assert f"{stem}_decomposition.nc" in names
+        assert f"{stem}_trajectories.nc" in names
+        assert f"{stem}_streamfunction_500.png" in names
+    manifest = json.loads((out / "manifest.json").read_text())
+    record = manifest["outputs"]["model_0_decomposition.nc"]
+    (dep,) = record["depends_on"]
+    assert dep["path"] == str(inputs[0].resolve()) and len(dep["sha256"]) == 64
+    assert manifest["units"]["model_0"]["status"] == "ok"
+    assert "decompose" in manifest["timings"]
+    parser = _Links()
+    parser.feed((out / "report.html").read_text())
+    for path in _final_files(out):
+        if path.suffix in (".nc", ".png"):
+            assert path.name in parser.links
+        if path.suffix == ".png":
+            assert path.name in parser.images
+    assert not parser.external  # a static page with no external resources
+    assert (out / "flowpipe.log").read_text().strip()
+
+
+def test_rerun_writes_nothing_and_touch_redoes_only_that_input(first_run, capsys):
+    directory, inputs, config, _ = first_run
+    out = directory / "out"
+    before = _mtimes(out)
+    assert main(["run", str(config)]) == 0
+    assert "everything is up to date" in capsys.readouterr().out
+    assert _mtimes(out) == before
+    time.sleep(0.01)
+    os.utime(inputs[1])  # touch one input
+    summary = run(config, quiet=True)
+    after = _mtimes(out)
+    changed = {name for name in after if after[name] != before[name]}
+    assert changed == {"model_1_decomposition.nc", "model_1_trajectories.nc",
+                       "model_1_streamfunction_500.png", "model_1_trajectories_all.png"}
+    assert len(summary.written) == len(changed)
+
+
+def test_changed_config_section_redoes_what_depends_on_it(first_run):
+    directory, _, config, _ = first_run
+    out = directory / "out"
+    before = _mtimes(out)
+    text = config.read_text()
+    config.write_text(text.replace("hours = 6", "hours = 3"))
+    try:
+        run(config, quiet=True)
+    finally:
+        config.write_text(text)
+    after = _mtimes(out)
+    changed = {name for name in after if after[name] != before[name]}
+    assert changed == {"model_0_trajectories.nc", "model_1_trajectories.nc",
+                       "model_0_trajectories_all.png", "model_1_trajectories_all.png"}
+    run(config, quiet=True, force=True)
+    assert all(_mtimes(out)[n] != after[n] for n in after)  # --force redoes all
+
+
+def test_one_truncated_input_among_four(tmp_path):
+    inputs = _inputs(tmp_path, 4)
+    data = inputs[2].read_bytes()
+    inputs[2].write_bytes(data[: len(data) // 2])
+    config = _config(tmp_path, inputs, maps=False, advect=False)
+    assert main(["run", "--quiet", str(config)]) == 1
+    manifest = json.loads((tmp_path / "out" / "manifest.json").read_text())
+    assert manifest["units"]["model_2"]["status"] == "failed"
+    assert "cannot be read as NetCDF" in manifest["units"]["model_2"]["error"]
+    for k in (0, 1, 3):
+        assert manifest["units"][f"model_{k}"]["status"] == "ok"
+        assert (tmp_path / "out" / f"model_{k}_decomposition.nc").exists()
+    assert manifest["status"] == "failed"
+
+
+def test_lock_refuses_a_second_run_and_takes_over_a_stale_one(tmp_path, capsys):
+    inputs = _inputs(tmp_path, 1)
+    config = _config(tmp_path, inputs, maps=False, advect=False)
+    out = tmp_path / "out"
+    out.mkdir()
+    holder = subprocess.Popen([sys.executable, "-c", "import time; time.sleep(60)"])
+    try:
+        (out / LOCK_NAME).write_text(json.dumps({"pid": holder.pid, "host": os.uname().nodename}))
+        assert main(["run", str(config)]) == 2
+        err = capsys.readouterr().err
+        assert f"process {holder.pid}" in err and "holds the lock" in err
+    finally:
+        holder.kill()
+        holder.wait()
+    # The holder is dead now: its lock is stale and is taken over, with a log line.
+    assert main(["run", "--quiet", str(config)]) == 0
+    assert "taking over a stale lock" in (out / "flowpipe.log").read_text()
+    assert not (out / LOCK_NAME).exists()
+
+
+def test_kill_at_any_moment_leaves_only_complete_files(tmp_path):
+    inputs = _inputs(tmp_path, 3)
+    config = _config(tmp_path, inputs, maps=False)
+    reference_dir = tmp_path / "reference"
+    reference_dir.mkdir()
+    ref_config = _config(reference_dir, inputs, maps=False, prefix="../")
+    ref_command = [sys.executable, "-m", "flowpipe", "run", "--quiet", str(ref_config)]
+    started = time.perf_counter()
+    assert subprocess.run(ref_command, check=False).returncode == 0
+    duration = time.perf_counter() - started  # of an uninterrupted run, start-up included
+    out = tmp_path / "out"
+    command = [sys.executable, "-m", "flowpipe", "run", "--quiet", str(config)]
+    for fraction in (0.15, 0.35, 0.55, 0.75, 0.9):
+        if out.exists():
+            shutil.rmtree(out)
+        proc = subprocess.Popen(command, stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
+        time.sleep(fraction * duration)
+        proc.send_signal(signal.SIGKILL)
+        proc.wait()
+        if out.exists():
+            for path in _final_files(out):
+                _check_complete(path)
+        # The next run finishes the work, and the result is that of an uninterrupted run.
+        assert subprocess.run(command, check=False).returncode == 0
+        for name in ("model_0", "model_1", "model_2"):
+            for kind in ("decomposition", "trajectories"):
+                with xr.open_dataset(out / f"{name}_{kind}.nc") as got, \
+                        xr.open_dataset(reference_dir / "out" / f"{name}_{kind}.nc") as want:
+                    xr.testing.assert_equal(got, want)
+        assert not [p for p in out.iterdir() if ".tmp-" in p.name]
+
+
+def test_distributed_cluster_gives_the_same_outputs(tmp_path):
+    from distributed import LocalCluster
+
+    inputs = _inputs(tmp_path, 1)
+    local_dir, cluster_dir = tmp_path / "local", tmp_path / "cluster"
+    for d in (local_dir, cluster_dir):
+        d.mkdir()
+        _config(d, inputs, maps=False, prefix="../")
+    run(local_dir / "night.toml", quiet=True, workers=1)
+    with LocalCluster(n_workers=2, threads_per_worker=1, processes=True, host="127.0.0.1",
+                      dashboard_address=None) as cluster:
+        summary = run(cluster_dir / "night.toml", quiet=True, scheduler=cluster.scheduler_address)
+    assert summary.exit_code == 0
+    for kind in ("decomposition", "trajectories"):
+        with xr.open_dataset(local_dir / "out" / f"model_0_{kind}.nc") as a, \
+                xr.open_dataset(cluster_dir / "out" / f"model_0_{kind}.nc") as b:
+            for name in a.data_vars:
+                np.testing.assert_allclose(b[name].values, a[name].values, rtol=1e-12, atol=0)
