@@ -192,3 +192,26 @@ def test_cli_bad_options_exit_2_with_one_line(tmp_path, capsys, extra, needle):
     assert err.startswith("flowpipe: error:") and needle in err
     assert "Traceback" not in err and len(err.strip().splitlines()) == 1
     assert not (tmp_path / "x.nc").exists()
+
+
+def test_auto_dispatches_gappy_and_limited_area_grids_to_the_regional_method(monkeypatch):
+    # The contract (shared/DESIGN.md, decomposition): spherical harmonics on complete global
+    # grids, the limited-area solver otherwise; the solver is told whether the grid wraps.
+    import flowpipe.regional
+
+    calls = []
+
+    def recorder(wind, scheme, periodic, **options):
+        calls.append((wind.sizes["longitude"], scheme, periodic, options))
+        return xr.Dataset(attrs={"method": "regional"})
+
+    monkeypatch.setattr(flowpipe.regional, "decompose_regional", recorder)
+    wind, _ = _grid_wind("GL", 32, 64, "case6")
+    gappy = wind.copy(deep=True)
+    gappy["v"][3, 4] = np.nan
+    assert fp.decompose(gappy, scheme="dirichlet").attrs["method"] == "regional"
+    assert fp.decompose(wind.isel(longitude=slice(0, 30)), tolerance=1e-3).attrs["method"] == "regional"
+    assert fp.decompose(wind, method="regional").attrs["method"] == "regional"
+    assert fp.decompose(wind).attrs["method"] == "spectral"
+    assert calls == [(64, "dirichlet", True, {}), (30, "variational", False, {"tolerance": 1e-3}),
+                     (64, "variational", True, {})]
