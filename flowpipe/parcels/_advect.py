@@ -20,7 +20,7 @@ from ..grid import describe_grid
 from . import _kernels as K
 from ._geometry import latitude_longitude, unit_vectors
 from ._window import SliceGrid, SliceWindow, slice_grid
-from .starts import as_start_table
+from .starts import as_start_table, origin
 
 #: Default Courant number: a parcel crosses at most half a grid spacing per step.
 COURANT = 0.5
@@ -158,52 +158,76 @@ def _level_text(wind: xr.Dataset) -> str:
     return f"{', '.join(f'{x:g}' for x in wind['level'].values)} {units}".strip()
 
 
+def _first_bad(bad: np.ndarray) -> int | None:
+    rows = np.flatnonzero(bad)
+    return int(rows[0]) if rows.size else None
+
+
+def _start_seconds(table: pd.DataFrame, clock: _Clock, default: float) -> np.ndarray:
+    """Start time of every row in seconds from the clock's reference (each text parsed once)."""
+    texts = [None if t is None or (isinstance(t, float) and np.isnan(t)) else str(t)
+             for t in table["time"]]
+    seconds = np.full(len(texts), default)
+    first_row: dict[str, int] = {}
+    for row, text in enumerate(texts):
+        if text is not None:
+            first_row.setdefault(text, row)
+    for text, row in first_row.items():
+        value = clock.parse(text, origin(table, row))
+        seconds[[t == text for t in texts]] = value
+    return seconds
+
+
 def _resolve_starts(table: pd.DataFrame, wind: xr.Dataset, clock: _Clock, grid_kind: str,
-                    hours: float, sign: float) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+                    hours: float, sign: float) -> tuple[np.ndarray, ...]:
     """Latitudes, longitudes, levels and start seconds of every row, each checked."""
     lat = table["latitude"].to_numpy(dtype=np.float64)
     lon = table["longitude"].to_numpy(dtype=np.float64)
-    level = table["level"].to_numpy(dtype=np.float64)
-    start = np.empty(lat.size)
+    level = table["level"].to_numpy(dtype=np.float64).copy()
     glat = wind["latitude"].values
     glon = wind["longitude"].values
-    levels = wind["level"].values.astype(np.float64) if "level" in wind.dims else None
+    row = _first_bad(~((np.abs(lat) <= 90.0) & np.isfinite(lon)))
+    if row is not None:
+        raise InputError(f"{origin(table, row)}: ({lat[row]:g}, {lon[row]:g}) is not a position "
+                         "(latitude must lie within -90..90, longitude must be finite)")
+    if grid_kind == "regional":
+        shifted = glon[0] + np.mod(lon - glon[0], 360.0)
+        row = _first_bad((lat < glat[0]) | (lat > glat[-1])
+                         | (shifted > glon[-1] + K.EDGE_TOLERANCE))
+        if row is not None:
+            raise InputError(
+                f"{origin(table, row)}: ({lat[row]:g}, {lon[row]:g}) lies outside the "
+                f"limited-area domain (latitude {glat[0]:g}..{glat[-1]:g}, longitude "
+                f"{glon[0]:g}..{glon[-1]:g})")
+    given = np.isfinite(level)
+    if "level" not in wind.dims:
+        row = _first_bad(given)
+        if row is not None:
+            raise InputError(f"{origin(table, row)}: level {level[row]:g} given but the input "
+                             "has no levels; give LAT,LON only")
+    else:
+        levels = wind["level"].values.astype(np.float64)
+        row = _first_bad(~given)
+        if row is not None and levels.size > 1:
+            raise InputError(f"{origin(table, row)}: no level given; the input has levels "
+                             f"{_level_text(wind)}: give LAT,LON,LEVEL")
+        level[~given] = levels[0]
+        row = _first_bad((level < levels.min() - 1e-9) | (level > levels.max() + 1e-9))
+        if row is not None:
+            raise InputError(f"{origin(table, row)}: level {level[row]:g} is outside the "
+                             f"input's vertical range ({_level_text(wind)})")
     default = clock.seconds[-1] if sign < 0 and not clock.steady else 0.0
-    span = hours * 3600.0
-    for i, origin in enumerate(table["origin"]):
-        if not -90.0 <= lat[i] <= 90.0 or not np.isfinite(lon[i]):
-            raise InputError(f"{origin}: latitude {lat[i]:g} is outside -90..90 degrees")
-        if grid_kind == "regional":
-            shifted = glon[0] + (lon[i] - glon[0]) % 360.0
-            if not (glat[0] <= lat[i] <= glat[-1] and shifted <= glon[-1] + K.EDGE_TOLERANCE):
+    start = _start_seconds(table, clock, default)
+    if not clock.steady:
+        first, last = clock.seconds[0] - TIME_TOLERANCE, clock.seconds[-1] + TIME_TOLERANCE
+        for t, what in ((start, "starts"), (start + sign * hours * 3600.0, "ends")):
+            row = _first_bad((t < first) | (t > last))
+            if row is not None:
                 raise InputError(
-                    f"{origin}: ({lat[i]:g}, {lon[i]:g}) lies outside the limited-area domain "
-                    f"(latitude {glat[0]:g}..{glat[-1]:g}, longitude {glon[0]:g}..{glon[-1]:g})")
-        if levels is None:
-            if np.isfinite(level[i]):
-                raise InputError(f"{origin}: level {level[i]:g} given but the input has no "
-                                 "levels; give LAT,LON only")
-        elif not np.isfinite(level[i]):
-            if levels.size > 1:
-                raise InputError(f"{origin}: no level given; the input has levels "
-                                 f"{_level_text(wind)}: give LAT,LON,LEVEL")
-            level[i] = levels[0]
-        elif not levels.min() - 1e-9 <= level[i] <= levels.max() + 1e-9:
-            raise InputError(f"{origin}: level {level[i]:g} is outside the input's vertical "
-                             f"range ({_level_text(wind)})")
-        when = table["time"].iloc[i]
-        start[i] = default if when is None or (isinstance(when, float) and np.isnan(when)) \
-            else clock.parse(str(when), origin)
-        if clock.steady:
-            continue
-        end = start[i] + sign * span
-        first, last = clock.seconds[0], clock.seconds[-1]
-        for t, what in ((start[i], "starts"), (end, "ends")):
-            if not first - TIME_TOLERANCE <= t <= last + TIME_TOLERANCE:
-                raise InputError(
-                    f"{origin}: the trajectory {what} at {clock.text(t)}, outside the input "
-                    f"times {clock.text(first)} .. {clock.text(last)}; shorten --hours, move "
-                    "the start time or give more input")
+                    f"{origin(table, row)}: the trajectory {what} at {clock.text(t[row])}, "
+                    f"outside the input times {clock.text(clock.seconds[0])} .. "
+                    f"{clock.text(clock.seconds[-1])}; shorten --hours, move the start time or "
+                    "give more input")
     return lat, lon, level, start
 
 

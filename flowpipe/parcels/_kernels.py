@@ -118,16 +118,23 @@ def interpolate(field, s0, s1, wt, px, py, pz, level, lat, lat_uniform, lon, lon
     ncomp = field.shape[4]
     lat_deg = math.degrees(math.asin(min(max(pz, -1.0), 1.0)))
     lon_deg = math.degrees(math.atan2(py, px))
-    j, fy, inside = _locate(lat, lat_uniform, lat_deg)
-    if not inside:
-        return LEFT_DOMAIN
+    if lat_uniform:  # the common case, without the call
+        fy = (lat_deg - lat[0]) / (lat[1] - lat[0])
+        j = min(max(int(math.floor(fy)), 0), lat.shape[0] - 2)
+        fy -= j
+        if fy < -EDGE_TOLERANCE or fy > 1.0 + EDGE_TOLERANCE:
+            return LEFT_DOMAIN
+        fy = min(max(fy, 0.0), 1.0)
+    else:
+        j, fy, inside = _locate(lat, lat_uniform, lat_deg)
+        if not inside:
+            return LEFT_DOMAIN
     nlon = lon.shape[0]
     if periodic:
-        pos = ((lon_deg - lon[0]) % 360.0) / (lon[1] - lon[0])
-        i = int(math.floor(pos))
-        fx = pos - i
-        if i >= nlon:
-            i -= nlon
+        pos = (lon_deg - lon[0]) / (lon[1] - lon[0])
+        cell = math.floor(pos)
+        fx = pos - cell
+        i = int(cell) % nlon
         i1 = i + 1 if i + 1 < nlon else 0
     else:
         shifted = lon[0] + (lon_deg - lon[0]) % 360.0
@@ -144,34 +151,27 @@ def interpolate(field, s0, s1, wt, px, py, pz, level, lat, lat_uniform, lon, lon
         k1 = k + 1
     else:
         k, fz, k1 = 0, 0.0, 0
+    w00, w01 = (1.0 - fy) * (1.0 - fx), (1.0 - fy) * fx
+    w10, w11 = fy * (1.0 - fx), fy * fx
     for c in range(ncomp):
         out[c] = 0.0
-    for ts in range(2):
-        wtime = wt if ts == 1 else 1.0 - wt
-        if wtime == 0.0:
+    # Up to four layers (two times by two levels), each a bilinear sum.
+    for layer in range(4):
+        later, upper = layer // 2, layer % 2
+        weight = (wt if later else 1.0 - wt) * (fz if upper else 1.0 - fz)
+        if weight == 0.0:
             continue
-        slot = s1 if ts == 1 else s0
-        for kz in range(2):
-            wz = fz if kz == 1 else 1.0 - fz
-            if wz == 0.0:
-                continue
-            kk = k1 if kz == 1 else k
-            for jy in range(2):
-                wy = fy if jy == 1 else 1.0 - fy
-                if wy == 0.0:
-                    continue
-                jj = j + jy
-                for ix in range(2):
-                    wx = fx if ix == 1 else 1.0 - fx
-                    if wx == 0.0:
-                        continue
-                    ii = i1 if ix == 1 else i
-                    weight = wtime * wz * wy * wx
-                    for c in range(ncomp):
-                        out[c] += weight * field[slot, kk, jj, ii, c]
+        slot = s1 if later else s0
+        kk = k1 if upper else k
+        for c in range(ncomp):
+            out[c] += weight * (w00 * field[slot, kk, j, i, c] + w01 * field[slot, kk, j, i1, c]
+                                + w10 * field[slot, kk, j + 1, i, c]
+                                + w11 * field[slot, kk, j + 1, i1, c])
+    total = 0.0
     for c in range(ncomp):
-        if math.isnan(out[c]):
-            return MISSING_WIND
+        total += out[c]
+    if total != total:  # NaN: some value needed is missing
+        return MISSING_WIND
     return ACTIVE
 
 

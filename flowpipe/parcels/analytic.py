@@ -137,7 +137,7 @@ def wind_dataset(latitude: np.ndarray, longitude: np.ndarray, seconds: np.ndarra
     shape = (latitude.size, longitude.size)
 
     def block(block_id=None):
-        t = float(seconds[block_id[0]])
+        t = float(seconds[block_id[1]])
         return np.stack(winds(latitude, longitude, t))[:, None]
 
     data = dsa.map_blocks(block, dtype=np.float64,

@@ -4,7 +4,7 @@ A start table is a :class:`pandas.DataFrame` with columns ``latitude`` and
 ``longitude`` (degrees), optionally ``level`` (hPa or m, as the input's
 levels) and ``time`` (ISO 8601 text, or empty for the default: the first
 input time going forward, the last going backward), and ``origin``: where
-each row came from, used in error messages (``starts.csv line 4``).
+each row came from, used in error messages (``starts.csv line 4``; optional).
 
 The generators below build tables for a great-circle line, a regular box
 and a ring at a great-circle radius; give ``times`` to repeat the points at
@@ -15,7 +15,7 @@ from __future__ import annotations
 
 import csv
 import os
-from collections.abc import Iterable, Sequence
+from collections.abc import Iterable, Mapping, Sequence
 from pathlib import Path
 
 import numpy as np
@@ -224,12 +224,14 @@ def read_starts(path: str | os.PathLike) -> pd.DataFrame:
 def as_start_table(starts) -> pd.DataFrame:
     """Any accepted form of starts as a start table.
 
-    Accepts a start table (or any DataFrame with ``latitude``/``longitude``
-    columns), a path to a CSV file, or an iterable of ``(lat, lon)`` /
-    ``(lat, lon, level)`` tuples.
+    Accepts a start table (or any DataFrame or mapping of columns with
+    ``latitude``/``longitude``), a path to a CSV file, or an iterable of
+    ``(lat, lon)`` / ``(lat, lon, level)`` tuples.
     """
     if isinstance(starts, str | os.PathLike):
         return read_starts(starts)
+    if isinstance(starts, Mapping):
+        starts = pd.DataFrame(dict(starts))
     if isinstance(starts, pd.DataFrame):
         missing = [c for c in ("latitude", "longitude") if c not in starts.columns]
         if missing:
@@ -247,11 +249,16 @@ def as_start_table(starts) -> pd.DataFrame:
         table["level"] = np.nan
     if "time" not in table:
         table["time"] = None
-    if "origin" not in table:
-        table["origin"] = [f"starts row {i + 1}" for i in range(len(table))]
     if table.empty:
         raise UsageError("starts: no start points given")
     return table
+
+
+def origin(table: pd.DataFrame, row: int) -> str:
+    """Where row ``row`` of a start table came from, for messages."""
+    if "origin" in table and isinstance(table["origin"].iloc[row], str):
+        return table["origin"].iloc[row]
+    return f"starts row {row + 1}"
 
 
 def _as_iterable(starts) -> Iterable:
