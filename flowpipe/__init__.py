@@ -7,6 +7,7 @@ Public API (re-exports only)::
     grid = fp.describe_grid(wind)   # global/regional, equiangular/Gaussian, weights
     parts = fp.decompose(wind)      # Helmholtz decomposition (contract variables)
     kin = fp.kinematics(wind)       # absolute vorticity, deformation, energy spectra
+    tracks = fp.advect(wind, starts, hours=48, backward=True)  # CF trajectories
     fp.write(dataset, "out.nc")     # CF-annotated, atomic
     fig = fp.render("out.nc")       # matplotlib figure of a field or of trajectories
 """
@@ -18,6 +19,7 @@ from .grid import GridInfo, describe_grid
 from .ingest import open_wind
 from .inspection import describe_wind
 from .kinematics import kinematics
+from .parcels import advect, starts_box, starts_line, starts_ring
 from .store import write
 
 __all__ = [
@@ -26,12 +28,16 @@ __all__ = [
     "InputError",
     "UsageError",
     "__version__",
+    "advect",
     "decompose",
     "describe_grid",
     "describe_wind",
     "kinematics",
     "open_wind",
     "render",
+    "starts_box",
+    "starts_line",
+    "starts_ring",
     "write",
 ]
 
