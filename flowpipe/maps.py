@@ -36,6 +36,7 @@ import cartopy  # noqa: E402
 import cartopy.crs as ccrs  # noqa: E402
 import cartopy.feature as cfeature  # noqa: E402
 import cf_xarray  # noqa: E402, F401  (registers the .cf accessor)
+import matplotlib.axes  # noqa: E402
 import numpy as np  # noqa: E402
 import shapefile  # noqa: E402  (pyshp, cartopy's shapefile reader)
 import xarray as xr  # noqa: E402
@@ -45,6 +46,7 @@ from matplotlib.collections import LineCollection  # noqa: E402
 from matplotlib.colors import Normalize  # noqa: E402
 from matplotlib.figure import Figure  # noqa: E402
 from matplotlib.layout_engine import ConstrainedLayoutEngine  # noqa: E402
+from matplotlib.path import Path as MplPath  # noqa: E402
 from matplotlib.ticker import MaxNLocator  # noqa: E402
 
 from ._version import __version__  # noqa: E402
@@ -321,7 +323,7 @@ def _map_axes(fig: Figure, proj: ccrs.Projection, extent: list[float] | None):
     elif isinstance(proj, ccrs.Stereographic):
         ax.set_extent(extent, crs=ccrs.PlateCarree())
         theta = np.linspace(0, 2 * np.pi, 200)  # a round cap, not a square
-        circle = matplotlib.path.Path(np.column_stack([np.cos(theta), np.sin(theta)]) * 0.5 + 0.5)
+        circle = MplPath(np.column_stack([np.cos(theta), np.sin(theta)]) * 0.5 + 0.5)
         ax.set_boundary(circle, transform=ax.transAxes)
     else:
         centre = (extent[0] + extent[1]) / 2
@@ -377,10 +379,11 @@ def _contour_levels(low: float, high: float, signed: bool) -> np.ndarray:
 
 
 def _nice(value: float) -> float:
-    """1, 2 or 5 times a power of ten, close to ``value`` (for the reference arrow)."""
+    """The largest of 1, 2 or 5 times a power of ten not above ``value`` (reference arrow)."""
     exponent = np.floor(np.log10(value))
     mantissa = value / 10.0**exponent
-    return float(min((1.0, 2.0, 5.0, 10.0), key=lambda m: abs(m - mantissa)) * 10.0**exponent)
+    return float(max(m for m in (1.0, 2.0, 5.0) if m <= mantissa * (1 + 1e-12))
+                 * 10.0**exponent)
 
 
 def _wind_names(ds: xr.Dataset, field: str) -> tuple[str, str] | None:
@@ -441,9 +444,20 @@ def _field_map(fig: Figure, ds: xr.Dataset, label: str, field: str | None, level
         order = np.argsort(np.mod(lon - edge, 360.0))
         filled, lon_c = add_cyclic_point(values[:, order],
                                          coord=np.mod(lon[order] - edge, 360.0) + edge)
-    contours = ax.contourf(lon_c, lat, filled, levels=levels, cmap=DIVERGING if signed else
-                           SEQUENTIAL, norm=Normalize(levels[0], levels[-1]),
-                           transform=ccrs.PlateCarree(), zorder=1)
+    # Contour in map coordinates: cartopy's reprojection of filled-contour polygons
+    # fails on some global fields (GeometryCollection errors); the grid points
+    # themselves always project.
+    grid_lon, grid_lat = np.meshgrid(lon_c, lat)
+    xyz = proj.transform_points(ccrs.PlateCarree(), grid_lon, grid_lat)
+    outside = ~np.isfinite(xyz[..., :2]).all(axis=-1)
+    x, y = (np.where(outside, 0.0, xyz[..., i]) for i in (0, 1))
+    limits = ax.get_xlim(), ax.get_ylim()
+    contours = matplotlib.axes.Axes.contourf(
+        ax, x, y, np.ma.masked_where(outside | ~np.isfinite(filled), filled), levels=levels,
+        cmap=DIVERGING if signed else SEQUENTIAL, norm=Normalize(levels[0], levels[-1]),
+        zorder=1)
+    ax.set_xlim(*limits[0])
+    ax.set_ylim(*limits[1])
     units = str(da.attrs.get("units", ""))
     bar = fig.colorbar(contours, ax=ax, shrink=0.85, pad=0.02)
     long_name = str(da.attrs.get("long_name", field))
@@ -460,17 +474,42 @@ def _field_map(fig: Figure, ds: xr.Dataset, label: str, field: str | None, level
     ax.set_title(f"{title}\n{' | '.join(words)}", loc="left", fontsize=10)
 
 
+def _thinned(lat: np.ndarray, lon: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Row and column indices of grid points about evenly spaced on the sphere.
+
+    About :data:`ARROWS` points across the domain's shorter side; along each
+    row the column stride grows as 1/cos(latitude), so that arrows do not
+    crowd towards the poles. Pole rows are left out (no direction there).
+    """
+    dlat = abs(float(np.median(np.diff(lat)))) if lat.size > 1 else 1.0
+    dlon = abs(float(np.median(np.diff(lon)))) if lon.size > 1 else 1.0
+    centre = np.radians(np.clip(np.mean(lat), -80.0, 80.0))
+    spacing = max(min(np.ptp(lat), np.ptp(lon) * np.cos(centre)) / ARROWS, dlat, dlon)
+    rows, cols = [], []
+    for i in range(0, lat.size, max(1, round(spacing / dlat))):
+        coslat = np.cos(np.radians(lat[i]))
+        if coslat < 1e-3:
+            continue
+        stride = max(1, round(spacing / (dlon * coslat)))
+        picked = np.arange(0, lon.size, min(stride, lon.size))
+        rows.append(np.full(picked.size, i))
+        cols.append(picked)
+    return np.concatenate(rows), np.concatenate(cols)
+
+
 def _arrows(ax, u: xr.DataArray, v: xr.DataArray, lat: np.ndarray, lon: np.ndarray) -> None:
-    """Thinned wind arrows (regridded in map space) with a labelled reference arrow."""
+    """Thinned wind arrows with a reference arrow labelled with its speed."""
     uu = np.asarray(u.values, dtype=np.float64)
     vv = np.asarray(v.values, dtype=np.float64)
     speed = np.hypot(uu, vv)
     if not np.isfinite(speed).any() or np.nanmax(speed) == 0:
         return
     reference = _nice(float(np.nanpercentile(speed, 90)))
-    arrows = ax.quiver(lon, lat, uu, vv, transform=ccrs.PlateCarree(), regrid_shape=ARROWS,
-                       color="white", edgecolor="black", linewidth=0.5, zorder=4,
-                       scale=reference * ARROWS * 1.5, scale_units="width", width=0.0022)
+    rows, cols = _thinned(lat, lon)
+    arrows = ax.quiver(lon[cols], lat[rows], uu[rows, cols], vv[rows, cols],
+                       transform=ccrs.PlateCarree(), color="white", edgecolor="black",
+                       linewidth=0.5, zorder=4, scale=float(np.nanpercentile(speed, 99)) * ARROWS * 1.2,
+                       scale_units="width", width=0.0022)
     ax.quiverkey(arrows, X=0.9, Y=1.03, U=reference, label=f"{reference:g} m s$^{{-1}}$",
                  labelpos="E", coordinates="axes", fontproperties={"size": 8},
                  color="black")

@@ -46,7 +46,8 @@ def decomposition_like(wind: xr.Dataset, harmonic: bool = False) -> xr.Dataset:
     Smooth synthetic streamfunction and velocity potential; their winds from
     centred differences (u_psi = -dpsi/(a dphi), v_psi = dpsi/(a cos phi dlambda),
     u_chi = dchi/(a cos phi dlambda), v_chi = dchi/(a dphi)); vorticity and
-    divergence from the same formulas applied to the synthetic winds.
+    divergence from the same formulas applied to the synthetic winds, missing
+    poleward of 85 degrees.
     """
     phi = np.radians(wind["latitude"].values)[:, None]
     lam = np.radians(wind["longitude"].values)[None, :]
@@ -70,6 +71,9 @@ def decomposition_like(wind: xr.Dataset, harmonic: bool = False) -> xr.Dataset:
     fields["divergence"] = (_ddx(fields["u_divergent"], lam[0], -1)
                             + _ddx(fields["v_divergent"] * coslat, phi[:, 0], -2)) / (
         RADIUS * coslat)
+    polar = np.abs(np.degrees(phi)) > 85.0  # differences by cos(phi) are poor there:
+    for name in ("vorticity", "divergence"):  # leave them missing (CF _FillValue)
+        fields[name] = np.where(polar, np.nan, fields[name])
     if harmonic:
         fields["u_harmonic"] = np.full(shape, 1.5)
         fields["v_harmonic"] = np.full(shape, -0.5)

@@ -1,0 +1,277 @@
+"""Maps: every figure kind renders offline, with colour bars that tell the truth.
+
+External references used here:
+* matplotlib's colour-map documentation ("Choosing Colormaps in Matplotlib"):
+  the perceptually uniform sequential maps (viridis, plasma, inferno, magma,
+  cividis) and the perceptually uniform diverging maps added in matplotlib
+  3.10 (berlin, managua, vanimo; Crameri, Shephard & Heron 2020, Nature
+  Communications 11, 5444);
+* Snyder (1987), Map Projections - A Working Manual, USGS Professional Paper
+  1395: polar stereographic for polar regions, an azimuthal equal-area
+  projection centred on a limited area (common practice);
+* CF Conventions 1.11 section 9 and appendix H.4 (trajectories, featureType);
+* the PNG image size is read back with matplotlib.image (PNG specification, IHDR).
+"""
+
+from __future__ import annotations
+
+import warnings
+
+import cartopy
+import cartopy.crs as ccrs
+import cartopy.io
+import matplotlib.image
+import numpy as np
+import pytest
+import xarray as xr
+from test_compliance import GLOBAL, REGIONAL, decomposition_like, trajectory_like
+
+import flowpipe as fp
+from flowpipe import annotate, maps
+from flowpipe.cli import main
+from flowpipe.errors import InputError, UsageError
+
+SEQUENTIAL = {"viridis", "plasma", "inferno", "magma", "cividis"}
+DIVERGING = {"berlin", "managua", "vanimo"}
+SIZE = (640, 420)
+#: Standard deviation of the grey levels (0..1) above which an image is not blank
+#: (a blank or single-colour image has 0; common practice).
+VARIANCE_FLOOR = 0.05
+
+
+@pytest.fixture(scope="module")
+def files(tmp_path_factory):
+    directory = tmp_path_factory.mktemp("maps")
+    wind = fp.open_wind(GLOBAL).isel(time=slice(0, 2))
+    regional = fp.open_wind(REGIONAL).isel(time=slice(0, 1))
+    parts = decomposition_like(wind)
+    return {
+        "global": fp.write(parts, directory / "global.nc"),
+        "cap": fp.write(parts.sel(latitude=slice(30, 90)), directory / "cap.nc"),
+        "regional": fp.write(decomposition_like(regional, harmonic=True),
+                             directory / "regional.nc"),
+        "tracks": fp.write(trajectory_like(), directory / "tracks.nc"),
+        "tracks-2d": fp.write(trajectory_like(vertical=False, backward=True),
+                              directory / "tracks2d.nc"),
+        "directory": directory,
+    }
+
+
+#: kind -> (file key, render keywords, variable, level, time index)
+FIELD_MAPS = {
+    "streamfunction": ("global", {"field": "streamfunction", "level": 250.0,
+                                  "time": "2026-01-12T06:00Z"}),
+    "velocity-potential": ("global", {"field": "velocity_potential"}),
+    "vorticity-cap": ("cap", {"field": "vorticity", "level": 500.0}),
+    "divergence-regional": ("regional", {"field": "divergence"}),
+    "temperature-input": (None, {"field": "ta", "level": 500.0}),
+}
+TRACK_MAPS = {"tracks": ("tracks", {}), "tracks-2d": ("tracks-2d", {})}
+
+
+@pytest.fixture(scope="module")
+def figures(files):
+    rendered = {}
+    for kind, (key, options) in {**FIELD_MAPS, **TRACK_MAPS}.items():
+        source = GLOBAL if key is None else files[key]
+        rendered[kind] = (source, options, maps.render(source, size=SIZE, **options))
+    return rendered
+
+
+def _colour_bar(fig):
+    """The colour bar of the map, through its mappable (matplotlib ScalarMappable.colorbar)."""
+    bars = [c.colorbar for ax in fig.axes for c in ax.collections
+            if getattr(c, "colorbar", None) is not None]
+    assert len(bars) == 1
+    return bars[0]
+
+
+def _map_axes(fig):
+    return next(ax for ax in fig.axes if hasattr(ax, "projection"))
+
+
+def _slab(source, options) -> xr.DataArray:
+    """The slab the map shows, selected with plain xarray (independently of flowpipe.maps)."""
+    with xr.open_dataset(source) as ds:
+        da = ds[options["field"]]
+        level_name = next(d for d in da.dims if d in ("level", "plev", "pressure"))
+        if "level" in options:
+            da = da.sel({level_name: options["level"]})
+        else:
+            da = da.isel({level_name: 0})
+        if "time" in options:
+            da = da.sel(time=np.datetime64(options["time"].rstrip("Z")))
+        else:
+            da = da.isel(time=0)
+        return da.load()
+
+
+@pytest.mark.parametrize("kind", [*FIELD_MAPS, *TRACK_MAPS])
+def test_png_of_requested_size_not_blank(figures, files, kind):
+    _, _, fig = figures[kind]
+    path = maps.save(fig, files["directory"] / f"{kind}.png")
+    image = matplotlib.image.imread(path)  # PNG: height x width x channels
+    assert image.shape[:2] == (SIZE[1], SIZE[0])
+    grey = image[..., :3].mean(axis=-1)
+    assert grey.std() > VARIANCE_FLOOR
+    assert not list(files["directory"].glob(".*tmp*"))  # nothing left from the atomic write
+
+
+@pytest.mark.parametrize("kind", list(FIELD_MAPS))
+def test_colour_bar_spans_the_data(figures, kind):
+    source, options, fig = figures[kind]
+    values = _slab(source, options).values
+    low, high = np.nanmin(values), np.nanmax(values)
+    bar = _colour_bar(fig)
+    step = np.diff(bar.mappable.levels).max()
+    name = bar.cmap.name
+    signed = options["field"] in ("streamfunction", "velocity_potential", "vorticity",
+                                  "divergence") or low < 0 < high
+    assert bar.vmin <= low and bar.vmax >= high
+    if signed:  # diverging, centred on zero
+        assert name in DIVERGING
+        assert bar.vmin == pytest.approx(-bar.vmax)
+        assert bar.mappable.norm(0.0) == pytest.approx(0.5)
+        assert bar.vmax - max(abs(low), abs(high)) < step
+    else:
+        assert name in SEQUENTIAL
+        assert low - bar.vmin < step and bar.vmax - high < step
+
+
+@pytest.mark.parametrize("kind", ["streamfunction", "velocity-potential", "vorticity-cap"])
+def test_matching_wind_with_reference_arrow(figures, kind):
+    source, options, fig = figures[kind]
+    wind = {"streamfunction": "rotational", "vorticity": "rotational",
+            "velocity_potential": "divergent"}[options["field"]]
+    ax = _map_axes(fig)
+    arrows = [a for a in ax.collections if type(a).__name__ == "Quiver"]
+    keys = [a for a in ax.artists + ax.get_children() if type(a).__name__ == "QuiverKey"]
+    assert len(arrows) == 1 and keys
+    speed = np.hypot(_slab(source, {**options, "field": f"u_{wind}"}).values,
+                     _slab(source, {**options, "field": f"v_{wind}"}).values)
+    # the reference arrow is a round speed within the range of the wind drawn
+    assert np.nanmin(speed) <= keys[0].U <= np.nanmax(speed)
+    assert "m s" in keys[0].text.get_text()
+    # thinned: far fewer arrows than grid points
+    assert arrows[0].N < speed.size / 4
+    assert wind in ax.get_title(loc="left")
+
+
+def test_title_and_footer(figures):
+    source, options, fig = figures["streamfunction"]
+    title = _map_axes(fig).get_title(loc="left")
+    assert "Streamfunction" in title and "250 hPa" in title
+    assert "2026-01-12T06:00Z" in title  # ISO 8601 valid time
+    footer = " ".join(t.get_text() for t in fig.texts)
+    assert source.name in footer and f"flowpipe {fp.__version__}" in footer
+    assert annotate.CAUTION_SHORT in footer
+
+
+def test_projection_follows_the_domain(figures, files):
+    # Snyder (1987): whole globe, polar cap (polar stereographic), limited area
+    # (azimuthal equal-area centred on the domain).
+    assert isinstance(_map_axes(figures["streamfunction"][2]).projection, ccrs.EqualEarth)
+    assert isinstance(_map_axes(figures["vorticity-cap"][2]).projection, ccrs.NorthPolarStereo)
+    regional = _map_axes(figures["divergence-regional"][2]).projection
+    assert isinstance(regional, ccrs.LambertAzimuthalEqualArea)
+    with xr.open_dataset(files["regional"]) as ds:
+        lat, lon = ds["latitude"].values, ds["longitude"].values
+    assert regional.proj4_params["lon_0"] == pytest.approx((lon.min() + lon.max()) / 2)
+    assert regional.proj4_params["lat_0"] == pytest.approx((lat.min() + lat.max()) / 2)
+    fig = maps.render(files["regional"], projection="lat-lon", size=SIZE)
+    assert isinstance(_map_axes(fig).projection, ccrs.PlateCarree)
+
+
+def test_tracks_coloured_by_pressure_with_start_points(figures, files):
+    _, _, fig = figures["tracks"]
+    with xr.open_dataset(files["tracks"]) as ds:
+        pressure = ds["pressure"].values
+        start_lon, start_lat = ds["longitude"].values[:, 0], ds["latitude"].values[:, 0]
+    bar = _colour_bar(fig)
+    assert (bar.vmin, bar.vmax) == pytest.approx((np.nanmin(pressure), np.nanmax(pressure)))
+    assert bar.cmap.name in SEQUENTIAL
+    assert bar.ax.yaxis_inverted()  # pressure decreases upwards (CF positive = "down")
+    starts = [c for c in _map_axes(fig).collections if c.get_label() == "start"]
+    assert len(starts) == 1
+    np.testing.assert_allclose(starts[0].get_offsets(), np.column_stack([start_lon, start_lat]))
+
+
+def test_two_dimensional_tracks_coloured_by_time(figures, files):
+    _, _, fig = figures["tracks-2d"]
+    with xr.open_dataset(files["tracks-2d"]) as ds:
+        hours = (ds["time"] - ds["time"][:, 0]).values / np.timedelta64(1, "h")
+    bar = _colour_bar(fig)
+    assert (bar.vmin, bar.vmax) == pytest.approx((np.nanmin(hours), np.nanmax(hours)))
+    assert "backward" in _map_axes(fig).get_title(loc="left")
+
+
+def test_sampled_variable_colours_tracks(files):
+    fig = maps.render(files["tracks"], field="ta", size=SIZE)
+    with xr.open_dataset(files["tracks"]) as ds:
+        ta = ds["ta"].values
+    bar = _colour_bar(fig)
+    assert (bar.vmin, bar.vmax) == pytest.approx((np.nanmin(ta), np.nanmax(ta)))
+
+
+def test_offline_without_download(files, monkeypatch):
+    # cartopy fetches missing data through Downloader.acquire_resource: forbid it.
+    def no_network(*args, **kwargs):
+        raise AssertionError("a map tried to download data")
+
+    monkeypatch.setattr(cartopy.io.Downloader, "acquire_resource", no_network)
+    with warnings.catch_warnings():
+        warnings.simplefilter("error", maps.MapWarning)  # the packaged coastlines are found
+        fig = maps.render(files["regional"], size=SIZE)
+    fig.savefig(files["directory"] / "offline.png")
+    features = [a for a in _map_axes(fig).get_children() if type(a).__name__ == "FeatureArtist"]
+    assert features
+
+
+def test_no_coastline_data_is_a_warning(files, monkeypatch, tmp_path):
+    monkeypatch.setattr(maps, "COASTLINE_DIRS", (str(tmp_path),))
+    monkeypatch.setitem(cartopy.config, "pre_existing_data_dir", "")
+    with pytest.warns(maps.MapWarning, match="coastline"):
+        fig = maps.render(files["regional"], size=SIZE)
+    features = [a for a in _map_axes(fig).get_children() if type(a).__name__ == "FeatureArtist"]
+    assert not features
+    maps.save(fig, tmp_path / "bare.png")
+    assert matplotlib.image.imread(tmp_path / "bare.png").shape[:2] == (SIZE[1], SIZE[0])
+
+
+def test_bad_input_names_what_is_available(files, tmp_path):
+    with pytest.raises(InputError, match="streamfunction.*velocity_potential"):
+        maps.render(files["global"], field="geopotential")
+    with pytest.raises(InputError, match="850, 500, 250"):
+        maps.render(files["global"], field="vorticity", level=300.0)
+    with pytest.raises(InputError, match="2026-01-12T00:00Z, 2026-01-12T06:00Z"):
+        maps.render(files["global"], time="2026-02-01T00:00")
+    with pytest.raises(UsageError, match="lat-lon"):
+        maps.render(files["global"], projection="upside-down")
+    with pytest.raises(UsageError, match="trajectory"):
+        maps.render(files["tracks"], level=850.0)
+    plain = tmp_path / "no_coordinates.nc"
+    xr.Dataset({"x": (("a", "b"), np.ones((3, 4)))}).to_netcdf(plain)
+    with pytest.raises(InputError, match="latitude/longitude"):
+        maps.render(plain)
+
+
+def test_foreign_file_with_the_variables_maps(tmp_path):
+    # demo_regional.nc: not a flowpipe output; latitudes descending, levels in Pa.
+    fig = maps.render(REGIONAL, field="uwind", level=50000.0, size=SIZE)
+    with xr.open_dataset(REGIONAL) as ds:
+        values = ds["uwind"].sel(pressure=50000.0).isel(time=0).values
+    bar = _colour_bar(fig)
+    assert bar.vmin <= values.min() and bar.vmax >= values.max()
+    assert "50000 Pa" in _map_axes(fig).get_title(loc="left")
+
+
+def test_command_line(files, capsys):
+    out = files["directory"] / "cli.png"
+    assert main(["map", str(files["global"]), "-o", str(out), "--field", "divergence",
+                 "--size", "500x300"]) == 0
+    assert matplotlib.image.imread(out).shape[:2] == (300, 500)
+    assert main(["map", str(files["global"]), "-o", str(out), "--field", "nope"]) == 2
+    assert "flowpipe: error:" in capsys.readouterr().err
+    before = files["global"].read_bytes()
+    assert main(["map", str(files["global"]), "-o", str(files["global"])]) == 2
+    assert files["global"].read_bytes() == before  # an input is never overwritten
