@@ -36,7 +36,7 @@ PETTERSSEN = 1
 EDGE_TOLERANCE = 1e-9
 
 
-@numba.njit(cache=True)
+@numba.njit(cache=True, inline="always")
 def _locate(coord, uniform, value):
     """Cell index ``i`` and fraction ``f`` with ``value = coord[i] + f * (coord[i+1] - coord[i])``.
 
@@ -65,7 +65,7 @@ def _locate(coord, uniform, value):
     return i, f, inside
 
 
-@numba.njit(cache=True)
+@numba.njit(cache=True, inline="always")
 def interpolate(field, s0, s1, wt, px, py, pz, level, lat, lat_uniform, lon, lon_uniform,
                 periodic, levels, log_levels, out):
     """Sample every component of ``field`` at one position and time.
@@ -175,10 +175,10 @@ def interpolate(field, s0, s1, wt, px, py, pz, level, lat, lat_uniform, lon, lon
     return ACTIVE
 
 
-@numba.njit(cache=True)
+@numba.njit(cache=True, inline="always")
 def _rate(field, s0, s1, wt, px, py, pz, level, lat, lat_uniform, lon, lon_uniform, periodic,
-          levels, log_levels, vertical_scale, radius, work, rate):
-    """Time derivative of the state ``(x, y, z, level)`` at one point.
+          levels, log_levels, vertical_scale, radius, work):
+    """Status and time derivative ``(dx, dy, dz, dlevel)/dt`` of the state at one point.
 
     The interpolated Cartesian wind is projected on the tangent plane of the
     normalised position and divided by the radius, so that the rate keeps
@@ -190,14 +190,12 @@ def _rate(field, s0, s1, wt, px, py, pz, level, lat, lat_uniform, lon, lon_unifo
     flag = interpolate(field, s0, s1, wt, qx, qy, qz, level, lat, lat_uniform, lon, lon_uniform,
                        periodic, levels, log_levels, work)
     if flag != ACTIVE:
-        return flag
+        return flag, 0.0, 0.0, 0.0, 0.0
     vx, vy, vz = work[0], work[1], work[2]
     radial = vx * qx + vy * qy + vz * qz
-    rate[0] = (vx - radial * qx) / radius
-    rate[1] = (vy - radial * qy) / radius
-    rate[2] = (vz - radial * qz) / radius
-    rate[3] = work[3] * vertical_scale if vertical_scale != 0.0 else 0.0
-    return ACTIVE
+    rate_level = work[3] * vertical_scale if vertical_scale != 0.0 else 0.0
+    return (ACTIVE, (vx - radial * qx) / radius, (vy - radial * qy) / radius,
+            (vz - radial * qz) / radius, rate_level)
 
 
 @numba.njit(cache=True)
@@ -254,62 +252,56 @@ def advance(pos, level, status, h, field, slot0, slot1, weight, lat, lat_uniform
     latitude-longitude equations (common practice).
     """
     n = pos.shape[0]
-    ncomp = field.shape[4]
-    work = np.empty(ncomp)
-    k1 = np.empty(4)
-    k2 = np.empty(4)
-    k3 = np.empty(4)
-    k4 = np.empty(4)
-    mean_rate = np.empty(4)
+    work = np.empty(field.shape[4])
     nlev = levels.shape[0]
     for p in range(n):
         if status[p] != ACTIVE:
             continue
         x0, y0, z0, l0 = pos[p, 0], pos[p, 1], pos[p, 2], level[p]
-        flag = _rate(field, slot0[0], slot1[0], weight[0], x0, y0, z0, l0, lat, lat_uniform, lon,
-                     lon_uniform, periodic, levels, log_levels, vertical_scale, radius, work, k1)
+        flag, ax, ay, az, al = _rate(
+            field, slot0[0], slot1[0], weight[0], x0, y0, z0, l0, lat, lat_uniform, lon,
+            lon_uniform, periodic, levels, log_levels, vertical_scale, radius, work)
         if scheme == RK4:
             if flag == ACTIVE:
-                flag = _rate(field, slot0[1], slot1[1], weight[1], x0 + 0.5 * h * k1[0],
-                             y0 + 0.5 * h * k1[1], z0 + 0.5 * h * k1[2], l0 + 0.5 * h * k1[3],
-                             lat, lat_uniform, lon, lon_uniform, periodic, levels, log_levels,
-                             vertical_scale, radius, work, k2)
+                flag, bx, by, bz, bl = _rate(
+                    field, slot0[1], slot1[1], weight[1], x0 + 0.5 * h * ax, y0 + 0.5 * h * ay,
+                    z0 + 0.5 * h * az, l0 + 0.5 * h * al, lat, lat_uniform, lon, lon_uniform,
+                    periodic, levels, log_levels, vertical_scale, radius, work)
             if flag == ACTIVE:
-                flag = _rate(field, slot0[1], slot1[1], weight[1], x0 + 0.5 * h * k2[0],
-                             y0 + 0.5 * h * k2[1], z0 + 0.5 * h * k2[2], l0 + 0.5 * h * k2[3],
-                             lat, lat_uniform, lon, lon_uniform, periodic, levels, log_levels,
-                             vertical_scale, radius, work, k3)
+                flag, cx, cy, cz, cl = _rate(
+                    field, slot0[1], slot1[1], weight[1], x0 + 0.5 * h * bx, y0 + 0.5 * h * by,
+                    z0 + 0.5 * h * bz, l0 + 0.5 * h * bl, lat, lat_uniform, lon, lon_uniform,
+                    periodic, levels, log_levels, vertical_scale, radius, work)
             if flag == ACTIVE:
-                flag = _rate(field, slot0[2], slot1[2], weight[2], x0 + h * k3[0], y0 + h * k3[1],
-                             z0 + h * k3[2], l0 + h * k3[3], lat, lat_uniform, lon, lon_uniform,
-                             periodic, levels, log_levels, vertical_scale, radius, work, k4)
-            for c in range(4):
-                mean_rate[c] = (k1[c] + 2.0 * k2[c] + 2.0 * k3[c] + k4[c]) / 6.0
+                flag, dx, dy, dz, dl = _rate(
+                    field, slot0[2], slot1[2], weight[2], x0 + h * cx, y0 + h * cy, z0 + h * cz,
+                    l0 + h * cl, lat, lat_uniform, lon, lon_uniform, periodic, levels,
+                    log_levels, vertical_scale, radius, work)
+                mx = (ax + 2.0 * bx + 2.0 * cx + dx) / 6.0
+                my = (ay + 2.0 * by + 2.0 * cy + dy) / 6.0
+                mz = (az + 2.0 * bz + 2.0 * cz + dz) / 6.0
+                ml = (al + 2.0 * bl + 2.0 * cl + dl) / 6.0
         else:
             # Petterssen: first guess with the initial rate, then correct with
             # the mean of the rates at both ends until the end point settles.
-            for c in range(4):
-                mean_rate[c] = k1[c]
+            mx, my, mz, ml = ax, ay, az, al
             for _ in range(iterations):
                 if flag != ACTIVE:
                     break
-                flag = _rate(field, slot0[2], slot1[2], weight[2], x0 + h * mean_rate[0],
-                             y0 + h * mean_rate[1], z0 + h * mean_rate[2],
-                             l0 + h * mean_rate[3], lat, lat_uniform,
-                             lon, lon_uniform, periodic, levels, log_levels, vertical_scale,
-                             radius, work, k2)
-                change = 0.0
-                for c in range(4):
-                    mean = 0.5 * (k1[c] + k2[c])
-                    change = max(change, abs(h * (mean - mean_rate[c])))
-                    mean_rate[c] = mean
+                flag, bx, by, bz, bl = _rate(
+                    field, slot0[2], slot1[2], weight[2], x0 + h * mx, y0 + h * my, z0 + h * mz,
+                    l0 + h * ml, lat, lat_uniform, lon, lon_uniform, periodic, levels,
+                    log_levels, vertical_scale, radius, work)
+                nx, ny = 0.5 * (ax + bx), 0.5 * (ay + by)
+                nz, nl = 0.5 * (az + bz), 0.5 * (al + bl)
+                change = abs(h) * max(abs(nx - mx), abs(ny - my), abs(nz - mz), abs(nl - ml))
+                mx, my, mz, ml = nx, ny, nz, nl
                 if change < tolerance:
                     break
         if flag != ACTIVE:
             status[p] = flag
             continue
-        x1, y1, z1 = x0 + h * mean_rate[0], y0 + h * mean_rate[1], z0 + h * mean_rate[2]
-        l1 = l0 + h * mean_rate[3]
+        x1, y1, z1, l1 = x0 + h * mx, y0 + h * my, z0 + h * mz, l0 + h * ml
         norm = math.sqrt(x1 * x1 + y1 * y1 + z1 * z1)
         x1, y1, z1 = x1 / norm, y1 / norm, z1 / norm
         if not periodic:  # the end point itself must lie inside a limited-area domain
