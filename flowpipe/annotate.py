@@ -70,6 +70,18 @@ COORDINATES: dict[str, tuple[str, str]] = {
     "altitude": ("altitude", "Z"),
 }
 
+#: Attributes the canonical wind Dataset's coordinates always have (see
+#: :mod:`flowpipe.ingest`), restored where a stage dropped them.
+CANONICAL_COORDINATES: dict[str, dict[str, str]] = {
+    "latitude": {"standard_name": "latitude", "units": "degrees_north"},
+    "longitude": {"standard_name": "longitude", "units": "degrees_east"},
+}
+#: The same for ``level``, by the Dataset's ``level_type``.
+CANONICAL_LEVELS: dict[str, dict[str, str]] = {
+    "pressure": {"standard_name": "air_pressure", "units": "hPa", "positive": "down"},
+    "height": {"standard_name": "height", "units": "m", "positive": "up"},
+}
+
 #: CF 1.11 section 4.4.1: a time coordinate of the standard calendars should
 #: say how leap seconds are handled; flowpipe's times (numpy, cftime) ignore them.
 TIME_UNITS_METADATA = "leap_seconds: none"
@@ -161,9 +173,12 @@ def _is_location(da: xr.DataArray) -> bool:
 def _complete_variable(ds: xr.Dataset, name: Hashable) -> None:
     var = ds.variables[name]
     attrs = dict(var.attrs)
-    if name in VARIABLES:
-        for key, value in variable_attrs(str(name)).items():
-            attrs.setdefault(key, value)
+    canonical = variable_attrs(str(name)) if name in VARIABLES else {}
+    canonical.update(CANONICAL_COORDINATES.get(str(name), {}))
+    if name == "level" and name in ds.dims:
+        canonical.update(CANONICAL_LEVELS.get(str(ds.attrs.get("level_type")), {}))
+    for key, value in canonical.items():
+        attrs.setdefault(key, value)
     if _is_time(var):
         attrs.setdefault("standard_name", "time")
         if _standard_calendar(var):
