@@ -154,7 +154,8 @@ def write(ds: xr.Dataset, path: str | os.PathLike, *, float32: bool = False) -> 
         single precision: a 24-bit significand, about seven significant digits,
         so a relative rounding error of at most 2**-24 (6.0e-8) per value
         (IEEE 754 binary32), ample for plotting and most diagnostics at half
-        the size. Values beyond about 3.4e38 cannot be stored.
+        the size. Magnitudes below 1.2e-38 (subnormal) keep only an absolute
+        accuracy of 7e-46; values beyond about 3.4e38 cannot be stored.
 
     Returns
     -------

@@ -1,0 +1,138 @@
+"""The one writer: round trips through plain xarray, CF encodings, atomic and safe.
+
+External references used here:
+* IEEE 754-2008 binary32: 24-bit significand, so rounding to single precision
+  changes a value by at most 2**-24 of it (relative);
+* netCDF4-python (``Variable.filters``, ``Variable.chunking``) and the NetCDF
+  User Guide (zlib "deflate" with the shuffle filter; ``NC_FILL_DOUBLE``);
+* POSIX ``rename(2)``: the final name refers either to the old file or to the
+  complete new one (common practice for atomic replacement);
+* CF Conventions 1.11 section 2.5.1: missing data as ``_FillValue``.
+"""
+
+from __future__ import annotations
+
+import os
+
+import dask
+import dask.array as da
+import netCDF4
+import numpy as np
+import pytest
+import xarray as xr
+from test_compliance import GLOBAL, decomposition_like, trajectory_like
+
+import flowpipe as fp
+from flowpipe import store
+from flowpipe.errors import UsageError
+
+#: IEEE 754 binary32 unit roundoff, and the largest rounding error of a subnormal
+#: (half their spacing 2**-149), for values below the smallest normal 2**-126.
+FLOAT32_RELATIVE = 2.0**-24
+FLOAT32_SUBNORMAL = 2.0**-150
+
+
+@pytest.fixture(scope="module")
+def parts():
+    return decomposition_like(fp.open_wind(GLOBAL).isel(time=slice(0, 2)))
+
+
+def _leftovers(directory) -> list[str]:
+    return [p.name for p in directory.iterdir() if ".tmp-" in p.name]
+
+
+@pytest.mark.parametrize("float32", [False, True])
+def test_round_trip_with_plain_xarray(parts, tmp_path, float32):
+    path = fp.write(parts, tmp_path / "parts.nc", float32=float32)
+    with xr.open_dataset(path) as back:
+        for name in parts.data_vars:
+            expected = parts[name].values
+            got = back[name].values
+            assert got.shape == expected.shape
+            assert np.array_equal(np.isnan(got), np.isnan(expected))  # CF _FillValue -> NaN
+            if float32:
+                assert back[name].encoding["dtype"] == np.float32
+                np.testing.assert_allclose(got, expected, rtol=FLOAT32_RELATIVE,
+                                           atol=FLOAT32_SUBNORMAL)
+            else:
+                np.testing.assert_array_equal(got, expected)
+            for key in ("standard_name", "units", "long_name"):
+                assert back[name].attrs.get(key) == parts[name].attrs.get(key)
+        for name in ("latitude", "longitude", "level"):  # coordinates stay double
+            assert back[name].dtype == np.float64
+            np.testing.assert_array_equal(back[name].values, parts[name].values)
+        np.testing.assert_array_equal(back["time"].values, parts["time"].values)
+
+
+def test_trajectory_round_trip_keeps_missing_times(tmp_path):
+    tracks = trajectory_like()
+    path = fp.write(tracks, tmp_path / "tracks.nc")
+    with xr.open_dataset(path) as back:
+        np.testing.assert_array_equal(back["time"].values, tracks["time"].values)  # NaT too
+        np.testing.assert_array_equal(back["latitude"].values, tracks["latitude"].values)
+        assert back["status"].dtype == np.int8
+        assert back["status"].attrs["flag_values"].dtype == np.int8  # CF 3.5: same type
+        assert back.attrs["featureType"] == "trajectory"
+
+
+def test_compressed_and_chunked_by_slab(parts, tmp_path):
+    # NetCDF User Guide: deflate + shuffle filters; one (time, level) slab per chunk, so
+    # reading one map touches one chunk.
+    path = fp.write(parts, tmp_path / "parts.nc")
+    nlat, nlon = parts.sizes["latitude"], parts.sizes["longitude"]
+    with netCDF4.Dataset(path) as nc:
+        for name in parts.data_vars:
+            var = nc[name]
+            filters = var.filters()
+            assert filters["zlib"] and filters["shuffle"], name
+            assert var.chunking() == [1, 1, nlat, nlon], name
+            assert var.getncattr("_FillValue") == pytest.approx(netCDF4.default_fillvals["f8"])
+        for name in ("latitude", "longitude", "level", "time"):  # CF 2.5.1: coordinate
+            assert "_FillValue" not in nc[name].ncattrs(), name  # variables have no gaps
+    assert os.path.getsize(path) < sum(v.nbytes for v in parts.data_vars.values())
+
+
+def test_failure_leaves_no_file_under_the_final_name(parts, tmp_path):
+    @dask.delayed
+    def broken():
+        raise RuntimeError("disk gone")
+
+    bad = parts.copy()
+    shape = bad["vorticity"].shape
+    bad["vorticity"] = (bad["vorticity"].dims, da.from_delayed(broken(), shape, np.float64),
+                        bad["vorticity"].attrs)
+    target = tmp_path / "out.nc"
+    with pytest.raises(RuntimeError, match="disk gone"):
+        fp.write(bad, target)
+    assert not target.exists()
+    assert _leftovers(tmp_path) == []
+    # an earlier complete file under that name survives a failed rewrite (rename(2))
+    fp.write(parts, target)
+    before = target.read_bytes()
+    with pytest.raises(RuntimeError):
+        fp.write(bad, target)
+    assert target.read_bytes() == before
+    assert _leftovers(tmp_path) == []
+
+
+def test_inputs_are_never_overwritten(parts, tmp_path):
+    source = fp.write(parts, tmp_path / "source.nc")
+    before = source.read_bytes()
+    with xr.open_dataset(source) as reread:  # lazily backed by the file itself
+        with pytest.raises(UsageError, match="one of the inputs"):
+            fp.write(reread, source)
+    link = tmp_path / "link.nc"
+    os.link(source, link)  # another name for the same file
+    named = parts.assign_attrs(input_files=str(link))
+    with pytest.raises(UsageError, match="one of the inputs"):
+        fp.write(named, source)
+    assert source.read_bytes() == before
+
+
+def test_atomic_path_keeps_the_suffix(tmp_path):
+    # matplotlib picks the image format from the suffix of the name it writes to
+    with store.atomic_path(tmp_path / "figure.png") as tmp:
+        assert tmp.parent == tmp_path and tmp.suffix == ".png" and tmp.name.startswith(".")
+        tmp.write_bytes(b"image")
+    assert (tmp_path / "figure.png").read_bytes() == b"image"
+    assert _leftovers(tmp_path) == []
