@@ -10,6 +10,7 @@ Public API (re-exports only)::
     tracks = fp.advect(wind, starts, hours=48, backward=True)  # CF trajectories
     fp.write(dataset, "out.nc")     # CF-annotated, atomic
     fig = fp.render("out.nc")       # matplotlib figure of a field or of trajectories
+    summary = fp.run("night.toml")  # the batch job of a TOML config
 """
 
 from ._version import __version__
@@ -20,6 +21,7 @@ from .ingest import open_wind
 from .inspection import describe_wind
 from .kinematics import kinematics
 from .parcels import advect, starts_box, starts_line, starts_ring
+from .pipeline import run
 from .store import write
 
 __all__ = [
@@ -35,6 +37,7 @@ __all__ = [
     "kinematics",
     "open_wind",
     "render",
+    "run",
     "starts_box",
     "starts_line",
     "starts_ring",

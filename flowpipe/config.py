@@ -63,7 +63,6 @@ SCHEMA: dict[str, dict[str, tuple[tuple[type, ...], Any]]] = {
     "run": {
         "workers": ((int,), None),
         "scheduler": ((str,), None),
-        "processes": ((bool,), False),
     },
 }
 STAGES = ("decompose", "advect", "maps")

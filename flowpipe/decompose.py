@@ -221,7 +221,9 @@ def transform_threads(n_tasks: int) -> int:
     Returns
     -------
     int
-        ``max(1, cores // concurrent tasks)``, where the concurrent tasks are
+        ``max(1, cores // concurrent tasks)``, where the cores are those the
+        process may use (or the dask config value ``flowpipe.cores``, the
+        budget a batch run gives itself), and the concurrent tasks are
         at most the worker threads of the active dask scheduler (a
         distributed client, the synchronous scheduler or the local threads).
 
@@ -229,7 +231,7 @@ def transform_threads(n_tasks: int) -> int:
     ----------
     Avoiding oversubscription when nesting thread pools (common practice).
     """
-    cores = len(os.sched_getaffinity(0))
+    cores = dask.config.get("flowpipe.cores", None) or len(os.sched_getaffinity(0))
     try:
         from distributed import get_client
 

@@ -16,6 +16,7 @@ from __future__ import annotations
 import contextlib
 import logging
 import os
+import signal
 import sys
 import time
 import traceback
@@ -34,6 +35,9 @@ from .errors import FlowpipeError
 
 log = logging.getLogger("flowpipe.run")
 LOG_NAME = "flowpipe.log"
+STAGE_ORDER = ("decompose", "advect", "maps")
+#: dask config key: the cores one task may use (read by the transform kernels).
+CORES_KEY = "flowpipe.cores"
 
 
 @dataclass
@@ -59,6 +63,18 @@ class RunSummary:
         return 1 if self.failures else 0
 
 
+@dataclass
+class UnitResult:
+    """What the stages of one unit did; merged into the manifest by the parent run."""
+
+    stem: str
+    record: dict[str, Any] = field(default_factory=lambda: {"stages": {}})
+    outputs: dict[str, dict] = field(default_factory=dict)
+    written: list[Path] = field(default_factory=list)
+    up_to_date: list[Path] = field(default_factory=list)
+    timings: dict[str, float] = field(default_factory=dict)
+
+
 def units_of(config: Config) -> list[Unit]:
     """The units of work a config describes."""
     if config.section("input")["combine"]:
@@ -79,13 +95,13 @@ class Progress:
         self.total, self.done, self.quiet = total, 0, quiet
         self.bar = not quiet and sys.stderr.isatty()
 
-    def step(self, text: str) -> None:
-        self.done += 1
+    def advance(self, steps: int, text: str) -> None:
+        self.done += steps
         if self.bar:
             width = 30
             filled = int(width * self.done / max(self.total, 1))
             sys.stderr.write(f"\r[{'#' * filled}{'.' * (width - filled)}] {self.done}/{self.total} "
-                             f"{text[:60]:<60}")
+                             f"steps, last: {text[:50]:<50}")
             if self.done == self.total:
                 sys.stderr.write("\n")
             sys.stderr.flush()
@@ -125,12 +141,17 @@ class Runner:
     def _save(self) -> None:
         bookkeeping.write_json(self.out / bookkeeping.MANIFEST_NAME, self.manifest)
 
-    def _record(self, out: Path, stage: str, unit: Unit, depends: list[dict], digest: str) -> None:
-        self.manifest["outputs"][self._rel(out)] = {
-            "stage": stage, "unit": unit.stem, "depends_on": depends, "config": digest,
-            "flowpipe_version": __version__, "written": now_iso(),
-        }
-        self.summary.written.append(out)
+    def merge(self, result: UnitResult) -> None:
+        """Take one unit's result into the manifest and save it (atomically)."""
+        self.manifest["units"][result.stem] = result.record
+        self.manifest["outputs"].update(result.outputs)
+        for stage, seconds in result.timings.items():
+            timings = self.manifest["timings"]
+            timings[stage] = round(timings.get(stage, 0.0) + seconds, 3)
+        self.summary.written.extend(result.written)
+        self.summary.up_to_date.extend(result.up_to_date)
+        if result.record.get("status") == "failed":
+            self.summary.failures[result.stem] = result.record["error"]
         self._save()
 
     def _rel(self, path: Path) -> str:
@@ -146,24 +167,26 @@ class Runner:
         return [{k: d[k] for k in fields} for d in old.get("depends_on", [])] == [
             {k: d[k] for k in fields} for d in depends]
 
-    def _produce(self, stage: str, unit: Unit, out: Path, depends: list[dict], digest: str,
-                 make: Callable[[Path], None]) -> bool:
-        """Make one output unless it is up to date; True when it exists afterwards."""
+    def _produce(self, stage: str, result: UnitResult, out: Path, depends: list[dict],
+                 digest: str, make: Callable[[Path], None]) -> None:
+        """Make one output unless it is up to date."""
         if self._current(out, depends, digest):
-            self.summary.up_to_date.append(out)
+            result.up_to_date.append(out)
             log.info("%s: up to date", self._rel(out))
-            return True
+            return
         started = time.perf_counter()
         make(out)
         elapsed = time.perf_counter() - started
-        timings = self.manifest["timings"]
-        timings[stage] = round(timings.get(stage, 0.0) + elapsed, 3)
-        stages = self.manifest["units"].setdefault(unit.stem, {"stages": {}})["stages"]
+        result.timings[stage] = result.timings.get(stage, 0.0) + elapsed
+        stages = result.record["stages"]
         stages.setdefault(stage, {"seconds": 0.0, "status": "ok"})
         stages[stage]["seconds"] = round(stages[stage]["seconds"] + elapsed, 3)
-        self._record(out, stage, unit, depends, digest)
+        result.outputs[self._rel(out)] = {
+            "stage": stage, "unit": result.stem, "depends_on": depends, "config": digest,
+            "flowpipe_version": __version__, "written": now_iso(),
+        }
+        result.written.append(out)
         log.info("%s: written in %.2f s", self._rel(out), elapsed)
-        return True
 
     # -- stages --------------------------------------------------------------
     def _inputs_of(self, unit: Unit) -> list[dict]:
@@ -175,7 +198,7 @@ class Runner:
         section = self.config.section("input")
         return open_wind(unit.inputs, u=section["u"], v=section["v"])
 
-    def decompose(self, unit: Unit) -> Path:
+    def decompose(self, unit: Unit, result: UnitResult) -> Path:
         from .decompose import decompose
         from .store import write
 
@@ -188,10 +211,10 @@ class Runner:
                               levels=cfg["levels"], scheme=cfg["scheme"])
             write(parts, path, float32=cfg["float32"])
 
-        self._produce("decompose", unit, out, self._inputs_of(unit), digest, make)
+        self._produce("decompose", result, out, self._inputs_of(unit), digest, make)
         return out
 
-    def advect(self, unit: Unit) -> Path:
+    def advect(self, unit: Unit, result: UnitResult) -> Path:
         from .parcels import advect
         from .store import write
 
@@ -211,10 +234,10 @@ class Runner:
                             sample=tuple(cfg["sample"]))
             write(tracks, path)
 
-        self._produce("advect", unit, out, depends, digest, make)
+        self._produce("advect", result, out, depends, digest, make)
         return out
 
-    def maps(self, unit: Unit, sources: dict[str, Path]) -> None:
+    def maps(self, unit: Unit, result: UnitResult, sources: dict[str, Path]) -> None:
         import xarray as xr
 
         from .maps import render, save
@@ -232,44 +255,64 @@ class Runner:
                 for level in wanted:
                     out = render_template(cfg["output"], self.out, stem=unit.stem, field=name,
                                           level=_level_text(level), time=_time_text(first_time))
-                    self._produce("maps", unit, out, depends, digest,
+                    self._produce("maps", result, out, depends, digest,
                                   lambda p, n=name, lv=level: save(render(parts, field=n, level=lv), p))
         tracks = sources.get("advect")
         if cfg["trajectories"] and tracks is not None and tracks.exists():
             out = render_template(cfg["output"], self.out, stem=unit.stem, field="trajectories",
                                   level="all", time="all")
-            self._produce("maps", unit, out, [bookkeeping.fingerprint(tracks)], digest,
+            self._produce("maps", result, out, [bookkeeping.fingerprint(tracks)], digest,
                           lambda p: save(render(tracks), p))
 
     # -- the run -------------------------------------------------------------
-    def run(self, units: list[Unit]) -> RunSummary:
-        for unit in units:
-            record = self.manifest["units"].setdefault(unit.stem, {"stages": {}})
-            record["inputs"] = [str(p) for p in unit.inputs]
-            sources: dict[str, Path] = {}
-            for stage in ("decompose", "advect", "maps"):
-                if not self.config.has(stage):
-                    continue
-                try:
-                    if stage == "maps":
-                        self.maps(unit, sources)
-                    else:
-                        sources[stage] = getattr(self, stage)(unit)
-                except Exception as exc:  # one bad input must not sink the rest
-                    message = str(exc).splitlines()[0] if str(exc) else type(exc).__name__
-                    if not isinstance(exc, FlowpipeError):
-                        message = f"{type(exc).__name__}: {message}"
-                        log.debug("%s", traceback.format_exc())
-                    record["stages"][stage] = {"status": "failed", "error": message}
-                    record["status"] = "failed"
-                    record["error"] = f"{stage}: {message}"
-                    self.summary.failures[unit.stem] = f"{stage}: {message}"
-                    log.error("%s: %s failed: %s", unit.stem, stage, message)
-                    self._save()
-                    break
-                finally:
-                    self.progress.step(f"{stage} {unit.stem}")
-            record.setdefault("status", "ok")
+    def run_unit(self, unit: Unit) -> UnitResult:
+        """Run every configured stage of one unit; a failure stops that unit only."""
+        result = UnitResult(unit.stem)
+        record = result.record
+        record["inputs"] = [str(p) for p in unit.inputs]
+        sources: dict[str, Path] = {}
+        for stage in STAGE_ORDER:
+            if not self.config.has(stage):
+                continue
+            try:
+                if stage == "maps":
+                    self.maps(unit, result, sources)
+                else:
+                    sources[stage] = getattr(self, stage)(unit, result)
+            except Exception as exc:  # one bad input must not sink the rest
+                message = str(exc).splitlines()[0] if str(exc) else type(exc).__name__
+                if not isinstance(exc, FlowpipeError):
+                    message = f"{type(exc).__name__}: {message}"
+                    log.debug("%s", traceback.format_exc())
+                record["stages"][stage] = {"status": "failed", "error": message}
+                record["status"] = "failed"
+                record["error"] = f"{stage}: {message}"
+                log.error("%s: %s failed: %s", unit.stem, stage, message)
+                break
+        record.setdefault("status", "ok")
+        return result
+
+    def run(self, units: list[Unit], processes: int = 1) -> RunSummary:
+        """Run all units: in this process, or ``processes`` units at a time in a pool."""
+        steps = sum(self.config.has(s) for s in STAGE_ORDER)
+        if processes > 1 and len(units) > 1:
+            import multiprocessing
+            from concurrent.futures import ProcessPoolExecutor, as_completed
+
+            pool = ProcessPoolExecutor(
+                max_workers=min(processes, len(units)),
+                mp_context=multiprocessing.get_context("forkserver"),
+                initializer=_worker_setup, initargs=(str(self.out / LOG_NAME),))
+            with pool:
+                futures = {pool.submit(_unit_in_worker, self.config.path, self.force, unit): unit
+                           for unit in units}
+                for future in as_completed(futures):
+                    self.merge(future.result())
+                    self.progress.advance(steps, futures[future].stem)
+        else:
+            for unit in units:
+                self.merge(self.run_unit(unit))
+                self.progress.advance(steps, unit.stem)
         live = {self._rel(p) for p in self.summary.written + self.summary.up_to_date}
         self.manifest["outputs"] = {k: v for k, v in self.manifest["outputs"].items()
                                     if k in live or (self.out / k).exists()}
@@ -278,6 +321,24 @@ class Runner:
         self._save()
         self.summary.manifest = self.out / bookkeeping.MANIFEST_NAME
         return self.summary
+
+
+def _worker_setup(log_path: str) -> None:
+    """Set up a pool process: die with the parent, one core, log to the run's log file."""
+    with contextlib.suppress(OSError, AttributeError):  # Linux: end with the parent run
+        import ctypes
+
+        ctypes.CDLL("libc.so.6", use_errno=True).prctl(1, signal.SIGKILL)  # PR_SET_PDEATHSIG
+    dask.config.set({"scheduler": "synchronous", CORES_KEY: 1})
+    handler = logging.FileHandler(log_path)
+    handler.setFormatter(logging.Formatter("%(asctime)s %(levelname)s %(message)s"))
+    log.addHandler(handler)
+    log.setLevel(logging.INFO)
+
+
+def _unit_in_worker(config_path: Path, force: bool, unit: Unit) -> UnitResult:
+    config = load_config(config_path)
+    return Runner(config, force, Progress(0, quiet=True)).run_unit(unit)
 
 
 def _level_text(level: float | None) -> str:
@@ -303,8 +364,8 @@ def _versions() -> dict[str, str]:
 
 
 @contextlib.contextmanager
-def _scheduler(workers: int | None, scheduler: str | None, processes: bool) -> Iterator[None]:
-    """Dask's local scheduler with ``workers``, or a dask.distributed cluster."""
+def _scheduler(workers: int, scheduler: str | None) -> Iterator[None]:
+    """Dask's local threads (``workers`` of them, sharing ``workers`` cores), or a cluster."""
     if scheduler:
         from distributed import Client
 
@@ -317,8 +378,7 @@ def _scheduler(workers: int | None, scheduler: str | None, processes: bool) -> I
         with client:
             yield
         return
-    kind = "processes" if processes else "threads"
-    with dask.config.set(scheduler=kind, num_workers=workers or os.cpu_count() or 1):
+    with dask.config.set({"scheduler": "threads", "num_workers": workers, CORES_KEY: workers}):
         yield
 
 
@@ -356,8 +416,9 @@ def run(config_path: str | os.PathLike, *, force: bool = False, workers: int | N
     force : bool
         Redo every output, even those that are up to date.
     workers : int, optional
-        Threads (or processes, ``[run] processes = true``) of dask's local
-        scheduler; defaults to ``[run] workers`` or the number of cores.
+        Cores the run may use: with several units, that many units run at
+        once in separate processes (one core each); a single unit runs on
+        that many dask threads. Defaults to ``[run] workers`` or all cores.
     scheduler : str, optional
         Address of a dask.distributed scheduler (``tcp://HOST:PORT``); the
         same graph then runs on that cluster. Defaults to ``[run] scheduler``.
@@ -372,18 +433,21 @@ def run(config_path: str | os.PathLike, *, force: bool = False, workers: int | N
 
     config = load_config(config_path)
     settings = config.tables.get("run", {})
-    workers = workers or settings.get("workers")
+    workers = workers or settings.get("workers") or len(os.sched_getaffinity(0))
     scheduler = scheduler or settings.get("scheduler")
     units = units_of(config)
-    n_steps = len(units) * sum(config.has(s) for s in ("decompose", "advect", "maps"))
+    n_steps = len(units) * sum(config.has(s) for s in STAGE_ORDER)
     with _logging(config.output_dir, quiet), bookkeeping.RunLock(config.output_dir):
         bookkeeping.sweep_temporaries(config.output_dir)
         progress = Progress(n_steps, quiet)
         log.info("run of %s: %d unit(s), flowpipe %s", config.path, len(units), __version__)
         try:
-            with _scheduler(workers, scheduler, settings.get("processes", False)):
+            with _scheduler(workers, scheduler):
                 runner = Runner(config, force, progress)
-                summary = runner.run(units)
+                # Several units on the local machine: one process per unit at a time, so
+                # that computing, compressing and writing (serialised by the HDF5 library
+                # inside one process) all run in parallel.
+                summary = runner.run(units, processes=1 if scheduler else workers)
         finally:
             progress.close()
         if not summary.written and not summary.failures:
