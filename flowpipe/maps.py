@@ -88,6 +88,8 @@ PROJECTIONS = ("auto", "globe", "north-cap", "south-cap", "area", "lat-lon")
 
 #: Longitude span (degrees) from which a domain counts as going round the globe.
 WRAP_SPAN = 330.0
+#: Widest limited area (degrees of longitude or latitude) drawn on an azimuthal map.
+AREA_SPAN = 120.0
 #: A domain round the globe that stays poleward of this latitude is a polar cap.
 CAP_EDGE = 15.0
 #: Arrows across the map's shorter side.
@@ -290,8 +292,10 @@ def _domain_projection(lat: np.ndarray, lon: np.ndarray, name: str | ccrs.Projec
     centre_lon, span = _lon_span(lon)
     south, north = float(lat.min()), float(lat.max())
     if name == "auto":
-        if span + step < WRAP_SPAN:
+        if span + step < WRAP_SPAN and span <= AREA_SPAN and north - south <= AREA_SPAN:
             name = "area"
+        elif span + step < WRAP_SPAN:
+            name = "globe"  # too wide for one azimuthal view: the globe, centred on it
         elif south >= CAP_EDGE:
             name = "north-cap"
         elif north <= -CAP_EDGE:

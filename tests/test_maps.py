@@ -20,6 +20,7 @@ import warnings
 import cartopy
 import cartopy.crs as ccrs
 import cartopy.io
+import cf_xarray  # noqa: F401  (registers the .cf accessor)
 import matplotlib.image
 import numpy as np
 import pytest
@@ -53,6 +54,10 @@ def files(tmp_path_factory):
         "tracks": fp.write(trajectory_like(), directory / "tracks.nc"),
         "tracks-2d": fp.write(trajectory_like(vertical=False, backward=True),
                               directory / "tracks2d.nc"),
+        "real-parts": fp.write(fp.decompose(wind.isel(time=slice(0, 1))),
+                               directory / "real_parts.nc"),
+        "real-tracks": fp.write(fp.advect(fp.open_wind(GLOBAL), REAL_STARTS, hours=24,
+                                          backward=True), directory / "real_tracks.nc"),
         "directory": directory,
     }
 
@@ -65,8 +70,12 @@ FIELD_MAPS = {
     "vorticity-cap": ("cap", {"field": "vorticity", "level": 500.0}),
     "divergence-regional": ("regional", {"field": "divergence"}),
     "temperature-input": (None, {"field": "ta", "level": 500.0}),
+    "real-streamfunction": ("real-parts", {"field": "streamfunction", "level": 250.0}),
+    "real-velocity-potential": ("real-parts", {"field": "velocity_potential"}),
 }
-TRACK_MAPS = {"tracks": ("tracks", {}), "tracks-2d": ("tracks-2d", {})}
+TRACK_MAPS = {"tracks": ("tracks", {}), "tracks-2d": ("tracks-2d", {}),
+              "real-tracks": ("real-tracks", {})}
+REAL_STARTS = [(52.0, 4.0, 850.0), (45.0, -20.0, 500.0), (60.0, 20.0, 250.0)]
 
 
 @pytest.fixture(scope="module")
@@ -138,7 +147,8 @@ def test_colour_bar_spans_the_data(figures, kind):
         assert low - bar.vmin < step and bar.vmax - high < step
 
 
-@pytest.mark.parametrize("kind", ["streamfunction", "velocity-potential", "vorticity-cap"])
+@pytest.mark.parametrize("kind", ["streamfunction", "velocity-potential", "vorticity-cap",
+                                  "real-streamfunction", "real-velocity-potential"])
 def test_matching_wind_with_reference_arrow(figures, kind):
     source, options, fig = figures[kind]
     wind = {"streamfunction": "rotational", "vorticity": "rotational",
@@ -182,10 +192,11 @@ def test_projection_follows_the_domain(figures, files):
     assert isinstance(_map_axes(fig).projection, ccrs.PlateCarree)
 
 
-def test_tracks_coloured_by_pressure_with_start_points(figures, files):
-    _, _, fig = figures["tracks"]
-    with xr.open_dataset(files["tracks"]) as ds:
-        pressure = ds["pressure"].values
+@pytest.mark.parametrize("kind", ["tracks", "real-tracks"])
+def test_tracks_coloured_by_pressure_with_start_points(figures, files, kind):
+    _, _, fig = figures[kind]
+    with xr.open_dataset(files[kind]) as ds:
+        pressure = ds.cf["air_pressure"].values  # found by CF standard name (cf-xarray)
         start_lon, start_lat = ds["longitude"].values[:, 0], ds["latitude"].values[:, 0]
     bar = _colour_bar(fig)
     assert (bar.vmin, bar.vmax) == pytest.approx((np.nanmin(pressure), np.nanmax(pressure)))
