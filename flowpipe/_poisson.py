@@ -23,7 +23,45 @@ from ._staggered import (
 )
 
 
-class SeparableDirichletSolver:
+class _SeparableSolver:
+    """Batched Thomas elimination for ``(T + diag(scale) * eig_k) x_k = r_k``, all ``k`` at once.
+
+    ``T`` is tridiagonal in latitude (``lower``, ``diag``, ``upper``) and
+    ``eig_k`` the eigenvalues of the longitude operator that the subclass
+    diagonalises with a fast transform. The elimination is done here, once.
+
+    References
+    ----------
+    Thomas algorithm: Conte & de Boor (1980), "Elementary Numerical Analysis",
+    3rd ed., McGraw-Hill, section 3.3 (from memory); its use after a Fourier
+    transform in one direction: Hockney (1965), J. ACM 12, 95-113.
+    """
+
+    def __init__(self, lower: np.ndarray, diag: np.ndarray, upper: np.ndarray,
+                 scale: np.ndarray, eig: np.ndarray) -> None:
+        full = diag[:, None] + scale[:, None] * eig[None, :]
+        den = np.empty_like(full)
+        cprime = np.empty_like(full)
+        den[0] = full[0]
+        cprime[0] = upper[0] / den[0]
+        for j in range(1, full.shape[0]):
+            den[j] = full[j] - lower[j] * cprime[j - 1]
+            cprime[j] = upper[j] / den[j]
+        self._lower = lower
+        self._den = den
+        self._cprime = cprime
+
+    def _sweep(self, hat: np.ndarray) -> np.ndarray:
+        out = np.empty_like(hat)
+        out[0] = hat[0] / self._den[0]
+        for j in range(1, hat.shape[0]):
+            out[j] = (hat[j] - self._lower[j] * out[j - 1]) / self._den[j]
+        for j in range(hat.shape[0] - 2, -1, -1):
+            out[j] -= self._cprime[j] * out[j + 1]
+        return out
+
+
+class SeparableDirichletSolver(_SeparableSolver):
     """Fast Poisson solver for the five-point corner Laplacian on a whole grid.
 
     Zero values on the outer ring of corners (on the northern and southern
@@ -37,9 +75,8 @@ class SeparableDirichletSolver:
     -----
     The longitude second difference is diagonalised by a type-I discrete sine
     transform (Fourier transform when periodic); each wavenumber leaves a
-    tridiagonal system in latitude, whose Thomas elimination is done here,
-    once, for all wavenumbers. Cost per solve: two transforms and two sweeps,
-    ``O(N log N)``.
+    tridiagonal system in latitude. Cost per solve: two transforms and two
+    sweeps, ``O(N log N)``.
 
     References
     ----------
@@ -57,47 +94,69 @@ class SeparableDirichletSolver:
         lat_op, b, off = grid.laplacian_factors()
         ny1, m = grid.corner_shape
         if grid.periodic:
-            k = np.arange(m // 2 + 1)
-            eig = -4.0 * off * np.sin(np.pi * k / m) ** 2
+            eig = -4.0 * off * np.sin(np.pi * np.arange(m // 2 + 1) / m) ** 2
         else:
-            k = np.arange(1, m - 1)
-            eig = -4.0 * off * np.sin(np.pi * k / (2 * (m - 1))) ** 2
+            eig = -4.0 * off * np.sin(np.pi * np.arange(1, m - 1) / (2 * (m - 1))) ** 2
         inner = np.arange(1, ny1 - 1)
-        dense = lat_op.toarray()
-        lower = np.array([dense[j, j - 1] for j in inner])
-        upper = np.array([dense[j, j + 1] for j in inner])
-        diag = np.array([dense[j, j] for j in inner])[:, None] + b[inner, None] * eig[None, :]
-        self._lower = lower
-        # Thomas elimination: den_j = d_j - l_j * c'_{j-1}, c'_j = u_j / den_j.
-        den = np.empty_like(diag)
-        cprime = np.empty_like(diag)
-        den[0] = diag[0]
-        cprime[0] = upper[0] / den[0]
-        for j in range(1, inner.size):
-            den[j] = diag[j] - lower[j] * cprime[j - 1]
-            cprime[j] = upper[j] / den[j]
-        self._den = den
-        self._cprime = cprime
+        super().__init__(lat_op[inner, inner - 1], lat_op[inner, inner],
+                         lat_op[inner, inner + 1], b[inner], eig)
 
     def solve(self, rhs: np.ndarray) -> np.ndarray:
         """Solve ``L psi = rhs`` at the inner corners; ``psi`` is zero on the boundary ring."""
-        grid = self.grid
-        if grid.periodic:
-            hat = scipy.fft.rfft(rhs[1:-1], axis=1)
+        psi = np.zeros(self.grid.corner_shape)
+        if self.grid.periodic:
+            hat = self._sweep(scipy.fft.rfft(rhs[1:-1], axis=1))
+            psi[1:-1] = scipy.fft.irfft(hat, n=self.grid.corner_shape[1], axis=1)
         else:
-            hat = scipy.fft.dst(rhs[1:-1, 1:-1], type=1, axis=1)
-        out = np.empty_like(hat)
-        out[0] = hat[0] / self._den[0]
-        for j in range(1, hat.shape[0]):
-            out[j] = (hat[j] - self._lower[j] * out[j - 1]) / self._den[j]
-        for j in range(hat.shape[0] - 2, -1, -1):
-            out[j] -= self._cprime[j] * out[j + 1]
-        psi = np.zeros(grid.corner_shape)
-        if grid.periodic:
-            psi[1:-1] = scipy.fft.irfft(out, n=grid.corner_shape[1], axis=1)
-        else:
-            psi[1:-1, 1:-1] = scipy.fft.idst(out, type=1, axis=1)
+            hat = self._sweep(scipy.fft.dst(rhs[1:-1, 1:-1], type=1, axis=1))
+            psi[1:-1, 1:-1] = scipy.fft.idst(hat, type=1, axis=1)
         return psi
+
+
+class SeparableEnergySolver(_SeparableSolver):
+    """Fast solver for ``(E + diag(pin)) x = r``, ``E`` the gradient energy of a whole corner grid.
+
+    ``E`` is :func:`flowpipe._staggered.gradient_energy` with every corner
+    active (natural boundary conditions); ``pin`` a weight per corner row.
+
+    Parameters
+    ----------
+    grid : StaggeredGrid
+    pin : numpy.ndarray
+        Non-negative weight per corner row; positive somewhere, to remove the constants.
+
+    Notes
+    -----
+    The longitude path Laplacian is diagonalised by a type-II discrete cosine
+    transform (Fourier when periodic), leaving one tridiagonal system in
+    latitude per wavenumber.
+
+    References
+    ----------
+    Swarztrauber (1974), SIAM J. Numer. Anal. 11, 1136-1150; Strang (1999),
+    "The discrete cosine transform", SIAM Review 41, 135-147 (the DCT-II as the
+    eigenvector basis of the Neumann second difference).
+    """
+
+    def __init__(self, grid: StaggeredGrid, pin: np.ndarray) -> None:
+        self.grid = grid
+        ny1, m = grid.corner_shape
+        zonal, meridional = grid.energy_factors()
+        if grid.periodic:
+            eig = 4.0 * np.sin(np.pi * np.arange(m // 2 + 1) / m) ** 2
+        else:
+            eig = 4.0 * np.sin(np.pi * np.arange(m) / (2 * m)) ** 2
+        diag = np.concatenate([meridional, [0.0]]) + np.concatenate([[0.0], meridional]) + pin
+        off = np.concatenate([[0.0], -meridional])
+        super().__init__(off, diag, np.concatenate([-meridional, [0.0]]), zonal, eig)
+
+    def solve(self, rhs: np.ndarray) -> np.ndarray:
+        """Solve on the whole corner grid, ``rhs`` of shape ``(nlat + 1, ..., ncorner_lon)``."""
+        if self.grid.periodic:
+            hat = self._sweep(scipy.fft.rfft(rhs, axis=-1))
+            return scipy.fft.irfft(hat, n=self.grid.corner_shape[1], axis=-1)
+        hat = self._sweep(scipy.fft.dct(rhs, type=2, axis=-1, norm="ortho"))
+        return scipy.fft.idct(hat, type=2, axis=-1, norm="ortho")
 
 
 class SparseDirichletSolver:
@@ -186,8 +245,8 @@ def dirichlet_partition(grid: StaggeredGrid, u: np.ndarray, v: np.ndarray,
         ``divergence``, ``u_rotational``, ``v_rotational``, ``u_divergent``,
         ``v_divergent``, ``u_harmonic``, ``v_harmonic`` on the centres.
     diagnostics : dict of float
-        ``reconstruction_error`` (relative, area-weighted, valid points) and
-        ``harmonic_energy_share``.
+        ``reconstruction_error`` (relative, area-weighted, valid points),
+        ``harmonic_energy_share`` and ``iterations`` (0: direct solves).
 
     References
     ----------
@@ -211,8 +270,35 @@ def dirichlet_partition(grid: StaggeredGrid, u: np.ndarray, v: np.ndarray,
         "reconstruction_error": np.sqrt(_weighted_energy(grid, rest_u, rest_v) / total),
         "harmonic_energy_share": _weighted_energy(grid, fields["u_harmonic"],
                                                   fields["v_harmonic"]) / total,
+        "iterations": 0,
     }
     return fields, diagnostics
+
+
+class _SparseEnergySolver:
+    """Sparse LU of ``E + diag(pin)`` on the active corners of a masked grid (see ``gradient_energy``)."""
+
+    def __init__(self, grid: StaggeredGrid, active: np.ndarray, pin: np.ndarray) -> None:
+        energy = gradient_energy(grid, active) + sp.diags_array(pin)
+        self._lu = spla.splu(sp.csc_matrix(energy))
+
+    def solve(self, rhs: np.ndarray) -> np.ndarray:
+        """Solve for the stacked potentials, ``rhs`` of shape ``(2, n_active)``."""
+        return self._lu.solve(rhs.T).T
+
+
+class _WholeGridEnergySolver:
+    """:class:`SeparableEnergySolver` on stacked flattened potentials (every corner active)."""
+
+    def __init__(self, grid: StaggeredGrid, pin: np.ndarray) -> None:
+        self._shape = grid.corner_shape
+        self._solver = SeparableEnergySolver(grid, pin.reshape(self._shape)[:, 0])
+
+    def solve(self, rhs: np.ndarray) -> np.ndarray:
+        """Solve for the stacked potentials, ``rhs`` of shape ``(2, n_corners)``."""
+        ny1, m = self._shape
+        grids = rhs.reshape(2, ny1, m).transpose(1, 0, 2)
+        return self._solver.solve(grids).transpose(1, 0, 2).reshape(2, -1)
 
 
 class VariationalSolver:
@@ -223,14 +309,21 @@ class VariationalSolver:
     ``sum_valid A |w - W_psi psi - W_chi chi|^2 + alpha (E(psi) + E(chi))``
 
     with ``A`` the cell areas and ``E(f)`` the discrete ``integral |grad f|^2 dA``
-    over the active corners (:func:`flowpipe._staggered.gradient_energy`). The
-    misfit and ``E`` have the same units (``E(psi)`` is the energy of the wind
-    ``psi`` implies), so ``alpha`` is dimensionless: the relative misfit it
-    leaves is about ``alpha``. Among the potentials giving the same wind, the
-    term picks the pair of least total energy in the rotational and divergent
-    parts. It damps the corner checkerboard, the only grid-scale null mode of
-    box differences (it makes no wind). A term ``1e-6 alpha`` times weaker
-    penalising ``psi^2 + chi^2`` fixes the arbitrary constants.
+    over the active corners (:func:`flowpipe._staggered.gradient_energy`, plus a
+    ``1e-6`` times weaker ``integral f^2 dA`` that fixes the arbitrary
+    constants). The misfit and ``E`` have the same units (``E(psi)`` is the
+    energy of the wind ``psi`` implies), so ``alpha`` is dimensionless.
+
+    The wind operator has a null space: constants, the corner checkerboard
+    (which makes no wind) and the harmonic pairs (a harmonic flow written
+    either as a rotational or as a divergent wind). The normal equations are
+    solved by conjugate gradients preconditioned with ``E`` itself, started
+    from zero: the iterates then never leave the ``E``-orthogonal complement
+    of that null space, so the result is, among the potentials that fit the
+    wind, the pair of least total energy ``E(psi) + E(chi)`` - the limit of
+    the Tikhonov solution for small ``alpha`` - with no checkerboard and the
+    harmonic flow shared between the two parts. Iterations stop when the
+    relative misfit falls to ``tolerance``.
 
     Parameters
     ----------
@@ -239,40 +332,62 @@ class VariationalSolver:
         Boolean mask of valid wind points.
     regularisation : float
         ``alpha``.
+    tolerance : float
+        Relative (area-weighted RMS) wind misfit at which iterations stop.
+    max_iterations : int
+        Upper bound of iterations.
 
     Notes
     -----
-    The normal equations are factorised once (sparse LU) and reused.
+    What depends on the grid and mask is built once: the sparse operators and
+    the preconditioner (a separable fast solver on a complete grid, a sparse
+    LU factorisation on a masked one).
 
     References
     ----------
     Li, Chao & McWilliams (2006), "Computation of the streamfunction and
     velocity potential for limited and irregular domains", Mon. Wea. Rev.
     134, 3384-3394 (the least-squares formulation with Tikhonov
-    regularisation); Tikhonov & Arsenin (1977), "Solutions of ill-posed
-    problems", Winston (first-order regularisation).
+    regularisation); Hestenes & Stiefel (1952), "Methods of conjugate gradients
+    for solving linear systems", J. Res. Nat. Bur. Standards 49, 409-436;
+    Hansen (1998), "Rank-Deficient and Discrete Ill-Posed Problems", SIAM,
+    section 6.3 (preconditioned CG started from zero converges to the solution
+    of least seminorm).
     """
 
-    name = "sparse LU (SuperLU) of the regularised normal equations, factorised once per grid " \
-           "and mask"
+    #: The solver's description, for a complete grid (True) and a masked one (False).
+    names = {
+        True: "conjugate gradients preconditioned by a separable fast solver (cosine or Fourier "
+              "transform in longitude, tridiagonal in latitude)",
+        False: "conjugate gradients preconditioned by a sparse LU (SuperLU) factorised once per "
+               "grid and mask",
+    }
 
-    def __init__(self, grid: StaggeredGrid, valid: np.ndarray, regularisation: float) -> None:
+    def __init__(self, grid: StaggeredGrid, valid: np.ndarray, regularisation: float,
+                 tolerance: float = 1e-7, max_iterations: int = 1000) -> None:
         self.grid = grid
         self.valid = valid
+        self.regularisation = regularisation
+        self.tolerance = tolerance
+        self.max_iterations = max_iterations
         rows = np.flatnonzero(valid.ravel())
         active = active_corners(grid, valid)
         self._cols = np.flatnonzero(active.ravel())
         u_psi, v_psi, u_chi, v_chi = grid.wind_operators
         pick = [op[rows][:, self._cols] for op in (u_psi, v_psi, u_chi, v_chi)]
         self._w = sp.block_array([[pick[0], pick[2]], [pick[1], pick[3]]], format="csr")
+        self._wt = self._w.T.tocsr()
         area = np.broadcast_to(grid.centre_area, grid.shape).ravel()[rows]
         self._weight = np.concatenate([area, area])
-        normal = self._w.T @ sp.diags_array(self._weight) @ self._w
         energy = gradient_energy(grid, active)
         corner_area = np.broadcast_to(grid.corner_area, grid.corner_shape).ravel()[self._cols]
         pin = 1e-6 * self._gravest_eigenvalue(energy, corner_area) * corner_area
-        penalty = regularisation * (energy + sp.diags_array(pin))
-        self._lu = spla.splu(sp.csc_matrix(normal + sp.block_diag([penalty, penalty])))
+        self._energy = energy + sp.diags_array(pin)
+        if valid.all():
+            self._preconditioner = _WholeGridEnergySolver(grid, pin)
+        else:
+            self._preconditioner = _SparseEnergySolver(grid, active, pin)
+        self.name = self.names[bool(valid.all())]
 
     def _gravest_eigenvalue(self, energy: sp.csr_array, corner_area: np.ndarray) -> float:
         """Rayleigh quotient ``E(f) / integral f^2 dA`` of the domain's gravest sine mode."""
@@ -284,17 +399,43 @@ class VariationalSolver:
         x = mode.ravel()[self._cols]
         return float(x @ (energy @ x) / (x @ (corner_area * x)))
 
-    def solve(self, u: np.ndarray, v: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-        """Corner streamfunction and velocity potential for a wind on this solver's mask."""
+    def _precondition(self, r: np.ndarray) -> np.ndarray:
+        return self._preconditioner.solve(r.reshape(2, -1)).ravel()
+
+    def _apply_energy(self, x: np.ndarray) -> np.ndarray:
+        return (self._energy @ x.reshape(2, -1).T).T.ravel()
+
+    def solve(self, u: np.ndarray, v: np.ndarray) -> tuple[np.ndarray, np.ndarray, int]:
+        """Corner streamfunction and velocity potential, and the iterations taken."""
         rows = self.valid.ravel()
         w = np.concatenate([u.ravel()[rows], v.ravel()[rows]])
-        x = self._lu.solve(self._w.T @ (self._weight * w))
+        misfit = w.copy()
+        target = self.tolerance**2 * float(w @ (self._weight * w))
+        residual = self._wt @ (self._weight * w)
+        x = np.zeros_like(residual)
+        z = self._precondition(residual)
+        direction = z.copy()
+        rz = float(residual @ z)
+        iterations = 0
+        while iterations < self.max_iterations and float(misfit @ (self._weight * misfit)) > target:
+            wind = self._w @ direction
+            image = self._wt @ (self._weight * wind) + self.regularisation * self._apply_energy(
+                direction)
+            step = rz / float(direction @ image)
+            x += step * direction
+            residual -= step * image
+            misfit -= step * wind
+            z = self._precondition(residual)
+            rz_new = float(residual @ z)
+            direction = z + (rz_new / rz) * direction
+            rz = rz_new
+            iterations += 1
         n = self._cols.size
         psi = np.zeros(self.grid.corner_shape)
         chi = np.zeros(self.grid.corner_shape)
         psi.ravel()[self._cols] = x[:n]
         chi.ravel()[self._cols] = x[n:]
-        return psi, chi
+        return psi, chi, iterations
 
 
 def variational_partition(grid: StaggeredGrid, u: np.ndarray, v: np.ndarray,
@@ -320,13 +461,13 @@ def variational_partition(grid: StaggeredGrid, u: np.ndarray, v: np.ndarray,
     fields : dict of numpy.ndarray
         As :func:`dirichlet_partition`, without the harmonic wind.
     diagnostics : dict of float
-        ``reconstruction_error`` and ``harmonic_energy_share``.
+        ``reconstruction_error``, ``harmonic_energy_share`` and ``iterations``.
 
     References
     ----------
     Li, Chao & McWilliams (2006), Mon. Wea. Rev. 134, 3384-3394.
     """
-    psi, chi = solver.solve(u, v)
+    psi, chi, iterations = solver.solve(u, v)
     fields = _centre_winds(grid, psi, chi, solver.valid)
     reference, reference_diagnostics = dirichlet_partition(grid, u, v, harmonic_solver)
     fields["vorticity"] = reference["vorticity"]
@@ -337,5 +478,6 @@ def variational_partition(grid: StaggeredGrid, u: np.ndarray, v: np.ndarray,
         "reconstruction_error": np.sqrt(_weighted_energy(grid, rest_u, rest_v)
                                         / _weighted_energy(grid, u, v)),
         "harmonic_energy_share": reference_diagnostics["harmonic_energy_share"],
+        "iterations": iterations,
     }
     return fields, diagnostics

@@ -152,6 +152,22 @@ class StaggeredGrid:
         mean_lon, _ = self._lon_average_and_difference()
         return sp.kron(mean_lat, mean_lon, format="csr")
 
+    def energy_factors(self) -> tuple[np.ndarray, np.ndarray]:
+        """Edge weights of the gradient energy: zonal edges per corner row, meridional per centre row.
+
+        A zonal edge of corner row ``J`` contributes ``zonal[J] * (f[J, I+1] - f[J, I])^2``,
+        a meridional edge across centre row ``j`` ``meridional[j] * (f[j+1, I] - f[j, I])^2``:
+        ``|grad f|^2`` times the area the edge stands for. The pole-most corner rows may lie
+        on a pole; their zonal edges get the metric of half the outer centre row's cosine, so
+        that no weight is infinite.
+        """
+        a = self.radius
+        floor = 0.5 * np.cos(self.lat[[0, -1]]).min()
+        cos_c = np.maximum(np.cos(self.corner_lat), floor)
+        zonal = self.corner_area[:, 0] / (a * cos_c * self.dlon) ** 2
+        meridional = self.centre_area[:, 0] / (a * np.diff(self.corner_lat)) ** 2
+        return zonal, meridional
+
     def laplacian_factors(self) -> tuple[sp.csr_array, np.ndarray, np.ndarray]:
         """Separable pieces of the five-point corner Laplacian.
 
@@ -209,6 +225,9 @@ def gradient_energy(grid: StaggeredGrid, active: np.ndarray) -> sp.csr_array:
     Built from the compact differences along the edges joining two active
     corners (no edge reaches outside the domain, so no boundary value is
     implied). Its null space is the constants; it is large on the checkerboard.
+    On a complete grid it is ``kron(diag(zonal), P) + kron(Q, I)`` with ``P``
+    the path (or cycle, when periodic) graph Laplacian in longitude and ``Q``
+    the weighted one in latitude, from :meth:`StaggeredGrid.energy_factors`.
 
     Parameters
     ----------
@@ -228,32 +247,23 @@ def gradient_energy(grid: StaggeredGrid, active: np.ndarray) -> sp.csr_array:
     Equations", 2nd ed., Cambridge, section 6.3 (from memory).
     """
     ny1, m = grid.corner_shape
-    a = grid.radius
-    # The pole-most corner rows may lie on a pole; their zonal edges are then given the
-    # metric of the nearest centre row, so that no weight is infinite.
-    cos_c = np.maximum(np.cos(grid.corner_lat), 0.5 * np.cos(grid.lat[[0, -1]]).min())
-    n_lon_edges = m if grid.periodic else m - 1
-    lon_diff = sp.csr_array((np.tile([-1.0, 1.0], n_lon_edges),
-                             (np.repeat(np.arange(n_lon_edges), 2),
-                              np.stack([np.arange(n_lon_edges),
-                                        (np.arange(n_lon_edges) + 1) % m], axis=1).ravel())),
-                            shape=(n_lon_edges, m))
-    lat_diff = sp.csr_array((np.tile([-1.0, 1.0], ny1 - 1),
-                             (np.repeat(np.arange(ny1 - 1), 2),
-                              np.stack([np.arange(ny1 - 1), np.arange(1, ny1)], axis=1).ravel())),
-                            shape=(ny1 - 1, ny1))
-    corner_area = grid.corner_area[:, 0]
-    lon_weight = np.repeat(corner_area / (a * cos_c * grid.dlon) ** 2, n_lon_edges)
-    step = np.diff(grid.corner_lat)
-    lat_weight = np.repeat(grid.centre_area[:, 0] / (a * step) ** 2, m)
+    lon_diff = _difference(m, grid.periodic)
+    lat_diff = _difference(ny1, False)
+    zonal, meridional = grid.energy_factors()
     diff = sp.vstack([sp.kron(sp.eye_array(ny1), lon_diff), sp.kron(lat_diff, sp.eye_array(m))],
                      format="csr")
-    weight = np.concatenate([lon_weight, lat_weight])
-    flat = active.ravel().astype(float)
-    inside = (abs(diff) @ flat) == 2
-    cols = np.flatnonzero(active.ravel())
-    edges = diff[np.flatnonzero(inside)][:, cols]
+    weight = np.concatenate([np.repeat(zonal, lon_diff.shape[0]), np.repeat(meridional, m)])
+    inside = (abs(diff) @ active.ravel().astype(float)) == 2
+    edges = diff[np.flatnonzero(inside)][:, np.flatnonzero(active.ravel())]
     return (edges.T @ sp.diags_array(weight[inside]) @ edges).tocsr()
+
+
+def _difference(n: int, periodic: bool) -> sp.csr_array:
+    """Differences between neighbouring nodes of a path (or a cycle) of ``n`` nodes."""
+    edges = n if periodic else n - 1
+    rows = np.repeat(np.arange(edges), 2)
+    cols = np.stack([np.arange(edges), (np.arange(edges) + 1) % n], axis=1).ravel()
+    return sp.csr_array((np.tile([-1.0, 1.0], edges), (rows, cols)), shape=(edges, n))
 
 
 def interior_corners(grid: StaggeredGrid, valid: np.ndarray) -> np.ndarray:

@@ -60,11 +60,13 @@ from .errors import InputError, UsageError
 from .grid import describe_grid
 
 SCHEMES = ("variational", "dirichlet")
-#: Default dimensionless Tikhonov weight of the variational scheme: small
-#: enough that the misfit it causes (about this, relative) stays far below
-#: the truncation error, large enough to keep the normal equations well
-#: conditioned in double precision on grids up to ~1000 x 1000.
-DEFAULT_REGULARISATION = 1e-8
+#: Default dimensionless Tikhonov weight of the variational scheme (the weight of
+#: the parts' gradient energy against the wind misfit): the misfit it leaves,
+#: about this much relative, is far below the iteration tolerance.
+DEFAULT_REGULARISATION = 1e-10
+#: Default relative RMS wind misfit at which the variational iterations stop.
+DEFAULT_TOLERANCE = 1e-7
+DEFAULT_MAX_ITERATIONS = 1000
 MINIMUM_SIZE = 5
 #: Factorisations kept in memory (each grid and mask is one entry).
 CACHE_SIZE = 8
@@ -76,7 +78,17 @@ FIELDS = {
                   "u_rotational", "v_rotational", "u_divergent", "v_divergent",
                   "u_harmonic", "v_harmonic"),
 }
-DIAGNOSTICS = ("reconstruction_error", "harmonic_energy_share")
+DIAGNOSTICS = ("reconstruction_error", "harmonic_energy_share", "iterations")
+DIAGNOSTIC_ATTRS = {
+    "reconstruction_error": {
+        "long_name": "relative area-weighted RMS misfit of the reconstructed wind at valid points",
+        "units": "1"},
+    "harmonic_energy_share": {
+        "long_name": "share of the wind's kinetic energy in the harmonic part of the Dirichlet "
+                     "partition (the part the boundary, not the data, decides)",
+        "units": "1"},
+    "iterations": {"long_name": "solver iterations (0 for direct solves)", "units": "1"},
+}
 
 _cache: OrderedDict[tuple, Any] = OrderedDict()
 _cache_lock = threading.Lock()
@@ -100,7 +112,8 @@ def _grid(lat: np.ndarray, lon: np.ndarray, periodic: bool) -> StaggeredGrid:
                                               periodic))
 
 
-def _solvers(grid: StaggeredGrid, valid: np.ndarray, scheme: str, regularisation: float
+def _solvers(grid: StaggeredGrid, valid: np.ndarray, scheme: str, regularisation: float,
+             tolerance: float, max_iterations: int
              ) -> tuple[SeparableDirichletSolver | SparseDirichletSolver,
                         VariationalSolver | None]:
     mask_key = np.packbits(valid).tobytes()
@@ -108,14 +121,16 @@ def _solvers(grid: StaggeredGrid, valid: np.ndarray, scheme: str, regularisation
     dirichlet = _cached(("dirichlet", *grid_key, mask_key), lambda: dirichlet_solver(grid, valid))
     if scheme == "dirichlet":
         return dirichlet, None
-    variational = _cached(("variational", *grid_key, mask_key, regularisation),
-                          lambda: VariationalSolver(grid, valid, regularisation))
+    variational = _cached(("variational", *grid_key, mask_key, regularisation, tolerance,
+                           max_iterations),
+                          lambda: VariationalSolver(grid, valid, regularisation, tolerance,
+                                                    max_iterations))
     return dirichlet, variational
 
 
 def _solve_slabs(u: np.ndarray, v: np.ndarray, *, lat: np.ndarray, lon: np.ndarray,
-                 periodic: bool, scheme: str, regularisation: float
-                 ) -> tuple[np.ndarray, np.ndarray]:
+                 periodic: bool, scheme: str, regularisation: float, tolerance: float,
+                 max_iterations: int) -> tuple[np.ndarray, np.ndarray]:
     """Decompose every latitude-longitude slab of ``u``, ``v`` (shape ``(..., nlat, nlon)``)."""
     grid = _grid(lat, lon, periodic)
     names = FIELDS[scheme]
@@ -127,7 +142,8 @@ def _solve_slabs(u: np.ndarray, v: np.ndarray, *, lat: np.ndarray, lon: np.ndarr
         valid = np.isfinite(us) & np.isfinite(vs)
         us = np.where(valid, us, np.nan)
         vs = np.where(valid, vs, np.nan)
-        dirichlet, variational = _solvers(grid, valid, scheme, regularisation)
+        dirichlet, variational = _solvers(grid, valid, scheme, regularisation, tolerance,
+                                          max_iterations)
         if variational is None:
             parts, quality = dirichlet_partition(grid, us, vs, dirichlet)
         else:
@@ -245,7 +261,9 @@ def decompose_regional(wind: xr.Dataset, scheme: str = "variational", periodic: 
         Dimensionless Tikhonov weight of the ``variational`` scheme (default
         :data:`DEFAULT_REGULARISATION`). Not used by ``dirichlet``.
     **options
-        None are defined yet; any given is an error.
+        ``tolerance`` (default :data:`DEFAULT_TOLERANCE`): relative RMS wind
+        misfit at which the variational iterations stop; ``max_iterations``
+        (default :data:`DEFAULT_MAX_ITERATIONS`). Any other is an error.
 
     Returns
     -------
@@ -278,9 +296,16 @@ def decompose_regional(wind: xr.Dataset, scheme: str = "variational", periodic: 
     """
     if scheme not in SCHEMES:
         raise UsageError(f"unknown regional scheme {scheme!r}; use one of {', '.join(SCHEMES)}")
-    if options:
-        raise UsageError(f"unknown regional option(s) {', '.join(sorted(options))}; the regional "
-                         "decomposition takes scheme, periodic and regularisation")
+    unknown = sorted(set(options) - {"tolerance", "max_iterations"})
+    if unknown:
+        raise UsageError(f"unknown regional option(s) {', '.join(unknown)}; the regional "
+                         "decomposition takes scheme, periodic, regularisation, tolerance and "
+                         "max_iterations")
+    tolerance = float(options.get("tolerance", DEFAULT_TOLERANCE))
+    max_iterations = int(options.get("max_iterations", DEFAULT_MAX_ITERATIONS))
+    if not 0 < tolerance < 1 or max_iterations < 1:
+        raise UsageError(f"tolerance must lie in (0, 1) and max_iterations be at least 1; got "
+                         f"{tolerance} and {max_iterations}")
     if scheme == "dirichlet":
         if regularisation:
             raise UsageError("regularisation applies to the variational scheme only; "
@@ -302,7 +327,7 @@ def decompose_regional(wind: xr.Dataset, scheme: str = "variational", periodic: 
         seen.add(key)
         _check_mask(valid, _slab_label(u, flat_index), lat, lon, periodic)
         if scheme == "variational":
-            solver_names.add(VariationalSolver.name)
+            solver_names.add(VariationalSolver.names[bool(valid.all())])
         else:
             solver_names.add(SeparableDirichletSolver.name if valid.all()
                              else SparseDirichletSolver.name)
@@ -319,18 +344,14 @@ def decompose_regional(wind: xr.Dataset, scheme: str = "variational", periodic: 
         dask_gufunc_kwargs={"output_sizes": {"component": len(names),
                                              "diagnostic": len(DIAGNOSTICS)}},
         kwargs={"lat": lat, "lon": lon, "periodic": periodic, "scheme": scheme,
-                "regularisation": float(regularisation)},
+                "regularisation": float(regularisation), "tolerance": tolerance,
+                "max_iterations": max_iterations},
         keep_attrs=False,
     )
     out = xr.Dataset({name: fields.isel(component=k, drop=True).assign_attrs(variable_attrs(name))
                       for k, name in enumerate(names)})
-    out["reconstruction_error"] = quality.isel(diagnostic=0, drop=True).assign_attrs(
-        long_name="relative area-weighted misfit of the reconstructed wind at valid points",
-        units="1")
-    out["harmonic_energy_share"] = quality.isel(diagnostic=1, drop=True).assign_attrs(
-        long_name="share of the wind's kinetic energy in the harmonic part of the Dirichlet "
-                  "partition (the part the boundary, not the data, decides)",
-        units="1")
+    for k, name in enumerate(DIAGNOSTICS):
+        out[name] = quality.isel(diagnostic=k, drop=True).assign_attrs(DIAGNOSTIC_ATTRS[name])
     out.attrs = dict(wind.attrs)
     out.attrs.update(
         method="regional",
@@ -339,7 +360,9 @@ def decompose_regional(wind: xr.Dataset, scheme: str = "variational", periodic: 
         periodic=int(periodic),
         solver="; ".join(sorted(solver_names)),
     )
+    if scheme == "variational":
+        out.attrs.update(tolerance=tolerance, max_iterations=max_iterations)
     if quality.chunks is None:
-        out.attrs["reconstruction_error"] = float(np.nanmax(quality.values[..., 0]))
-        out.attrs["harmonic_energy_share"] = float(np.nanmax(quality.values[..., 1]))
+        for k, name in enumerate(DIAGNOSTICS):
+            out.attrs[name] = float(np.nanmax(quality.values[..., k]))
     return out

@@ -415,7 +415,9 @@ def test_bad_options_are_usage_errors():
     with pytest.raises(UsageError, match="periodic=True"):
         decompose_regional(wind, periodic=True)
     with pytest.raises(UsageError, match="unknown regional option"):
-        decompose_regional(wind, tolerance=1e-3)
+        decompose_regional(wind, truncation=42)
+    with pytest.raises(UsageError, match="regularisation applies to the variational"):
+        decompose_regional(wind, scheme="dirichlet", regularisation=1e-3)
 
 
 # --- laziness and reuse ------------------------------------------------------------------------
