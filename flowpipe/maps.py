@@ -464,12 +464,13 @@ def _field_map(fig: Figure, ds: xr.Dataset, label: str, field: str | None, level
     ax.set_ylim(*limits[1])
     units = str(da.attrs.get("units", ""))
     bar = fig.colorbar(contours, ax=ax, shrink=0.85, pad=0.02)
-    long_name = str(da.attrs.get("long_name", field))
+    described = da.attrs.get("long_name") or str(da.attrs.get("standard_name", "")).replace("_", " ")
+    long_name = str(described or field)
     bar.set_label(long_name + (f" ({_units_text(units)})" if units else ""))
     bar.formatter.set_powerlimits((-3, 4))
     bar.update_ticks()
 
-    title = long_name[:1].upper() + long_name[1:]
+    title = long_name[:1].upper() + long_name[1:] if described else field
     wind = _wind_names(ds, field)
     if wind is not None:
         kind = wind[0][2:] if wind[0].startswith("u_") else ""
