@@ -112,3 +112,21 @@ def test_bad_input_exits_2_and_writes_nothing(tmp_path, capsys, files, options, 
     assert err.startswith("flowpipe: error:") and words in err
     assert "Traceback" not in err
     assert not out.exists() and not list(tmp_path.glob("out/.*"))
+
+
+def test_a_series_of_files_gives_the_same_trajectories_as_one_file(tmp_path):
+    # Splitting a series into files must not change the result (the contract: several
+    # files are combined along time and read lazily; common practice).
+    with xr.open_dataset(GLOBAL) as ds:
+        parts = [tmp_path / f"part{i}.nc" for i in range(3)]
+        for i, part in enumerate(parts):
+            ds.isel(time=slice(3 * i, 3 * i + 3)).load().to_netcdf(part)
+    one, many = tmp_path / "one.nc", tmp_path / "many.nc"
+    common = ["--start", "52,4,500", "--start=-33,151,250", "--hours", "42", "--backward",
+              "--vertical", "omega", "--sample", "ta"]
+    assert main(["advect", GLOBAL, "-o", str(one), *common]) == 0
+    assert main(["advect", *map(str, parts), "-o", str(many), *common]) == 0
+    with xr.open_dataset(one) as a, xr.open_dataset(many) as b:
+        for name in ("latitude", "longitude", "air_pressure", "ta"):
+            np.testing.assert_array_equal(a[name].values, b[name].values)
+        assert np.isfinite(a["latitude"].values).all()

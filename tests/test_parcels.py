@@ -318,3 +318,17 @@ def test_start_outside_vertical_range_names_the_row():
     wind = layered_wind([850, 500, 250], "pressure", lambda p: 0 * p)
     with pytest.raises(InputError, match=r"starts row 2: level 1000"):
         advect(wind, [(0.0, 0.0, 500.0), (0.0, 0.0, 1000.0)], 6.0)
+
+
+def test_non_standard_calendar_start_times():
+    # CF 1.11 section 4.4.1 (calendars): 30 February exists in the 360_day calendar; a
+    # start then at 06:00, followed for 18 h, ends on 1 March 00:00 of that calendar.
+    wind = regional_wind()
+    wind = wind.assign_coords(time=xr.date_range("2000-02-30", periods=2, freq="24h",
+                                                 calendar="360_day", use_cftime=True))
+    table = pd.DataFrame({"latitude": [45.0], "longitude": [-15.0],
+                          "time": ["2000-02-30T06:00"]})
+    tracks = advect(wind, table, 18.0)
+    end = tracks["time"].values[0, -1]
+    assert (end.calendar, end.month, end.day, end.hour) == ("360_day", 3, 1, 0)
+    assert tracks["time"].encoding["calendar"] == "360_day"

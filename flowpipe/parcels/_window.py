@@ -139,7 +139,6 @@ class SliceWindow:
         shape = (slots, grid.levels.size, grid.latitude.size, grid.longitude.size, ncomp)
         self.field = np.empty(shape)
         self.held: list[int | None] = [None] * slots
-        self.loads = 0
 
     def _prepare(self, index: int) -> np.ndarray:
         wanted = (("u", "v") if self.wind_components else ()) + self.names
@@ -170,6 +169,5 @@ class SliceWindow:
             slot = next(s for s, held in enumerate(self.held) if held not in needed)
             self.field[slot] = self._prepare(index)
             self.held[slot] = index
-            self.loads += 1
             result[index] = slot
         return [result[i] for i in indices]
