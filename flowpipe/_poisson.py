@@ -275,6 +275,11 @@ def dirichlet_partition(grid: StaggeredGrid, u: np.ndarray, v: np.ndarray,
     return fields, diagnostics
 
 
+def _dot(a: np.ndarray, b: np.ndarray) -> float:
+    """Inner product without BLAS: a threaded BLAS dot stalls on a busy machine."""
+    return float(np.einsum("i,i->", a, b))
+
+
 class _SparseEnergySolver:
     """Sparse LU of ``E + diag(pin)`` on the active corners of a masked grid (see ``gradient_energy``)."""
 
@@ -397,7 +402,7 @@ class VariationalSolver:
         if not self.grid.periodic:
             mode = mode * np.sin(np.pi * (ii + 0.5) / m)
         x = mode.ravel()[self._cols]
-        return float(x @ (energy @ x) / (x @ (corner_area * x)))
+        return _dot(x, energy @ x) / _dot(x, corner_area * x)
 
     def _precondition(self, r: np.ndarray) -> np.ndarray:
         return self._preconditioner.solve(r.reshape(2, -1)).ravel()
@@ -410,23 +415,23 @@ class VariationalSolver:
         rows = self.valid.ravel()
         w = np.concatenate([u.ravel()[rows], v.ravel()[rows]])
         misfit = w.copy()
-        target = self.tolerance**2 * float(w @ (self._weight * w))
+        target = self.tolerance**2 * _dot(w, self._weight * w)
         residual = self._wt @ (self._weight * w)
         x = np.zeros_like(residual)
         z = self._precondition(residual)
         direction = z.copy()
-        rz = float(residual @ z)
+        rz = _dot(residual, z)
         iterations = 0
-        while iterations < self.max_iterations and float(misfit @ (self._weight * misfit)) > target:
+        while iterations < self.max_iterations and _dot(misfit, self._weight * misfit) > target:
             wind = self._w @ direction
             image = self._wt @ (self._weight * wind) + self.regularisation * self._apply_energy(
                 direction)
-            step = rz / float(direction @ image)
+            step = rz / _dot(direction, image)
             x += step * direction
             residual -= step * image
             misfit -= step * wind
             z = self._precondition(residual)
-            rz_new = float(residual @ z)
+            rz_new = _dot(residual, z)
             direction = z + (rz_new / rz) * direction
             rz = rz_new
             iterations += 1
