@@ -8,10 +8,12 @@ irrotational, carries what crosses the boundary. Two schemes assign it:
 
 ``variational`` (default)
     Streamfunction and velocity potential fitted by least squares to the wind
-    at the valid points only, with a small Tikhonov term choosing the
-    least-norm pair (Li, Chao & McWilliams 2006). Works on irregular domains
-    and around masked points; the rotational and divergent winds add up to
-    the input wind to about ``regularisation``.
+    at the valid points only, with a small first-order Tikhonov term (the
+    gradient energy of the two potentials, weight ``regularisation``; Li,
+    Chao & McWilliams 2006). Among the pairs that fit the wind it picks the
+    one of least total energy in the two parts, which shares the harmonic
+    flow between them. Works on irregular domains and around masked points;
+    the parts add up to the wind to the iteration ``tolerance``.
 ``dirichlet``
     ``lap psi = zeta`` and ``lap chi = delta`` with zero boundary values; what
     they leave is the harmonic wind, returned as ``u_harmonic``/``v_harmonic``
@@ -24,14 +26,18 @@ circulation and outflow around the four grid points that surround it, and the
 Laplacian is the compact five-point one on the corners. There are no
 checkerboard modes in any solution: the Dirichlet Laplacian is non-singular,
 and the variational fit's only grid-scale null mode (the corner checkerboard,
-which produces no wind) is removed exactly by its least-norm term.
+which produces no wind) carries the largest gradient energy, so the
+least-energy pair has none.
 
-Speed: everything that depends only on the grid and the mask is factorised
-once and cached (keyed by grid, mask, scheme and regularisation), then reused
-for every level and time. A complete grid under ``dirichlet`` uses a separable
-fast Poisson solver (sine or Fourier transform in longitude, tridiagonal in
-latitude); masked domains and the variational fit use a sparse LU
-factorisation. The work is lazy: one dask task per latitude-longitude slab.
+Speed: everything that depends only on the grid and the mask is built once
+and cached (keyed by grid, mask, scheme and solver settings), then reused for
+every level and time. On a complete grid, ``dirichlet`` is a separable fast
+Poisson solver (sine or Fourier transform in longitude, tridiagonal in
+latitude) and ``variational`` runs conjugate gradients preconditioned by the
+same kind of separable solver (cosine or Fourier transform); on a masked
+grid the Dirichlet Laplacian and the preconditioner are sparse LU
+factorisations. The work is lazy - one dask task per latitude-longitude slab
+- except for the masks, which are read once up front to check them.
 """
 
 from __future__ import annotations
@@ -68,6 +74,8 @@ DEFAULT_REGULARISATION = 1e-10
 DEFAULT_TOLERANCE = 1e-7
 DEFAULT_MAX_ITERATIONS = 1000
 MINIMUM_SIZE = 5
+#: Latitudes within this many degrees of +/-90 are rows on a pole.
+POLE_TOLERANCE = 1e-6
 #: Factorisations kept in memory (each grid and mask is one entry).
 CACHE_SIZE = 8
 
@@ -188,7 +196,7 @@ def _pieces(valid: np.ndarray, periodic: bool) -> tuple[int, np.ndarray]:
 
 
 def _check_mask(valid: np.ndarray, where: str, lat: np.ndarray, lon: np.ndarray,
-                periodic: bool) -> None:
+                grid: StaggeredGrid) -> None:
     count = int(valid.sum())
     if count == 0:
         raise InputError(f"u/v: every point of {where} is missing; drop it or fill it")
@@ -199,7 +207,7 @@ def _check_mask(valid: np.ndarray, where: str, lat: np.ndarray, lon: np.ndarray,
             f"u/v: {where} has {count} valid points in {rows} rows and {cols} columns; the "
             f"regional decomposition needs at least {MINIMUM_SIZE}x{MINIMUM_SIZE}: use a larger "
             "domain")
-    npieces, labels = _pieces(valid, periodic)
+    npieces, labels = _pieces(valid, grid.periodic)
     if npieces > 1:
         described = []
         for label in np.unique(labels[labels >= 0]):
@@ -210,7 +218,7 @@ def _check_mask(valid: np.ndarray, where: str, lat: np.ndarray, lon: np.ndarray,
             f"u/v: the valid points of {where} form {npieces} separate pieces ("
             + "; ".join(described) + "); the regional decomposition needs one connected "
             "domain: cut the grid to one piece or fill the gaps")
-    if not interior_corners(StaggeredGrid(lat, lon, 1.0, periodic), valid).any():
+    if not interior_corners(grid, valid).any():
         raise InputError(f"u/v: {where} has no 2x2 block of valid points; use a larger domain")
 
 
@@ -229,9 +237,6 @@ def _check_grid(wind: xr.Dataset, periodic: bool) -> tuple[np.ndarray, np.ndarra
     if np.any(np.diff(lat) <= 0) or np.any(np.diff(lon) <= 0):
         raise InputError("latitude and longitude must be ascending, as flowpipe.open_wind "
                          "returns them")
-    if np.max(np.abs(lat)) >= 90.0 - 1e-6:
-        raise InputError("the grid has rows on the poles, where the eastward wind is undefined; "
-                         "drop the pole rows before a regional decomposition")
     steps = np.diff(lon)
     if np.max(np.abs(steps - steps.mean())) > 1e-6 * max(1.0, abs(steps.mean())) + 1e-9:
         raise InputError("longitudes are not equally spaced; regrid to a regular "
@@ -273,15 +278,22 @@ def decompose_regional(wind: xr.Dataset, scheme: str = "variational", periodic: 
         ``v_rotational``, ``u_divergent``, ``v_divergent`` and, for
         ``dirichlet``, ``u_harmonic``, ``v_harmonic``, on the wind's grid and
         dimensions, NaN where the wind is missing; per-slab quality figures
-        ``reconstruction_error`` and ``harmonic_energy_share`` (area-weighted,
-        relative); attributes ``scheme``, ``regularisation``, ``solver`` and,
-        when the result is in memory, the worst ``reconstruction_error`` and
-        largest ``harmonic_energy_share``. Lazy when the wind is dask-backed.
+        ``reconstruction_error``, ``harmonic_energy_share`` (area-weighted,
+        relative; for ``variational`` the share of the harmonic part of the
+        Dirichlet partition, i.e. the part the fit had to assign) and
+        ``iterations``; attributes ``method`` (``"regional"``), ``scheme``,
+        ``regularisation``, ``periodic``, ``solver`` (and ``tolerance``,
+        ``max_iterations`` for ``variational``) and, when the result is in
+        memory, the largest of each per-slab figure under the same names (a
+        dask-backed result carries them only as the lazy variables: take their
+        maximum when writing). Rows on a pole, where wind directions are
+        undefined, are returned missing (attribute ``pole_rows``). Lazy when
+        the wind is dask-backed.
 
     Raises
     ------
     flowpipe.errors.InputError
-        A grid under 5x5 points, rows on the poles, uneven longitudes, a slab
+        A grid under 5x5 points, uneven longitudes, a slab
         with every point missing, with under 5x5 valid points, or whose valid
         points form disconnected pieces (the message names them).
     flowpipe.errors.UsageError
@@ -315,17 +327,27 @@ def decompose_regional(wind: xr.Dataset, scheme: str = "variational", periodic: 
         regularisation = DEFAULT_REGULARISATION
     elif not regularisation > 0:
         raise UsageError(f"regularisation must be positive, got {regularisation}")
+    on_pole = np.abs(wind["latitude"].values) >= 90.0 - POLE_TOLERANCE
+    if on_pole.any():
+        # The eastward and northward directions are undefined on a pole; solve without
+        # those rows and return them missing.
+        inner = decompose_regional(wind.isel(latitude=np.flatnonzero(~on_pole)), scheme,
+                                   periodic, regularisation, **options)
+        out = inner.reindex(latitude=wind["latitude"])
+        out.attrs["pole_rows"] = "missing: wind directions are undefined on a pole"
+        return out
     lat, lon = _check_grid(wind, periodic)
     u, v = wind["u"], wind["v"]
     valid_all = np.asarray((u.notnull() & v.notnull()).values).reshape((-1,) + u.shape[-2:])
     solver_names = set()
+    grid = _grid(lat, lon, periodic)
     seen: set[bytes] = set()
     for flat_index, valid in enumerate(valid_all):
         key = np.packbits(valid).tobytes()
         if key in seen:
             continue
         seen.add(key)
-        _check_mask(valid, _slab_label(u, flat_index), lat, lon, periodic)
+        _check_mask(valid, _slab_label(u, flat_index), lat, lon, grid)
         if scheme == "variational":
             solver_names.add(VariationalSolver.names[bool(valid.all())])
         else:

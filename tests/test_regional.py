@@ -360,6 +360,22 @@ def test_global_level_with_a_block_below_ground_is_periodic():
     assert relative_max(np.where(near, out.vorticity.values - zeta, np.nan), zeta) < 0.02
 
 
+def test_rows_on_the_poles_are_returned_missing():
+    # On a pole the eastward and northward directions are undefined (every meridian meets
+    # there; common practice), so a grid with pole rows is solved without them.
+    lat = np.arange(-90.0, 90.1, 4.5)
+    lon = np.arange(0.0, 360.0, 4.5)
+    u_rot, v_rot, u_div, v_div, _, _ = rossby_haurwitz_case(lat, lon)
+    u, v = u_rot + u_div, v_rot + v_div
+    ground = (lat[:, None] > 20) & (lat[:, None] < 45) & (lon[None, :] > 80) & (lon[None, :] < 120)
+    u_m, v_m = np.where(ground, np.nan, u), np.where(ground, np.nan, v)
+    out = decompose_regional(as_wind(lat, lon, u_m, v_m), periodic=True)
+    assert np.all(np.isnan(out.u_rotational.values[[0, -1]]))
+    inner = slice(1, -1)
+    assert reconstruction_error(out.isel(latitude=inner), u_m[inner], v_m[inner]) <= 1e-6
+    assert np.all(np.isnan(out.streamfunction.values[ground]))
+
+
 def test_periodic_grid_is_connected_across_the_date_line():
     # A strip of missing meridians cuts a limited-area grid in two but not a periodic one
     # (the longitudes wrap around; common practice).
