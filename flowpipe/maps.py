@@ -45,7 +45,6 @@ from matplotlib import patheffects  # noqa: E402
 from matplotlib.collections import LineCollection  # noqa: E402
 from matplotlib.colors import Normalize  # noqa: E402
 from matplotlib.figure import Figure  # noqa: E402
-from matplotlib.layout_engine import ConstrainedLayoutEngine  # noqa: E402
 from matplotlib.path import Path as MplPath  # noqa: E402
 from matplotlib.ticker import MaxNLocator  # noqa: E402
 
@@ -88,6 +87,13 @@ PROJECTIONS = ("auto", "globe", "north-cap", "south-cap", "area", "lat-lon")
 
 #: Longitude span (degrees) from which a domain counts as going round the globe.
 WRAP_SPAN = 330.0
+#: Where the map goes in the figure (left, bottom, width, height, figure fraction):
+#: room for gridline labels on the left and below, the colour bar on the right,
+#: the title above and the footer below.
+MAP_BOX = (0.07, 0.06, 0.78, 0.84)
+#: The colour bar, in the map's own axes fraction (it follows the map's drawn size).
+COLOUR_BAR_BOX = (1.03, 0.0, 0.025, 1.0)
+
 #: Widest limited area (degrees of longitude or latitude) drawn on an azimuthal map.
 AREA_SPAN = 120.0
 #: A domain round the globe that stays poleward of this latitude is a polar cap.
@@ -146,7 +152,6 @@ def render(
     ds, label = _open(source)
     width, height = size
     fig = Figure(figsize=(width / dpi, height / dpi), dpi=dpi)
-    fig.set_layout_engine(ConstrainedLayoutEngine(rect=(0, 0.035, 1, 0.965)))
     if str(ds.attrs.get("featureType", "")).lower() == "trajectory":
         if level is not None or time is not None:
             raise UsageError(f"{label}: level and time do not apply to a trajectory file; "
@@ -321,7 +326,7 @@ def _domain_projection(lat: np.ndarray, lon: np.ndarray, name: str | ccrs.Projec
 
 
 def _map_axes(fig: Figure, proj: ccrs.Projection, extent: list[float] | None):
-    ax = fig.add_subplot(projection=proj)
+    ax = fig.add_axes(MAP_BOX, projection=proj)
     if extent is None:
         ax.set_global()
     elif isinstance(proj, ccrs.Stereographic):
@@ -338,6 +343,11 @@ def _map_axes(fig: Figure, proj: ccrs.Projection, extent: list[float] | None):
     grid.top_labels = grid.right_labels = False
     grid.xlabel_style = grid.ylabel_style = {"size": 7}
     return ax
+
+
+def _colour_bar(fig: Figure, ax, mappable):
+    """A colour bar beside the map, exactly as tall as the map is drawn."""
+    return fig.colorbar(mappable, cax=ax.inset_axes(COLOUR_BAR_BOX))
 
 
 def _coastlines(ax) -> bool:
@@ -463,7 +473,7 @@ def _field_map(fig: Figure, ds: xr.Dataset, label: str, field: str | None, level
     ax.set_xlim(*limits[0])
     ax.set_ylim(*limits[1])
     units = str(da.attrs.get("units", ""))
-    bar = fig.colorbar(contours, ax=ax, shrink=0.85, pad=0.02)
+    bar = _colour_bar(fig, ax, contours)
     described = da.attrs.get("long_name") or str(da.attrs.get("standard_name", "")).replace("_", " ")
     long_name = str(described or field)
     bar.set_label(long_name + (f" ({_units_text(units)})" if units else ""))
@@ -515,7 +525,7 @@ def _arrows(ax, u: xr.DataArray, v: xr.DataArray, lat: np.ndarray, lon: np.ndarr
                        transform=ccrs.PlateCarree(), color="white", edgecolor="black",
                        linewidth=0.5, zorder=4, scale=float(np.nanpercentile(speed, 99)) * ARROWS * 1.2,
                        scale_units="width", width=0.0022)
-    ax.quiverkey(arrows, X=0.9, Y=1.03, U=reference, label=f"{reference:g} m s$^{{-1}}$",
+    ax.quiverkey(arrows, X=0.8, Y=1.03, U=reference, label=f"{reference:g} m s$^{{-1}}$",
                  labelpos="E", coordinates="axes", fontproperties={"size": 8},
                  color="black")
 
@@ -601,7 +611,7 @@ def _track_map(fig: Figure, ds: xr.Dataset, label: str, field: str | None,
     ax.scatter(lon[rows, first], lat[rows, first], transform=ccrs.PlateCarree(), marker="o",
                s=28, facecolor="white", edgecolor="black", linewidth=1.0, zorder=5, label="start")
     ax.legend(loc="lower left", fontsize=7, framealpha=0.8)
-    bar = fig.colorbar(lines, ax=ax, shrink=0.85, pad=0.02)
+    bar = _colour_bar(fig, ax, lines)
     bar.set_label(colour_label)
     if colour is not None and colour.attrs.get("positive") == "down":
         bar.ax.invert_yaxis()  # pressure: higher in the atmosphere at the top
