@@ -411,12 +411,15 @@ def test_too_small_domain_is_refused():
 
 
 def test_all_missing_is_refused():
+    # Nothing to decompose: a one-line InputError (the project's error contract, DESIGN.md).
     lat, lon, u, v = small_box()
     with pytest.raises(InputError, match="every point .* is missing"):
         decompose_regional(as_wind(lat, lon, u * np.nan, v * np.nan))
 
 
 def test_disconnected_mask_is_refused_and_named():
+    # Two pieces of valid points share no boundary, so no one potential spans them (a
+    # Poisson problem per connected domain, common practice); the message names both.
     lat, lon, u, v = small_box(20)
     u[:, 8:10] = np.nan
     with pytest.raises(InputError, match=r"2 separate pieces \(160 points .*; 200 points"):
@@ -424,6 +427,7 @@ def test_disconnected_mask_is_refused_and_named():
 
 
 def test_bad_options_are_usage_errors():
+    # Options outside the documented ones are usage errors (DESIGN.md error contract).
     lat, lon, u, v = small_box()
     wind = as_wind(lat, lon, u, v)
     with pytest.raises(UsageError, match="unknown regional scheme"):
