@@ -236,10 +236,12 @@ def _find(ds: xr.Dataset, standard_names: tuple[str, ...]) -> xr.DataArray | Non
     return None
 
 
-def _time_text(value) -> str:
+def iso_time(value: object, timespec: str = "seconds") -> str:
+    """ISO 8601 text (UTC, ``Z``) of a numpy or cftime time, to the second or minute."""
     if isinstance(value, np.datetime64):
-        return f"{np.datetime_as_string(value, unit='s')}Z"
-    return value.isoformat()
+        unit = {"seconds": "s", "minutes": "m"}[timespec]
+        return f"{np.datetime_as_string(value, unit=unit)}Z"
+    return f"{value.isoformat(timespec=timespec)}Z"
 
 
 def _discovery(ds: xr.Dataset) -> dict[str, object]:
@@ -270,6 +272,6 @@ def _discovery(ds: xr.Dataset) -> dict[str, object]:
         values = time.values.ravel()
         values = values[~xr.DataArray(values).isnull().values]
         if values.size:
-            found["time_coverage_start"] = _time_text(values.min())
-            found["time_coverage_end"] = _time_text(values.max())
+            found["time_coverage_start"] = iso_time(values.min())
+            found["time_coverage_end"] = iso_time(values.max())
     return found

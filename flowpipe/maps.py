@@ -22,6 +22,7 @@ with a :class:`MapWarning`.
 from __future__ import annotations
 
 import datetime as _dt
+import functools
 import os
 import re
 import warnings
@@ -47,9 +48,10 @@ from matplotlib.colors import Normalize  # noqa: E402
 from matplotlib.figure import Figure  # noqa: E402
 from matplotlib.path import Path as MplPath  # noqa: E402
 from matplotlib.ticker import MaxNLocator  # noqa: E402
+from shapely.geometry import LineString  # noqa: E402
 
 from ._version import __version__  # noqa: E402
-from .annotate import CAUTION_SHORT  # noqa: E402
+from .annotate import CAUTION_SHORT, iso_time  # noqa: E402
 from .errors import InputError, UsageError  # noqa: E402
 from .store import atomic_path  # noqa: E402
 
@@ -212,13 +214,6 @@ def _mappable(ds: xr.Dataset) -> list[str]:
     return [str(n) for n in ds.data_vars if _horizontal(ds, ds[n]) is not None]
 
 
-def _time_text(value: object) -> str:
-    """ISO 8601 text of a numpy or cftime time, to the minute, UTC."""
-    if isinstance(value, np.datetime64):
-        return f"{np.datetime_as_string(value, unit='m')}Z"
-    return f"{value.isoformat(timespec='minutes')}Z" if hasattr(value, "isoformat") else str(value)
-
-
 def _parse_time(text: str, label: str) -> str:
     try:
         parsed = _dt.datetime.fromisoformat(text.replace("Z", "+00:00"))
@@ -254,16 +249,16 @@ def _select(ds: xr.Dataset, da: xr.DataArray, label: str, level: float | None,
         raise InputError(f"{label}: {da.name} has no vertical coordinate; leave out the level")
     tname = _coordinate(ds, da, "time", "T")
     if tname is not None and tname in da.dims:
-        texts = [_time_text(t) for t in ds[tname].values]
-        index = 0 if time is None else (texts.index(_parse_time(time, label))
-                                        if _parse_time(time, label) in texts else -1)
-        if index < 0:
+        texts = [iso_time(t, "minutes") for t in ds[tname].values]
+        wanted = texts[0] if time is None else _parse_time(time, label)
+        if wanted not in texts:
             raise InputError(f"{label}: time {time} is not in {da.name}; available times: "
                              f"{', '.join(texts)}")
+        index = texts.index(wanted)
         indexers[tname] = index
         words.append(f"valid {texts[index]}")
     elif tname is not None and ds[tname].size == 1:
-        words.append(f"valid {_time_text(ds[tname].values.ravel()[0])}")
+        words.append(f"valid {iso_time(ds[tname].values.ravel()[0], 'minutes')}")
     elif time is not None:
         raise InputError(f"{label}: {da.name} has no time coordinate; leave out the time")
     return indexers, words
@@ -319,6 +314,8 @@ def _domain_projection(lat: np.ndarray, lon: np.ndarray, name: str | ccrs.Projec
     extent = [centre_lon - span / 2 - pad_lon, centre_lon + span / 2 + pad_lon,
               max(south - pad_lat, -90.0), min(north + pad_lat, 90.0)]
     if name == "lat-lon":
+        if span + step >= WRAP_SPAN:
+            return ccrs.PlateCarree(), None
         return ccrs.PlateCarree(central_longitude=centre_lon), extent
     centre_lat = (south + north) / 2
     return ccrs.LambertAzimuthalEqualArea(central_longitude=centre_lon,
@@ -350,17 +347,41 @@ def _colour_bar(fig: Figure, ax, mappable):
     return fig.colorbar(mappable, cax=ax.inset_axes(COLOUR_BAR_BOX))
 
 
+@functools.cache
+def _shorelines(directory: str) -> cfeature.ShapelyFeature:
+    """GSHHS coarse shorelines as lines, read once from ``directory``.
+
+    GSHHS stores land as polygons; Antarctica is cut along the 0 and 180
+    degree meridians and closed through the pole. Those cuts are not coast:
+    drawn as polygon outlines they would show as lines to the pole.
+    """
+    cartopy.config["pre_existing_data_dir"] = directory
+    shapefile.VERBOSE = False  # GSHHS polygons are fine; pyshp's notes are noise
+    lines: list[LineString] = []
+    for land in cfeature.GSHHSFeature(scale="coarse", levels=[1]).geometries():
+        for polygon in getattr(land, "geoms", [land]):
+            lines.extend(_without_cuts(np.asarray(polygon.exterior.coords)))
+    return cfeature.ShapelyFeature(lines, ccrs.PlateCarree())
+
+
+def _without_cuts(ring: np.ndarray) -> list[LineString]:
+    """Pieces of a polygon ring between its segments along a cut meridian or the pole."""
+    x, y = ring[:, 0], ring[:, 1]
+    along_meridian = (x[:-1] == x[1:]) & np.isin(x[:-1], (0.0, 180.0, -180.0))
+    along_pole = (np.abs(y[:-1]) >= 90.0 - 1e-9) & (np.abs(y[1:]) >= 90.0 - 1e-9)
+    bounds = [-1, *np.flatnonzero(along_meridian | along_pole), len(ring) - 1]
+    return [LineString(ring[a + 1: b + 1]) for a, b in zip(bounds[:-1], bounds[1:], strict=True)
+            if b - a >= 2]
+
+
 def _coastlines(ax) -> bool:
     """Draw GSHHS coarse shorelines found on disk; warn (and draw none) without them."""
     configured = cartopy.config.get("pre_existing_data_dir") or ""
     for directory in (configured, *COASTLINE_DIRS):
         if directory and (Path(directory) / GSHHS_COARSE).is_file():
-            cartopy.config["pre_existing_data_dir"] = directory
-            shapefile.VERBOSE = False  # GSHHS polygons are fine; pyshp's notes are noise
             ax.add_feature(
-                cfeature.GSHHSFeature(scale="coarse", levels=[1]), facecolor="none",
-                edgecolor="black", linewidth=0.6, zorder=3,
-                path_effects=[patheffects.withStroke(linewidth=1.8, foreground="white")])
+                _shorelines(directory), facecolor="none", edgecolor="black", linewidth=0.6,
+                zorder=3, path_effects=[patheffects.withStroke(linewidth=1.8, foreground="white")])
             return True
     searched = ", ".join(d for d in (configured, *COASTLINE_DIRS) if d)
     warnings.warn(f"no coastline data found (looked for {GSHHS_COARSE} in {searched}); the map "
@@ -623,8 +644,7 @@ def _track_title(count: int, times: xr.DataArray | None, elapsed: np.ndarray | N
     head = f"{count} trajector{'y' if count == 1 else 'ies'}, coloured by {colour_label}"
     if times is None:
         return head
-    start = _time_text(times.values.reshape(elapsed.shape if elapsed is not None else (-1,))
-                       .ravel()[0])
+    start = iso_time(times.values.ravel()[0], "minutes")
     if elapsed is None or not np.isfinite(elapsed).any():
         return f"{head}\nfrom {start}"
     reach = float(np.nanmax(elapsed)) if np.nanmax(elapsed) > 0 else float(np.nanmin(elapsed))
