@@ -16,6 +16,7 @@ External references used here:
 from __future__ import annotations
 
 import warnings
+from pathlib import Path
 
 import cartopy
 import cartopy.crs as ccrs
@@ -286,3 +287,27 @@ def test_command_line(files, capsys):
     before = files["global"].read_bytes()
     assert main(["map", str(files["global"]), "-o", str(files["global"])]) == 2
     assert files["global"].read_bytes() == before  # an input is never overwritten
+
+
+def test_shorelines_have_no_polygon_cuts():
+    # GSHHS (Wessel & Smith 1996, J. Geophys. Res. 101(B4), 8741-8743) stores land
+    # as polygons; Antarctica is closed along the 0/180 degree meridians and the pole,
+    # which is not coast. No drawn shoreline segment may run along them.
+    directory = next(d for d in maps.COASTLINE_DIRS if (Path(d) / maps.GSHHS_COARSE).is_file())
+    feature = maps._shorelines(directory)
+    segments = 0
+    for line in feature.geometries():
+        xy = np.asarray(line.coords)
+        on_cut = (xy[:-1, 0] == xy[1:, 0]) & np.isin(xy[:-1, 0], (0.0, 180.0, -180.0))
+        at_pole = (xy[:-1, 1] <= -90.0 + 1e-9) & (xy[1:, 1] <= -90.0 + 1e-9)
+        assert not (on_cut | at_pole).any()
+        segments += len(xy) - 1
+    assert segments > 1000  # the coast itself is still there
+
+
+def test_projection_overrides(files):
+    fig = maps.render(files["global"], projection="south-cap", size=SIZE)
+    assert isinstance(_map_axes(fig).projection, ccrs.SouthPolarStereo)
+    mine = ccrs.Orthographic(central_longitude=-30.0, central_latitude=50.0)
+    fig = maps.render(files["regional"], projection=mine, size=SIZE)
+    assert _map_axes(fig).projection == mine

@@ -136,3 +136,16 @@ def test_atomic_path_keeps_the_suffix(tmp_path):
         tmp.write_bytes(b"image")
     assert (tmp_path / "figure.png").read_bytes() == b"image"
     assert _leftovers(tmp_path) == []
+
+
+def test_trajectories_chunked_by_whole_tracks(tmp_path):
+    # One chunk holds whole tracks (obs whole) and is between 10 KiB and 1 MiB, the
+    # range the HDF Group recommends (HDF5 documentation, "Chunking in HDF5").
+    tracks = trajectory_like(ntraj=400, nobs=31)
+    path = fp.write(tracks, tmp_path / "tracks.nc")
+    with netCDF4.Dataset(path) as nc:
+        var = nc["ta"]
+        chunk = var.chunking()
+        assert chunk[1] == 31
+        assert 10 * 1024 <= np.prod(chunk) * var.dtype.itemsize <= 1024 * 1024
+        assert var.filters()["zlib"] and var.filters()["shuffle"]
