@@ -175,8 +175,9 @@ def save(fig: Figure, path: str | os.PathLike, protect: Iterable[str | os.PathLi
 
 def _open(source: str | os.PathLike | xr.Dataset) -> tuple[xr.Dataset, str]:
     if isinstance(source, xr.Dataset):
-        name = source.encoding.get("source") or source.attrs.get("title", "dataset")
-        return source, Path(str(name)).name
+        inputs = str(source.attrs.get("input_files", "")).splitlines()
+        name = source.encoding.get("source") or (inputs[0] if inputs else None)
+        return source, Path(str(name)).name if name else str(source.attrs.get("title", "dataset"))
     path = Path(source)
     if not path.is_file():
         raise InputError(f"{path}: no such file")

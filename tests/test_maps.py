@@ -311,3 +311,14 @@ def test_projection_overrides(files):
     mine = ccrs.Orthographic(central_longitude=-30.0, central_latitude=50.0)
     fig = maps.render(files["regional"], projection=mine, size=SIZE)
     assert _map_axes(fig).projection == mine
+
+
+def test_in_memory_dataset_maps():
+    # The canonical wind (flowpipe.open_wind) straight from memory, as the Python API allows.
+    wind = fp.open_wind(GLOBAL)
+    fig = fp.render(wind, field="ta", level=250.0, time="2026-01-13T00:00", size=SIZE)
+    expected = wind["ta"].sel(level=250.0, time=np.datetime64("2026-01-13T00:00")).values
+    bar = _colour_bar(fig)
+    assert bar.vmin <= expected.min() and bar.vmax >= expected.max()
+    assert bar.cmap.name in SEQUENTIAL  # temperature in K: a magnitude
+    assert "demo_global.nc" in fig.texts[0].get_text()
