@@ -179,7 +179,7 @@ def _complete_variable(ds: xr.Dataset, name: Hashable) -> None:
         canonical.update(CANONICAL_LEVELS.get(str(ds.attrs.get("level_type")), {}))
     for key, value in canonical.items():
         attrs.setdefault(key, value)
-    if _is_time(var):
+    if is_time(var):
         attrs.setdefault("standard_name", "time")
         if _standard_calendar(var):
             attrs.setdefault("units_metadata", TIME_UNITS_METADATA)
@@ -216,7 +216,8 @@ def _is_temperature(units: object) -> bool:
         return False
 
 
-def _is_time(var: xr.Variable) -> bool:
+def is_time(var: xr.Variable) -> bool:
+    """True for decoded times: numpy datetimes or cftime objects."""
     values = var.values if var.dtype == object and var.size else None
     return np.issubdtype(var.dtype, np.datetime64) or (
         values is not None and hasattr(values.flat[0], "calendar"))
@@ -267,7 +268,7 @@ def _discovery(ds: xr.Dataset) -> dict[str, object]:
         found["geospatial_vertical_positive"] = str(
             vertical.attrs.get("positive", "down" if vertical.attrs["standard_name"] ==
                                "air_pressure" else "up"))
-    time = next((ds[n] for n in ds.variables if _is_time(ds.variables[n])), None)
+    time = next((ds[n] for n in ds.variables if is_time(ds.variables[n])), None)
     if time is not None:
         values = time.values.ravel()
         values = values[~xr.DataArray(values).isnull().values]

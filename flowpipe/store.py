@@ -114,7 +114,7 @@ def _encoding(ds: xr.Dataset, float32: bool) -> dict[str, dict]:
         old = var.encoding
         enc: dict = {}
         is_dim = name in ds.dims
-        if np.issubdtype(var.dtype, np.datetime64) or var.attrs.get("standard_name") == "time":
+        if annotate.is_time(var):
             enc.update(units=old.get("units", TIME_UNITS) if is_dim else TIME_UNITS,
                        dtype=np.float64)
             if "calendar" in old:
