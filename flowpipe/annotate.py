@@ -166,8 +166,7 @@ def complete(ds: xr.Dataset) -> xr.Dataset:
 
 def _is_location(da: xr.DataArray) -> bool:
     standard_name = da.attrs.get("standard_name")
-    return standard_name in ("latitude", "longitude", "time", *_VERTICAL) or (
-        da.name == "time" and np.issubdtype(da.dtype, np.datetime64))
+    return standard_name in ("latitude", "longitude", "time", *_VERTICAL) or is_time(da.variable)
 
 
 def _complete_variable(ds: xr.Dataset, name: Hashable) -> None:

@@ -149,3 +149,13 @@ def test_trajectories_chunked_by_whole_tracks(tmp_path):
         assert chunk[1] == 31
         assert 10 * 1024 <= np.prod(chunk) * var.dtype.itemsize <= 1024 * 1024
         assert var.filters()["zlib"] and var.filters()["shuffle"]
+
+
+def test_undecoded_times_keep_their_units(parts, tmp_path):
+    # CF 4.4: a numeric time with its own "units" (read with decode_times=False) is
+    # written as it is, and decodes to the same instants.
+    first = fp.write(parts, tmp_path / "first.nc")
+    with xr.open_dataset(first, decode_times=False) as raw:
+        second = fp.write(raw.load(), tmp_path / "second.nc")
+    with xr.open_dataset(second) as back:
+        np.testing.assert_array_equal(back["time"].values, parts["time"].values)
