@@ -40,6 +40,11 @@ MIN_CHUNK_BYTES = 64 * 1024
 TIME_UNITS = "seconds since 1970-01-01 00:00:00"
 
 
+#: What a variable stored with ``float32=True`` says about its precision.
+FLOAT32_NOTE = ("stored in single precision (IEEE 754 binary32): relative rounding error "
+                "up to 6e-8 of each value")
+
+
 @contextlib.contextmanager
 def atomic_path(path: str | os.PathLike, protect: Iterable[str | os.PathLike] = ()) -> Iterator[Path]:
     """Yield a temporary path beside ``path``; rename it to ``path`` on success.
@@ -155,7 +160,8 @@ def write(ds: xr.Dataset, path: str | os.PathLike, *, float32: bool = False) -> 
         so a relative rounding error of at most 2**-24 (6.0e-8) per value
         (IEEE 754 binary32), ample for plotting and most diagnostics at half
         the size. Magnitudes below 1.2e-38 (subnormal) keep only an absolute
-        accuracy of 7e-46; values beyond about 3.4e38 cannot be stored.
+        accuracy of 7e-46; values beyond about 3.4e38 cannot be stored. Each
+        such variable says so in its ``comment`` (:data:`FLOAT32_NOTE`).
 
     Returns
     -------
@@ -170,6 +176,10 @@ def write(ds: xr.Dataset, path: str | os.PathLike, *, float32: bool = False) -> 
     final = Path(path)
     out = annotate.complete(ds)
     encoding = _encoding(out, float32)
+    for name, enc in encoding.items():
+        if enc.get("dtype") == np.float32 and out[name].dtype != np.float32:
+            comment = out[name].attrs.get("comment")
+            out[name].attrs["comment"] = f"{comment}\n{FLOAT32_NOTE}" if comment else FLOAT32_NOTE
     for var in out.variables.values():
         var.encoding = {}
     with atomic_path(final, sources(ds)) as tmp:

@@ -52,6 +52,7 @@ def test_round_trip_with_plain_xarray(parts, tmp_path, float32):
             assert np.array_equal(np.isnan(got), np.isnan(expected))  # CF _FillValue -> NaN
             if float32:
                 assert back[name].encoding["dtype"] == np.float32
+                assert "binary32" in back[name].attrs["comment"]  # the loss is stated
                 np.testing.assert_allclose(got, expected, rtol=FLOAT32_RELATIVE,
                                            atol=FLOAT32_SUBNORMAL)
             else:
