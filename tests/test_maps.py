@@ -322,3 +322,12 @@ def test_in_memory_dataset_maps():
     assert bar.vmin <= expected.min() and bar.vmax >= expected.max()
     assert bar.cmap.name in SEQUENTIAL  # temperature in K: a magnitude
     assert "demo_global.nc" in fig.texts[0].get_text()
+
+
+def test_command_line_warns_without_coastlines(files, monkeypatch, tmp_path, capsys):
+    monkeypatch.setattr(maps, "COASTLINE_DIRS", (str(tmp_path),))
+    monkeypatch.setitem(cartopy.config, "pre_existing_data_dir", "")
+    out = tmp_path / "bare.png"
+    assert main(["map", str(files["tracks"]), "-o", str(out), "--size", "400x300"]) == 0
+    assert "flowpipe: warning: no coastline data" in capsys.readouterr().err
+    assert matplotlib.image.imread(out).shape[:2] == (300, 400)
