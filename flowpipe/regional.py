@@ -92,8 +92,8 @@ DIAGNOSTIC_ATTRS = {
         "long_name": "relative area-weighted RMS misfit of the reconstructed wind at valid points",
         "units": "1"},
     "harmonic_energy_share": {
-        "long_name": "share of the wind's kinetic energy in the harmonic part of the Dirichlet "
-                     "partition (the part the boundary, not the data, decides)",
+        "long_name": "share of the wind's kinetic energy in the harmonic (non-divergent and "
+                     "irrotational) part, which the boundary, not the data, decides",
         "units": "1"},
     "iterations": {"long_name": "solver iterations (0 for direct solves)", "units": "1"},
 }
@@ -120,20 +120,17 @@ def _grid(lat: np.ndarray, lon: np.ndarray, periodic: bool) -> StaggeredGrid:
                                               periodic))
 
 
-def _solvers(grid: StaggeredGrid, valid: np.ndarray, scheme: str, regularisation: float,
-             tolerance: float, max_iterations: int
-             ) -> tuple[SeparableDirichletSolver | SparseDirichletSolver,
-                        VariationalSolver | None]:
-    mask_key = np.packbits(valid).tobytes()
-    grid_key = (grid.lat.tobytes(), grid.lon.tobytes(), grid.periodic)
-    dirichlet = _cached(("dirichlet", *grid_key, mask_key), lambda: dirichlet_solver(grid, valid))
+def _solver(grid: StaggeredGrid, valid: np.ndarray, scheme: str, regularisation: float,
+            tolerance: float, max_iterations: int
+            ) -> SeparableDirichletSolver | SparseDirichletSolver | VariationalSolver:
+    """The cached solver of a scheme for a grid and mask (built on first use)."""
+    key = (scheme, grid.lat.tobytes(), grid.lon.tobytes(), grid.periodic,
+           np.packbits(valid).tobytes())
     if scheme == "dirichlet":
-        return dirichlet, None
-    variational = _cached(("variational", *grid_key, mask_key, regularisation, tolerance,
-                           max_iterations),
-                          lambda: VariationalSolver(grid, valid, regularisation, tolerance,
-                                                    max_iterations))
-    return dirichlet, variational
+        return _cached(key, lambda: dirichlet_solver(grid, valid))
+    return _cached(key + (regularisation, tolerance, max_iterations),
+                   lambda: VariationalSolver(grid, valid, regularisation, tolerance,
+                                             max_iterations))
 
 
 def _solve_slabs(u: np.ndarray, v: np.ndarray, *, lat: np.ndarray, lon: np.ndarray,
@@ -150,12 +147,11 @@ def _solve_slabs(u: np.ndarray, v: np.ndarray, *, lat: np.ndarray, lon: np.ndarr
         valid = np.isfinite(us) & np.isfinite(vs)
         us = np.where(valid, us, np.nan)
         vs = np.where(valid, vs, np.nan)
-        dirichlet, variational = _solvers(grid, valid, scheme, regularisation, tolerance,
-                                          max_iterations)
-        if variational is None:
-            parts, quality = dirichlet_partition(grid, us, vs, dirichlet)
+        solver = _solver(grid, valid, scheme, regularisation, tolerance, max_iterations)
+        if scheme == "dirichlet":
+            parts, quality = dirichlet_partition(grid, us, vs, solver)
         else:
-            parts, quality = variational_partition(grid, us, vs, variational, dirichlet)
+            parts, quality = variational_partition(grid, us, vs, solver)
         for k, name in enumerate(names):
             fields[index + (k,)] = parts[name]
         diagnostics[index] = [quality[name] for name in DIAGNOSTICS]
@@ -279,8 +275,9 @@ def decompose_regional(wind: xr.Dataset, scheme: str = "variational", periodic: 
         ``dirichlet``, ``u_harmonic``, ``v_harmonic``, on the wind's grid and
         dimensions, NaN where the wind is missing; per-slab quality figures
         ``reconstruction_error``, ``harmonic_energy_share`` (area-weighted,
-        relative; for ``variational`` the share of the harmonic part of the
-        Dirichlet partition, i.e. the part the fit had to assign) and
+        relative; for ``variational`` ``4 <w_rot, w_div> / |w|^2``, the energy
+        of the harmonic flow the fit shared between the parts, see
+        :func:`flowpipe._poisson.variational_partition`) and
         ``iterations``; attributes ``method`` (``"regional"``), ``scheme``,
         ``regularisation``, ``periodic``, ``solver`` (and ``tolerance``,
         ``max_iterations`` for ``variational``) and, when the result is in
