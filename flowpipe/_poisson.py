@@ -8,6 +8,8 @@ only, so one solver serves every level and time of a run.
 
 from __future__ import annotations
 
+import threading
+
 import numpy as np
 import scipy.fft
 import scipy.sparse as sp
@@ -184,11 +186,13 @@ class SparseDirichletSolver:
         self._index = np.flatnonzero(interior.ravel())
         lap = grid.laplacian[self._index][:, self._index]
         self._lu = spla.splu(sp.csc_matrix(lap))
+        self._lock = threading.Lock()  # one factorisation shared by the dask threads
 
     def solve(self, rhs: np.ndarray) -> np.ndarray:
         """Solve ``L psi = rhs`` at the interior corners; ``psi`` is zero elsewhere."""
         psi = np.zeros(self.grid.corner_shape)
-        psi.ravel()[self._index] = self._lu.solve(rhs.ravel()[self._index])
+        with self._lock:
+            psi.ravel()[self._index] = self._lu.solve(rhs.ravel()[self._index])
         return psi
 
 
@@ -296,10 +300,12 @@ class _SparseEnergySolver:
     def __init__(self, grid: StaggeredGrid, active: np.ndarray, pin: np.ndarray) -> None:
         energy = gradient_energy(grid, active) + sp.diags_array(pin)
         self._lu = spla.splu(sp.csc_matrix(energy))
+        self._lock = threading.Lock()  # one factorisation shared by the dask threads
 
     def solve(self, rhs: np.ndarray) -> np.ndarray:
         """Solve for the stacked potentials, ``rhs`` of shape ``(2, n_active)``."""
-        return self._lu.solve(rhs.T).T
+        with self._lock:
+            return self._lu.solve(rhs.T).T
 
 
 class _WholeGridEnergySolver:
