@@ -74,8 +74,10 @@ def decompose(
         ``streamfunction``, ``velocity_potential``, ``vorticity``,
         ``divergence``, ``u_rotational``, ``v_rotational``, ``u_divergent``,
         ``v_divergent`` with CF attributes; spectral results also carry
-        ``reconstruction_error`` per slab and, once computed (input held in
-        memory), its global figure as the attribute ``reconstruction_error``.
+        ``reconstruction_error`` per slab and its global figure as the
+        attribute ``reconstruction_error`` (a float for input in memory, a 0-d
+        dask array for lazy input, which :func:`flowpipe.write` computes in the
+        same pass as the data).
 
     Raises
     ------
@@ -408,8 +410,10 @@ def _decompose_spectral(
         pole_rows="each pole row replaced by the least-squares fit of a single vector"
         if geometry == "CC" else "none (no rows on the poles)",
     )
-    if residual.chunks is None:
-        parts.attrs["reconstruction_error"] = float(np.sqrt(residual.sum() / norm.sum()))
+    total = np.sqrt(residual.sum() / norm.sum())
+    # Lazy input: a 0-d dask array, which flowpipe.write computes with the data.
+    parts.attrs["reconstruction_error"] = (total.data if residual.chunks is not None
+                                           else float(total))
     return parts
 
 

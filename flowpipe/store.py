@@ -17,6 +17,8 @@ import uuid
 from collections.abc import Iterable, Iterator
 from pathlib import Path
 
+import dask
+import netCDF4
 import numpy as np
 import xarray as xr
 
@@ -139,6 +141,10 @@ def _encoding(ds: xr.Dataset, float32: bool) -> dict[str, dict]:
     return encoding
 
 
+#: netCDF-C chunk cache per variable while writing, in bytes (see _write_chunk_cache).
+WRITE_CHUNK_CACHE = 4 * 2**20
+
+
 def write(ds: xr.Dataset, path: str | os.PathLike, *, float32: bool = False) -> Path:
     """Write a Dataset to NetCDF-4 atomically, CF-1.11 and ACDD-1.3 annotated.
 
@@ -151,7 +157,9 @@ def write(ds: xr.Dataset, path: str | os.PathLike, *, float32: bool = False) -> 
     Parameters
     ----------
     ds : xarray.Dataset
-        What to write; dask-backed data are computed while writing.
+        What to write; dask-backed data are computed while writing, and so
+        are attributes whose values are dask arrays (0-d; a stage's global
+        figure), in the same pass.
     path : path-like
         The final file name; never one of the files ``ds`` was read from.
     float32 : bool
@@ -174,6 +182,10 @@ def write(ds: xr.Dataset, path: str | os.PathLike, *, float32: bool = False) -> 
         When ``path`` is one of the files ``ds`` was read from.
     """
     final = Path(path)
+    lazy = {k: v for k, v in ds.attrs.items() if dask.is_dask_collection(v)}
+    if lazy:
+        ds = ds.copy()
+        ds.attrs = {k: v for k, v in ds.attrs.items() if k not in lazy}
     out = annotate.complete(ds)
     encoding = _encoding(out, float32)
     for name, enc in encoding.items():
@@ -182,6 +194,33 @@ def write(ds: xr.Dataset, path: str | os.PathLike, *, float32: bool = False) -> 
             out[name].attrs["comment"] = f"{comment}\n{FLOAT32_NOTE}" if comment else FLOAT32_NOTE
     for var in out.variables.values():
         var.encoding = {}
-    with atomic_path(final, sources(ds)) as tmp:
-        out.to_netcdf(tmp, engine="netcdf4", format="NETCDF4", encoding=encoding)
+    with atomic_path(final, sources(ds)) as tmp, _write_chunk_cache():
+        if not lazy:
+            out.to_netcdf(tmp, engine="netcdf4", format="NETCDF4", encoding=encoding)
+            return final
+        # Attributes known only once the data are computed (a global error figure,
+        # say) are computed in the same pass as the data and added before the rename.
+        pending = out.to_netcdf(tmp, engine="netcdf4", format="NETCDF4", encoding=encoding,
+                                compute=False)
+        _, *values = dask.compute(pending, *lazy.values())
+        with netCDF4.Dataset(tmp, "a") as nc:
+            for name, value in zip(lazy, values, strict=True):
+                nc.setncattr(name, np.asarray(value).item())
     return final
+
+
+@contextlib.contextmanager
+def _write_chunk_cache() -> Iterator[None]:
+    """A small netCDF-C chunk cache while a file is written.
+
+    flowpipe writes each chunk (a whole slab or track) once and never reads it
+    back, so the library's default cache (64 MiB per variable) would only hold
+    memory: with ten variables, most of a run's peak. Files opened meanwhile
+    (the output) keep the small cache; the default is restored afterwards.
+    """
+    previous = netCDF4.get_chunk_cache()
+    netCDF4.set_chunk_cache(WRITE_CHUNK_CACHE, previous[1], previous[2])
+    try:
+        yield
+    finally:
+        netCDF4.set_chunk_cache(*previous)

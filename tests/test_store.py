@@ -160,3 +160,26 @@ def test_undecoded_times_keep_their_units(parts, tmp_path):
         second = fp.write(raw.load(), tmp_path / "second.nc")
     with xr.open_dataset(second) as back:
         np.testing.assert_array_equal(back["time"].values, parts["time"].values)
+
+
+def test_lazy_attributes_are_computed_with_the_data(parts, tmp_path):
+    # A global figure known only after computing (a 0-d dask array) lands in the file
+    # as a plain number, equal to what numpy computes from the same data.
+    lazy = parts.chunk({d: 1 for d in parts.dims if d in ("time", "level")})
+    expected = float(np.sqrt((parts["vorticity"] ** 2).mean()))
+    lazy.attrs["vorticity_rms"] = np.sqrt((lazy["vorticity"] ** 2).mean()).data
+    path = fp.write(lazy, tmp_path / "lazy.nc")
+    with netCDF4.Dataset(path) as nc:
+        assert nc.getncattr("vorticity_rms") == pytest.approx(expected, rel=1e-12)
+    assert dask.is_dask_collection(lazy.attrs["vorticity_rms"])  # the caller's Dataset is kept
+
+
+def test_cli_decomposition_carries_the_global_reconstruction_error(tmp_path):
+    # The command line opens files lazily; the error figure must still be an attribute.
+    from flowpipe.cli import main
+
+    root = os.path.join(os.path.dirname(__file__), "..", "sample_data", "demo_global.nc")
+    assert main(["decompose", root, "-o", str(tmp_path / "d.nc"), "--levels", "850"]) == 0
+    with xr.open_dataset(tmp_path / "d.nc") as ds:
+        per_slab = ds["reconstruction_error"].values
+        assert 0 < ds.attrs["reconstruction_error"] <= per_slab.max() * (1 + 1e-12)
