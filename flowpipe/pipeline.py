@@ -26,6 +26,7 @@ from pathlib import Path
 from typing import Any
 
 import dask
+import xarray as xr
 
 from . import bookkeeping
 from ._version import __version__
@@ -38,6 +39,9 @@ LOG_NAME = "flowpipe.log"
 STAGE_ORDER = ("decompose", "advect", "maps")
 #: dask config key: the cores one task may use (read by the transform kernels).
 CORES_KEY = "flowpipe.cores"
+#: Input files kept open at once: a run reads a long series a time slice after
+#: another, and every open NetCDF-4 file holds about a MiB of library caches.
+OPEN_FILES = 16
 
 
 @dataclass
@@ -299,9 +303,11 @@ class Runner:
             import multiprocessing
             from concurrent.futures import ProcessPoolExecutor, as_completed
 
+            context = multiprocessing.get_context("forkserver")
+            # The server imports flowpipe's stages once; each pool process is forked from it.
+            context.set_forkserver_preload(["flowpipe.decompose", "flowpipe.parcels", "flowpipe.regional"])
             pool = ProcessPoolExecutor(
-                max_workers=min(processes, len(units)),
-                mp_context=multiprocessing.get_context("forkserver"),
+                max_workers=min(processes, len(units)), mp_context=context,
                 initializer=_worker_setup, initargs=(str(self.out / LOG_NAME),))
             with pool:
                 futures = {pool.submit(_unit_in_worker, self.config.path, self.force, unit): unit
@@ -330,6 +336,7 @@ def _worker_setup(log_path: str) -> None:
 
         ctypes.CDLL("libc.so.6", use_errno=True).prctl(1, signal.SIGKILL)  # PR_SET_PDEATHSIG
     dask.config.set({"scheduler": "synchronous", CORES_KEY: 1})
+    xr.set_options(file_cache_maxsize=OPEN_FILES)
     handler = logging.FileHandler(log_path)
     handler.setFormatter(logging.Formatter("%(asctime)s %(levelname)s %(message)s"))
     log.addHandler(handler)
@@ -442,7 +449,7 @@ def run(config_path: str | os.PathLike, *, force: bool = False, workers: int | N
         progress = Progress(n_steps, quiet)
         log.info("run of %s: %d unit(s), flowpipe %s", config.path, len(units), __version__)
         try:
-            with _scheduler(workers, scheduler):
+            with _scheduler(workers, scheduler), xr.set_options(file_cache_maxsize=OPEN_FILES):
                 runner = Runner(config, force, progress)
                 # Several units on the local machine: one process per unit at a time, so
                 # that computing, compressing and writing (serialised by the HDF5 library
