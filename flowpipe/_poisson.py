@@ -362,7 +362,11 @@ class VariationalSolver:
     -----
     What depends on the grid and mask is built once: the sparse operators and
     the preconditioner (a separable fast solver on a complete grid, a sparse
-    LU factorisation on a masked one).
+    LU factorisation on a masked one). On complete grids a smooth wind needs a
+    few tens of iterations whatever the grid size; masks with re-entrant
+    corners (a coast, a block below the ground) need hundreds, more on finer
+    grids, because the preconditioner does not couple the two potentials
+    where the mask cuts the box stencils.
 
     References
     ----------

@@ -478,11 +478,15 @@ def test_bad_options_are_usage_errors():
 
 # --- laziness and reuse ------------------------------------------------------------------------
 
-def test_levels_are_lazy_and_share_one_factorisation(monkeypatch):
+@pytest.mark.parametrize("masked", [False, True])
+def test_levels_are_lazy_and_share_one_factorisation(monkeypatch, masked):
     # dask: nothing computed until asked, one task per latitude-longitude slab (DESIGN.md,
     # common practice); the factorisation depends on the grid and mask only, so three levels
-    # build it once.
+    # build it once, and the threads that share it get the eager result.
     lat, lon, u, v, _, _ = box_case(0.5)
+    if masked:
+        valid = coastline_mask(lat, lon)
+        u, v = np.where(valid, u, np.nan), np.where(valid, v, np.nan)
     wind = as_wind(lat, lon, u, v, levels=3).chunk({"level": 1})
     built = []
     original = regional.VariationalSolver.__init__
