@@ -9,6 +9,7 @@ from collections.abc import Sequence
 from dataclasses import dataclass
 
 import cftime
+import numba
 import numpy as np
 import pandas as pd
 import xarray as xr
@@ -33,6 +34,9 @@ PETTERSSEN_TOLERANCE = 1e-9
 #: Vertical velocities: name, level type they need, factor to level units per second.
 VERTICAL = {"omega": ("pressure", 0.01), "w": ("height", 1.0)}
 SCHEMES = {"rk4": K.RK4, "petterssen": K.PETTERSSEN}
+#: Fewer parcels than this run on one thread: waking threads for every step
+#: costs more than it saves for small groups, most of all on a busy machine.
+PARALLEL_PARCELS = 4 * K.BLOCK
 #: Seconds within which two times count as equal (rounding of time coordinates).
 TIME_TOLERANCE = 1e-3
 
@@ -438,7 +442,6 @@ def _integrate(pos, lev, status, t0, sign, schedule, clock, winds, samples, grid
                vertical_scale, scheme, out_pos, out_level, out_sample, members) -> None:
     """Integrate one group of parcels sharing a start time, recording as scheduled."""
     args = grid.kernel_args()
-    lowest_at_top = grid.log_levels
 
     def record(obs: int, t: float) -> None:
         alive = status == K.ACTIVE
@@ -451,6 +454,20 @@ def _integrate(pos, lev, status, t0, sign, schedule, clock, winds, samples, grid
             K.sample(pos, lev, status, samples.field, s0, s1, w, *args, values)
             out_sample[members, obs] = values
 
+    threads = numba.get_num_threads()
+    numba.set_num_threads(threads if pos.shape[0] >= PARALLEL_PARCELS else 1)
+    try:
+        _steps(pos, lev, status, t0, sign, schedule, clock, winds, grid, vertical_scale, scheme,
+               record)
+    finally:
+        numba.set_num_threads(threads)
+
+
+def _steps(pos, lev, status, t0, sign, schedule, clock, winds, grid, vertical_scale, scheme,
+           record) -> None:
+    """The time loop of :func:`_integrate`: advance, and record when scheduled."""
+    args = grid.kernel_args()
+    lowest_at_top = grid.log_levels
     record(0, t0)
     t = t0
     obs = 1

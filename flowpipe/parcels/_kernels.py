@@ -30,6 +30,8 @@ STATUS_MEANINGS = ("completed", "left_domain", "reached_lowest_level", "reached_
 
 RK4 = 0
 PETTERSSEN = 1
+#: Parcels per parallel work item of :func:`advance`.
+BLOCK = 4096
 
 #: Longitudes and latitudes within this many degrees outside the grid still
 #: count as inside (rounding of coordinates read from files; common practice).
@@ -63,6 +65,46 @@ def _locate(coord, uniform, value):
     f = (value - coord[i]) / (coord[i + 1] - coord[i])
     f = min(max(f, 0.0), 1.0)
     return i, f, inside
+
+
+@numba.njit(cache=True, inline="always")
+def _cell(px, py, pz, lat, lat_uniform, lon, lon_uniform, periodic):
+    """The grid cell of a unit vector: status, row ``j`` and fraction ``fy``, columns ``i``, ``i1``
+    and fraction ``fx`` (see :func:`interpolate`); ``LEFT_DOMAIN`` outside a limited area.
+
+    References
+    ----------
+    See :func:`interpolate`.
+    """
+    lat_deg = math.degrees(math.asin(min(max(pz, -1.0), 1.0)))
+    lon_deg = math.degrees(math.atan2(py, px))
+    if lat_uniform:  # the common case, without the call
+        fy = (lat_deg - lat[0]) / (lat[1] - lat[0])
+        j = min(max(int(math.floor(fy)), 0), lat.shape[0] - 2)
+        fy -= j
+        if fy < -EDGE_TOLERANCE or fy > 1.0 + EDGE_TOLERANCE:
+            return LEFT_DOMAIN, 0, 0.0, 0, 0, 0.0
+        fy = min(max(fy, 0.0), 1.0)
+    else:
+        j, fy, inside = _locate(lat, lat_uniform, lat_deg)
+        if not inside:
+            return LEFT_DOMAIN, 0, 0.0, 0, 0, 0.0
+    nlon = lon.shape[0]
+    if periodic:
+        pos = (lon_deg - lon[0]) / (lon[1] - lon[0])
+        cell = math.floor(pos)
+        fx = pos - cell
+        i = int(cell) % nlon
+        i1 = i + 1 if i + 1 < nlon else 0
+    else:
+        shifted = lon[0] + (lon_deg - lon[0]) % 360.0
+        if shifted > lon[nlon - 1] + EDGE_TOLERANCE and 360.0 - (shifted - lon[0]) <= EDGE_TOLERANCE:
+            shifted -= 360.0  # just west of the western edge, within rounding
+        i, fx, inside = _locate(lon, lon_uniform, shifted)
+        if not inside:
+            return LEFT_DOMAIN, 0, 0.0, 0, 0, 0.0
+        i1 = i + 1
+    return ACTIVE, j, fy, i, i1, fx
 
 
 @numba.njit(cache=True, inline="always")
@@ -116,34 +158,9 @@ def interpolate(field, s0, s1, wt, px, py, pz, level, lat, lat_uniform, lon, lon
     log-pressure is common practice.
     """
     ncomp = field.shape[4]
-    lat_deg = math.degrees(math.asin(min(max(pz, -1.0), 1.0)))
-    lon_deg = math.degrees(math.atan2(py, px))
-    if lat_uniform:  # the common case, without the call
-        fy = (lat_deg - lat[0]) / (lat[1] - lat[0])
-        j = min(max(int(math.floor(fy)), 0), lat.shape[0] - 2)
-        fy -= j
-        if fy < -EDGE_TOLERANCE or fy > 1.0 + EDGE_TOLERANCE:
-            return LEFT_DOMAIN
-        fy = min(max(fy, 0.0), 1.0)
-    else:
-        j, fy, inside = _locate(lat, lat_uniform, lat_deg)
-        if not inside:
-            return LEFT_DOMAIN
-    nlon = lon.shape[0]
-    if periodic:
-        pos = (lon_deg - lon[0]) / (lon[1] - lon[0])
-        cell = math.floor(pos)
-        fx = pos - cell
-        i = int(cell) % nlon
-        i1 = i + 1 if i + 1 < nlon else 0
-    else:
-        shifted = lon[0] + (lon_deg - lon[0]) % 360.0
-        if shifted > lon[nlon - 1] + EDGE_TOLERANCE and 360.0 - (shifted - lon[0]) <= EDGE_TOLERANCE:
-            shifted -= 360.0  # just west of the western edge, within rounding
-        i, fx, inside = _locate(lon, lon_uniform, shifted)
-        if not inside:
-            return LEFT_DOMAIN
-        i1 = i + 1
+    flag, j, fy, i, i1, fx = _cell(px, py, pz, lat, lat_uniform, lon, lon_uniform, periodic)
+    if flag != ACTIVE:
+        return flag
     nlev = levels.shape[0]
     if nlev > 1:
         s = math.log(level) if log_levels else level
@@ -198,7 +215,7 @@ def _rate(field, s0, s1, wt, px, py, pz, level, lat, lat_uniform, lon, lon_unifo
             (vz - radial * qz) / radius, rate_level)
 
 
-@numba.njit(cache=True)
+@numba.njit(cache=True, parallel=True)
 def advance(pos, level, status, h, field, slot0, slot1, weight, lat, lat_uniform, lon,
             lon_uniform, periodic, levels, log_levels, vertical_scale, lowest_at_top_of_range,
             radius, scheme, iterations, tolerance):
@@ -252,76 +269,75 @@ def advance(pos, level, status, h, field, slot0, slot1, weight, lat, lat_uniform
     latitude-longitude equations (common practice).
     """
     n = pos.shape[0]
-    work = np.empty(field.shape[4])
     nlev = levels.shape[0]
-    for p in range(n):
-        if status[p] != ACTIVE:
-            continue
-        x0, y0, z0, l0 = pos[p, 0], pos[p, 1], pos[p, 2], level[p]
-        flag, ax, ay, az, al = _rate(
-            field, slot0[0], slot1[0], weight[0], x0, y0, z0, l0, lat, lat_uniform, lon,
-            lon_uniform, periodic, levels, log_levels, vertical_scale, radius, work)
-        if scheme == RK4:
-            if flag == ACTIVE:
-                flag, bx, by, bz, bl = _rate(
-                    field, slot0[1], slot1[1], weight[1], x0 + 0.5 * h * ax, y0 + 0.5 * h * ay,
-                    z0 + 0.5 * h * az, l0 + 0.5 * h * al, lat, lat_uniform, lon, lon_uniform,
-                    periodic, levels, log_levels, vertical_scale, radius, work)
-            if flag == ACTIVE:
-                flag, cx, cy, cz, cl = _rate(
-                    field, slot0[1], slot1[1], weight[1], x0 + 0.5 * h * bx, y0 + 0.5 * h * by,
-                    z0 + 0.5 * h * bz, l0 + 0.5 * h * bl, lat, lat_uniform, lon, lon_uniform,
-                    periodic, levels, log_levels, vertical_scale, radius, work)
-            if flag == ACTIVE:
-                flag, dx, dy, dz, dl = _rate(
-                    field, slot0[2], slot1[2], weight[2], x0 + h * cx, y0 + h * cy, z0 + h * cz,
-                    l0 + h * cl, lat, lat_uniform, lon, lon_uniform, periodic, levels,
-                    log_levels, vertical_scale, radius, work)
-                mx = (ax + 2.0 * bx + 2.0 * cx + dx) / 6.0
-                my = (ay + 2.0 * by + 2.0 * cy + dy) / 6.0
-                mz = (az + 2.0 * bz + 2.0 * cz + dz) / 6.0
-                ml = (al + 2.0 * bl + 2.0 * cl + dl) / 6.0
-        else:
-            # Petterssen: first guess with the initial rate, then correct with
-            # the mean of the rates at both ends until the end point settles.
-            mx, my, mz, ml = ax, ay, az, al
-            for _ in range(iterations):
+    nblock = (n + BLOCK - 1) // BLOCK
+    nstage = 4 if scheme == RK4 else 1 + iterations
+    for block in numba.prange(nblock):
+        work = np.empty(field.shape[4])
+        for p in range(block * BLOCK, min(n, (block + 1) * BLOCK)):
+            if status[p] != ACTIVE:
+                continue
+            x0, y0, z0, l0 = pos[p, 0], pos[p, 1], pos[p, 2], level[p]
+            # One call site for every stage keeps the compiled kernel small.
+            # RK4: stages at t, t + h/2, t + h/2, t + h with weights 1, 2, 2, 1 (/6).
+            # Petterssen: the rate at the start, then the mean of the start and
+            # end rates, re-evaluated at the new end point until it settles.
+            px, py, pz, pl = x0, y0, z0, l0
+            ax = ay = az = al = 0.0  # Petterssen: the rate at the start
+            mx = my = mz = ml = 0.0  # the mean rate over the step
+            flag = ACTIVE
+            for stage in range(nstage):
+                if scheme == RK4:
+                    ts = 0 if stage == 0 else (2 if stage == 3 else 1)
+                else:
+                    ts = 0 if stage == 0 else 2
+                flag, kx, ky, kz, kl = _rate(
+                    field, slot0[ts], slot1[ts], weight[ts], px, py, pz, pl, lat, lat_uniform,
+                    lon, lon_uniform, periodic, levels, log_levels, vertical_scale, radius, work)
                 if flag != ACTIVE:
                     break
-                flag, bx, by, bz, bl = _rate(
-                    field, slot0[2], slot1[2], weight[2], x0 + h * mx, y0 + h * my, z0 + h * mz,
-                    l0 + h * ml, lat, lat_uniform, lon, lon_uniform, periodic, levels,
-                    log_levels, vertical_scale, radius, work)
-                nx, ny = 0.5 * (ax + bx), 0.5 * (ay + by)
-                nz, nl = 0.5 * (az + bz), 0.5 * (al + bl)
+                if scheme == RK4:
+                    share = (1.0 if stage == 0 or stage == 3 else 2.0) / 6.0
+                    mx, my, mz, ml = mx + share * kx, my + share * ky, mz + share * kz, \
+                        ml + share * kl
+                    reach = 0.5 * h if stage < 2 else h
+                    px, py, pz, pl = x0 + reach * kx, y0 + reach * ky, z0 + reach * kz, \
+                        l0 + reach * kl
+                    continue
+                if stage == 0:
+                    ax, ay, az, al = kx, ky, kz, kl
+                    nx, ny, nz, nl = kx, ky, kz, kl
+                else:
+                    nx, ny = 0.5 * (ax + kx), 0.5 * (ay + ky)
+                    nz, nl = 0.5 * (az + kz), 0.5 * (al + kl)
                 change = abs(h) * max(abs(nx - mx), abs(ny - my), abs(nz - mz), abs(nl - ml))
                 mx, my, mz, ml = nx, ny, nz, nl
-                if change < tolerance:
+                if stage > 0 and change < tolerance:
                     break
-        if flag != ACTIVE:
-            status[p] = flag
-            continue
-        x1, y1, z1, l1 = x0 + h * mx, y0 + h * my, z0 + h * mz, l0 + h * ml
-        norm = math.sqrt(x1 * x1 + y1 * y1 + z1 * z1)
-        x1, y1, z1 = x1 / norm, y1 / norm, z1 / norm
-        if not periodic:  # the end point itself must lie inside a limited-area domain
-            flag = interpolate(field, slot0[2], slot1[2], weight[2], x1, y1, z1, l1, lat,
-                               lat_uniform, lon, lon_uniform, periodic, levels, log_levels, work)
-            if flag == LEFT_DOMAIN:
+                px, py, pz, pl = x0 + h * mx, y0 + h * my, z0 + h * mz, l0 + h * ml
+            if flag != ACTIVE:
                 status[p] = flag
                 continue
-        if vertical_scale != 0.0 and nlev > 1:
-            if log_levels:
-                s = math.log(l1) if l1 > 0.0 else -math.inf  # zero pressure: above the top
-            else:
-                s = l1
-            if s < levels[0] - EDGE_TOLERANCE:
-                status[p] = REACHED_HIGHEST if lowest_at_top_of_range else REACHED_LOWEST
-                continue
-            if s > levels[nlev - 1] + EDGE_TOLERANCE:
-                status[p] = REACHED_LOWEST if lowest_at_top_of_range else REACHED_HIGHEST
-                continue
-        pos[p, 0], pos[p, 1], pos[p, 2], level[p] = x1, y1, z1, l1
+            x1, y1, z1, l1 = x0 + h * mx, y0 + h * my, z0 + h * mz, l0 + h * ml
+            norm = math.sqrt(x1 * x1 + y1 * y1 + z1 * z1)
+            x1, y1, z1 = x1 / norm, y1 / norm, z1 / norm
+            if not periodic:  # the end point itself must lie inside a limited-area domain
+                flag = _cell(x1, y1, z1, lat, lat_uniform, lon, lon_uniform, periodic)[0]
+                if flag != ACTIVE:
+                    status[p] = flag
+                    continue
+            if vertical_scale != 0.0 and nlev > 1:
+                if log_levels:
+                    s = math.log(l1) if l1 > 0.0 else -math.inf  # zero pressure: above the top
+                else:
+                    s = l1
+                if s < levels[0] - EDGE_TOLERANCE:
+                    status[p] = REACHED_HIGHEST if lowest_at_top_of_range else REACHED_LOWEST
+                    continue
+                if s > levels[nlev - 1] + EDGE_TOLERANCE:
+                    status[p] = REACHED_LOWEST if lowest_at_top_of_range else REACHED_HIGHEST
+                    continue
+            pos[p, 0], pos[p, 1], pos[p, 2], level[p] = x1, y1, z1, l1
 
 
 @numba.njit(cache=True)
