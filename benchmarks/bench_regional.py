@@ -9,7 +9,9 @@ One process, one grid (1000 x 1000 by default), the same smooth wind at 37 level
   from scratch each time. It is timed on ``--baseline-levels`` levels (default 1)
   and scaled per level, as the output says;
 * flowpipe: ``decompose_regional`` with each scheme, first on one level with an
-  empty cache (the build included), then on all levels (built once, reused).
+  empty cache (the build included), then on all levels (built once, reused);
+* for information, one smaller level with a block below the ground
+  (``--masked-n``), where the variational iterations are far more numerous.
 
 Everything runs single-threaded (dask's synchronous scheduler, one BLAS/FFT
 thread), so the ratios compare algorithms, not cores. Peak memory: the
@@ -18,6 +20,7 @@ sees SuperLU's own allocations), and the tracemalloc peak (NumPy and Python
 allocations only).
 
     python benchmarks/bench_regional.py [--n 1000] [--levels 37] [--baseline-levels 1]
+                                        [--masked-n 300]
 """
 
 from __future__ import annotations
@@ -129,6 +132,8 @@ def main() -> None:
     parser.add_argument("--n", type=int, default=1000, help="grid points per side")
     parser.add_argument("--levels", type=int, default=37)
     parser.add_argument("--baseline-levels", type=int, default=1)
+    parser.add_argument("--masked-n", type=int, default=300,
+                        help="size of the extra masked level (0: skip)")
     args = parser.parse_args()
     n = args.n
     lat = np.linspace(20.0, 70.0, n)
@@ -170,6 +175,28 @@ def main() -> None:
               f"{iterations.max():.0f}; worst reconstruction error "
               f"{float(out['reconstruction_error'].max()):.1e}")
         del out, out1
+    if args.masked_n:
+        masked_level(args.masked_n)
+
+
+def masked_level(n: int) -> None:
+    """For information: one level with a block below the ground, variational, vs the baseline."""
+    lat = np.linspace(20.0, 70.0, n)
+    lon = np.linspace(-30.0, 20.0, n)
+    u, v = smooth_wind(lat, lon, 0)
+    t_base, _, _, _ = timed(lambda: baseline_level(lat, lon, u, v))
+    ground = (lat[:, None] > 30) & (lat[:, None] < 35) & (lon[None, :] > -5) & (lon[None, :] < 5)
+    u[ground] = np.nan
+    v[ground] = np.nan
+    dims = ("latitude", "longitude")
+    wind = xr.Dataset({"u": (dims, u), "v": (dims, v)}, coords={"latitude": lat, "longitude": lon})
+    regional._cache.clear()
+    t_first, m_first, _, out = timed(lambda: regional.decompose_regional(wind))
+    t_again, _, _, _ = timed(lambda: regional.decompose_regional(wind))
+    print(f"masked {n} x {n} (block below ground), variational: first level {t_first:6.2f} s "
+          f"= {t_first / (t_base / 2):5.2f} x one baseline Poisson solve on the unmasked grid; "
+          f"again {t_again:6.2f} s = {t_again / t_base:5.2f} x baseline per level; "
+          f"{out.attrs['iterations']:.0f} iterations; peak RSS +{m_first:,.0f} MiB")
 
 
 if __name__ == "__main__":
