@@ -332,3 +332,17 @@ def test_non_standard_calendar_start_times():
     end = tracks["time"].values[0, -1]
     assert (end.calendar, end.month, end.day, end.hour) == ("360_day", 3, 1, 0)
     assert tracks["time"].encoding["calendar"] == "360_day"
+
+
+def test_missing_wind_stops_the_parcel():
+    # The contract (DESIGN.md, status flags): a parcel that needs a missing wind value
+    # stops with status met_missing_wind; nothing is invented after that (common
+    # practice: missing data are not filled in).
+    wind = regional_wind()
+    wind["u"] = wind["u"].where(wind["longitude"] < 0.0)  # no wind east of 0 E
+    tracks = advect(wind, [(45.0, -5.0), (45.0, -19.0)], 12.0)  # 11 degrees of longitude
+    status = tracks["status"]
+    assert status.attrs["flag_meanings"].split()[status.values[0]] == "met_missing_wind"
+    lon = tracks["longitude"].values[0]
+    assert np.nanmax(lon) < 0.0 and np.isnan(lon[-1])
+    assert status.values[1] == 0 and np.isfinite(tracks["longitude"].values[1]).all()

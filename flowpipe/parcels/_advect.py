@@ -53,7 +53,13 @@ class _Clock:
     steady: bool
 
     def bracket(self, t: float) -> tuple[int, int, float]:
-        """Input time indices around ``t`` and the weight of the later one."""
+        """Input time indices around ``t`` and the weight of the later one.
+
+        References
+        ----------
+        Linear interpolation in time between the bracketing input times
+        (common practice); a weight within 1e-12 of 0 or 1 needs one slice.
+        """
         s = self.seconds
         if self.steady or s.size == 1:
             return 0, 0, 0.0
@@ -428,6 +434,8 @@ class _Schedule:
 
 
 def _schedule(total: float, step: float, record: float) -> _Schedule:
+    """Steps of length ``step`` (the last one shorter if need be) filling ``total`` seconds,
+    with a record every ``max(1, round(record / step))`` steps and after the last."""
     nsteps = max(1, math.ceil(total / step - 1e-9))
     steps = np.full(nsteps, step)
     steps[-1] = total - step * (nsteps - 1)

@@ -44,6 +44,12 @@ def _locate(coord, uniform, value):
 
     ``inside`` is False when ``value`` lies outside ``[coord[0], coord[-1]]``;
     the index is then clamped to the nearest cell and the fraction to [0, 1].
+
+    References
+    ----------
+    Bisection of an ordered table: Press, Teukolsky, Vetterling & Flannery
+    (2007), Numerical Recipes, 3rd ed., section 3.1.1 ("locate"); a direct
+    division on equally spaced coordinates.
     """
     n = coord.shape[0]
     if n == 1:
@@ -201,6 +207,13 @@ def _rate(field, s0, s1, wt, px, py, pz, level, lat, lat_uniform, lon, lon_unifo
     normalised position and divided by the radius, so that the rate keeps
     the length of the position vector constant; the vertical rate is the
     vertical velocity times ``vertical_scale`` (0 for level-following runs).
+
+    References
+    ----------
+    ``dr/dt = (V - (V . r) r) / a`` for a unit position vector ``r``: the
+    Cartesian form of the horizontal trajectory equation (common practice;
+    see e.g. Williamson et al. 1992, J. Comput. Phys. 102, 211-224, section 2
+    for the Cartesian form of a wind on the sphere).
     """
     norm = math.sqrt(px * px + py * py + pz * pz)
     qx, qy, qz = px / norm, py / norm, pz / norm

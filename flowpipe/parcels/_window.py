@@ -45,6 +45,7 @@ class SliceGrid:
 
 
 def _uniform(values: np.ndarray) -> bool:
+    """True when the coordinates are equally spaced (to rounding; common practice)."""
     if values.size < 3:
         return True
     steps = np.diff(values)
@@ -88,7 +89,27 @@ def slice_grid(wind: xr.Dataset, periodic: bool) -> SliceGrid:
 
 
 def _close_poles(values: np.ndarray, grid: SliceGrid, input_lat: np.ndarray) -> np.ndarray:
-    """Give pole rows (existing or added) the ring mean of the row nearest the pole."""
+    """Give pole rows (existing or added) the ring mean of the row nearest the pole.
+
+    Parameters
+    ----------
+    values : numpy.ndarray, shape (nlev, nlat, nlon)
+        One Cartesian wind component (or a scalar) of one time slice.
+    grid : SliceGrid
+    input_lat : numpy.ndarray
+        The input's latitudes.
+
+    Returns
+    -------
+    numpy.ndarray
+        With the pole rows of ``grid.latitude``.
+
+    References
+    ----------
+    At a pole every longitude names the same point, so its one vector is
+    estimated by the mean of the Cartesian vectors round the nearest ring
+    (common practice for pole points of latitude-longitude grids).
+    """
     if not grid.periodic:
         return values
     rows = [values]
