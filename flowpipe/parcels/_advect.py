@@ -311,9 +311,12 @@ def advect(
     backward : bool
         Integrate backward in time ("where did the air come from").
     step_minutes : float, optional
-        Integration step; by default the Courant rule of
-        :func:`_courant_step` (Courant number ``courant``) rounded down to a
-        whole fraction of the record interval. It may not exceed the input
+        Integration step. By default the Courant-number rule
+        ``h = courant * a * min(dphi, dlambda) / max |V|`` (and, in 3-D,
+        ``h <= courant * min dlevel / max |dlevel/dt|``) on the wind at the
+        earliest start time (:func:`_courant_step`), capped at the input
+        interval and the record interval, then shortened to a whole fraction
+        of the record interval. A given step may not exceed the input
         interval.
     vertical : {"omega", "w"}, optional
         3-D trajectories with the vertical velocity ``omega`` (Pa s-1, on
