@@ -85,6 +85,22 @@ def test_petterssen_scheme_solid_body_rotation_over_the_poles():
     assert tracks.attrs["integration_scheme"].startswith("Petterssen")
 
 
+def test_solid_body_rotation_over_the_poles_of_a_grid_without_pole_rows():
+    # Williamson et al. (1992) test case 1, alpha = pi/2, on a 1-degree grid offset half a
+    # spacing from the poles (rows at +-89.5): parcels cross the caps beyond the last rows,
+    # where the wind comes from the pole vector closing the grid, and still return.
+    lat = np.arange(-89.5, 90.0, 1.0)
+    lon = np.arange(0.5, 360.0, 1.0)
+    wind = steady_wind(*analytic.solid_body_rotation(lat, lon, np.pi / 2), lat, lon)
+    plat, plon = fibonacci_points(1000)
+    tracks = advect(wind, {"latitude": plat, "longitude": plon},
+                    analytic.REVOLUTION_SECONDS / 3600, steady=True)
+    end = haversine(plat, plon, tracks["latitude"].values[:, -1],
+                    tracks["longitude"].values[:, -1])
+    assert end.max() <= 5 * KM
+    assert np.nanmax(np.abs(tracks["latitude"].values)) > 89.5  # some went past the rows
+
+
 def deformational_wind(period: float, interval: float, spacing: float = 1.0) -> xr.Dataset:
     lat, lon = analytic.global_grid(spacing)
     seconds = np.arange(0.0, period + interval / 2, interval)
