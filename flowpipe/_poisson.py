@@ -322,6 +322,35 @@ class _WholeGridEnergySolver:
         return self._solver.solve(grids).transpose(1, 0, 2).reshape(2, -1)
 
 
+class _CoupledSolver:
+    """Sparse LU of the normal equations with a moderate regulariser, ``N + beta (E + pin)``.
+
+    As a preconditioner it keeps the iterates ``E``-orthogonal to the null
+    space of the wind operator: for ``n`` in that null space ``n^T N = 0``, so
+    ``(N + beta E) y = b`` with ``b`` orthogonal to ``n`` gives ``n^T E y = 0``.
+    """
+
+    def __init__(self, normal: sp.csr_array, penalty: sp.csr_array, beta: float) -> None:
+        matrix = normal + beta * sp.block_diag([penalty, penalty])
+        self._lu = spla.splu(sp.csc_matrix(matrix), permc_spec="MMD_AT_PLUS_A",
+                             diag_pivot_thresh=0.0, options={"SymmetricMode": True})
+        self._lock = threading.Lock()  # one factorisation shared by the dask threads
+
+    def solve(self, rhs: np.ndarray) -> np.ndarray:
+        """Solve for the stacked potentials, ``rhs`` of shape ``(2, n_active)``."""
+        with self._lock:
+            return self._lu.solve(rhs.ravel()).reshape(rhs.shape)
+
+
+#: Masked grids with at most this many active corners get the coupled direct
+#: preconditioner (its factorisation takes about 2 GB at the limit); larger
+#: ones the uncoupled one, which needs far more iterations around the mask.
+COUPLED_LIMIT = 250_000
+#: Regulariser weight of the coupled preconditioner: large enough to keep its
+#: factorisation well conditioned, small enough that few modes feel it.
+COUPLED_WEIGHT = 1e-6
+
+
 class VariationalSolver:
     """Regularised least-squares fit of corner potentials to the valid winds.
 
@@ -361,12 +390,16 @@ class VariationalSolver:
     Notes
     -----
     What depends on the grid and mask is built once: the sparse operators and
-    the preconditioner (a separable fast solver on a complete grid, a sparse
-    LU factorisation on a masked one). On complete grids a smooth wind needs a
-    few tens of iterations whatever the grid size; masks with re-entrant
-    corners (a coast, a block below the ground) need hundreds, more on finer
-    grids, because the preconditioner does not couple the two potentials
-    where the mask cuts the box stencils.
+    the preconditioner. On a complete grid that is ``E`` itself, solved by a
+    separable fast solver: a smooth wind needs a few tens of iterations
+    whatever the grid size. Masks with re-entrant corners (a coast, a block
+    below the ground) make the solution singular there, which ``E`` - blind to
+    the coupling of the two potentials where the mask cuts the box stencils -
+    resolves only in hundreds of iterations; so a masked grid with up to
+    :data:`COUPLED_LIMIT` active corners is preconditioned by the sparse LU of
+    the normal equations plus ``1e-6 E`` (:class:`_CoupledSolver`), which keeps
+    the same least-energy limit and needs one or two iterations. Larger masked
+    grids fall back to the LU of ``E`` and its many iterations.
 
     References
     ----------
@@ -382,11 +415,22 @@ class VariationalSolver:
 
     #: The solver's description, for a complete grid (True) and a masked one (False).
     names = {
-        True: "conjugate gradients preconditioned by a separable fast solver (cosine or Fourier "
-              "transform in longitude, tridiagonal in latitude)",
-        False: "conjugate gradients preconditioned by a sparse LU (SuperLU) factorised once per "
-               "grid and mask",
+        "complete": "conjugate gradients preconditioned by a separable fast solver (cosine or "
+                    "Fourier transform in longitude, tridiagonal in latitude)",
+        "coupled": "conjugate gradients preconditioned by a sparse LU (SuperLU) of the "
+                   "regularised normal equations, factorised once per grid and mask",
+        "uncoupled": "conjugate gradients preconditioned by a sparse LU (SuperLU) of the "
+                     "gradient energy, factorised once per grid and mask",
     }
+
+    @classmethod
+    def kind(cls, grid: StaggeredGrid, valid: np.ndarray) -> str:
+        """Which preconditioner a grid and mask get (a key of :attr:`names`)."""
+        if valid.all():
+            return "complete"
+        if np.count_nonzero(active_corners(grid, valid)) <= COUPLED_LIMIT:
+            return "coupled"
+        return "uncoupled"
 
     def __init__(self, grid: StaggeredGrid, valid: np.ndarray, regularisation: float,
                  tolerance: float = 1e-7, max_iterations: int = 1000) -> None:
@@ -408,11 +452,15 @@ class VariationalSolver:
         corner_area = np.broadcast_to(grid.corner_area, grid.corner_shape).ravel()[self._cols]
         pin = 1e-6 * self._gravest_eigenvalue(energy, corner_area) * corner_area
         self._energy = energy + sp.diags_array(pin)
-        if valid.all():
+        kind = self.kind(grid, valid)
+        if kind == "complete":
             self._preconditioner = _WholeGridEnergySolver(grid, pin)
+        elif kind == "coupled":
+            normal = self._wt @ sp.diags_array(self._weight) @ self._w
+            self._preconditioner = _CoupledSolver(normal, self._energy, COUPLED_WEIGHT)
         else:
             self._preconditioner = _SparseEnergySolver(grid, active, pin)
-        self.name = self.names[bool(valid.all())]
+        self.name = self.names[kind]
 
     def _gravest_eigenvalue(self, energy: sp.csr_array, corner_area: np.ndarray) -> float:
         """Rayleigh quotient ``E(f) / integral f^2 dA`` of the domain's gravest sine mode."""

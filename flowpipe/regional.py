@@ -36,8 +36,11 @@ Poisson solver (sine or Fourier transform in longitude, tridiagonal in
 latitude) and ``variational`` runs conjugate gradients preconditioned by the
 same kind of separable solver (cosine or Fourier transform); on a masked
 grid the Dirichlet Laplacian and the preconditioner are sparse LU
-factorisations. The work is lazy - one dask task per latitude-longitude slab
-- except for the masks, which are read once up front to check them.
+factorisations (the variational one of the coupled normal equations up to
+:data:`flowpipe._poisson.COUPLED_LIMIT` corners: one or two iterations; beyond
+it an uncoupled one, with hundreds of iterations around the mask). The work
+is lazy - one dask task per latitude-longitude slab - except for the masks,
+which are read once up front to check them.
 """
 
 from __future__ import annotations
@@ -346,7 +349,7 @@ def decompose_regional(wind: xr.Dataset, scheme: str = "variational", periodic: 
         seen.add(key)
         _check_mask(valid, _slab_label(u, flat_index), lat, lon, grid)
         if scheme == "variational":
-            solver_names.add(VariationalSolver.names[bool(valid.all())])
+            solver_names.add(VariationalSolver.names[VariationalSolver.kind(grid, valid)])
         else:
             solver_names.add(SeparableDirichletSolver.name if valid.all()
                              else SparseDirichletSolver.name)
