@@ -106,7 +106,9 @@ def now_iso() -> str:
 def global_attrs(ds: xr.Dataset, *, title: str, summary: str, references: str) -> dict[str, str]:
     """The global attributes of a flowpipe output (ACDD-1.3 discovery set).
 
-    ``history`` gets one more line (time and command) after the one ``ds`` has.
+    ``history`` gets one more line (time and command) after the one ``ds`` has;
+    the kind of vertical coordinate (``level_type``) is carried over, so that
+    :func:`complete` can restore the level's attributes.
     """
     created = now_iso()
     inputs = ds.attrs.get("input_files", "")
@@ -123,6 +125,7 @@ def global_attrs(ds: xr.Dataset, *, title: str, summary: str, references: str) -
         "references": references,
         "comment": CAUTION,
         "input_files": inputs,
+        **({"level_type": ds.attrs["level_type"]} if "level_type" in ds.attrs else {}),
     }
 
 

@@ -63,7 +63,7 @@ from ._poisson import (
     variational_partition,
 )
 from ._staggered import StaggeredGrid, interior_corners
-from .annotate import variable_attrs
+from .annotate import global_attrs, variable_attrs
 from .constants import EARTH_RADIUS
 from .errors import InputError, UsageError
 from .grid import describe_grid
@@ -84,7 +84,8 @@ CACHE_SIZE = 8
 
 FIELDS = {
     "variational": ("streamfunction", "velocity_potential", "vorticity", "divergence",
-                    "u_rotational", "v_rotational", "u_divergent", "v_divergent"),
+                    "u_rotational", "v_rotational", "u_divergent", "v_divergent",
+                    "u_harmonic", "v_harmonic"),
     "dirichlet": ("streamfunction", "velocity_potential", "vorticity", "divergence",
                   "u_rotational", "v_rotational", "u_divergent", "v_divergent",
                   "u_harmonic", "v_harmonic"),
@@ -100,6 +101,20 @@ DIAGNOSTIC_ATTRS = {
         "units": "1"},
     "iterations": {"long_name": "solver iterations (0 for direct solves)", "units": "1"},
 }
+
+#: What the parts of each scheme add up to.
+RECONSTRUCTION = {
+    "variational": "u_rotational + u_divergent = u (the harmonic wind is shared between them)",
+    "dirichlet": "u_rotational + u_divergent + u_harmonic = u",
+}
+VARIATIONAL_HARMONIC = (
+    "For reference: the harmonic wind of the partition of Lynch (1989). The variational split "
+    "already shares it between the rotational and the divergent wind, which alone add up to "
+    "the wind: do not add it to them.")
+REFERENCES = (
+    "Li, Chao & McWilliams (2006), Computation of the streamfunction and velocity potential for "
+    "limited and irregular domains, Mon. Wea. Rev. 134, 3384-3394; Lynch (1989), Partitioning "
+    "the wind in a limited domain, Mon. Wea. Rev. 117, 1492-1500")
 
 _cache: OrderedDict[tuple, Any] = OrderedDict()
 _cache_lock = threading.Lock()
@@ -155,6 +170,11 @@ def _solve_slabs(u: np.ndarray, v: np.ndarray, *, lat: np.ndarray, lon: np.ndarr
             parts, quality = dirichlet_partition(grid, us, vs, solver)
         else:
             parts, quality = variational_partition(grid, us, vs, solver)
+            # The harmonic flow that the least-energy split shares evenly between its
+            # two parts, for reference: Lynch's harmonic wind, one more direct solve.
+            lynch, _ = dirichlet_partition(grid, us, vs, _solver(grid, valid, "dirichlet", 0.0,
+                                                                 tolerance, max_iterations))
+            parts["u_harmonic"], parts["v_harmonic"] = lynch["u_harmonic"], lynch["v_harmonic"]
         for k, name in enumerate(names):
             fields[index + (k,)] = parts[name]
         diagnostics[index] = [quality[name] for name in DIAGNOSTICS]
@@ -274,8 +294,11 @@ def decompose_regional(wind: xr.Dataset, scheme: str = "variational", periodic: 
     xarray.Dataset
         The contract variables ``streamfunction``, ``velocity_potential``,
         ``vorticity``, ``divergence`` (of the input wind), ``u_rotational``,
-        ``v_rotational``, ``u_divergent``, ``v_divergent`` and, for
-        ``dirichlet``, ``u_harmonic``, ``v_harmonic``, on the wind's grid and
+        ``v_rotational``, ``u_divergent``, ``v_divergent``, ``u_harmonic``,
+        ``v_harmonic`` (for ``variational`` the harmonic wind of the Lynch
+        partition, for reference: the split already shares it between its
+        rotational and divergent winds; attribute ``wind_reconstruction``
+        says what adds up to the wind), on the wind's grid and
         dimensions, NaN where the wind is missing; per-slab quality figures
         ``reconstruction_error``, ``harmonic_energy_share`` (area-weighted,
         relative; for ``variational`` ``4 <w_rot, w_div> / |w|^2``, the energy
@@ -283,10 +306,10 @@ def decompose_regional(wind: xr.Dataset, scheme: str = "variational", periodic: 
         :func:`flowpipe._poisson.variational_partition`) and
         ``iterations``; attributes ``method`` (``"regional"``), ``scheme``,
         ``regularisation``, ``periodic``, ``solver`` (and ``tolerance``,
-        ``max_iterations`` for ``variational``) and, when the result is in
-        memory, the largest of each per-slab figure under the same names (a
-        dask-backed result carries them only as the lazy variables: take their
-        maximum when writing). Rows on a pole, where wind directions are
+        ``max_iterations`` for ``variational``) and the largest of each
+        per-slab figure under the same names (a float in memory, a 0-d dask
+        array for a lazy result, which :func:`flowpipe.write` computes with
+        the data). Rows on a pole, where wind directions are
         undefined, are returned missing (attribute ``pole_rows``). Lazy when
         the wind is dask-backed.
 
@@ -374,17 +397,26 @@ def decompose_regional(wind: xr.Dataset, scheme: str = "variational", periodic: 
                       for k, name in enumerate(names)})
     for k, name in enumerate(DIAGNOSTICS):
         out[name] = quality.isel(diagnostic=k, drop=True).assign_attrs(DIAGNOSTIC_ATTRS[name])
-    out.attrs = dict(wind.attrs)
+    if scheme == "variational":
+        for name in ("u_harmonic", "v_harmonic"):
+            out[name].attrs["comment"] = VARIATIONAL_HARMONIC
+    out.attrs = global_attrs(
+        wind, title="Helmholtz decomposition of the wind on a limited area",
+        summary="Streamfunction, velocity potential, relative vorticity, divergence and the "
+        "rotational, divergent and harmonic winds on a limited-area or masked grid.",
+        references=REFERENCES)
     out.attrs.update(
         method="regional",
         scheme=scheme,
         regularisation=float(regularisation),
         periodic=int(periodic),
         solver="; ".join(sorted(solver_names)),
+        wind_reconstruction=RECONSTRUCTION[scheme],
     )
     if scheme == "variational":
         out.attrs.update(tolerance=tolerance, max_iterations=max_iterations)
-    if quality.chunks is None:
-        for k, name in enumerate(DIAGNOSTICS):
-            out.attrs[name] = float(np.nanmax(quality.values[..., k]))
+    for k, name in enumerate(DIAGNOSTICS):
+        worst = quality.isel(diagnostic=k).max()
+        # Lazy input: a 0-d dask array, which flowpipe.write computes with the data.
+        out.attrs[name] = worst.data if quality.chunks is not None else float(worst)
     return out
