@@ -103,6 +103,15 @@ def now_iso() -> str:
     return _dt.datetime.now(_dt.UTC).replace(microsecond=0).isoformat().replace("+00:00", "Z")
 
 
+def figure(value: xr.DataArray) -> float | object:
+    """A 0-d result as an attribute value: a float, or a 0-d dask array when lazy.
+
+    :func:`flowpipe.store.write` computes dask-array attributes in the same
+    pass as the data, so a lazy stage can still carry its global figures.
+    """
+    return value.data if value.chunks is not None else float(value)
+
+
 def global_attrs(ds: xr.Dataset, *, title: str, summary: str, references: str) -> dict[str, str]:
     """The global attributes of a flowpipe output (ACDD-1.3 discovery set).
 

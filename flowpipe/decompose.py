@@ -18,7 +18,7 @@ import numpy as np
 import xarray as xr
 
 from . import spectral
-from .annotate import global_attrs, variable_attrs
+from .annotate import figure, global_attrs, variable_attrs
 from .constants import EARTH_RADIUS
 from .errors import InputError, UsageError
 from .grid import GridInfo, describe_grid
@@ -410,10 +410,7 @@ def _decompose_spectral(
         pole_rows="each pole row replaced by the least-squares fit of a single vector"
         if geometry == "CC" else "none (no rows on the poles)",
     )
-    total = np.sqrt(residual.sum() / norm.sum())
-    # Lazy input: a 0-d dask array, which flowpipe.write computes with the data.
-    parts.attrs["reconstruction_error"] = (total.data if residual.chunks is not None
-                                           else float(total))
+    parts.attrs["reconstruction_error"] = figure(np.sqrt(residual.sum() / norm.sum()))
     return parts
 
 

@@ -63,7 +63,7 @@ from ._poisson import (
     variational_partition,
 )
 from ._staggered import StaggeredGrid, interior_corners
-from .annotate import global_attrs, variable_attrs
+from .annotate import figure, global_attrs, variable_attrs
 from .constants import EARTH_RADIUS
 from .errors import InputError, UsageError
 from .grid import describe_grid
@@ -416,7 +416,5 @@ def decompose_regional(wind: xr.Dataset, scheme: str = "variational", periodic: 
     if scheme == "variational":
         out.attrs.update(tolerance=tolerance, max_iterations=max_iterations)
     for k, name in enumerate(DIAGNOSTICS):
-        worst = quality.isel(diagnostic=k).max()
-        # Lazy input: a 0-d dask array, which flowpipe.write computes with the data.
-        out.attrs[name] = worst.data if quality.chunks is not None else float(worst)
+        out.attrs[name] = figure(quality.isel(diagnostic=k).max())
     return out

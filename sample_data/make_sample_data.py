@@ -68,6 +68,12 @@ def _times(hours: np.ndarray) -> np.ndarray:
     return np.datetime64("2026-01-12T00:00:00", "s") + (hours * 3600).astype("timedelta64[s]")
 
 
+def _file_attrs(title: str) -> dict[str, str]:
+    return {"Conventions": "CF-1.11", "title": f"flowpipe demo: {title}",
+            "source": "sample_data/make_sample_data.py (closed-form synthetic fields)",
+            "comment": "Invented scenario; not real weather."}
+
+
 def _packed(values: np.ndarray, units: str, **attrs) -> tuple[np.ndarray, dict, dict]:
     lo, hi = float(np.min(values)), float(np.max(values))
     scale = max(hi - lo, 1e-12) / 60000.0
@@ -119,12 +125,7 @@ def make_global(path: Path) -> None:
             "lat": ("lat", lat, {"standard_name": "latitude", "units": "degrees_north"}),
             "lon": ("lon", lon, {"standard_name": "longitude", "units": "degrees_east"}),
         },
-        attrs={
-            "Conventions": "CF-1.11",
-            "title": "flowpipe demo: invented winter week, synthetic global winds",
-            "source": "sample_data/make_sample_data.py (closed-form synthetic fields)",
-            "comment": "Invented scenario; not real weather.",
-        },
+        attrs=_file_attrs("invented winter week, synthetic global winds"),
     )
     _write(ds, enc, path)
 
@@ -172,12 +173,7 @@ def make_regional(path: Path) -> None:
             "latitude": ("latitude", lat, {"standard_name": "latitude", "units": "degrees_north"}),
             "longitude": ("longitude", lon, {"standard_name": "longitude", "units": "degrees_east"}),
         },
-        attrs={
-            "Conventions": "CF-1.11",
-            "title": "flowpipe demo: invented North-Atlantic storm, synthetic limited-area winds",
-            "source": "sample_data/make_sample_data.py (closed-form synthetic fields)",
-            "comment": "Invented scenario; not real weather.",
-        },
+        attrs=_file_attrs("invented North-Atlantic storm, synthetic limited-area winds"),
     )
     _write(ds, enc, path)
 
