@@ -7,7 +7,8 @@ the script (the machine is shared and noisy; ratios, not seconds, are what to
 compare). Targets: speed-up >= 1.6 with 2 workers on 2 cores; peak resident
 memory of a 64-time run <= 1.3 x that of an 8-time run.
 
-Usage: ``python benchmarks/bench_run.py [--resolution DEG] [--times N] [--repeat K]``
+Usage: ``python benchmarks/bench_run.py [--resolution DEG] [--times N]
+[--memory-resolution DEG] [--repeat K]``
 """
 
 from __future__ import annotations
@@ -89,16 +90,22 @@ def measure(config: Path, workers: int) -> tuple[float, float]:
 
 def main() -> None:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
-    parser.add_argument("--resolution", type=float, default=0.5, help="grid spacing, degrees")
-    parser.add_argument("--times", type=int, default=16, help="input times of the speed run")
+    parser.add_argument("--resolution", type=float, default=0.25,
+                        help="grid spacing of the speed run, degrees")
+    parser.add_argument("--times", type=int, default=8, help="input files of the speed run")
+    parser.add_argument("--memory-resolution", type=float, default=1.0,
+                        help="grid spacing of the memory runs (8 and 64 times), degrees")
     parser.add_argument("--repeat", type=int, default=2, help="alternating repeats per case")
     args = parser.parse_args()
     with tempfile.TemporaryDirectory() as tmp:
         root = Path(tmp)
-        series = write_series(root, args.resolution, 64)
+        (root / "speed").mkdir()
+        (root / "memory").mkdir()
         # The speed run: each input file is one unit of work (the default).
-        speed = config_for(root, series[: args.times], "speed", combine=False)
+        files = write_series(root / "speed", args.resolution, args.times)
+        speed = config_for(root, files, "speed", combine=False)
         # The memory runs: all times as one series, streamed through one output.
+        series = write_series(root / "memory", args.memory_resolution, 64)
         small = config_for(root, series[:8], "t8", combine=True)
         large = config_for(root, series, "t64", combine=True)
         one, two = [], []
@@ -109,7 +116,8 @@ def main() -> None:
         for _ in range(args.repeat):
             mem8.append(measure(small, 2)[1])
             mem64.append(measure(large, 2)[1])
-    print(f"grid {args.resolution} deg, {len(LEVELS)} levels; decompose stage, float32 output")
+    print(f"decompose stage, {len(LEVELS)} levels, float32 output; speed run on a "
+          f"{args.resolution} deg grid, memory runs on a {args.memory_resolution} deg grid")
     print(f"speed run ({args.times} files, one unit each): 1 worker {min(one):.2f} s, "
           f"2 workers {min(two):.2f} s"
           f" -> speed-up {min(one) / min(two):.2f} (target >= 1.6)")

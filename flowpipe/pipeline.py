@@ -39,6 +39,9 @@ LOG_NAME = "flowpipe.log"
 STAGE_ORDER = ("decompose", "advect", "maps")
 #: dask config key: the cores one task may use (read by the transform kernels).
 CORES_KEY = "flowpipe.cores"
+#: What each pool process needs, imported once by the process that forks them.
+PRELOAD = ["flowpipe.pipeline", "flowpipe.ingest", "flowpipe.decompose", "flowpipe.regional",
+           "flowpipe.parcels", "flowpipe.store", "xarray.backends.netCDF4_", "dask.array"]
 #: Input files kept open at once: a run reads a long series a time slice after
 #: another, and every open NetCDF-4 file holds about a MiB of library caches.
 OPEN_FILES = 16
@@ -305,7 +308,8 @@ class Runner:
 
             context = multiprocessing.get_context("forkserver")
             # The server imports flowpipe's stages once; each pool process is forked from it.
-            context.set_forkserver_preload(["flowpipe.decompose", "flowpipe.parcels", "flowpipe.regional"])
+            context.set_forkserver_preload(PRELOAD + (["flowpipe.maps"] if self.config.has("maps")
+                                                      else []))
             pool = ProcessPoolExecutor(
                 max_workers=min(processes, len(units)), mp_context=context,
                 initializer=_worker_setup, initargs=(str(self.out / LOG_NAME),))
