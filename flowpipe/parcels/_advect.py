@@ -36,7 +36,7 @@ VERTICAL = {"omega": ("pressure", 0.01), "w": ("height", 1.0)}
 SCHEMES = {"rk4": K.RK4, "petterssen": K.PETTERSSEN}
 #: Fewer parcels than this run on one thread: waking threads for every step
 #: costs more than it saves for small groups, most of all on a busy machine.
-PARALLEL_PARCELS = 4 * K.BLOCK
+PARALLEL_PARCELS = 8 * K.BLOCK
 #: Seconds within which two times count as equal (rounding of time coordinates).
 TIME_TOLERANCE = 1e-3
 
@@ -468,8 +468,11 @@ def _integrate(pos, lev, status, t0, sign, schedule, clock, winds, samples, grid
     threads = numba.get_num_threads()
     numba.set_num_threads(threads if pos.shape[0] >= PARALLEL_PARCELS else 1)
     try:
-        _steps(pos, lev, status, t0, sign, schedule, clock, winds, grid, vertical_scale, scheme,
-               record)
+        # Blocks handed out one at a time: a thread slowed by other work on a
+        # shared machine takes fewer of them instead of holding up every step.
+        with numba.parallel_chunksize(1):
+            _steps(pos, lev, status, t0, sign, schedule, clock, winds, grid, vertical_scale,
+                   scheme, record)
     finally:
         numba.set_num_threads(threads)
 

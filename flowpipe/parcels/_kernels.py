@@ -14,9 +14,15 @@ others are the flag values written to the output (see ``STATUS_MEANINGS``).
 from __future__ import annotations
 
 import math
+import os
 
 import numba
 import numpy as np
+
+# Idle worker threads sleep between steps instead of spinning: on a shared
+# machine spinning takes the processor from other work and then waits for it.
+# Read when the OpenMP threading layer starts; a setting of the user's wins.
+os.environ.setdefault("OMP_WAIT_POLICY", "PASSIVE")
 
 ACTIVE = -1
 COMPLETED = 0
@@ -31,7 +37,7 @@ STATUS_MEANINGS = ("completed", "left_domain", "reached_lowest_level", "reached_
 RK4 = 0
 PETTERSSEN = 1
 #: Parcels per parallel work item of :func:`advance`.
-BLOCK = 4096
+BLOCK = 512
 
 #: Longitudes and latitudes within this many degrees outside the grid still
 #: count as inside (rounding of coordinates read from files; common practice).
@@ -73,49 +79,144 @@ def _locate(coord, uniform, value):
     return i, f, inside
 
 
+#: Below this sine or tangent of an angle the truncated series of
+#: :func:`_small_asin` and :func:`_small_atan` are exact to rounding (their first
+#: omitted terms are below 1e-16 of the sum): angles under 2 degrees.
+SERIES_LIMIT = 0.035
+
+
 @numba.njit(cache=True, inline="always")
-def _cell(px, py, pz, lat, lat_uniform, lon, lon_uniform, periodic):
+def _small_asin(s):
+    """``asin(s)``, by its Maclaurin series when ``|s| < SERIES_LIMIT``.
+
+    References
+    ----------
+    Abramowitz & Stegun (1964), Handbook of Mathematical Functions, eq. 4.4.40
+    (the series of arcsin, from memory).
+    """
+    if abs(s) >= SERIES_LIMIT:
+        return math.asin(min(max(s, -1.0), 1.0))
+    q = s * s
+    return s * (1.0 + q * (1.0 / 6.0 + q * (3.0 / 40.0 + q * (5.0 / 112.0 + q * (35.0 / 1152.0)))))
+
+
+@numba.njit(cache=True, inline="always")
+def _small_atan2(s, c):
+    """``atan2(s, c)``, by the Maclaurin series of ``atan(s / c)`` for small angles.
+
+    References
+    ----------
+    Abramowitz & Stegun (1964), Handbook of Mathematical Functions, eq. 4.4.42
+    (the series of arctan, from memory).
+    """
+    if not (c > 0.0 and abs(s) < SERIES_LIMIT * c):
+        return math.atan2(s, c)
+    t = s / c
+    q = t * t
+    return t * (1.0 + q * (-1.0 / 3.0 + q * (1.0 / 5.0 + q * (-1.0 / 7.0 + q * (1.0 / 9.0
+                                                                               - q / 11.0)))))
+
+
+@numba.njit(cache=True, inline="always")
+def _global_cell(px, py, pz, rows, columns, row_guess, column_guess):
+    """Row ``j``, fraction ``fy``, columns ``i``, ``i1`` and fraction ``fx`` on a global grid,
+    without trigonometric calls in the common case.
+
+    A table indexed by ``z`` (rows) or by a pseudo-angle of ``(x, y)``
+    (columns) gives a first guess, corrected by comparing the position with the
+    sines and cosines of the grid coordinates. The fractions are the offsets
+    from the cell's first row and column, ``asin(sin(phi - phi_j))`` and
+    ``atan2(sin(lambda - lambda_i), cos(lambda - lambda_i))`` by the
+    angle-difference identities, divided by the cell's spacing: the same
+    weights as ``(phi - phi_j) / (phi_{j+1} - phi_j)`` in
+    :func:`interpolate`, to rounding.
+
+    Parameters
+    ----------
+    px, py, pz : float
+        Unit vector of the position.
+    rows : ndarray, shape (nlat, 3)
+        ``sin``, ``cos`` of each grid latitude and the inverse spacing (rad-1)
+        to the next row.
+    columns : ndarray, shape (nlon, 3)
+        The same for the longitudes (spacing to the next column, wrapping).
+    row_guess, column_guess : ndarray of int64
+        First guesses per bin of ``z`` in [-1, 1] and of the pseudo-angle in
+        [0, 4) (see :func:`flowpipe.parcels._window.cell_tables`).
+
+    References
+    ----------
+    Angle-difference identities and the series of :func:`_small_asin` and
+    :func:`_small_atan2`: Abramowitz & Stegun (1964), Handbook of
+    Mathematical Functions, eqs. 4.3.16-17 (from memory); table lookup
+    followed by a local search of an ordered table: Press, Teukolsky,
+    Vetterling & Flannery (2007), Numerical Recipes, 3rd ed., section 3.1.1.
+    """
+    z = min(max(pz, -1.0), 1.0)
+    last_row = rows.shape[0] - 2
+    j = row_guess[min(int((z + 1.0) * (0.5 * row_guess.shape[0])), row_guess.shape[0] - 1)]
+    while j < last_row and z >= rows[j + 1, 0]:
+        j += 1
+    while j > 0 and z < rows[j, 0]:
+        j -= 1
+    rho = math.sqrt(px * px + py * py)
+    fy = _small_asin(z * rows[j, 1] - rho * rows[j, 0]) * rows[j, 2]
+    fy = min(max(fy, 0.0), 1.0)
+
+    x, y = px, py
+    a = abs(x) + abs(y)
+    if a == 0.0:  # at a pole: longitude 0, as atan2(0, 0)
+        x, y, a = 1.0, 0.0, 1.0
+    pseudo = 1.0 - x / a if y >= 0.0 else 3.0 + x / a  # increases with longitude, 0..4
+    nbin = column_guess.shape[0]
+    i = column_guess[min(int(pseudo * (0.25 * nbin)), nbin - 1)]
+    nlon = columns.shape[0]
+    i1 = i + 1 if i + 1 < nlon else 0
+    while y * columns[i1, 1] - x * columns[i1, 0] >= 0.0:  # at or past the next column
+        i = i1
+        i1 = i + 1 if i + 1 < nlon else 0
+    while y * columns[i, 1] - x * columns[i, 0] < 0.0:  # before this column
+        i1 = i
+        i = i - 1 if i > 0 else nlon - 1
+    fx = _small_atan2(y * columns[i, 1] - x * columns[i, 0],
+                      x * columns[i, 1] + y * columns[i, 0]) * columns[i, 2]
+    fx = min(max(fx, 0.0), 1.0)
+    return j, fy, i, i1, fx
+
+
+@numba.njit(cache=True, inline="always")
+def _cell(px, py, pz, lat, lat_uniform, lon, lon_uniform, periodic, tables):
     """The grid cell of a unit vector: status, row ``j`` and fraction ``fy``, columns ``i``, ``i1``
     and fraction ``fx`` (see :func:`interpolate`); ``LEFT_DOMAIN`` outside a limited area.
+
+    Global grids use :func:`_global_cell` with ``tables``; limited areas
+    locate the latitude and longitude of the position.
 
     References
     ----------
     See :func:`interpolate`.
     """
+    if periodic:
+        j, fy, i, i1, fx = _global_cell(px, py, pz, tables[0], tables[1], tables[2], tables[3])
+        return ACTIVE, j, fy, i, i1, fx
     lat_deg = math.degrees(math.asin(min(max(pz, -1.0), 1.0)))
     lon_deg = math.degrees(math.atan2(py, px))
-    if lat_uniform:  # the common case, without the call
-        fy = (lat_deg - lat[0]) / (lat[1] - lat[0])
-        j = min(max(int(math.floor(fy)), 0), lat.shape[0] - 2)
-        fy -= j
-        if fy < -EDGE_TOLERANCE or fy > 1.0 + EDGE_TOLERANCE:
-            return LEFT_DOMAIN, 0, 0.0, 0, 0, 0.0
-        fy = min(max(fy, 0.0), 1.0)
-    else:
-        j, fy, inside = _locate(lat, lat_uniform, lat_deg)
-        if not inside:
-            return LEFT_DOMAIN, 0, 0.0, 0, 0, 0.0
+    j, fy, inside = _locate(lat, lat_uniform, lat_deg)
+    if not inside:
+        return LEFT_DOMAIN, 0, 0.0, 0, 0, 0.0
     nlon = lon.shape[0]
-    if periodic:
-        pos = (lon_deg - lon[0]) / (lon[1] - lon[0])
-        cell = math.floor(pos)
-        fx = pos - cell
-        i = int(cell) % nlon
-        i1 = i + 1 if i + 1 < nlon else 0
-    else:
-        shifted = lon[0] + (lon_deg - lon[0]) % 360.0
-        if shifted > lon[nlon - 1] + EDGE_TOLERANCE and 360.0 - (shifted - lon[0]) <= EDGE_TOLERANCE:
-            shifted -= 360.0  # just west of the western edge, within rounding
-        i, fx, inside = _locate(lon, lon_uniform, shifted)
-        if not inside:
-            return LEFT_DOMAIN, 0, 0.0, 0, 0, 0.0
-        i1 = i + 1
-    return ACTIVE, j, fy, i, i1, fx
+    shifted = lon[0] + (lon_deg - lon[0]) % 360.0
+    if shifted > lon[nlon - 1] + EDGE_TOLERANCE and 360.0 - (shifted - lon[0]) <= EDGE_TOLERANCE:
+        shifted -= 360.0  # just west of the western edge, within rounding
+    i, fx, inside = _locate(lon, lon_uniform, shifted)
+    if not inside:
+        return LEFT_DOMAIN, 0, 0.0, 0, 0, 0.0
+    return ACTIVE, j, fy, i, i + 1, fx
 
 
 @numba.njit(cache=True, inline="always")
 def interpolate(field, s0, s1, wt, px, py, pz, level, lat, lat_uniform, lon, lon_uniform,
-                periodic, levels, log_levels, out):
+                periodic, tables, levels, log_levels, out):
     """Sample every component of ``field`` at one position and time.
 
     Linear in time between slots ``s0`` and ``s1`` (weight ``wt`` on ``s1``),
@@ -140,6 +241,11 @@ def interpolate(field, s0, s1, wt, px, py, pz, level, lat, lat_uniform, lon, lon
         pole rows).
     lat_uniform, lon_uniform, periodic : bool
         Equal spacing of each axis; longitudes wrap round the globe.
+    tables : tuple
+        On global grids, the tables of
+        :func:`flowpipe.parcels._window.cell_tables` with which
+        :func:`_global_cell` finds the cell (the weights are the bilinear
+        ones above, to rounding); unused on limited areas.
     levels : ndarray
         Ascending vertical interpolation coordinates (``log p`` or height).
     log_levels : bool
@@ -164,7 +270,7 @@ def interpolate(field, s0, s1, wt, px, py, pz, level, lat, lat_uniform, lon, lon
     log-pressure is common practice.
     """
     ncomp = field.shape[4]
-    flag, j, fy, i, i1, fx = _cell(px, py, pz, lat, lat_uniform, lon, lon_uniform, periodic)
+    flag, j, fy, i, i1, fx = _cell(px, py, pz, lat, lat_uniform, lon, lon_uniform, periodic, tables)
     if flag != ACTIVE:
         return flag
     nlev = levels.shape[0]
@@ -200,7 +306,7 @@ def interpolate(field, s0, s1, wt, px, py, pz, level, lat, lat_uniform, lon, lon
 
 @numba.njit(cache=True, inline="always")
 def _rate(field, s0, s1, wt, px, py, pz, level, lat, lat_uniform, lon, lon_uniform, periodic,
-          levels, log_levels, vertical_scale, radius, work):
+          tables, levels, log_levels, vertical_scale, radius, work):
     """Status and time derivative ``(dx, dy, dz, dlevel)/dt`` of the state at one point.
 
     The interpolated Cartesian wind is projected on the tangent plane of the
@@ -218,7 +324,7 @@ def _rate(field, s0, s1, wt, px, py, pz, level, lat, lat_uniform, lon, lon_unifo
     norm = math.sqrt(px * px + py * py + pz * pz)
     qx, qy, qz = px / norm, py / norm, pz / norm
     flag = interpolate(field, s0, s1, wt, qx, qy, qz, level, lat, lat_uniform, lon, lon_uniform,
-                       periodic, levels, log_levels, work)
+                       periodic, tables, levels, log_levels, work)
     if flag != ACTIVE:
         return flag, 0.0, 0.0, 0.0, 0.0
     vx, vy, vz = work[0], work[1], work[2]
@@ -228,10 +334,16 @@ def _rate(field, s0, s1, wt, px, py, pz, level, lat, lat_uniform, lon, lon_unifo
             (vz - radial * qz) / radius, rate_level)
 
 
-@numba.njit(cache=True, parallel=True)
+#: Floating-point licences of :func:`advance`: fused multiply-adds, reciprocals
+#: and reassociation (rounding-level changes only); never the no-NaN or
+#: no-infinity ones, which would break the detection of missing wind.
+FASTMATH = {"nsz", "arcp", "contract", "reassoc"}
+
+
+@numba.njit(cache=True, parallel=True, fastmath=FASTMATH)
 def advance(pos, level, status, h, field, slot0, slot1, weight, lat, lat_uniform, lon,
-            lon_uniform, periodic, levels, log_levels, vertical_scale, lowest_at_top_of_range,
-            radius, scheme, iterations, tolerance):
+            lon_uniform, periodic, tables, levels, log_levels, vertical_scale,
+            lowest_at_top_of_range, radius, scheme, iterations, tolerance):
     """Advance every active parcel by one time step ``h`` (seconds, negative backward).
 
     Parameters
@@ -252,7 +364,7 @@ def advance(pos, level, status, h, field, slot0, slot1, weight, lat, lat_uniform
     slot0, slot1, weight : ndarray, shape (3,)
         Slots and time weights at the stage times ``t``, ``t + h/2``,
         ``t + h``.
-    lat, lat_uniform, lon, lon_uniform, periodic, levels, log_levels
+    lat, lat_uniform, lon, lon_uniform, periodic, tables, levels, log_levels
         As in :func:`interpolate`.
     vertical_scale : float
         Factor from the vertical velocity to level units per second
@@ -286,29 +398,41 @@ def advance(pos, level, status, h, field, slot0, slot1, weight, lat, lat_uniform
     nblock = (n + BLOCK - 1) // BLOCK
     nstage = 4 if scheme == RK4 else 1 + iterations
     for block in numba.prange(nblock):
+        first, stop = block * BLOCK, min(n, (block + 1) * BLOCK)
         work = np.empty(field.shape[4])
-        for p in range(block * BLOCK, min(n, (block + 1) * BLOCK)):
-            if status[p] != ACTIVE:
-                continue
-            x0, y0, z0, l0 = pos[p, 0], pos[p, 1], pos[p, 2], level[p]
-            # One call site for every stage keeps the compiled kernel small.
-            # RK4: stages at t, t + h/2, t + h/2, t + h with weights 1, 2, 2, 1 (/6).
-            # Petterssen: the rate at the start, then the mean of the start and
-            # end rates, re-evaluated at the new end point until it settles.
-            px, py, pz, pl = x0, y0, z0, l0
-            ax = ay = az = al = 0.0  # Petterssen: the rate at the start
-            mx = my = mz = ml = 0.0  # the mean rate over the step
-            flag = ACTIVE
-            for stage in range(nstage):
-                if scheme == RK4:
-                    ts = 0 if stage == 0 else (2 if stage == 3 else 1)
-                else:
-                    ts = 0 if stage == 0 else 2
+        # Per parcel of the block: the point of the next stage, the mean rate over
+        # the step and (Petterssen) the rate at the start.
+        point = np.empty((stop - first, 4))
+        mean = np.zeros((stop - first, 4))
+        start = np.empty((stop - first, 4))
+        settled = np.zeros(stop - first, dtype=np.bool_)  # Petterssen: converged
+        for p in range(first, stop):
+            point[p - first, 0], point[p - first, 1] = pos[p, 0], pos[p, 1]
+            point[p - first, 2], point[p - first, 3] = pos[p, 2], level[p]
+        # Stage by stage over the block, so that the evaluations of different
+        # parcels (independent) overlap in the processor; one call site for every
+        # stage keeps the compiled kernel small.
+        # RK4: stages at t, t + h/2, t + h/2, t + h with weights 1, 2, 2, 1 (/6).
+        # Petterssen: the rate at the start, then the mean of the start and
+        # end rates, re-evaluated at the new end point until it settles.
+        for stage in range(nstage):
+            if scheme == RK4:
+                ts = 0 if stage == 0 else (2 if stage == 3 else 1)
+            else:
+                ts = 0 if stage == 0 else 2
+            for p in range(first, stop):
+                q = p - first
+                if status[p] != ACTIVE or settled[q]:
+                    continue
                 flag, kx, ky, kz, kl = _rate(
-                    field, slot0[ts], slot1[ts], weight[ts], px, py, pz, pl, lat, lat_uniform,
-                    lon, lon_uniform, periodic, levels, log_levels, vertical_scale, radius, work)
+                    field, slot0[ts], slot1[ts], weight[ts], point[q, 0], point[q, 1],
+                    point[q, 2], point[q, 3], lat, lat_uniform, lon, lon_uniform, periodic,
+                    tables, levels, log_levels, vertical_scale, radius, work)
                 if flag != ACTIVE:
-                    break
+                    status[p] = flag
+                    continue
+                x0, y0, z0, l0 = pos[p, 0], pos[p, 1], pos[p, 2], level[p]
+                mx, my, mz, ml = mean[q, 0], mean[q, 1], mean[q, 2], mean[q, 3]
                 if scheme == RK4:
                     share = (1.0 if stage == 0 or stage == 3 else 2.0) / 6.0
                     mx, my, mz, ml = mx + share * kx, my + share * ky, mz + share * kz, \
@@ -316,26 +440,32 @@ def advance(pos, level, status, h, field, slot0, slot1, weight, lat, lat_uniform
                     reach = 0.5 * h if stage < 2 else h
                     px, py, pz, pl = x0 + reach * kx, y0 + reach * ky, z0 + reach * kz, \
                         l0 + reach * kl
-                    continue
-                if stage == 0:
-                    ax, ay, az, al = kx, ky, kz, kl
-                    nx, ny, nz, nl = kx, ky, kz, kl
                 else:
-                    nx, ny = 0.5 * (ax + kx), 0.5 * (ay + ky)
-                    nz, nl = 0.5 * (az + kz), 0.5 * (al + kl)
-                change = abs(h) * max(abs(nx - mx), abs(ny - my), abs(nz - mz), abs(nl - ml))
-                mx, my, mz, ml = nx, ny, nz, nl
-                if stage > 0 and change < tolerance:
-                    break
-                px, py, pz, pl = x0 + h * mx, y0 + h * my, z0 + h * mz, l0 + h * ml
-            if flag != ACTIVE:
-                status[p] = flag
+                    if stage == 0:
+                        start[q, 0], start[q, 1], start[q, 2], start[q, 3] = kx, ky, kz, kl
+                        nx, ny, nz, nl = kx, ky, kz, kl
+                    else:
+                        nx, ny = 0.5 * (start[q, 0] + kx), 0.5 * (start[q, 1] + ky)
+                        nz, nl = 0.5 * (start[q, 2] + kz), 0.5 * (start[q, 3] + kl)
+                    change = abs(h) * max(abs(nx - mx), abs(ny - my), abs(nz - mz),
+                                          abs(nl - ml))
+                    mx, my, mz, ml = nx, ny, nz, nl
+                    settled[q] = stage > 0 and change < tolerance
+                    px, py, pz, pl = x0 + h * mx, y0 + h * my, z0 + h * mz, l0 + h * ml
+                mean[q, 0], mean[q, 1], mean[q, 2], mean[q, 3] = mx, my, mz, ml
+                point[q, 0], point[q, 1], point[q, 2], point[q, 3] = px, py, pz, pl
+        for p in range(first, stop):
+            if status[p] != ACTIVE:
                 continue
+            q = p - first
+            x0, y0, z0, l0 = pos[p, 0], pos[p, 1], pos[p, 2], level[p]
+            mx, my, mz, ml = mean[q, 0], mean[q, 1], mean[q, 2], mean[q, 3]
             x1, y1, z1, l1 = x0 + h * mx, y0 + h * my, z0 + h * mz, l0 + h * ml
             norm = math.sqrt(x1 * x1 + y1 * y1 + z1 * z1)
             x1, y1, z1 = x1 / norm, y1 / norm, z1 / norm
             if not periodic:  # the end point itself must lie inside a limited-area domain
-                flag = _cell(x1, y1, z1, lat, lat_uniform, lon, lon_uniform, periodic)[0]
+                flag = _cell(x1, y1, z1, lat, lat_uniform, lon, lon_uniform, periodic,
+                             tables)[0]
                 if flag != ACTIVE:
                     status[p] = flag
                     continue
@@ -355,14 +485,14 @@ def advance(pos, level, status, h, field, slot0, slot1, weight, lat, lat_uniform
 
 @numba.njit(cache=True)
 def sample(pos, level, status, field, s0, s1, wt, lat, lat_uniform, lon, lon_uniform, periodic,
-           levels, log_levels, out):
+           tables, levels, log_levels, out):
     """Sample ``field`` at the positions of the active parcels (NaN elsewhere).
 
     Parameters
     ----------
     pos, level, status
         As in :func:`advance`.
-    field, s0, s1, wt, lat, lat_uniform, lon, lon_uniform, periodic, levels, log_levels
+    field, s0, s1, wt, lat, lat_uniform, lon, lon_uniform, periodic, tables, levels, log_levels
         As in :func:`interpolate`.
     out : ndarray, shape (n, ncomp)
         Receives the values.
@@ -377,6 +507,7 @@ def sample(pos, level, status, field, s0, s1, wt, lat, lat_uniform, lon, lon_uni
         flag = MISSING_WIND
         if status[p] == ACTIVE:
             flag = interpolate(field, s0, s1, wt, pos[p, 0], pos[p, 1], pos[p, 2], level[p], lat,
-                               lat_uniform, lon, lon_uniform, periodic, levels, log_levels, work)
+                               lat_uniform, lon, lon_uniform, periodic, tables, levels,
+                               log_levels, work)
         for c in range(ncomp):
             out[p, c] = work[c] if flag == ACTIVE else np.nan

@@ -37,11 +37,12 @@ class SliceGrid:
     level_order: np.ndarray       # input level indices in the order of ``levels``
     add_south: bool               # a virtual pole row is added south of the input rows
     add_north: bool
+    tables: tuple                 # cell_tables (global grids; empty on limited areas)
 
     def kernel_args(self) -> tuple:
         """The grid arguments of the kernels, in their order."""
         return (self.latitude, self.lat_uniform, self.longitude, self.lon_uniform,
-                self.periodic, self.levels, self.log_levels)
+                self.periodic, self.tables, self.levels, self.log_levels)
 
 
 def _uniform(values: np.ndarray) -> bool:
@@ -50,6 +51,66 @@ def _uniform(values: np.ndarray) -> bool:
         return True
     steps = np.diff(values)
     return bool(np.max(np.abs(steps - steps.mean())) <= 1e-9 * max(1.0, np.abs(values).max()))
+
+
+def _pseudo_angle(x: np.ndarray, y: np.ndarray) -> np.ndarray:
+    """An increasing function of the longitude of ``(x, y)`` over [0, 360), in [0, 4).
+
+    References
+    ----------
+    The "diamond angle" ``1 - x / (|x| + |y|)`` (``3 + x / (|x| + |y|)``
+    south of the x axis), a division-only monotone substitute for ``atan2``
+    (common practice); the kernels compute the same expression.
+    """
+    r = x / (np.abs(x) + np.abs(y))
+    return np.where(y >= 0.0, 1.0 - r, 3.0 + r)
+
+
+def cell_tables(latitude: np.ndarray, longitude: np.ndarray) -> tuple:
+    """Tables with which the kernels find the cell of a position on a global grid.
+
+    Parameters
+    ----------
+    latitude : numpy.ndarray
+        Ascending latitudes in degrees from -90 to 90 (pole rows included).
+    longitude : numpy.ndarray
+        Ascending, equally spaced longitudes in degrees covering the globe.
+
+    Returns
+    -------
+    rows : numpy.ndarray, shape (nlat, 3)
+        ``sin``, ``cos`` of each latitude and the inverse of the spacing (rad)
+        to the next row (0 for the last).
+    columns : numpy.ndarray, shape (nlon, 3)
+        The same for the longitudes, the last column's spacing wrapping round.
+    row_guess : numpy.ndarray of int64, shape (8 nlat,)
+        For equal bins of ``z`` in [-1, 1], the last row whose ``sin`` is at
+        most the bin's lower end (at most the last cell).
+    column_guess : numpy.ndarray of int64, shape (8 nlon,)
+        For equal bins of the pseudo-angle in [0, 4), the last column at or
+        before the bin's lower end (wrapping to the last column).
+
+    References
+    ----------
+    A table of first guesses refined by a local search: Press, Teukolsky,
+    Vetterling & Flannery (2007), Numerical Recipes, 3rd ed., section 3.1.1
+    ("hunt"); the kernel side is :func:`flowpipe.parcels._kernels._global_cell`.
+    """
+    phi = np.radians(latitude)
+    lam = np.radians(longitude)
+    step_lon = 2.0 * np.pi / lam.size
+    rows = np.stack([np.sin(phi), np.cos(phi),
+                     np.append(1.0 / np.diff(phi), 0.0)], axis=1)
+    columns = np.stack([np.sin(lam), np.cos(lam), np.full(lam.size, 1.0 / step_lon)], axis=1)
+    nbin = 8 * phi.size
+    edges = -1.0 + 2.0 * np.arange(nbin) / nbin
+    row_guess = np.clip(np.searchsorted(rows[:, 0], edges, side="right") - 1, 0, phi.size - 2)
+    nbin = 8 * lam.size
+    pseudo = _pseudo_angle(columns[:, 1], columns[:, 0])
+    order = np.argsort(pseudo)
+    edges = 4.0 * np.arange(nbin) / nbin
+    column_guess = order[(np.searchsorted(pseudo[order], edges, side="right") - 1) % lam.size]
+    return rows, columns, row_guess.astype(np.int64), column_guess.astype(np.int64)
 
 
 def slice_grid(wind: xr.Dataset, periodic: bool) -> SliceGrid:
@@ -84,8 +145,12 @@ def slice_grid(wind: xr.Dataset, periodic: bool) -> SliceGrid:
     else:
         order = np.array([0])
         levels = np.array([0.0])
+    if periodic:
+        tables = cell_tables(full_lat, lon)
+    else:  # limited areas locate latitude and longitude instead
+        tables = (np.zeros((0, 3)), np.zeros((0, 3)), np.zeros(0, np.int64), np.zeros(0, np.int64))
     return SliceGrid(full_lat, _uniform(full_lat), lon, _uniform(lon), periodic, levels,
-                     log_levels, order, add_south, add_north)
+                     log_levels, order, add_south, add_north, tables)
 
 
 def _close_poles(values: np.ndarray, grid: SliceGrid, input_lat: np.ndarray) -> np.ndarray:
