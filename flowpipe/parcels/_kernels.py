@@ -80,7 +80,7 @@ def _locate(coord, uniform, value):
 
 
 #: Below this sine or tangent of an angle the truncated series of
-#: :func:`_small_asin` and :func:`_small_atan` are exact to rounding (their first
+#: :func:`_small_asin` and :func:`_small_atan2` are exact to rounding (their first
 #: omitted terms are below 1e-16 of the sum): angles under 2 degrees.
 SERIES_LIMIT = 0.035
 
