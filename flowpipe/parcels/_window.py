@@ -226,7 +226,8 @@ class SliceWindow:
         self.field = np.empty(shape)
         self.held: list[int | None] = [None] * slots
 
-    def _prepare(self, index: int) -> np.ndarray:
+    def _prepare(self, index: int, out: np.ndarray) -> None:
+        """Read input time ``index`` and write it, prepared, into the slot ``out``."""
         wanted = (("u", "v") if self.wind_components else ()) + self.names
         part = self.wind[list(wanted)]
         if "time" in part.dims:
@@ -240,9 +241,8 @@ class SliceWindow:
             columns.extend(np.moveaxis(cartesian_wind(u, v, self.input_lat,
                                                       self.grid.longitude), -1, 0))
         columns.extend(_levels_first(part[name], nlev) for name in self.names)
-        stacked = np.stack([_close_poles(np.array(c[self.grid.level_order]), self.grid,
-                                         self.input_lat) for c in columns], axis=-1)
-        return stacked
+        for c, values in enumerate(columns):  # the level selection copies: poles close in place
+            out[..., c] = _close_poles(values[self.grid.level_order], self.grid, self.input_lat)
 
     def slots_for(self, indices: list[int]) -> list[int]:
         """Slots holding the input time ``indices``, loading those not yet held."""
@@ -253,7 +253,8 @@ class SliceWindow:
                 result[index] = self.held.index(index)
         for index in sorted(needed - set(result)):
             slot = next(s for s, held in enumerate(self.held) if held not in needed)
-            self.field[slot] = self._prepare(index)
+            self.held[slot] = None  # until it is filled
+            self._prepare(index, self.field[slot])
             self.held[slot] = index
             result[index] = slot
         return [result[i] for i in indices]
