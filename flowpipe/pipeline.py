@@ -39,9 +39,6 @@ LOG_NAME = "flowpipe.log"
 STAGE_ORDER = ("decompose", "advect", "maps")
 #: dask config key: the cores one task may use (read by the transform kernels).
 CORES_KEY = "flowpipe.cores"
-#: What each pool process needs, imported once by the process that forks them.
-PRELOAD = ["flowpipe.pipeline", "flowpipe.ingest", "flowpipe.decompose", "flowpipe.regional",
-           "flowpipe.parcels", "flowpipe.store", "xarray.backends.netCDF4_", "dask.array"]
 #: Input files kept open at once: a run reads a long series a time slice after
 #: another, and every open NetCDF-4 file holds about a MiB of library caches.
 OPEN_FILES = 16
@@ -306,13 +303,12 @@ class Runner:
             import multiprocessing
             from concurrent.futures import ProcessPoolExecutor, as_completed
 
-            context = multiprocessing.get_context("forkserver")
-            # The server imports flowpipe's stages once; each pool process is forked from it.
-            context.set_forkserver_preload(PRELOAD + (["flowpipe.maps"] if self.config.has("maps")
-                                                      else []))
+            # Spawned, not forked: each pool process is a child of this run, so that it ends
+            # with the run even when the run is killed (see _worker_setup).
             pool = ProcessPoolExecutor(
-                max_workers=min(processes, len(units)), mp_context=context,
-                initializer=_worker_setup, initargs=(str(self.out / LOG_NAME),))
+                max_workers=min(processes, len(units)),
+                mp_context=multiprocessing.get_context("spawn"),
+                initializer=_worker_setup, initargs=(str(self.out / LOG_NAME), os.getpid()))
             with pool:
                 futures = {pool.submit(_unit_in_worker, self.config.path, self.force, unit): unit
                            for unit in units}
@@ -333,12 +329,14 @@ class Runner:
         return self.summary
 
 
-def _worker_setup(log_path: str) -> None:
-    """Set up a pool process: die with the parent, one core, log to the run's log file."""
-    with contextlib.suppress(OSError, AttributeError):  # Linux: end with the parent run
+def _worker_setup(log_path: str, run_pid: int) -> None:
+    """Set up a pool process: end with the run, one core, log to the run's log file."""
+    with contextlib.suppress(OSError, AttributeError):  # Linux: a signal when the run ends
         import ctypes
 
         ctypes.CDLL("libc.so.6", use_errno=True).prctl(1, signal.SIGKILL)  # PR_SET_PDEATHSIG
+    if os.getppid() != run_pid:  # the run ended while this process was starting
+        os._exit(1)
     dask.config.set({"scheduler": "synchronous", CORES_KEY: 1})
     xr.set_options(file_cache_maxsize=OPEN_FILES)
     handler = logging.FileHandler(log_path)

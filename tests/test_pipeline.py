@@ -20,6 +20,7 @@ from pathlib import Path
 
 import matplotlib.image
 import numpy as np
+import psutil
 import pytest
 import xarray as xr
 from windfiles import Encoding, encode, reference_field
@@ -218,8 +219,12 @@ def test_kill_at_any_moment_leaves_only_complete_files(tmp_path):
         try:
             proc.wait(timeout=fraction * duration)
         except subprocess.TimeoutExpired:
+            children = psutil.Process(proc.pid).children(recursive=True)
             proc.send_signal(signal.SIGKILL)
             proc.wait()
+            # The run's pool processes end with it: none goes on writing unsupervised.
+            _, alive = psutil.wait_procs(children, timeout=10)
+            assert not alive
         if out.exists():
             for path in _final_files(out):
                 _check_complete(path)
