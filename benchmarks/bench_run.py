@@ -92,7 +92,7 @@ def main() -> None:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--resolution", type=float, default=0.25,
                         help="grid spacing of the speed run, degrees")
-    parser.add_argument("--times", type=int, default=8, help="input files of the speed run")
+    parser.add_argument("--times", type=int, default=16, help="input files of the speed run")
     parser.add_argument("--memory-resolution", type=float, default=1.0,
                         help="grid spacing of the memory runs (8 and 64 times), degrees")
     parser.add_argument("--repeat", type=int, default=2, help="alternating repeats per case")
