@@ -10,6 +10,7 @@ if any, the grid is.
 
 from __future__ import annotations
 
+import functools
 from dataclasses import dataclass
 from functools import cached_property
 from typing import Literal
@@ -28,6 +29,7 @@ GridKind = Literal["global", "regional"]
 LatitudeKind = Literal["equiangular", "gaussian", "irregular"]
 
 
+@functools.lru_cache(maxsize=32)
 def gaussian_latitudes(nlat: int) -> np.ndarray:
     """Gaussian latitudes in degrees, ascending (south to north).
 
@@ -39,7 +41,8 @@ def gaussian_latitudes(nlat: int) -> np.ndarray:
     Returns
     -------
     numpy.ndarray
-        ``arcsin`` of the Gauss-Legendre nodes, in degrees.
+        ``arcsin`` of the Gauss-Legendre nodes, in degrees (read-only:
+        remembered per ``nlat``, since every grid classification asks).
 
     References
     ----------
@@ -48,7 +51,9 @@ def gaussian_latitudes(nlat: int) -> np.ndarray:
     "Calculation of Gauss quadrature rules", Math. Comp. 23, 221-230).
     """
     nodes, _ = np.polynomial.legendre.leggauss(nlat)
-    return np.degrees(np.arcsin(nodes))
+    latitudes = np.degrees(np.arcsin(nodes))
+    latitudes.flags.writeable = False  # shared by every caller (remembered per nlat)
+    return latitudes
 
 
 @dataclass(frozen=True, eq=False)

@@ -3,7 +3,6 @@
 from __future__ import annotations
 
 import datetime as _dt
-import functools
 import math
 import re
 from collections.abc import Sequence
@@ -18,7 +17,7 @@ import xarray as xr
 from .. import annotate
 from ..constants import EARTH_RADIUS
 from ..errors import InputError, UsageError
-from ..grid import classify
+from ..grid import describe_grid
 from . import _kernels as K
 from ._geometry import latitude_longitude, unit_vectors
 from ._window import SliceGrid, SliceWindow, slice_grid
@@ -122,27 +121,6 @@ def _clock(wind: xr.Dataset, steady: bool) -> _Clock:
     else:
         seconds = np.array([(t - reference).total_seconds() for t in values])
     return _Clock(reference, np.asarray(seconds, dtype=np.float64), steady)
-
-
-def _grid_kind(wind: xr.Dataset) -> str:
-    """``global`` or ``regional``, as :func:`flowpipe.grid.describe_grid` classifies the grid.
-
-    Remembered per coordinate values: the classification computes
-    Gauss-Legendre nodes, which costs more than advecting ten thousand
-    parcels, and repeated runs on one grid need it once.
-
-    References
-    ----------
-    See :func:`flowpipe.grid.classify`.
-    """
-    lat, lon = wind["latitude"].values, wind["longitude"].values
-    return _classified_kind(lat.dtype.str, lat.tobytes(), lon.dtype.str, lon.tobytes())
-
-
-@functools.lru_cache(maxsize=16)
-def _classified_kind(lat_dtype: str, lat: bytes, lon_dtype: str, lon: bytes) -> str:
-    """The kind of the grid of these coordinate bytes (see :func:`_grid_kind`)."""
-    return classify(np.frombuffer(lat, dtype=lat_dtype), np.frombuffer(lon, dtype=lon_dtype)).kind
 
 
 def _name(wind: xr.Dataset) -> str:
@@ -395,7 +373,7 @@ def advect(
     sample = tuple(sample)
     vertical_scale = _check_wind(wind, vertical, sample)
     clock = _clock(wind, steady)
-    kind = _grid_kind(wind)
+    kind = describe_grid(wind).kind
     periodic = kind == "global"
     sign = -1.0 if backward else 1.0
     table = as_start_table(starts)
