@@ -17,7 +17,8 @@ def register(sub: argparse._SubParsersAction, common: argparse.ArgumentParser) -
     parser.add_argument("config", metavar="CONFIG.toml", help="the batch config")
     parser.add_argument("--force", action="store_true", help="redo every output")
     parser.add_argument("--workers", type=int, metavar="N",
-                        help="threads of dask's local scheduler (default: [run] workers or cores)")
+                        help="cores to use: that many inputs at once in separate processes, or "
+                        "dask threads for a single input (default: [run] workers, or all cores)")
     parser.add_argument("--scheduler", metavar="ADDRESS",
                         help="a dask.distributed scheduler, tcp://HOST:PORT")
     parser.add_argument("--quiet", action="store_true", help="no progress on the terminal")
@@ -30,7 +31,7 @@ def run(args: argparse.Namespace) -> int:
         return 2
     summary = run_pipeline(args.config, force=args.force, workers=args.workers,
                            scheduler=args.scheduler, quiet=args.quiet)
-    if not args.quiet:
+    if not args.quiet and sys.stderr.isatty():  # otherwise the run's log lines said it
         if summary.written or summary.failures:
             print(f"flowpipe: {len(summary.written)} written, {len(summary.up_to_date)} up to date, "
                   f"{len(summary.failures)} failed; see {summary.report}")
