@@ -43,7 +43,7 @@ DEFAULT_REFERENCES = (
     "https://wiki.esipfed.org/Attribute_Convention_for_Data_Discovery_1-3"
 )
 
-#: Output variables of the contract: standard_name (or None), units, long_name.
+#: Output variables (the contract's, then the kinematics): standard_name (or None), units, long_name.
 VARIABLES: dict[str, tuple[str | None, str, str]] = {
     "streamfunction": ("atmosphere_horizontal_streamfunction", "m2 s-1", "streamfunction"),
     "velocity_potential": ("atmosphere_horizontal_velocity_potential", "m2 s-1",
@@ -58,6 +58,21 @@ VARIABLES: dict[str, tuple[str | None, str, str]] = {
                    "eastward component of the harmonic (non-divergent and irrotational) wind"),
     "v_harmonic": (None, "m s-1",
                    "northward component of the harmonic (non-divergent and irrotational) wind"),
+    # kinematics
+    "absolute_vorticity": ("atmosphere_absolute_vorticity", "s-1", "absolute vorticity"),
+    "stretching_deformation": (None, "s-1", "stretching deformation"),
+    "shearing_deformation": (None, "s-1", "shearing deformation"),
+    "total_deformation": (None, "s-1", "total deformation"),
+    "kinetic_energy_rotational": (None, "m2 s-2",
+                                  "kinetic energy per unit mass of the rotational wind"),
+    "kinetic_energy_divergent": (None, "m2 s-2",
+                                 "kinetic energy per unit mass of the divergent wind"),
+    "kinetic_energy_spectrum_rotational": (
+        None, "m2 s-2", "global-mean kinetic energy per unit mass of the rotational wind "
+        "per total wavenumber"),
+    "kinetic_energy_spectrum_divergent": (
+        None, "m2 s-2", "global-mean kinetic energy per unit mass of the divergent wind "
+        "per total wavenumber"),
 }
 
 #: Attributes of dimension coordinates, by standard name: long_name, axis (CF 1.11 section 4).

@@ -13,7 +13,7 @@ import numpy as np
 import xarray as xr
 
 from . import spectral
-from .annotate import global_attrs
+from .annotate import global_attrs, variable_attrs
 from .constants import EARTH_RADIUS, EARTH_ROTATION_RATE
 from .decompose import (
     HORIZONTAL,
@@ -27,23 +27,10 @@ from .decompose import (
 from .errors import InputError
 from .grid import describe_grid
 
-#: Output variables: standard_name (or None), units, long_name.
-KINEMATIC_VARIABLES: dict[str, tuple[str | None, str, str]] = {
-    "absolute_vorticity": ("atmosphere_absolute_vorticity", "s-1", "absolute vorticity"),
-    "stretching_deformation": (None, "s-1", "stretching deformation"),
-    "shearing_deformation": (None, "s-1", "shearing deformation"),
-    "total_deformation": (None, "s-1", "total deformation"),
-    "kinetic_energy_rotational": (None, "m2 s-2",
-                                  "kinetic energy per unit mass of the rotational wind"),
-    "kinetic_energy_divergent": (None, "m2 s-2",
-                                 "kinetic energy per unit mass of the divergent wind"),
-    "kinetic_energy_spectrum_rotational": (
-        None, "m2 s-2", "global-mean kinetic energy per unit mass of the rotational wind "
-        "per total wavenumber"),
-    "kinetic_energy_spectrum_divergent": (
-        None, "m2 s-2", "global-mean kinetic energy per unit mass of the divergent wind "
-        "per total wavenumber"),
-}
+#: Output variables, in kernel output order (attributes in :data:`flowpipe.annotate.VARIABLES`).
+KINEMATIC_VARIABLES = ("absolute_vorticity", "stretching_deformation", "shearing_deformation",
+                       "total_deformation", "kinetic_energy_rotational", "kinetic_energy_divergent",
+                       "kinetic_energy_spectrum_rotational", "kinetic_energy_spectrum_divergent")
 SPECTRA = ("kinetic_energy_spectrum_rotational", "kinetic_energy_spectrum_divergent")
 
 
@@ -154,7 +141,7 @@ def kinematics(
         rotation_rate=EARTH_ROTATION_RATE, latitude=grid.latitude,
     )
     out = xr.Dataset({
-        name: da.assign_attrs(_attrs(name))
+        name: da.assign_attrs(variable_attrs(name))
         for name, da in zip(KINEMATIC_VARIABLES, outputs, strict=True)
     })
     out = out.assign_coords(total_wavenumber=("total_wavenumber", np.arange(n + 1), {
@@ -168,11 +155,3 @@ def kinematics(
     out.attrs.update(method="spectral", truncation_N=n, ducc0_geometry=geometry,
                      earth_radius=EARTH_RADIUS, earth_rotation_rate=EARTH_ROTATION_RATE)
     return out.isel(latitude=slice(None, None, -1)) if descending else out
-
-
-def _attrs(name: str) -> dict[str, str]:
-    standard_name, units, long_name = KINEMATIC_VARIABLES[name]
-    attrs = {"units": units, "long_name": long_name}
-    if standard_name:
-        attrs["standard_name"] = standard_name
-    return attrs
