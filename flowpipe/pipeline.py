@@ -118,7 +118,8 @@ class Progress:
 class Runner:
     """Runs the stages of a config over its units; see the module docstring."""
 
-    def __init__(self, config: Config, force: bool, progress: Progress) -> None:
+    def __init__(self, config: Config, force: bool, progress: Progress,
+                 fingerprints: dict[str, dict] | None = None) -> None:
         self.config = config
         self.force = force
         self.progress = progress
@@ -126,8 +127,9 @@ class Runner:
         self.previous = bookkeeping.read_manifest(self.out)
         self.summary = RunSummary()
         known = self.previous.get("inputs", {})
-        self.fingerprints = {str(p): bookkeeping.fingerprint(p, known.get(str(p)))
-                             for p in config.inputs}
+        # A pool process gets the run's fingerprints: every input is hashed once per run.
+        self.fingerprints = fingerprints or {
+            str(p): bookkeeping.fingerprint(p, known.get(str(p))) for p in config.inputs}
         self.manifest: dict[str, Any] = {
             "flowpipe_version": __version__,
             "config": str(config.path.resolve()),
@@ -310,8 +312,9 @@ class Runner:
                 mp_context=multiprocessing.get_context("spawn"),
                 initializer=_worker_setup, initargs=(str(self.out / LOG_NAME), os.getpid()))
             with pool:
-                futures = {pool.submit(_unit_in_worker, self.config.path, self.force, unit): unit
-                           for unit in units}
+                futures = {pool.submit(_unit_in_worker, self.config.path, self.force, unit,
+                                       {str(p): self.fingerprints[str(p)] for p in unit.inputs}
+                                       ): unit for unit in units}
                 for future in as_completed(futures):
                     self.merge(future.result())
                     self.progress.advance(steps, futures[future].stem)
@@ -345,9 +348,10 @@ def _worker_setup(log_path: str, run_pid: int) -> None:
     log.setLevel(logging.INFO)
 
 
-def _unit_in_worker(config_path: Path, force: bool, unit: Unit) -> UnitResult:
+def _unit_in_worker(config_path: Path, force: bool, unit: Unit,
+                    fingerprints: dict[str, dict]) -> UnitResult:
     config = load_config(config_path)
-    return Runner(config, force, Progress(0, quiet=True)).run_unit(unit)
+    return Runner(config, force, Progress(0, quiet=True), fingerprints).run_unit(unit)
 
 
 def _level_text(level: float | None) -> str:
