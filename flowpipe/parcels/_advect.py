@@ -175,16 +175,16 @@ def _first_bad(bad: np.ndarray) -> int | None:
 
 def _start_seconds(table: pd.DataFrame, clock: _Clock, default: float) -> np.ndarray:
     """Start time of every row in seconds from the clock's reference (each text parsed once)."""
-    texts = [None if t is None or (isinstance(t, float) and np.isnan(t)) else str(t)
-             for t in table["time"]]
-    seconds = np.full(len(texts), default)
-    first_row: dict[str, int] = {}
-    for row, text in enumerate(texts):
-        if text is not None:
-            first_row.setdefault(text, row)
-    for text, row in first_row.items():
-        value = clock.parse(text, origin(table, row))
-        seconds[[t == text for t in texts]] = value
+    column = table["time"]
+    present = np.flatnonzero(~column.isna().to_numpy())
+    seconds = np.full(len(column), default)
+    if present.size:
+        texts = np.array([str(t) for t in column.to_numpy()[present]])
+        unique, first, inverse = np.unique(texts, return_index=True, return_inverse=True)
+        values = np.empty(unique.size)
+        for u in np.argsort(first):  # in the order of the rows, so the first bad one is named
+            values[u] = clock.parse(str(unique[u]), origin(table, int(present[first[u]])))
+        seconds[present] = values[inverse.ravel()]
     return seconds
 
 
@@ -403,7 +403,8 @@ def advect(
     samples = SliceWindow(wind, grid, False, sample) if sample else None
     n = lat.size
     nobs = schedule.offsets.size
-    out_pos = np.full((n, nobs, 3), np.nan)
+    out_lat = np.full((n, nobs), np.nan)
+    out_lon = np.full((n, nobs), np.nan)
     out_level = np.full((n, nobs), np.nan)
     out_sample = np.full((n, nobs, len(sample)), np.nan)
     status = np.full(n, K.ACTIVE, dtype=np.int8)
@@ -414,12 +415,13 @@ def advect(
         lev = level_for[members].copy()
         st = status[members]
         _integrate(pos, lev, st, float(t0), sign, schedule, clock, winds, samples, grid,
-                   vertical_scale, SCHEMES[scheme], out_pos, out_level, out_sample, members)
+                   vertical_scale, SCHEMES[scheme], out_lat, out_lon, out_level, out_sample,
+                   members)
         status[members] = st
     status[status == K.ACTIVE] = K.COMPLETED
 
     return _trajectory_dataset(
-        wind, clock, start, sign, schedule.offsets, out_pos, out_level, out_sample, status,
+        wind, clock, start, sign, schedule.offsets, out_lat, out_lon, out_level, out_sample, status,
         sample, kind, raw_levels is not None, dict(
             integration_scheme="classical fourth-order Runge-Kutta" if scheme == "rk4"
             else "Petterssen (1940) iterative scheme",
@@ -450,14 +452,15 @@ def _schedule(total: float, step: float, record: float) -> _Schedule:
 
 
 def _integrate(pos, lev, status, t0, sign, schedule, clock, winds, samples, grid,
-               vertical_scale, scheme, out_pos, out_level, out_sample, members) -> None:
+               vertical_scale, scheme, out_lat, out_lon, out_level, out_sample, members) -> None:
     """Integrate one group of parcels sharing a start time, recording as scheduled."""
     args = grid.kernel_args()
 
     def record(obs: int, t: float) -> None:
         alive = status == K.ACTIVE
-        out_pos[members[alive], obs] = pos[alive]
-        out_level[members[alive], obs] = lev[alive]
+        rows = members[alive]
+        out_lat[rows, obs], out_lon[rows, obs] = latitude_longitude(pos[alive])
+        out_level[rows, obs] = lev[alive]
         if samples is not None:
             k0, k1, w = clock.bracket(t)
             s0, s1 = samples.slots_for([k0, k1])
@@ -505,10 +508,9 @@ def _steps(pos, lev, status, t0, sign, schedule, clock, winds, grid, vertical_sc
             break
 
 
-def _trajectory_dataset(wind, clock, start, sign, offsets, out_pos, out_level, out_sample,
+def _trajectory_dataset(wind, clock, start, sign, offsets, lat, lon, out_level, out_sample,
                         status, sample, kind, has_levels, method) -> xr.Dataset:
     n, nobs = out_level.shape
-    lat, lon = latitude_longitude(out_pos)
     lon0 = float(wind["longitude"].values[0]) if kind == "regional" else 0.0
     lon = lon0 + np.mod(lon - lon0, 360.0)
     dims = ("trajectory", "obs")
