@@ -282,23 +282,41 @@ def interpolate(field, s0, s1, wt, px, py, pz, level, lat, lat_uniform, lon, lon
         k, fz, k1 = 0, 0.0, 0
     w00, w01 = (1.0 - fy) * (1.0 - fx), (1.0 - fy) * fx
     w10, w11 = fy * (1.0 - fx), fy * fx
-    for c in range(ncomp):
-        out[c] = 0.0
-    # Up to four layers (two times by two levels), each a bilinear sum.
-    for layer in range(4):
-        later, upper = layer // 2, layer % 2
-        weight = (wt if later else 1.0 - wt) * (fz if upper else 1.0 - fz)
-        if weight == 0.0:
-            continue
-        slot = s1 if later else s0
-        kk = k1 if upper else k
-        for c in range(ncomp):
-            out[c] += weight * (w00 * field[slot, kk, j, i, c] + w01 * field[slot, kk, j, i1, c]
-                                + w10 * field[slot, kk, j + 1, i, c]
-                                + w11 * field[slot, kk, j + 1, i1, c])
     total = 0.0
-    for c in range(ncomp):
-        total += out[c]
+    if fz == 0.0:
+        # One level (or exactly on one): the two times only, each component
+        # summed in a register; a time of weight 0 is not read.
+        a, b = 1.0 - wt, wt
+        for c in range(ncomp):
+            value = 0.0
+            if a != 0.0:
+                value += a * (w00 * field[s0, k, j, i, c] + w01 * field[s0, k, j, i1, c]
+                              + w10 * field[s0, k, j + 1, i, c]
+                              + w11 * field[s0, k, j + 1, i1, c])
+            if b != 0.0:
+                value += b * (w00 * field[s1, k, j, i, c] + w01 * field[s1, k, j, i1, c]
+                              + w10 * field[s1, k, j + 1, i, c]
+                              + w11 * field[s1, k, j + 1, i1, c])
+            out[c] = value
+            total += value
+    else:
+        for c in range(ncomp):
+            out[c] = 0.0
+        # Four layers (two times by two levels), each a bilinear sum.
+        for layer in range(4):
+            later, upper = layer // 2, layer % 2
+            weight = (wt if later else 1.0 - wt) * (fz if upper else 1.0 - fz)
+            if weight == 0.0:
+                continue
+            slot = s1 if later else s0
+            kk = k1 if upper else k
+            for c in range(ncomp):
+                out[c] += weight * (w00 * field[slot, kk, j, i, c]
+                                    + w01 * field[slot, kk, j, i1, c]
+                                    + w10 * field[slot, kk, j + 1, i, c]
+                                    + w11 * field[slot, kk, j + 1, i1, c])
+        for c in range(ncomp):
+            total += out[c]
     if total != total:  # NaN: some value needed is missing
         return MISSING_WIND
     return ACTIVE
