@@ -63,8 +63,8 @@ class _Clock:
         s = self.seconds
         if self.steady or s.size == 1:
             return 0, 0, 0.0
-        k = int(np.clip(np.searchsorted(s, t, side="right") - 1, 0, s.size - 2))
-        w = float(np.clip((t - s[k]) / (s[k + 1] - s[k]), 0.0, 1.0))
+        k = min(max(int(np.searchsorted(s, t, side="right")) - 1, 0), s.size - 2)
+        w = min(max(float((t - s[k]) / (s[k + 1] - s[k])), 0.0), 1.0)
         if w <= 1e-12:
             return k, k, 0.0
         if w >= 1.0 - 1e-12:

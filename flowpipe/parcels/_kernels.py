@@ -529,3 +529,42 @@ def sample(pos, level, status, field, s0, s1, wt, lat, lat_uniform, lon, lon_uni
                                log_levels, work)
         for c in range(ncomp):
             out[p, c] = work[c] if flag == ACTIVE else np.nan
+
+
+@numba.njit(cache=True)
+def cartesian_slice(u, v, sin_lat, cos_lat, sin_lon, cos_lon, order, row0, out):
+    """Write the Cartesian wind of one time slice into ``out[:, row0:row0 + nlat, :, :3]``.
+
+    The formula of :func:`flowpipe.parcels._geometry.cartesian_wind`, in the
+    same order of operations, in one pass without temporary arrays.
+
+    Parameters
+    ----------
+    u, v : ndarray, shape (nlev, nlat, nlon)
+        Eastward and northward wind of the input levels.
+    sin_lat, cos_lat : ndarray, shape (nlat,)
+        Of the input latitudes.
+    sin_lon, cos_lon : ndarray, shape (nlon,)
+        Of the longitudes.
+    order : ndarray of int64
+        Input level of each output level.
+    row0 : int
+        Output row of the first input latitude (1 below an added pole row).
+    out : ndarray, shape (nlev, nrow, nlon, ncomp)
+        One slot of the prepared field.
+
+    References
+    ----------
+    ``u e_east + v e_north`` with ``e_east = (-sin lon, cos lon, 0)`` and
+    ``e_north = (-sin lat cos lon, -sin lat sin lon, cos lat)``: Williamson
+    et al. (1992), J. Comput. Phys. 102, 211-224, section 2.
+    """
+    for k in range(order.shape[0]):
+        kk = order[k]
+        for j in range(u.shape[1]):
+            sp, cp = sin_lat[j], cos_lat[j]
+            for i in range(u.shape[2]):
+                uu, vv = u[kk, j, i], v[kk, j, i]
+                out[k, row0 + j, i, 0] = -uu * sin_lon[i] - vv * sp * cos_lon[i]
+                out[k, row0 + j, i, 1] = uu * cos_lon[i] - vv * sp * sin_lon[i]
+                out[k, row0 + j, i, 2] = vv * cp

@@ -20,7 +20,7 @@ from dataclasses import dataclass
 import numpy as np
 import xarray as xr
 
-from ._geometry import cartesian_wind
+from ._kernels import cartesian_slice
 
 
 @dataclass(frozen=True)
@@ -153,21 +153,17 @@ def slice_grid(wind: xr.Dataset, periodic: bool) -> SliceGrid:
                      log_levels, order, add_south, add_north, tables)
 
 
-def _close_poles(values: np.ndarray, grid: SliceGrid, input_lat: np.ndarray) -> np.ndarray:
-    """Give pole rows (existing or added) the ring mean of the row nearest the pole.
+def _close_poles(out: np.ndarray, grid: SliceGrid, input_lat: np.ndarray) -> None:
+    """Give the pole rows of one prepared slice (existing or added) the ring mean of the row
+    nearest the pole, in place.
 
     Parameters
     ----------
-    values : numpy.ndarray, shape (nlev, nlat, nlon)
-        One Cartesian wind component (or a scalar) of one time slice.
+    out : numpy.ndarray, shape (nlev, nlat, nlon, ncomp)
+        One slot, with the rows of ``grid.latitude``.
     grid : SliceGrid
     input_lat : numpy.ndarray
         The input's latitudes.
-
-    Returns
-    -------
-    numpy.ndarray
-        With the pole rows of ``grid.latitude``.
 
     References
     ----------
@@ -176,17 +172,13 @@ def _close_poles(values: np.ndarray, grid: SliceGrid, input_lat: np.ndarray) -> 
     (common practice for pole points of latitude-longitude grids).
     """
     if not grid.periodic:
-        return values
-    rows = [values]
-    if grid.add_south:
-        rows.insert(0, values[:, :1].mean(axis=2, keepdims=True).repeat(values.shape[2], axis=2))
-    elif abs(input_lat[0] + 90.0) <= 1e-9:
-        values[:, 0] = values[:, 0].mean(axis=1, keepdims=True)
-    if grid.add_north:
-        rows.append(values[:, -1:].mean(axis=2, keepdims=True).repeat(values.shape[2], axis=2))
-    elif abs(input_lat[-1] - 90.0) <= 1e-9:
-        values[:, -1] = values[:, -1].mean(axis=1, keepdims=True)
-    return np.concatenate(rows, axis=1) if len(rows) > 1 else values
+        return
+    if grid.add_south or abs(input_lat[0] + 90.0) <= 1e-9:
+        ring = 1 if grid.add_south else 0
+        out[:, 0] = out[:, ring].mean(axis=1, keepdims=True)
+    if grid.add_north or abs(input_lat[-1] - 90.0) <= 1e-9:
+        ring = -2 if grid.add_north else -1
+        out[:, -1] = out[:, ring].mean(axis=1, keepdims=True)
 
 
 def _levels_first(da: xr.DataArray, nlev: int) -> np.ndarray:
@@ -234,15 +226,19 @@ class SliceWindow:
             part = part.isel(time=index)
         part = part.compute()
         nlev = self.grid.levels.size
-        columns = []
+        order = self.grid.level_order
+        row0 = 1 if self.grid.add_south else 0
+        rows = slice(row0, row0 + self.input_lat.size)
+        first = 0
         if self.wind_components:
-            u = _levels_first(part["u"], nlev)
-            v = _levels_first(part["v"], nlev)
-            columns.extend(np.moveaxis(cartesian_wind(u, v, self.input_lat,
-                                                      self.grid.longitude), -1, 0))
-        columns.extend(_levels_first(part[name], nlev) for name in self.names)
-        for c, values in enumerate(columns):  # the level selection copies: poles close in place
-            out[..., c] = _close_poles(values[self.grid.level_order], self.grid, self.input_lat)
+            phi = np.radians(self.input_lat)
+            lam = np.radians(self.grid.longitude)
+            cartesian_slice(_levels_first(part["u"], nlev), _levels_first(part["v"], nlev),
+                            np.sin(phi), np.cos(phi), np.sin(lam), np.cos(lam), order, row0, out)
+            first = 3
+        for c, name in enumerate(self.names, start=first):
+            out[:, rows, :, c] = _levels_first(part[name], nlev)[order]
+        _close_poles(out, self.grid, self.input_lat)
 
     def slots_for(self, indices: list[int]) -> list[int]:
         """Slots holding the input time ``indices``, loading those not yet held."""
