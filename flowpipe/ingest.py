@@ -167,8 +167,8 @@ def _find_variable(
     return None
 
 
-def _coordinate(ds: xr.Dataset, da: xr.DataArray, key: str, axis: str) -> str | None:
-    """Name of the 1-D coordinate of ``da`` for a CF key, found by cf-xarray."""
+def find_coordinate(ds: xr.Dataset, da: xr.DataArray, key: str, axis: str) -> str | None:
+    """Name of the coordinate of ``da`` that cf-xarray identifies as ``key`` (or by ``axis``)."""
     candidates = list(ds.cf.coordinates.get(key, [])) + list(ds.cf.axes.get(axis, []))
     for name in candidates:
         if name in da.coords or name in da.dims:
@@ -200,12 +200,12 @@ def _canonical(raw: xr.Dataset, path: Path, u_name: str | None, v_name: str | No
             "interpolate them onto one grid first"
         )
     ds = raw
-    lat = _coordinate(ds, ds[un], "latitude", "Y")
-    lon = _coordinate(ds, ds[un], "longitude", "X")
+    lat = find_coordinate(ds, ds[un], "latitude", "Y")
+    lon = find_coordinate(ds, ds[un], "longitude", "X")
     if lat is None or lon is None:
         ds = ds.cf.guess_coord_axis()
-        lat = lat or _coordinate(ds, ds[un], "latitude", "Y")
-        lon = lon or _coordinate(ds, ds[un], "longitude", "X")
+        lat = lat or find_coordinate(ds, ds[un], "latitude", "Y")
+        lon = lon or find_coordinate(ds, ds[un], "longitude", "X")
     if lat is None or lon is None:
         raise InputError(
             f"{path}: {un} has no latitude/longitude coordinates that CF attributes identify "
@@ -216,8 +216,8 @@ def _canonical(raw: xr.Dataset, path: Path, u_name: str | None, v_name: str | No
             f"{path}: {un} is on a curvilinear grid (2-D {lat}/{lon}); flowpipe supports 1-D "
             "latitude-longitude grids only so far: regrid to a regular latitude-longitude grid first"
         )
-    vert = _coordinate(ds, ds[un], "vertical", "Z")
-    time = _coordinate(ds, ds[un], "time", "T")
+    vert = find_coordinate(ds, ds[un], "vertical", "Z")
+    time = find_coordinate(ds, ds[un], "time", "T")
     if vert is not None and ds[vert].ndim == 0:  # a single level, such as 10 m: a 2-D field
         ds = ds.drop_vars(vert)
         vert = None

@@ -53,6 +53,7 @@ from shapely.geometry import LineString  # noqa: E402
 from ._version import __version__  # noqa: E402
 from .annotate import CAUTION_SHORT, iso_time  # noqa: E402
 from .errors import InputError, UsageError  # noqa: E402
+from .ingest import find_coordinate  # noqa: E402
 from .store import atomic_path  # noqa: E402
 
 #: Where Debian's python-cartopy-data puts Natural Earth and GSHHS files.
@@ -190,22 +191,13 @@ def _open(source: str | os.PathLike | xr.Dataset) -> tuple[xr.Dataset, str]:
 
 # ---------------------------------------------------------------- coordinates
 
-def _coordinate(ds: xr.Dataset, da: xr.DataArray, key: str, axis: str) -> Hashable | None:
-    """The coordinate of ``da`` that cf-xarray identifies as ``key`` (or by axis)."""
-    for candidates in (ds.cf.coordinates.get(key, []), ds.cf.axes.get(axis, [])):
-        for name in candidates:
-            if name in da.coords or name in da.dims:
-                return name
-    return None
-
-
 def _horizontal(ds: xr.Dataset, da: xr.DataArray) -> tuple[Hashable, Hashable] | None:
-    lat = _coordinate(ds, da, "latitude", "Y")
-    lon = _coordinate(ds, da, "longitude", "X")
+    lat = find_coordinate(ds, da, "latitude", "Y")
+    lon = find_coordinate(ds, da, "longitude", "X")
     if lat is None or lon is None:
         guessed = ds.cf.guess_coord_axis()
-        lat = lat or _coordinate(guessed, da, "latitude", "Y")
-        lon = lon or _coordinate(guessed, da, "longitude", "X")
+        lat = lat or find_coordinate(guessed, da, "latitude", "Y")
+        lon = lon or find_coordinate(guessed, da, "longitude", "X")
     if lat is None or lon is None or ds[lat].ndim != 1 or ds[lon].ndim != 1:
         return None
     return lat, lon
@@ -231,7 +223,7 @@ def _select(ds: xr.Dataset, da: xr.DataArray, label: str, level: float | None,
     """Indexers of one horizontal slab, and words for the title."""
     indexers: dict = {}
     words: list[str] = []
-    vertical = _coordinate(ds, da, "vertical", "Z")
+    vertical = find_coordinate(ds, da, "vertical", "Z")
     if vertical is not None and vertical in da.dims:
         values = ds[vertical].values
         units = ds[vertical].attrs.get("units", "")
@@ -248,7 +240,7 @@ def _select(ds: xr.Dataset, da: xr.DataArray, label: str, level: float | None,
         words.append(f"{values[index]:g} {units}".strip())
     elif level is not None:
         raise InputError(f"{label}: {da.name} has no vertical coordinate; leave out the level")
-    tname = _coordinate(ds, da, "time", "T")
+    tname = find_coordinate(ds, da, "time", "T")
     if tname is not None and tname in da.dims:
         texts = [iso_time(t, "minutes") for t in ds[tname].values]
         wanted = texts[0] if time is None else _parse_time(time, label)
