@@ -88,6 +88,11 @@ class Config:
     def has(self, stage: str) -> bool:
         return stage in self.tables
 
+    @property
+    def stages(self) -> tuple[str, ...]:
+        """The stages this config runs, in their order."""
+        return tuple(stage for stage in STAGES if stage in self.tables)
+
     def section(self, stage: str) -> dict[str, Any]:
         return self.tables[stage]
 

@@ -10,7 +10,3 @@ EARTH_RADIUS = 6.37122e6
 #: IERS Conventions (2010), Petit & Luzum (eds.), IERS Technical Note 36,
 #: table 1.1 (from memory).
 EARTH_ROTATION_RATE = 7.292115e-5
-
-#: Standard acceleration of gravity in m s-2 (BIPM SI Brochure, 9th ed., 2019;
-#: the conventional value 9.80665 adopted by the 3rd CGPM, 1901; from memory).
-STANDARD_GRAVITY = 9.80665

@@ -36,7 +36,6 @@ from .errors import FlowpipeError
 
 log = logging.getLogger("flowpipe.run")
 LOG_NAME = "flowpipe.log"
-STAGE_ORDER = ("decompose", "advect", "maps")
 #: dask config key: the cores one task may use (read by the transform kernels).
 CORES_KEY = "flowpipe.cores"
 #: Input files kept open at once: a run reads a long series a time slice after
@@ -277,9 +276,7 @@ class Runner:
         record = result.record
         record["inputs"] = [str(p) for p in unit.inputs]
         sources: dict[str, Path] = {}
-        for stage in STAGE_ORDER:
-            if not self.config.has(stage):
-                continue
+        for stage in self.config.stages:
             try:
                 if stage == "maps":
                     self.maps(unit, result, sources)
@@ -300,7 +297,7 @@ class Runner:
 
     def run(self, units: list[Unit], processes: int = 1) -> RunSummary:
         """Run all units: in this process, or ``processes`` units at a time in a pool."""
-        steps = sum(self.config.has(s) for s in STAGE_ORDER)
+        steps = len(self.config.stages)
         if processes > 1 and len(units) > 1:
             import multiprocessing
             from concurrent.futures import ProcessPoolExecutor, as_completed
@@ -449,7 +446,7 @@ def run(config_path: str | os.PathLike, *, force: bool = False, workers: int | N
     workers = workers or settings.get("workers") or len(os.sched_getaffinity(0))
     scheduler = scheduler or settings.get("scheduler")
     units = units_of(config)
-    n_steps = len(units) * sum(config.has(s) for s in STAGE_ORDER)
+    n_steps = len(units) * len(config.stages)
     with _logging(config.output_dir, quiet), bookkeeping.RunLock(config.output_dir):
         bookkeeping.sweep_temporaries(config.output_dir)
         progress = Progress(n_steps, quiet)
