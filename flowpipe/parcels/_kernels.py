@@ -79,185 +79,180 @@ def _locate(coord, uniform, value):
     return i, f, inside
 
 
-#: Below this sine or tangent of an angle the truncated series of
-#: :func:`_small_asin` and :func:`_small_atan2` are exact to rounding (their first
-#: omitted terms are below 1e-16 of the sum): angles under 2 degrees.
-SERIES_LIMIT = 0.035
+#: Floating-point licences of the kernels: fused multiply-adds, reciprocals and
+#: reassociation (rounding-level changes only); never the no-NaN or
+#: no-infinity ones, which would break the detection of missing wind (which
+#: compares ``abs(value) < inf``: ``math.isfinite`` is folded away under these).
+#: The numpy error model lets loops with divisions run in SIMD lanes.
+FASTMATH = {"nsz", "arcp", "contract", "reassoc"}
+#: Options of the loops over one block of parcels: each is a function of its
+#: own that LLVM inlines into the parallel loop (``forceinline``), where the
+#: parallel loop's guarantee that its arrays do not overlap lets the loops run
+#: in SIMD lanes (numba's own ``inline="always"`` gave slower code).
+BLOCK_LOOP = {"cache": True, "fastmath": FASTMATH, "error_model": "numpy", "forceinline": True}
+
+
+#: Coarsest spacing (degrees) of a global grid that :func:`_angle` serves exactly
+#: to rounding.
+MAX_GLOBAL_SPACING = 20.0
 
 
 @numba.njit(cache=True, inline="always")
-def _small_asin(s):
-    """``asin(s)``, by its Maclaurin series when ``|s| < SERIES_LIMIT``.
+def _angle(s, c, r):
+    """The angle ``theta`` with ``s = r sin(theta)`` and ``c = r cos(theta)``, ``r > 0``, for
+    ``|theta| <= MAX_GLOBAL_SPACING`` degrees, without a trigonometric call.
+
+    ``tan(theta / 2) = s / (r + c)``, and the Maclaurin series of the
+    arctangent to the term in ``t**21``: for ``|t| <= tan(10 deg)`` the first
+    omitted term is below 1e-18 of the sum. Branch-free, so that loops over
+    many parcels run in SIMD lanes.
 
     References
     ----------
-    Abramowitz & Stegun (1964), Handbook of Mathematical Functions, eq. 4.4.40
-    (the series of arcsin, from memory).
+    The half-angle formula ``tan(x/2) = sin x / (1 + cos x)`` and the series of
+    arctan: Abramowitz & Stegun (1964), Handbook of Mathematical Functions,
+    eqs. 4.3.24 and 4.4.42 (from memory).
     """
-    if abs(s) >= SERIES_LIMIT:
-        return math.asin(min(max(s, -1.0), 1.0))
-    q = s * s
-    return s * (1.0 + q * (1.0 / 6.0 + q * (3.0 / 40.0 + q * (5.0 / 112.0 + q * (35.0 / 1152.0)))))
-
-
-@numba.njit(cache=True, inline="always")
-def _small_atan2(s, c):
-    """``atan2(s, c)``, by the Maclaurin series of ``atan(s / c)`` for small angles.
-
-    References
-    ----------
-    Abramowitz & Stegun (1964), Handbook of Mathematical Functions, eq. 4.4.42
-    (the series of arctan, from memory).
-    """
-    if not (c > 0.0 and abs(s) < SERIES_LIMIT * c):
-        return math.atan2(s, c)
-    t = s / c
+    t = s / (r + c)
     q = t * t
-    return t * (1.0 + q * (-1.0 / 3.0 + q * (1.0 / 5.0 + q * (-1.0 / 7.0 + q * (1.0 / 9.0
-                                                                               - q / 11.0)))))
+    series = 1.0 + q * (-1.0 / 3.0 + q * (1.0 / 5.0 + q * (-1.0 / 7.0 + q * (1.0 / 9.0 + q * (
+        -1.0 / 11.0 + q * (1.0 / 13.0 + q * (-1.0 / 15.0 + q * (1.0 / 17.0 + q * (
+            -1.0 / 19.0 + q / 21.0)))))))))
+    return 2.0 * t * series
 
 
-@numba.njit(cache=True, inline="always")
-def _global_cell(px, py, pz, rows, columns, row_guess, column_guess):
-    """Row ``j``, fraction ``fy``, columns ``i``, ``i1`` and fraction ``fx`` on a global grid,
-    without trigonometric calls in the common case.
+@numba.njit(**BLOCK_LOOP)
+def _global_cells(m, px, py, pz, tables, ux, uy, uz, cj, ci, ci1, fy, fx):
+    """Normalise ``m`` positions and find their cells on a global grid.
 
-    A table indexed by ``z`` (rows) or by a pseudo-angle of ``(x, y)``
-    (columns) gives a first guess, corrected by comparing the position with the
-    sines and cosines of the grid coordinates. The fractions are the offsets
-    from the cell's first row and column, ``asin(sin(phi - phi_j))`` and
-    ``atan2(sin(lambda - lambda_i), cos(lambda - lambda_i))`` by the
-    angle-difference identities, divided by the cell's spacing: the same
-    weights as ``(phi - phi_j) / (phi_{j+1} - phi_j)`` in
-    :func:`interpolate`, to rounding.
-
-    Parameters
-    ----------
-    px, py, pz : float
-        Unit vector of the position.
-    rows : ndarray, shape (nlat, 3)
-        ``sin``, ``cos`` of each grid latitude and the inverse spacing (rad-1)
-        to the next row.
-    columns : ndarray, shape (nlon, 3)
-        The same for the longitudes (spacing to the next column, wrapping).
-    row_guess, column_guess : ndarray of int64
-        First guesses per bin of ``z`` in [-1, 1] and of the pseudo-angle in
-        [0, 4) (see :func:`flowpipe.parcels._window.cell_tables`).
-
-    References
-    ----------
-    Angle-difference identities and the series of :func:`_small_asin` and
-    :func:`_small_atan2`: Abramowitz & Stegun (1964), Handbook of
-    Mathematical Functions, eqs. 4.3.16-17 (from memory); table lookup
-    followed by a local search of an ordered table: Press, Teukolsky,
-    Vetterling & Flannery (2007), Numerical Recipes, 3rd ed., section 3.1.1.
-    """
-    z = min(max(pz, -1.0), 1.0)
-    last_row = rows.shape[0] - 2
-    j = row_guess[min(int((z + 1.0) * (0.5 * row_guess.shape[0])), row_guess.shape[0] - 1)]
-    while j < last_row and z >= rows[j + 1, 0]:
-        j += 1
-    while j > 0 and z < rows[j, 0]:
-        j -= 1
-    rho = math.sqrt(px * px + py * py)
-    fy = _small_asin(z * rows[j, 1] - rho * rows[j, 0]) * rows[j, 2]
-    fy = min(max(fy, 0.0), 1.0)
-
-    x, y = px, py
-    a = abs(x) + abs(y)
-    if a == 0.0:  # at a pole: longitude 0, as atan2(0, 0)
-        x, y, a = 1.0, 0.0, 1.0
-    pseudo = 1.0 - x / a if y >= 0.0 else 3.0 + x / a  # increases with longitude, 0..4
-    nbin = column_guess.shape[0]
-    i = column_guess[min(int(pseudo * (0.25 * nbin)), nbin - 1)]
-    nlon = columns.shape[0]
-    i1 = i + 1 if i + 1 < nlon else 0
-    while y * columns[i1, 1] - x * columns[i1, 0] >= 0.0:  # at or past the next column
-        i = i1
-        i1 = i + 1 if i + 1 < nlon else 0
-    while y * columns[i, 1] - x * columns[i, 0] < 0.0:  # before this column
-        i1 = i
-        i = i - 1 if i > 0 else nlon - 1
-    fx = _small_atan2(y * columns[i, 1] - x * columns[i, 0],
-                      x * columns[i, 1] + y * columns[i, 0]) * columns[i, 2]
-    fx = min(max(fx, 0.0), 1.0)
-    return j, fy, i, i1, fx
-
-
-@numba.njit(cache=True, inline="always")
-def _cell(px, py, pz, lat, lat_uniform, lon, lon_uniform, periodic, tables):
-    """The grid cell of a unit vector: status, row ``j`` and fraction ``fy``, columns ``i``, ``i1``
-    and fraction ``fx`` (see :func:`interpolate`); ``LEFT_DOMAIN`` outside a limited area.
-
-    Global grids use :func:`_global_cell` with ``tables``; limited areas
-    locate the latitude and longitude of the position.
-
-    References
-    ----------
-    See :func:`interpolate`.
-    """
-    if periodic:
-        j, fy, i, i1, fx = _global_cell(px, py, pz, tables[0], tables[1], tables[2], tables[3])
-        return ACTIVE, j, fy, i, i1, fx
-    lat_deg = math.degrees(math.asin(min(max(pz, -1.0), 1.0)))
-    lon_deg = math.degrees(math.atan2(py, px))
-    j, fy, inside = _locate(lat, lat_uniform, lat_deg)
-    if not inside:
-        return LEFT_DOMAIN, 0, 0.0, 0, 0, 0.0
-    nlon = lon.shape[0]
-    shifted = lon[0] + (lon_deg - lon[0]) % 360.0
-    if shifted > lon[nlon - 1] + EDGE_TOLERANCE and 360.0 - (shifted - lon[0]) <= EDGE_TOLERANCE:
-        shifted -= 360.0  # just west of the western edge, within rounding
-    i, fx, inside = _locate(lon, lon_uniform, shifted)
-    if not inside:
-        return LEFT_DOMAIN, 0, 0.0, 0, 0, 0.0
-    return ACTIVE, j, fy, i, i + 1, fx
-
-
-@numba.njit(cache=True, inline="always")
-def interpolate(field, s0, s1, wt, px, py, pz, level, lat, lat_uniform, lon, lon_uniform,
-                periodic, tables, levels, log_levels, out):
-    """Sample every component of ``field`` at one position and time.
-
-    Linear in time between slots ``s0`` and ``s1`` (weight ``wt`` on ``s1``),
-    bilinear in latitude-longitude index space, linear in the vertical
-    coordinate (``log`` of pressure when ``log_levels``). The vertical
-    coordinate is clamped to the range of ``levels``: leaving it is judged by
-    the caller.
+    A table indexed by a pseudo-angle of the latitude (rows) or of the
+    longitude (columns) gives the cell or the one before it (the bins are
+    narrower than any cell, see :func:`flowpipe.parcels._window.cell_tables`);
+    one comparison with the sine and cosine of the next grid line decides.
+    The fractions are the angles from the cell's first row and column
+    (:func:`_angle`, from the angle-difference identities) divided by the
+    cell's spacing: the bilinear weights of ``(phi - phi_j) / (phi_{j+1} -
+    phi_j)``, to rounding. No branch depends on the data, so the loop runs in
+    SIMD lanes.
 
     Parameters
     ----------
-    field : ndarray, shape (nslot, nlev, nlat, nlon, ncomp)
-    s0, s1 : int
-        Slots of the earlier and later time slice.
-    wt : float
-        Time weight of ``s1`` in [0, 1].
-    px, py, pz : float
-        Unit vector of the position.
-    level : float
-        Vertical coordinate (hPa or m); ignored when there is one level.
-    lat, lon : ndarray
-        Ascending grid coordinates in degrees (``lat`` includes any virtual
-        pole rows).
-    lat_uniform, lon_uniform, periodic : bool
-        Equal spacing of each axis; longitudes wrap round the globe.
+    m : int
+        Number of parcels.
+    px, py, pz : ndarray
+        Positions (not necessarily of unit length).
     tables : tuple
-        On global grids, the tables of
-        :func:`flowpipe.parcels._window.cell_tables` with which
-        :func:`_global_cell` finds the cell (the weights are the bilinear
-        ones above, to rounding); unused on limited areas.
-    levels : ndarray
-        Ascending vertical interpolation coordinates (``log p`` or height).
-    log_levels : bool
-        Interpolate in the logarithm of ``level``.
-    out : ndarray, shape (ncomp,)
-        Receives the sampled values.
+        Sine, cosine and inverse spacing (rad-1) of each latitude, the first
+        row per bin, and the same for the longitudes
+        (:func:`flowpipe.parcels._window.cell_tables`).
+    ux, uy, uz, cj, ci, ci1, fy, fx : ndarray
+        Receive the unit vector, row, columns and fractions.
 
-    Returns
-    -------
-    int
-        ``ACTIVE`` on success, ``LEFT_DOMAIN`` outside a limited-area grid,
-        ``MISSING_WIND`` when a value needed is missing (NaN).
+    References
+    ----------
+    Angle-difference identities: Abramowitz & Stegun (1964), Handbook of
+    Mathematical Functions, eqs. 4.3.16-17 (from memory); a table lookup
+    followed by a local search of an ordered table: Press, Teukolsky,
+    Vetterling & Flannery (2007), Numerical Recipes, 3rd ed., section 3.1.1;
+    the "diamond angle" ``1 - x / (|x| + |y|)`` as a division-only monotone
+    substitute for atan2 (common practice).
+    """
+    sin_lat, cos_lat, inv_dlat, row_guess, sin_lon, cos_lon, inv_dlon, column_guess = tables
+    nrow_bins, ncolumn_bins = row_guess.shape[0], column_guess.shape[0]
+    nlon = sin_lon.shape[0]
+    last_row = sin_lat.shape[0] - 2
+    for q in range(m):
+        x, y, z = px[q], py[q], pz[q]
+        inverse = 1.0 / math.sqrt(x * x + y * y + z * z)
+        x, y, z = x * inverse, y * inverse, z * inverse
+        ux[q], uy[q], uz[q] = x, y, z
+        rho = math.sqrt(x * x + y * y)
+        j = row_guess[min(int((z / (abs(z) + rho) + 1.0) * (0.5 * nrow_bins)), nrow_bins - 1)]
+        j = min(j + (1 if z >= sin_lat[j + 1] else 0), last_row)
+        f = _angle(z * cos_lat[j] - rho * sin_lat[j], z * sin_lat[j] + rho * cos_lat[j],
+                   1.0) * inv_dlat[j]
+        cj[q] = j
+        fy[q] = min(max(f, 0.0), 1.0)
+        pole = rho == 0.0  # longitude 0 at a pole, as atan2(0, 0)
+        x = 1.0 if pole else x
+        y = 0.0 if pole else y
+        rho = 1.0 if pole else rho
+        a = abs(x) + abs(y)
+        pseudo = 1.0 - x / a if y >= 0.0 else 3.0 + x / a  # 0..4, increasing with longitude
+        i = column_guess[min(int(pseudo * (0.25 * ncolumn_bins)), ncolumn_bins - 1)]
+        i1 = i + 1 if i + 1 < nlon else 0
+        i = i1 if y * cos_lon[i1] - x * sin_lon[i1] >= 0.0 else i  # at or past the next column
+        i1 = i + 1 if i + 1 < nlon else 0
+        f = _angle(y * cos_lon[i] - x * sin_lon[i], x * cos_lon[i] + y * sin_lon[i],
+                   rho) * inv_dlon[i]
+        ci[q] = i
+        ci1[q] = i1
+        fx[q] = min(max(f, 0.0), 1.0)
+
+
+@numba.njit(**BLOCK_LOOP)
+def _limited_cells(m, px, py, pz, lat, lat_uniform, lon, lon_uniform, ux, uy, uz, cj, ci, ci1,
+                   fy, fx, flag):
+    """Normalise ``m`` positions and find their cells on a limited-area grid; ``flag`` is
+    ``LEFT_DOMAIN`` outside it (cell 0 then).
+
+    References
+    ----------
+    Spherical coordinates of a unit vector (common practice) and
+    :func:`_locate`.
+    """
+    nlon = lon.shape[0]
+    for q in range(m):
+        x, y, z = px[q], py[q], pz[q]
+        inverse = 1.0 / math.sqrt(x * x + y * y + z * z)
+        x, y, z = x * inverse, y * inverse, z * inverse
+        ux[q], uy[q], uz[q] = x, y, z
+        j, f, inside = _locate(lat, lat_uniform, math.degrees(math.asin(min(max(z, -1.0), 1.0))))
+        cj[q], fy[q] = j, f
+        shifted = lon[0] + (math.degrees(math.atan2(y, x)) - lon[0]) % 360.0
+        if shifted > lon[nlon - 1] + EDGE_TOLERANCE and 360.0 - (shifted - lon[0]) <= EDGE_TOLERANCE:
+            shifted -= 360.0  # just west of the western edge, within rounding
+        i, f, inside_lon = _locate(lon, lon_uniform, shifted)
+        ci[q], ci1[q], fx[q] = i, i + 1, f
+        flag[q] = ACTIVE if inside and inside_lon else LEFT_DOMAIN
+
+
+@numba.njit(**BLOCK_LOOP)
+def _vertical_cells(m, vertical, levels, log_levels, ck, fz, between):
+    """Vertical layer ``k`` and fraction ``fz`` of ``m`` vertical coordinates (hPa or m),
+    clamped to the range of ``levels``; ``between[0]`` becomes 1 when any lies between two
+    levels, else 0.
+
+    References
+    ----------
+    Linear interpolation in log-pressure on pressure levels (common practice)
+    and :func:`_locate`.
+    """
+    between[0] = 0
+    for q in range(m):
+        s = vertical[q]
+        if log_levels:
+            s = math.log(s) if s > 0.0 else -math.inf  # zero pressure: above the top
+        k, f, _ = _locate(levels, False, s)
+        ck[q], fz[q] = k, f
+        between[0] = 1 if f != 0.0 else between[0]
+
+
+@numba.njit(cache=True, inline="always")
+def _bilinear(field, slot, k, j, i, i1, c, w00, w01, w10, w11):
+    return (w00 * field[slot, k, j, i, c] + w01 * field[slot, k, j, i1, c]
+            + w10 * field[slot, k, j + 1, i, c] + w11 * field[slot, k, j + 1, i1, c])
+
+
+@numba.njit(**BLOCK_LOOP)
+def _gather(m, field, s0, s1, wt, cj, ci, ci1, ck, fy, fx, values):
+    """Interpolate every component of ``field`` at the cells ``(j, i, i1)``, fractions
+    ``(fy, fx)`` and levels ``k`` of ``m`` parcels into ``values[component, parcel]``.
+
+    Linear in time between slots ``s0`` and ``s1`` (weight ``wt`` on ``s1``;
+    both slots must hold loaded slices, the same one for a single time) and
+    bilinear in latitude-longitude index space. The loops over parcels are
+    innermost, so they run in SIMD lanes.
 
     References
     ----------
@@ -266,71 +261,50 @@ def interpolate(field, s0, s1, wt, px, py, pz, level, lat, lat_uniform, lon, lon
     Interpolating the Cartesian components of the wind rather than ``u, v``
     keeps the interpolant smooth across the poles, as in the Cartesian
     trajectory formulation of Stohl, Wotawa, Seibert & Kromp-Kolb (1995),
-    J. Appl. Meteor. 34, 2149-2165 (from memory); linear interpolation in
-    log-pressure is common practice.
+    J. Appl. Meteor. 34, 2149-2165 (from memory).
     """
-    ncomp = field.shape[4]
-    flag, j, fy, i, i1, fx = _cell(px, py, pz, lat, lat_uniform, lon, lon_uniform, periodic, tables)
-    if flag != ACTIVE:
-        return flag
-    nlev = levels.shape[0]
-    if nlev > 1:
-        s = math.log(level) if log_levels else level
-        k, fz, _ = _locate(levels, False, s)
-        k1 = k + 1
-    else:
-        k, fz, k1 = 0, 0.0, 0
-    w00, w01 = (1.0 - fy) * (1.0 - fx), (1.0 - fy) * fx
-    w10, w11 = fy * (1.0 - fx), fy * fx
-    total = 0.0
-    if fz == 0.0:
-        # One level (or exactly on one): the two times only, each component
-        # summed in a register; a time of weight 0 is not read.
-        a, b = 1.0 - wt, wt
-        for c in range(ncomp):
-            value = 0.0
-            if a != 0.0:
-                value += a * (w00 * field[s0, k, j, i, c] + w01 * field[s0, k, j, i1, c]
-                              + w10 * field[s0, k, j + 1, i, c]
-                              + w11 * field[s0, k, j + 1, i1, c])
-            if b != 0.0:
-                value += b * (w00 * field[s1, k, j, i, c] + w01 * field[s1, k, j, i1, c]
-                              + w10 * field[s1, k, j + 1, i, c]
-                              + w11 * field[s1, k, j + 1, i1, c])
-            out[c] = value
-            total += value
-    else:
-        for c in range(ncomp):
-            out[c] = 0.0
-        # Four layers (two times by two levels), each a bilinear sum.
-        for layer in range(4):
-            later, upper = layer // 2, layer % 2
-            weight = (wt if later else 1.0 - wt) * (fz if upper else 1.0 - fz)
-            if weight == 0.0:
-                continue
-            slot = s1 if later else s0
-            kk = k1 if upper else k
-            for c in range(ncomp):
-                out[c] += weight * (w00 * field[slot, kk, j, i, c]
-                                    + w01 * field[slot, kk, j, i1, c]
-                                    + w10 * field[slot, kk, j + 1, i, c]
-                                    + w11 * field[slot, kk, j + 1, i1, c])
-        for c in range(ncomp):
-            total += out[c]
-    if total != total:  # NaN: some value needed is missing
-        return MISSING_WIND
-    return ACTIVE
+    a, b = 1.0 - wt, wt
+    for c in range(field.shape[4]):
+        for q in range(m):
+            j, i, i1, k, y, x = cj[q], ci[q], ci1[q], ck[q], fy[q], fx[q]
+            w00, w01, w10, w11 = (1.0 - y) * (1.0 - x), (1.0 - y) * x, y * (1.0 - x), y * x
+            values[c, q] = (a * _bilinear(field, s0, k, j, i, i1, c, w00, w01, w10, w11)
+                            + b * _bilinear(field, s1, k, j, i, i1, c, w00, w01, w10, w11))
 
 
-@numba.njit(cache=True, inline="always")
-def _rate(field, s0, s1, wt, px, py, pz, level, lat, lat_uniform, lon, lon_uniform, periodic,
-          tables, levels, log_levels, vertical_scale, radius, work):
-    """Status and time derivative ``(dx, dy, dz, dlevel)/dt`` of the state at one point.
+@numba.njit(**BLOCK_LOOP)
+def _gather_between_levels(m, field, s0, s1, wt, cj, ci, ci1, ck, fy, fx, fz, values):
+    """:func:`_gather`, and linear between the levels ``k`` and ``k + 1`` with the
+    fractions ``fz``.
+
+    References
+    ----------
+    See :func:`_gather`; linear interpolation in log-pressure on pressure
+    levels (common practice).
+    """
+    a, b = 1.0 - wt, wt
+    for c in range(field.shape[4]):
+        for q in range(m):
+            j, i, i1, k, y, x, z = cj[q], ci[q], ci1[q], ck[q], fy[q], fx[q], fz[q]
+            w00, w01, w10, w11 = (1.0 - y) * (1.0 - x), (1.0 - y) * x, y * (1.0 - x), y * x
+            lower = (a * _bilinear(field, s0, k, j, i, i1, c, w00, w01, w10, w11)
+                     + b * _bilinear(field, s1, k, j, i, i1, c, w00, w01, w10, w11))
+            upper = (a * _bilinear(field, s0, k + 1, j, i, i1, c, w00, w01, w10, w11)
+                     + b * _bilinear(field, s1, k + 1, j, i, i1, c, w00, w01, w10, w11))
+            values[c, q] = (1.0 - z) * lower + z * upper
+
+
+@numba.njit(**BLOCK_LOOP)
+def _rates(m, first, status, settled, flag, values, ux, uy, uz, vertical_scale, radius, rate,
+           use):
+    """Time derivatives ``(dx, dy, dz, dlevel)/dt`` of ``m`` parcels from their interpolated
+    wind, and whether each counts: parcels ``first ..`` that are active and not settled,
+    inside the domain and with wind; the others among the active get the matching status.
 
     The interpolated Cartesian wind is projected on the tangent plane of the
-    normalised position and divided by the radius, so that the rate keeps
-    the length of the position vector constant; the vertical rate is the
-    vertical velocity times ``vertical_scale`` (0 for level-following runs).
+    normalised position and divided by the radius, so that the rate keeps the
+    length of the position vector constant; the vertical rate is the vertical
+    velocity times ``vertical_scale`` (0 for level-following runs).
 
     References
     ----------
@@ -339,26 +313,77 @@ def _rate(field, s0, s1, wt, px, py, pz, level, lat, lat_uniform, lon, lon_unifo
     see e.g. Williamson et al. 1992, J. Comput. Phys. 102, 211-224, section 2
     for the Cartesian form of a wind on the sphere).
     """
-    norm = math.sqrt(px * px + py * py + pz * pz)
-    qx, qy, qz = px / norm, py / norm, pz / norm
-    flag = interpolate(field, s0, s1, wt, qx, qy, qz, level, lat, lat_uniform, lon, lon_uniform,
-                       periodic, tables, levels, log_levels, work)
-    if flag != ACTIVE:
-        return flag, 0.0, 0.0, 0.0, 0.0
-    vx, vy, vz = work[0], work[1], work[2]
-    radial = vx * qx + vy * qy + vz * qz
-    rate_level = work[3] * vertical_scale if vertical_scale != 0.0 else 0.0
-    return (ACTIVE, (vx - radial * qx) / radius, (vy - radial * qy) / radius,
-            (vz - radial * qz) / radius, rate_level)
+    for q in range(m):
+        p = first + q
+        vx, vy, vz, vl = values[0, q], values[1, q], values[2, q], values[3, q]
+        live = status[p] == ACTIVE and not settled[q]
+        # Finite wind (NaN where missing; math.isfinite is not kept under FASTMATH).
+        good = flag[q] == ACTIVE and abs(vx + vy + vz + vl) < math.inf
+        lost = flag[q] if flag[q] != ACTIVE else MISSING_WIND
+        status[p] = lost if live and not good else status[p]
+        use[q] = live and good
+        x, y, z = ux[q], uy[q], uz[q]
+        radial = vx * x + vy * y + vz * z
+        rate[0, q] = (vx - radial * x) / radius
+        rate[1, q] = (vy - radial * y) / radius
+        rate[2, q] = (vz - radial * z) / radius
+        rate[3, q] = vl * vertical_scale
 
 
-#: Floating-point licences of :func:`advance`: fused multiply-adds, reciprocals
-#: and reassociation (rounding-level changes only); never the no-NaN or
-#: no-infinity ones, which would break the detection of missing wind.
-FASTMATH = {"nsz", "arcp", "contract", "reassoc"}
+@numba.njit(**BLOCK_LOOP)
+def _runge_kutta_stage(m, first, stage, h, pos, level, rate, use, mean, px, py, pz, pl):
+    """Add one stage's rates to the mean rate and place the next stage's points.
+
+    Stages at ``t, t + h/2, t + h/2, t + h`` with weights ``1, 2, 2, 1`` (/6).
+
+    References
+    ----------
+    The classical fourth-order Runge-Kutta method: Kutta (1901), Z. Math.
+    Phys. 46, 435-453; Butcher (2016), Numerical Methods for Ordinary
+    Differential Equations, 3rd ed., section 23.
+    """
+    share = (1.0 if stage == 0 or stage == 3 else 2.0) / 6.0
+    reach = 0.5 * h if stage < 2 else h
+    for q in range(m):
+        if use[q]:
+            p = first + q
+            for c in range(4):
+                mean[c, q] += share * rate[c, q]
+            px[q] = pos[p, 0] + reach * rate[0, q]
+            py[q] = pos[p, 1] + reach * rate[1, q]
+            pz[q] = pos[p, 2] + reach * rate[2, q]
+            pl[q] = level[p] + reach * rate[3, q]
 
 
-@numba.njit(cache=True, parallel=True, fastmath=FASTMATH)
+@numba.njit(**BLOCK_LOOP)
+def _petterssen_stage(m, first, stage, h, tolerance, pos, level, rate, use, start, mean, settled,
+                      px, py, pz, pl):
+    """One pass of the iterative scheme: the rate at the start (stage 0), then the mean of
+    the start and end rates, re-evaluated at the new end point until it settles.
+
+    References
+    ----------
+    Petterssen (1940), Weather Analysis and Forecasting, McGraw-Hill,
+    pp. 221-223 (from memory).
+    """
+    for q in range(m):
+        if use[q]:
+            p = first + q
+            change = 0.0
+            for c in range(4):
+                if stage == 0:
+                    start[c, q] = rate[c, q]
+                updated = 0.5 * (start[c, q] + rate[c, q])
+                change = max(change, abs(h) * abs(updated - mean[c, q]))
+                mean[c, q] = updated
+            settled[q] = stage > 0 and change < tolerance
+            px[q] = pos[p, 0] + h * mean[0, q]
+            py[q] = pos[p, 1] + h * mean[1, q]
+            pz[q] = pos[p, 2] + h * mean[2, q]
+            pl[q] = level[p] + h * mean[3, q]
+
+
+@numba.njit(cache=True, parallel=True, fastmath=FASTMATH, error_model="numpy")
 def advance(pos, level, status, h, field, slot0, slot1, weight, lat, lat_uniform, lon,
             lon_uniform, periodic, tables, levels, log_levels, vertical_scale,
             lowest_at_top_of_range, radius, scheme, iterations, tolerance):
@@ -381,9 +406,17 @@ def advance(pos, level, status, h, field, slot0, slot1, weight, lat, lat_uniform
         vertical velocity.
     slot0, slot1, weight : ndarray, shape (3,)
         Slots and time weights at the stage times ``t``, ``t + h/2``,
-        ``t + h``.
-    lat, lat_uniform, lon, lon_uniform, periodic, tables, levels, log_levels
-        As in :func:`interpolate`.
+        ``t + h`` (see :func:`_gather`).
+    lat, lon : ndarray
+        Ascending grid coordinates in degrees (``lat`` includes any pole rows).
+    lat_uniform, lon_uniform, periodic : bool
+        Equal spacing of each axis; a global grid.
+    tables : tuple
+        On global grids, the tables of :func:`_global_cells`.
+    levels : ndarray
+        Ascending vertical interpolation coordinates (``log p`` or height).
+    log_levels : bool
+        Interpolate in the logarithm of the level.
     vertical_scale : float
         Factor from the vertical velocity to level units per second
         (0.01 for omega in Pa s-1 on hPa levels, 1 for w on height levels,
@@ -400,6 +433,15 @@ def advance(pos, level, status, h, field, slot0, slot1, weight, lat, lat_uniform
     tolerance : float
         Convergence of the Petterssen iteration (radians and level units).
 
+    Notes
+    -----
+    The rate at a point is the interpolated Cartesian wind projected on the
+    tangent plane of the normalised position, divided by the radius:
+    ``dr/dt = (V - (V . r) r) / a``; the vertical rate is the vertical
+    velocity times ``vertical_scale``. Parcels are taken in blocks of
+    ``BLOCK``, stage by stage, each stage in passes over the block (cells,
+    interpolation, update) whose loops run in SIMD lanes.
+
     References
     ----------
     The classical fourth-order Runge-Kutta method: Kutta (1901), "Beitrag zur
@@ -409,27 +451,53 @@ def advance(pos, level, status, h, field, slot0, slot1, weight, lat, lat_uniform
     Petterssen (1940), Weather Analysis and Forecasting, McGraw-Hill,
     pp. 221-223 (from memory). Integrating in 3-D Cartesian coordinates with
     renormalisation after each step avoids the polar singularity of
-    latitude-longitude equations (common practice).
+    latitude-longitude equations (common practice; see Williamson et al.
+    1992, J. Comput. Phys. 102, 211-224, section 2 for the Cartesian form
+    of a wind on the sphere).
     """
     n = pos.shape[0]
     nlev = levels.shape[0]
     nblock = (n + BLOCK - 1) // BLOCK
     nstage = 4 if scheme == RK4 else 1 + iterations
+    moving = vertical_scale != 0.0 and nlev > 1  # levels change: layers found at every stage
     for block in numba.prange(nblock):
-        first, stop = block * BLOCK, min(n, (block + 1) * BLOCK)
-        work = np.empty(field.shape[4])
-        # Per parcel of the block: the point of the next stage, the mean rate over
-        # the step and (Petterssen) the rate at the start.
-        point = np.empty((stop - first, 4))
-        mean = np.zeros((stop - first, 4))
-        start = np.empty((stop - first, 4))
-        settled = np.zeros(stop - first, dtype=np.bool_)  # Petterssen: converged
-        for p in range(first, stop):
-            point[p - first, 0], point[p - first, 1] = pos[p, 0], pos[p, 1]
-            point[p - first, 2], point[p - first, 3] = pos[p, 2], level[p]
-        # Stage by stage over the block, so that the evaluations of different
-        # parcels (independent) overlap in the processor; one call site for every
-        # stage keeps the compiled kernel small.
+        first = block * BLOCK
+        m = min(n, first + BLOCK) - first
+        # Per parcel of the block: unit vector, cell, fractions and inside flag.
+        # (One array per statement: arrays unpacked from a tuple would count as
+        # possible aliases, see below.)
+        ux = np.empty(m)
+        uy = np.empty(m)
+        uz = np.empty(m)
+        cj = np.empty(m, np.int64)
+        ci = np.empty(m, np.int64)
+        ci1 = np.empty(m, np.int64)
+        ck = np.zeros(m, np.int64)
+        fy = np.empty(m)
+        fx = np.empty(m)
+        fz = np.zeros(m)
+        flag = np.full(m, ACTIVE, np.int8)
+        values = np.zeros((4, m))  # interpolated components; the fourth stays 0 in 2-D
+        # The point of the next stage, the rate there (and whether it counts),
+        # the mean rate over the step and (Petterssen) the rate at the start.
+        px = np.empty(m)
+        py = np.empty(m)
+        pz = np.empty(m)
+        pl = np.empty(m)
+        rate = np.empty((4, m))
+        use = np.empty(m, np.bool_)
+        mean = np.zeros((4, m))
+        start = np.zeros((4, m))
+        settled = np.zeros(m, dtype=np.bool_)  # Petterssen: converged
+        for q in range(m):
+            p = first + q
+            px[q], py[q], pz[q], pl[q] = pos[p, 0], pos[p, 1], pos[p, 2], level[p]
+        # 1 when any parcel of the block lies between two levels. (Numba counts
+        # a boolean variable taken from an array or a call as a possible alias,
+        # which would keep the loops from running in SIMD lanes.)
+        layered = np.zeros(1, np.int64)
+        if nlev > 1 and not moving:
+            _vertical_cells(m, pl, levels, log_levels, ck, fz, layered)
         # RK4: stages at t, t + h/2, t + h/2, t + h with weights 1, 2, 2, 1 (/6).
         # Petterssen: the rate at the start, then the mean of the start and
         # end rates, re-evaluated at the new end point until it settles.
@@ -438,70 +506,57 @@ def advance(pos, level, status, h, field, slot0, slot1, weight, lat, lat_uniform
                 ts = 0 if stage == 0 else (2 if stage == 3 else 1)
             else:
                 ts = 0 if stage == 0 else 2
-            for p in range(first, stop):
-                q = p - first
-                if status[p] != ACTIVE or settled[q]:
-                    continue
-                flag, kx, ky, kz, kl = _rate(
-                    field, slot0[ts], slot1[ts], weight[ts], point[q, 0], point[q, 1],
-                    point[q, 2], point[q, 3], lat, lat_uniform, lon, lon_uniform, periodic,
-                    tables, levels, log_levels, vertical_scale, radius, work)
-                if flag != ACTIVE:
-                    status[p] = flag
-                    continue
-                x0, y0, z0, l0 = pos[p, 0], pos[p, 1], pos[p, 2], level[p]
-                mx, my, mz, ml = mean[q, 0], mean[q, 1], mean[q, 2], mean[q, 3]
-                if scheme == RK4:
-                    share = (1.0 if stage == 0 or stage == 3 else 2.0) / 6.0
-                    mx, my, mz, ml = mx + share * kx, my + share * ky, mz + share * kz, \
-                        ml + share * kl
-                    reach = 0.5 * h if stage < 2 else h
-                    px, py, pz, pl = x0 + reach * kx, y0 + reach * ky, z0 + reach * kz, \
-                        l0 + reach * kl
-                else:
-                    if stage == 0:
-                        start[q, 0], start[q, 1], start[q, 2], start[q, 3] = kx, ky, kz, kl
-                        nx, ny, nz, nl = kx, ky, kz, kl
-                    else:
-                        nx, ny = 0.5 * (start[q, 0] + kx), 0.5 * (start[q, 1] + ky)
-                        nz, nl = 0.5 * (start[q, 2] + kz), 0.5 * (start[q, 3] + kl)
-                    change = abs(h) * max(abs(nx - mx), abs(ny - my), abs(nz - mz),
-                                          abs(nl - ml))
-                    mx, my, mz, ml = nx, ny, nz, nl
-                    settled[q] = stage > 0 and change < tolerance
-                    px, py, pz, pl = x0 + h * mx, y0 + h * my, z0 + h * mz, l0 + h * ml
-                mean[q, 0], mean[q, 1], mean[q, 2], mean[q, 3] = mx, my, mz, ml
-                point[q, 0], point[q, 1], point[q, 2], point[q, 3] = px, py, pz, pl
-        for p in range(first, stop):
+            if periodic:  # (a call per grid kind here: each loop then runs in SIMD lanes)
+                _global_cells(m, px, py, pz, tables, ux, uy, uz, cj, ci, ci1, fy, fx)
+            else:
+                _limited_cells(m, px, py, pz, lat, lat_uniform, lon, lon_uniform, ux, uy, uz, cj,
+                               ci, ci1, fy, fx, flag)
+            if moving:
+                _vertical_cells(m, pl, levels, log_levels, ck, fz, layered)
+            if layered[0] == 1:
+                _gather_between_levels(m, field, slot0[ts], slot1[ts], weight[ts], cj, ci, ci1,
+                                       ck, fy, fx, fz, values)
+            else:
+                _gather(m, field, slot0[ts], slot1[ts], weight[ts], cj, ci, ci1, ck, fy, fx,
+                        values)
+            _rates(m, first, status, settled, flag, values, ux, uy, uz, vertical_scale, radius,
+                   rate, use)
+            if scheme == RK4:
+                _runge_kutta_stage(m, first, stage, h, pos, level, rate, use, mean, px, py, pz, pl)
+            else:
+                _petterssen_stage(m, first, stage, h, tolerance, pos, level, rate, use, start,
+                                  mean, settled, px, py, pz, pl)
+        # The end points, normalised.
+        for q in range(m):
+            p = first + q
+            x1 = pos[p, 0] + h * mean[0, q]
+            y1 = pos[p, 1] + h * mean[1, q]
+            z1 = pos[p, 2] + h * mean[2, q]
+            norm = math.sqrt(x1 * x1 + y1 * y1 + z1 * z1)
+            px[q], py[q], pz[q], pl[q] = x1 / norm, y1 / norm, z1 / norm, level[p] + h * mean[3, q]
+        if not periodic:  # the end point itself must lie inside a limited-area domain
+            _limited_cells(m, px, py, pz, lat, lat_uniform, lon, lon_uniform, ux, uy, uz, cj, ci,
+                           ci1, fy, fx, flag)
+        for q in range(m):
+            p = first + q
             if status[p] != ACTIVE:
                 continue
-            q = p - first
-            x0, y0, z0, l0 = pos[p, 0], pos[p, 1], pos[p, 2], level[p]
-            mx, my, mz, ml = mean[q, 0], mean[q, 1], mean[q, 2], mean[q, 3]
-            x1, y1, z1, l1 = x0 + h * mx, y0 + h * my, z0 + h * mz, l0 + h * ml
-            norm = math.sqrt(x1 * x1 + y1 * y1 + z1 * z1)
-            x1, y1, z1 = x1 / norm, y1 / norm, z1 / norm
-            if not periodic:  # the end point itself must lie inside a limited-area domain
-                flag = _cell(x1, y1, z1, lat, lat_uniform, lon, lon_uniform, periodic,
-                             tables)[0]
-                if flag != ACTIVE:
-                    status[p] = flag
-                    continue
-            if vertical_scale != 0.0 and nlev > 1:
-                if log_levels:
-                    s = math.log(l1) if l1 > 0.0 else -math.inf  # zero pressure: above the top
-                else:
-                    s = l1
+            if flag[q] != ACTIVE:
+                status[p] = flag[q]
+                continue
+            if moving:
+                l1 = pl[q]
+                s = (math.log(l1) if l1 > 0.0 else -math.inf) if log_levels else l1
                 if s < levels[0] - EDGE_TOLERANCE:
                     status[p] = REACHED_HIGHEST if lowest_at_top_of_range else REACHED_LOWEST
                     continue
                 if s > levels[nlev - 1] + EDGE_TOLERANCE:
                     status[p] = REACHED_LOWEST if lowest_at_top_of_range else REACHED_HIGHEST
                     continue
-            pos[p, 0], pos[p, 1], pos[p, 2], level[p] = x1, y1, z1, l1
+            pos[p, 0], pos[p, 1], pos[p, 2], level[p] = px[q], py[q], pz[q], pl[q]
 
 
-@numba.njit(cache=True)
+@numba.njit(cache=True, parallel=True, fastmath=FASTMATH, error_model="numpy")
 def sample(pos, level, status, field, s0, s1, wt, lat, lat_uniform, lon, lon_uniform, periodic,
            tables, levels, log_levels, out):
     """Sample ``field`` at the positions of the active parcels (NaN elsewhere).
@@ -510,25 +565,58 @@ def sample(pos, level, status, field, s0, s1, wt, lat, lat_uniform, lon, lon_uni
     ----------
     pos, level, status
         As in :func:`advance`.
-    field, s0, s1, wt, lat, lat_uniform, lon, lon_uniform, periodic, tables, levels, log_levels
-        As in :func:`interpolate`.
+    field : ndarray, shape (nslot, nlev, nlat, nlon, ncomp)
+    s0, s1, wt
+        Slots and time weight (see :func:`_gather`).
+    lat, lat_uniform, lon, lon_uniform, periodic, tables, levels, log_levels
+        As in :func:`advance`.
     out : ndarray, shape (n, ncomp)
         Receives the values.
 
     References
     ----------
-    See :func:`interpolate`.
+    See :func:`_gather`.
     """
+    n = pos.shape[0]
     ncomp = field.shape[4]
-    work = np.empty(ncomp)
-    for p in range(pos.shape[0]):
-        flag = MISSING_WIND
-        if status[p] == ACTIVE:
-            flag = interpolate(field, s0, s1, wt, pos[p, 0], pos[p, 1], pos[p, 2], level[p], lat,
-                               lat_uniform, lon, lon_uniform, periodic, tables, levels,
-                               log_levels, work)
-        for c in range(ncomp):
-            out[p, c] = work[c] if flag == ACTIVE else np.nan
+    for block in numba.prange((n + BLOCK - 1) // BLOCK):
+        first = block * BLOCK
+        m = min(n, first + BLOCK) - first
+        ux = np.empty(m)
+        uy = np.empty(m)
+        uz = np.empty(m)
+        cj = np.empty(m, np.int64)
+        ci = np.empty(m, np.int64)
+        ci1 = np.empty(m, np.int64)
+        ck = np.zeros(m, np.int64)
+        fy = np.empty(m)
+        fx = np.empty(m)
+        fz = np.zeros(m)
+        flag = np.full(m, ACTIVE, np.int8)
+        values = np.empty((ncomp, m))
+        px = np.empty(m)
+        py = np.empty(m)
+        pz = np.empty(m)
+        pl = np.empty(m)
+        for q in range(m):
+            p = first + q
+            px[q], py[q], pz[q], pl[q] = pos[p, 0], pos[p, 1], pos[p, 2], level[p]
+        if periodic:
+            _global_cells(m, px, py, pz, tables, ux, uy, uz, cj, ci, ci1, fy, fx)
+        else:
+            _limited_cells(m, px, py, pz, lat, lat_uniform, lon, lon_uniform, ux, uy, uz, cj, ci,
+                           ci1, fy, fx, flag)
+        layered = np.zeros(1, np.int64)
+        if levels.shape[0] > 1:
+            _vertical_cells(m, pl, levels, log_levels, ck, fz, layered)
+        if layered[0] == 1:
+            _gather_between_levels(m, field, s0, s1, wt, cj, ci, ci1, ck, fy, fx, fz, values)
+        else:
+            _gather(m, field, s0, s1, wt, cj, ci, ci1, ck, fy, fx, values)
+        for q in range(m):
+            live = status[first + q] == ACTIVE and flag[q] == ACTIVE
+            for c in range(ncomp):
+                out[first + q, c] = values[c, q] if live else np.nan
 
 
 @numba.njit(cache=True)

@@ -20,7 +20,8 @@ from dataclasses import dataclass
 import numpy as np
 import xarray as xr
 
-from ._kernels import cartesian_slice
+from ..errors import InputError
+from ._kernels import MAX_GLOBAL_SPACING, cartesian_slice
 
 
 @dataclass(frozen=True)
@@ -66,6 +67,29 @@ def _pseudo_angle(x: np.ndarray, y: np.ndarray) -> np.ndarray:
     return np.where(y >= 0.0, 1.0 - r, 3.0 + r)
 
 
+def _guesses(lines: np.ndarray, low: float, span: float, wrap: bool) -> np.ndarray:
+    """For equal bins of ``[low, low + span)`` narrower than half the closest two ``lines``
+    (ascending), the last line at or before each bin's lower end.
+
+    A value in a bin then lies in the cell of that line or of the next one.
+    Before the first line the guess is the last line when ``wrap``, else the
+    first.
+
+    References
+    ----------
+    A table of first guesses refined by a local search: Press, Teukolsky,
+    Vetterling & Flannery (2007), Numerical Recipes, 3rd ed., section 3.1.1
+    ("hunt").
+    """
+    gaps = np.diff(np.append(lines, lines[0] + span)) if wrap else np.diff(lines)
+    nbin = int(np.ceil(2.0 * span / gaps.min()))
+    edges = low + span * np.arange(nbin) / nbin
+    found = np.searchsorted(lines, edges, side="right") - 1
+    if wrap:
+        return (found % lines.size).astype(np.int64)
+    return np.clip(found, 0, lines.size - 2).astype(np.int64)
+
+
 def cell_tables(latitude: np.ndarray, longitude: np.ndarray) -> tuple:
     """Tables with which the kernels find the cell of a position on a global grid.
 
@@ -74,43 +98,44 @@ def cell_tables(latitude: np.ndarray, longitude: np.ndarray) -> tuple:
     latitude : numpy.ndarray
         Ascending latitudes in degrees from -90 to 90 (pole rows included).
     longitude : numpy.ndarray
-        Ascending, equally spaced longitudes in degrees covering the globe.
+        Ascending longitudes in degrees covering the globe, in [0, 360).
 
     Returns
     -------
-    rows : numpy.ndarray, shape (nlat, 3)
+    sin_lat, cos_lat, inv_dlat : numpy.ndarray
         ``sin``, ``cos`` of each latitude and the inverse of the spacing (rad)
         to the next row (0 for the last).
-    columns : numpy.ndarray, shape (nlon, 3)
+    row_guess : numpy.ndarray of int64
+        For equal bins of the pseudo-angle ``z / (|z| + rho)`` in [-1, 1], the
+        last row at or before the bin (at most the last cell).
+    sin_lon, cos_lon, inv_dlon : numpy.ndarray
         The same for the longitudes, the last column's spacing wrapping round.
-    row_guess : numpy.ndarray of int64, shape (8 nlat,)
-        For equal bins of ``z`` in [-1, 1], the last row whose ``sin`` is at
-        most the bin's lower end (at most the last cell).
-    column_guess : numpy.ndarray of int64, shape (8 nlon,)
-        For equal bins of the pseudo-angle in [0, 4), the last column at or
-        before the bin's lower end (wrapping to the last column).
+    column_guess : numpy.ndarray of int64
+        For equal bins of the pseudo-angle of :func:`_pseudo_angle` in
+        [0, 4), the last column at or before the bin (wrapping round).
+
+    Raises
+    ------
+    flowpipe.errors.InputError
+        For a grid coarser than ``MAX_GLOBAL_SPACING`` degrees.
 
     References
     ----------
-    A table of first guesses refined by a local search: Press, Teukolsky,
-    Vetterling & Flannery (2007), Numerical Recipes, 3rd ed., section 3.1.1
-    ("hunt"); the kernel side is :func:`flowpipe.parcels._kernels._global_cell`.
+    See :func:`_guesses`; the kernel side is
+    :func:`flowpipe.parcels._kernels._global_cells`.
     """
     phi = np.radians(latitude)
     lam = np.radians(longitude)
-    step_lon = 2.0 * np.pi / lam.size
-    rows = np.stack([np.sin(phi), np.cos(phi),
-                     np.append(1.0 / np.diff(phi), 0.0)], axis=1)
-    columns = np.stack([np.sin(lam), np.cos(lam), np.full(lam.size, 1.0 / step_lon)], axis=1)
-    nbin = 8 * phi.size
-    edges = -1.0 + 2.0 * np.arange(nbin) / nbin
-    row_guess = np.clip(np.searchsorted(rows[:, 0], edges, side="right") - 1, 0, phi.size - 2)
-    nbin = 8 * lam.size
-    pseudo = _pseudo_angle(columns[:, 1], columns[:, 0])
-    order = np.argsort(pseudo)
-    edges = 4.0 * np.arange(nbin) / nbin
-    column_guess = order[(np.searchsorted(pseudo[order], edges, side="right") - 1) % lam.size]
-    return rows, columns, row_guess.astype(np.int64), column_guess.astype(np.int64)
+    spacing = np.degrees(max(np.diff(phi).max(), np.diff(np.append(lam, lam[0] + 2 * np.pi)).max()))
+    if spacing > MAX_GLOBAL_SPACING + 1e-9:
+        raise InputError(f"the grid spacing of {spacing:g} degrees is too coarse for trajectories "
+                         f"(at most {MAX_GLOBAL_SPACING:g}); interpolate the wind to a finer grid")
+    sin_lat, cos_lat = np.sin(phi), np.cos(phi)
+    sin_lon, cos_lon = np.sin(lam), np.cos(lam)
+    row_guess = _guesses(sin_lat / (np.abs(sin_lat) + cos_lat), -1.0, 2.0, wrap=False)
+    column_guess = _guesses(_pseudo_angle(cos_lon, sin_lon), 0.0, 4.0, wrap=True)
+    return (sin_lat, cos_lat, np.append(1.0 / np.diff(phi), 0.0), row_guess,
+            sin_lon, cos_lon, 1.0 / np.diff(np.append(lam, lam[0] + 2 * np.pi)), column_guess)
 
 
 def slice_grid(wind: xr.Dataset, periodic: bool) -> SliceGrid:
@@ -148,7 +173,8 @@ def slice_grid(wind: xr.Dataset, periodic: bool) -> SliceGrid:
     if periodic:
         tables = cell_tables(full_lat, lon)
     else:  # limited areas locate latitude and longitude instead
-        tables = (np.zeros((0, 3)), np.zeros((0, 3)), np.zeros(0, np.int64), np.zeros(0, np.int64))
+        empty, none = np.zeros(0), np.zeros(0, np.int64)
+        tables = (empty, empty, empty, none, empty, empty, empty, none)
     return SliceGrid(full_lat, _uniform(full_lat), lon, _uniform(lon), periodic, levels,
                      log_levels, order, add_south, add_north, tables)
 
