@@ -482,30 +482,44 @@ def _integrate(pos, lev, status, t0, sign, schedule, clock, winds, samples, grid
 
 def _steps(pos, lev, status, t0, sign, schedule, clock, winds, grid, vertical_scale, scheme,
            record) -> None:
-    """The time loop of :func:`_integrate`: advance, and record when scheduled."""
+    """The time loop of :func:`_integrate`: advance, and record when scheduled.
+
+    Consecutive steps go to the kernel together, up to a record or until they
+    need more input times than the window holds.
+    """
     args = grid.kernel_args()
     lowest_at_top = grid.log_levels
     record(0, t0)
     t = t0
     obs = 1
-    slot0 = np.empty(3, dtype=np.int64)
-    slot1 = np.empty(3, dtype=np.int64)
-    weight = np.empty(3)
+    chunk: list[tuple[float, list[tuple[int, int, float]]]] = []
+
+    def flush() -> None:
+        indices = sorted({k for _, brackets in chunk for b in brackets for k in b[:2]})
+        slot = dict(zip(indices, winds.slots_for(indices), strict=True))
+        steps = np.array([h for h, _ in chunk])
+        slot0 = np.array([[slot[b[0]] for b in brackets] for _, brackets in chunk], np.int64)
+        slot1 = np.array([[slot[b[1]] for b in brackets] for _, brackets in chunk], np.int64)
+        weight = np.array([[b[2] for b in brackets] for _, brackets in chunk])
+        K.advance(pos, lev, status, steps, winds.field, slot0, slot1, weight, *args,
+                  vertical_scale, lowest_at_top, EARTH_RADIUS, scheme, PETTERSSEN_ITERATIONS,
+                  PETTERSSEN_TOLERANCE)
+        chunk.clear()
+
     for length, recorded in zip(schedule.steps, schedule.recorded, strict=True):
         h = sign * length
         brackets = [clock.bracket(t + f * h) for f in (0.0, 0.5, 1.0)]
-        slots = winds.slots_for([k for b in brackets for k in b[:2]])
-        for i, b in enumerate(brackets):
-            slot0[i], slot1[i], weight[i] = slots[2 * i], slots[2 * i + 1], b[2]
-        K.advance(pos, lev, status, h, winds.field, slot0, slot1, weight, *args,
-                  vertical_scale, lowest_at_top, EARTH_RADIUS, scheme, PETTERSSEN_ITERATIONS,
-                  PETTERSSEN_TOLERANCE)
+        held = {k for _, earlier in chunk for b in earlier for k in b[:2]}
+        if len(held | {k for b in brackets for k in b[:2]}) > winds.slots:
+            flush()
+        chunk.append((h, brackets))
         t += h
         if recorded:
+            flush()
             record(obs, t)
             obs += 1
-        if not np.any(status == K.ACTIVE):
-            break
+            if not np.any(status == K.ACTIVE):
+                break
 
 
 def _trajectory_dataset(wind, clock, start, sign, offsets, lat, lon, out_level, out_sample,

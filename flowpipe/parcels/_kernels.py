@@ -294,12 +294,28 @@ def _gather_between_levels(m, field, s0, s1, wt, cj, ci, ci1, ck, fy, fx, fz, va
             values[c, q] = (1.0 - z) * lower + z * upper
 
 
-@numba.njit(**BLOCK_LOOP)
-def _rates(m, first, status, settled, flag, values, ux, uy, uz, vertical_scale, radius, rate,
-           use):
-    """Time derivatives ``(dx, dy, dz, dlevel)/dt`` of ``m`` parcels from their interpolated
-    wind, and whether each counts: parcels ``first ..`` that are active and not settled,
-    inside the domain and with wind; the others among the active get the matching status.
+@numba.njit(cache=True, inline="always")
+def _counts(p, q, status, settled, flag, values):
+    """Whether the rate of parcel ``p`` (block index ``q``) counts: active and not settled,
+    inside the domain and with wind. An active parcel outside or without wind gets the
+    matching status.
+
+    References
+    ----------
+    Missing wind is not filled in (common practice): ``NaN`` in ``values``.
+    """
+    total = values[0, q] + values[1, q] + values[2, q] + values[3, q]
+    # (& rather than "and": no branches, so that loops run in SIMD lanes)
+    live = (status[p] == ACTIVE) & (not settled[q])
+    good = (flag[q] == ACTIVE) & (abs(total) < math.inf)
+    lost = flag[q] if flag[q] != ACTIVE else MISSING_WIND
+    status[p] = lost if live & (not good) else status[p]
+    return live & good
+
+
+@numba.njit(cache=True, inline="always")
+def _rate(q, values, ux, uy, uz, vertical_scale, radius):
+    """Time derivative ``(dx, dy, dz, dlevel)/dt`` of parcel ``q`` from its interpolated wind.
 
     The interpolated Cartesian wind is projected on the tangent plane of the
     normalised position and divided by the radius, so that the rate keeps the
@@ -313,26 +329,18 @@ def _rates(m, first, status, settled, flag, values, ux, uy, uz, vertical_scale, 
     see e.g. Williamson et al. 1992, J. Comput. Phys. 102, 211-224, section 2
     for the Cartesian form of a wind on the sphere).
     """
-    for q in range(m):
-        p = first + q
-        vx, vy, vz, vl = values[0, q], values[1, q], values[2, q], values[3, q]
-        live = status[p] == ACTIVE and not settled[q]
-        # Finite wind (NaN where missing; math.isfinite is not kept under FASTMATH).
-        good = flag[q] == ACTIVE and abs(vx + vy + vz + vl) < math.inf
-        lost = flag[q] if flag[q] != ACTIVE else MISSING_WIND
-        status[p] = lost if live and not good else status[p]
-        use[q] = live and good
-        x, y, z = ux[q], uy[q], uz[q]
-        radial = vx * x + vy * y + vz * z
-        rate[0, q] = (vx - radial * x) / radius
-        rate[1, q] = (vy - radial * y) / radius
-        rate[2, q] = (vz - radial * z) / radius
-        rate[3, q] = vl * vertical_scale
+    vx, vy, vz = values[0, q], values[1, q], values[2, q]
+    x, y, z = ux[q], uy[q], uz[q]
+    radial = vx * x + vy * y + vz * z
+    return ((vx - radial * x) / radius, (vy - radial * y) / radius, (vz - radial * z) / radius,
+            values[3, q] * vertical_scale)
 
 
 @numba.njit(**BLOCK_LOOP)
-def _runge_kutta_stage(m, first, stage, h, pos, level, rate, use, mean, px, py, pz, pl):
-    """Add one stage's rates to the mean rate and place the next stage's points.
+def _runge_kutta_stage(m, first, stage, h, pos, level, status, settled, flag, values, ux, uy, uz,
+                       vertical_scale, radius, mean, px, py, pz, pl):
+    """Add one stage's rates (:func:`_rate`) to the mean rate and place the next stage's
+    points, for the parcels whose rate counts (:func:`_counts`).
 
     Stages at ``t, t + h/2, t + h/2, t + h`` with weights ``1, 2, 2, 1`` (/6).
 
@@ -345,21 +353,25 @@ def _runge_kutta_stage(m, first, stage, h, pos, level, rate, use, mean, px, py, 
     share = (1.0 if stage == 0 or stage == 3 else 2.0) / 6.0
     reach = 0.5 * h if stage < 2 else h
     for q in range(m):
-        if use[q]:
-            p = first + q
-            for c in range(4):
-                mean[c, q] += share * rate[c, q]
-            px[q] = pos[p, 0] + reach * rate[0, q]
-            py[q] = pos[p, 1] + reach * rate[1, q]
-            pz[q] = pos[p, 2] + reach * rate[2, q]
-            pl[q] = level[p] + reach * rate[3, q]
+        p = first + q
+        if _counts(p, q, status, settled, flag, values):
+            kx, ky, kz, kl = _rate(q, values, ux, uy, uz, vertical_scale, radius)
+            mean[0, q] += share * kx
+            mean[1, q] += share * ky
+            mean[2, q] += share * kz
+            mean[3, q] += share * kl
+            px[q] = pos[p, 0] + reach * kx
+            py[q] = pos[p, 1] + reach * ky
+            pz[q] = pos[p, 2] + reach * kz
+            pl[q] = level[p] + reach * kl
 
 
 @numba.njit(**BLOCK_LOOP)
-def _petterssen_stage(m, first, stage, h, tolerance, pos, level, rate, use, start, mean, settled,
-                      px, py, pz, pl):
-    """One pass of the iterative scheme: the rate at the start (stage 0), then the mean of
-    the start and end rates, re-evaluated at the new end point until it settles.
+def _petterssen_stage(m, first, stage, h, tolerance, pos, level, status, settled, flag, values,
+                      ux, uy, uz, vertical_scale, radius, start, mean, px, py, pz, pl):
+    """One pass of the iterative scheme for the parcels whose rate counts
+    (:func:`_counts`): the rate at the start (stage 0), then the mean of the start and end
+    rates, re-evaluated at the new end point until it settles.
 
     References
     ----------
@@ -367,13 +379,14 @@ def _petterssen_stage(m, first, stage, h, tolerance, pos, level, rate, use, star
     pp. 221-223 (from memory).
     """
     for q in range(m):
-        if use[q]:
-            p = first + q
+        p = first + q
+        if _counts(p, q, status, settled, flag, values):
+            rate = _rate(q, values, ux, uy, uz, vertical_scale, radius)
             change = 0.0
             for c in range(4):
                 if stage == 0:
-                    start[c, q] = rate[c, q]
-                updated = 0.5 * (start[c, q] + rate[c, q])
+                    start[c, q] = rate[c]
+                updated = 0.5 * (start[c, q] + rate[c])
                 change = max(change, abs(h) * abs(updated - mean[c, q]))
                 mean[c, q] = updated
             settled[q] = stage > 0 and change < tolerance
@@ -383,11 +396,82 @@ def _petterssen_stage(m, first, stage, h, tolerance, pos, level, rate, use, star
             pl[q] = level[p] + h * mean[3, q]
 
 
+@numba.njit(**BLOCK_LOOP)
+def _begin_step(m, first, pos, level, px, py, pz, pl, mean, settled, flag):
+    """Start a step: the first stage's points at the parcels' positions, no mean rate yet,
+    nothing settled or flagged.
+
+    References
+    ----------
+    See :func:`advance`.
+    """
+    for q in range(m):
+        p = first + q
+        px[q], py[q], pz[q], pl[q] = pos[p, 0], pos[p, 1], pos[p, 2], level[p]
+        mean[0, q], mean[1, q], mean[2, q], mean[3, q] = 0.0, 0.0, 0.0, 0.0
+        settled[q] = False
+        flag[q] = ACTIVE
+
+
+@numba.njit(**BLOCK_LOOP)
+def _end_points(m, first, h, pos, level, mean, px, py, pz, pl):
+    """The points one step ``h`` along the mean rate from the start, normalised to unit length.
+
+    References
+    ----------
+    Renormalisation after each step keeps positions on the sphere (common
+    practice).
+    """
+    for q in range(m):
+        p = first + q
+        x1 = pos[p, 0] + h * mean[0, q]
+        y1 = pos[p, 1] + h * mean[1, q]
+        z1 = pos[p, 2] + h * mean[2, q]
+        norm = math.sqrt(x1 * x1 + y1 * y1 + z1 * z1)
+        px[q], py[q], pz[q], pl[q] = x1 / norm, y1 / norm, z1 / norm, level[p] + h * mean[3, q]
+
+
+@numba.njit(**BLOCK_LOOP)
+def _vertical_range(m, vertical, levels, log_levels, lowest_at_top_of_range, flag):
+    """Flag vertical coordinates beyond the lowest or the highest level.
+
+    References
+    ----------
+    Parcels that leave the vertical range of the input stop there (common
+    practice: no extrapolation).
+    """
+    nlev = levels.shape[0]
+    for q in range(m):
+        l1 = vertical[q]
+        s = (math.log(l1) if l1 > 0.0 else -math.inf) if log_levels else l1  # 0 hPa: above
+        if s < levels[0] - EDGE_TOLERANCE:
+            flag[q] = REACHED_HIGHEST if lowest_at_top_of_range else REACHED_LOWEST
+        elif s > levels[nlev - 1] + EDGE_TOLERANCE:
+            flag[q] = REACHED_LOWEST if lowest_at_top_of_range else REACHED_HIGHEST
+
+
+@numba.njit(**BLOCK_LOOP)
+def _settle(m, first, status, flag, pos, level, px, py, pz, pl):
+    """Move the active parcels whose end point is good (``flag`` ``ACTIVE``) to it; the other
+    active parcels keep their position and get the flag as status.
+
+    References
+    ----------
+    Positions after a parcel stops are not extrapolated (common practice).
+    """
+    for q in range(m):
+        p = first + q
+        active = status[p] == ACTIVE
+        status[p] = flag[q] if active else status[p]
+        if active & (flag[q] == ACTIVE):
+            pos[p, 0], pos[p, 1], pos[p, 2], level[p] = px[q], py[q], pz[q], pl[q]
+
+
 @numba.njit(cache=True, parallel=True, fastmath=FASTMATH, error_model="numpy")
-def advance(pos, level, status, h, field, slot0, slot1, weight, lat, lat_uniform, lon,
+def advance(pos, level, status, steps, field, slot0, slot1, weight, lat, lat_uniform, lon,
             lon_uniform, periodic, tables, levels, log_levels, vertical_scale,
             lowest_at_top_of_range, radius, scheme, iterations, tolerance):
-    """Advance every active parcel by one time step ``h`` (seconds, negative backward).
+    """Advance every active parcel by the time steps ``steps`` (seconds, negative backward).
 
     Parameters
     ----------
@@ -399,14 +483,14 @@ def advance(pos, level, status, h, field, slot0, slot1, weight, lat, lat_uniform
         ``ACTIVE`` parcels are advanced; a parcel that leaves the domain,
         meets missing wind or leaves the vertical range keeps its last
         position and gets the matching status.
-    h : float
-        Time step in seconds.
+    steps : ndarray, shape (nstep,)
+        The time steps, one after the other, in seconds.
     field : ndarray, shape (nslot, nlev, nlat, nlon, ncomp)
         Cartesian wind components (m s-1) and, when ``ncomp == 4``, the
         vertical velocity.
-    slot0, slot1, weight : ndarray, shape (3,)
-        Slots and time weights at the stage times ``t``, ``t + h/2``,
-        ``t + h`` (see :func:`_gather`).
+    slot0, slot1, weight : ndarray, shape (nstep, 3)
+        Per step, the slots and time weights at the stage times ``t``,
+        ``t + h/2``, ``t + h`` (see :func:`_gather`).
     lat, lon : ndarray
         Ascending grid coordinates in degrees (``lat`` includes any pole rows).
     lat_uniform, lon_uniform, periodic : bool
@@ -439,7 +523,8 @@ def advance(pos, level, status, h, field, slot0, slot1, weight, lat, lat_uniform
     tangent plane of the normalised position, divided by the radius:
     ``dr/dt = (V - (V . r) r) / a``; the vertical rate is the vertical
     velocity times ``vertical_scale``. Parcels are taken in blocks of
-    ``BLOCK``, stage by stage, each stage in passes over the block (cells,
+    ``BLOCK``, each block through all the steps (it stays in the processor's
+    cache), stage by stage, each stage in passes over the block (cells,
     interpolation, update) whose loops run in SIMD lanes.
 
     References
@@ -478,82 +563,63 @@ def advance(pos, level, status, h, field, slot0, slot1, weight, lat, lat_uniform
         fz = np.zeros(m)
         flag = np.full(m, ACTIVE, np.int8)
         values = np.zeros((4, m))  # interpolated components; the fourth stays 0 in 2-D
-        # The point of the next stage, the rate there (and whether it counts),
-        # the mean rate over the step and (Petterssen) the rate at the start.
+        # The point of the next stage, the mean rate over the step and
+        # (Petterssen) the rate at the start.
         px = np.empty(m)
         py = np.empty(m)
         pz = np.empty(m)
         pl = np.empty(m)
-        rate = np.empty((4, m))
-        use = np.empty(m, np.bool_)
         mean = np.zeros((4, m))
         start = np.zeros((4, m))
         settled = np.zeros(m, dtype=np.bool_)  # Petterssen: converged
-        for q in range(m):
-            p = first + q
-            px[q], py[q], pz[q], pl[q] = pos[p, 0], pos[p, 1], pos[p, 2], level[p]
         # 1 when any parcel of the block lies between two levels. (Numba counts
         # a boolean variable taken from an array or a call as a possible alias,
         # which would keep the loops from running in SIMD lanes.)
         layered = np.zeros(1, np.int64)
-        if nlev > 1 and not moving:
-            _vertical_cells(m, pl, levels, log_levels, ck, fz, layered)
-        # RK4: stages at t, t + h/2, t + h/2, t + h with weights 1, 2, 2, 1 (/6).
-        # Petterssen: the rate at the start, then the mean of the start and
-        # end rates, re-evaluated at the new end point until it settles.
-        for stage in range(nstage):
-            if scheme == RK4:
-                ts = 0 if stage == 0 else (2 if stage == 3 else 1)
-            else:
-                ts = 0 if stage == 0 else 2
-            if periodic:  # (a call per grid kind here: each loop then runs in SIMD lanes)
-                _global_cells(m, px, py, pz, tables, ux, uy, uz, cj, ci, ci1, fy, fx)
-            else:
+        # Stopped parcels go through the passes too (at their last position,
+        # their results unused): skipping them, or a block without active
+        # parcels, costs more in the compiled loops than it saves.
+        for step in range(steps.shape[0]):
+            h = steps[step]
+            _begin_step(m, first, pos, level, px, py, pz, pl, mean, settled, flag)
+            if nlev > 1 and (moving or step == 0):  # level-following: the layers stay
+                _vertical_cells(m, pl, levels, log_levels, ck, fz, layered)
+            # RK4: stages at t, t + h/2, t + h/2, t + h with weights 1, 2, 2, 1 (/6).
+            # Petterssen: the rate at the start, then the mean of the start and
+            # end rates, re-evaluated at the new end point until it settles.
+            for stage in range(nstage):
+                if scheme == RK4:
+                    ts = 0 if stage == 0 else (2 if stage == 3 else 1)
+                else:
+                    ts = 0 if stage == 0 else 2
+                s0, s1, wt = slot0[step, ts], slot1[step, ts], weight[step, ts]
+                if periodic:  # (a call per grid kind here: each loop then runs in SIMD lanes)
+                    _global_cells(m, px, py, pz, tables, ux, uy, uz, cj, ci, ci1, fy, fx)
+                else:
+                    _limited_cells(m, px, py, pz, lat, lat_uniform, lon, lon_uniform, ux, uy, uz,
+                                   cj, ci, ci1, fy, fx, flag)
+                if moving and stage > 0:
+                    _vertical_cells(m, pl, levels, log_levels, ck, fz, layered)
+                if layered[0] == 1:
+                    _gather_between_levels(m, field, s0, s1, wt, cj, ci, ci1, ck, fy, fx, fz,
+                                           values)
+                else:
+                    _gather(m, field, s0, s1, wt, cj, ci, ci1, ck, fy, fx, values)
+                if scheme == RK4:
+                    _runge_kutta_stage(m, first, stage, h, pos, level, status, settled, flag,
+                                       values, ux, uy, uz, vertical_scale, radius, mean, px, py,
+                                       pz, pl)
+                else:
+                    _petterssen_stage(m, first, stage, h, tolerance, pos, level, status, settled,
+                                      flag, values, ux, uy, uz, vertical_scale, radius, start,
+                                      mean, px, py, pz, pl)
+            _end_points(m, first, h, pos, level, mean, px, py, pz, pl)
+            if not periodic:  # the end point itself must lie inside a limited-area domain
                 _limited_cells(m, px, py, pz, lat, lat_uniform, lon, lon_uniform, ux, uy, uz, cj,
                                ci, ci1, fy, fx, flag)
             if moving:
-                _vertical_cells(m, pl, levels, log_levels, ck, fz, layered)
-            if layered[0] == 1:
-                _gather_between_levels(m, field, slot0[ts], slot1[ts], weight[ts], cj, ci, ci1,
-                                       ck, fy, fx, fz, values)
-            else:
-                _gather(m, field, slot0[ts], slot1[ts], weight[ts], cj, ci, ci1, ck, fy, fx,
-                        values)
-            _rates(m, first, status, settled, flag, values, ux, uy, uz, vertical_scale, radius,
-                   rate, use)
-            if scheme == RK4:
-                _runge_kutta_stage(m, first, stage, h, pos, level, rate, use, mean, px, py, pz, pl)
-            else:
-                _petterssen_stage(m, first, stage, h, tolerance, pos, level, rate, use, start,
-                                  mean, settled, px, py, pz, pl)
-        # The end points, normalised.
-        for q in range(m):
-            p = first + q
-            x1 = pos[p, 0] + h * mean[0, q]
-            y1 = pos[p, 1] + h * mean[1, q]
-            z1 = pos[p, 2] + h * mean[2, q]
-            norm = math.sqrt(x1 * x1 + y1 * y1 + z1 * z1)
-            px[q], py[q], pz[q], pl[q] = x1 / norm, y1 / norm, z1 / norm, level[p] + h * mean[3, q]
-        if not periodic:  # the end point itself must lie inside a limited-area domain
-            _limited_cells(m, px, py, pz, lat, lat_uniform, lon, lon_uniform, ux, uy, uz, cj, ci,
-                           ci1, fy, fx, flag)
-        for q in range(m):
-            p = first + q
-            if status[p] != ACTIVE:
-                continue
-            if flag[q] != ACTIVE:
-                status[p] = flag[q]
-                continue
-            if moving:
-                l1 = pl[q]
-                s = (math.log(l1) if l1 > 0.0 else -math.inf) if log_levels else l1
-                if s < levels[0] - EDGE_TOLERANCE:
-                    status[p] = REACHED_HIGHEST if lowest_at_top_of_range else REACHED_LOWEST
-                    continue
-                if s > levels[nlev - 1] + EDGE_TOLERANCE:
-                    status[p] = REACHED_LOWEST if lowest_at_top_of_range else REACHED_HIGHEST
-                    continue
-            pos[p, 0], pos[p, 1], pos[p, 2], level[p] = px[q], py[q], pz[q], pl[q]
+                _vertical_range(m, pl, levels, log_levels, lowest_at_top_of_range, flag)
+            _settle(m, first, status, flag, pos, level, px, py, pz, pl)
 
 
 @numba.njit(cache=True, parallel=True, fastmath=FASTMATH, error_model="numpy")

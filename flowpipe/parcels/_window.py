@@ -17,6 +17,7 @@ from __future__ import annotations
 
 from dataclasses import dataclass
 
+import dask
 import numpy as np
 import xarray as xr
 
@@ -207,10 +208,10 @@ def _close_poles(out: np.ndarray, grid: SliceGrid, input_lat: np.ndarray) -> Non
         out[:, -1] = out[:, ring].mean(axis=1, keepdims=True)
 
 
-def _levels_first(da: xr.DataArray, nlev: int) -> np.ndarray:
+def _levels_first(variable: xr.Variable, values: np.ndarray, nlev: int) -> np.ndarray:
     """Values of one time slice as ``(level, lat, lon)``, broadcasting 2-D fields over levels."""
-    values = np.asarray(da.values, dtype=np.float64)
-    if "level" not in da.dims:
+    values = np.asarray(values, dtype=np.float64)
+    if "level" not in variable.dims:
         values = np.broadcast_to(values[None], (nlev,) + values.shape)
     return values
 
@@ -239,31 +240,34 @@ class SliceWindow:
         self.wind_components = wind_components
         self.names = names
         self.input_lat = wind["latitude"].values.astype(np.float64)
+        phi = np.radians(self.input_lat)
+        lam = np.radians(grid.longitude)
+        self.trig = (np.sin(phi), np.cos(phi), np.sin(lam), np.cos(lam))
         ncomp = (3 + len(names)) if wind_components else len(names)
         shape = (slots, grid.levels.size, grid.latitude.size, grid.longitude.size, ncomp)
         self.field = np.empty(shape)
         self.held: list[int | None] = [None] * slots
+        self.slots = slots
 
     def _prepare(self, index: int, out: np.ndarray) -> None:
         """Read input time ``index`` and write it, prepared, into the slot ``out``."""
         wanted = (("u", "v") if self.wind_components else ()) + self.names
-        part = self.wind[list(wanted)]
-        if "time" in part.dims:
-            part = part.isel(time=index)
-        part = part.compute()
+        variables = [self.wind[name].variable for name in wanted]
+        variables = [v.isel(time=index) if "time" in v.dims else v for v in variables]
+        # Lazy (dask) variables are read in one pass; in-memory ones are used as they are.
+        values = dask.compute(*(v.data for v in variables))
         nlev = self.grid.levels.size
+        part = {name: _levels_first(v, x, nlev)
+                for name, v, x in zip(wanted, variables, values, strict=True)}
         order = self.grid.level_order
         row0 = 1 if self.grid.add_south else 0
         rows = slice(row0, row0 + self.input_lat.size)
         first = 0
         if self.wind_components:
-            phi = np.radians(self.input_lat)
-            lam = np.radians(self.grid.longitude)
-            cartesian_slice(_levels_first(part["u"], nlev), _levels_first(part["v"], nlev),
-                            np.sin(phi), np.cos(phi), np.sin(lam), np.cos(lam), order, row0, out)
+            cartesian_slice(part["u"], part["v"], *self.trig, order, row0, out)
             first = 3
         for c, name in enumerate(self.names, start=first):
-            out[:, rows, :, c] = _levels_first(part[name], nlev)[order]
+            out[:, rows, :, c] = part[name][order]
         _close_poles(out, self.grid, self.input_lat)
 
     def slots_for(self, indices: list[int]) -> list[int]:
