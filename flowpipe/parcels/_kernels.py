@@ -92,20 +92,19 @@ FASTMATH = {"nsz", "arcp", "contract", "reassoc"}
 BLOCK_LOOP = {"cache": True, "fastmath": FASTMATH, "error_model": "numpy", "forceinline": True}
 
 
-#: Coarsest spacing (degrees) of a global grid that :func:`_angle` serves exactly
+#: Coarsest spacing (degrees) of a global grid that :func:`_twice_arctan` serves exactly
 #: to rounding.
 MAX_GLOBAL_SPACING = 20.0
 
 
 @numba.njit(cache=True, inline="always")
-def _angle(s, c, r):
-    """The angle ``theta`` with ``s = r sin(theta)`` and ``c = r cos(theta)``, ``r > 0``, for
-    ``|theta| <= MAX_GLOBAL_SPACING`` degrees, without a trigonometric call.
+def _twice_arctan(t):
+    """``2 atan(t)`` for ``|t| <= tan(MAX_GLOBAL_SPACING / 2)``, without a trigonometric call:
+    the angle ``theta`` of ``t = tan(theta / 2) = sin(theta) / (1 + cos(theta))``.
 
-    ``tan(theta / 2) = s / (r + c)``, and the Maclaurin series of the
-    arctangent to the term in ``t**21``: for ``|t| <= tan(10 deg)`` the first
-    omitted term is below 1e-18 of the sum. Branch-free, so that loops over
-    many parcels run in SIMD lanes.
+    The Maclaurin series of the arctangent to the term in ``t**21``: for
+    ``|t| <= tan(10 deg)`` the first omitted term is below 1e-18 of the sum.
+    Branch-free, so that loops over many parcels run in SIMD lanes.
 
     References
     ----------
@@ -113,7 +112,6 @@ def _angle(s, c, r):
     arctan: Abramowitz & Stegun (1964), Handbook of Mathematical Functions,
     eqs. 4.3.24 and 4.4.42 (from memory).
     """
-    t = s / (r + c)
     q = t * t
     series = 1.0 + q * (-1.0 / 3.0 + q * (1.0 / 5.0 + q * (-1.0 / 7.0 + q * (1.0 / 9.0 + q * (
         -1.0 / 11.0 + q * (1.0 / 13.0 + q * (-1.0 / 15.0 + q * (1.0 / 17.0 + q * (
@@ -130,7 +128,7 @@ def _global_cells(m, px, py, pz, tables, ux, uy, uz, cj, ci, ci1, fy, fx):
     narrower than any cell, see :func:`flowpipe.parcels._window.cell_tables`);
     one comparison with the sine and cosine of the next grid line decides.
     The fractions are the angles from the cell's first row and column
-    (:func:`_angle`, from the angle-difference identities) divided by the
+    (:func:`_twice_arctan`, from the angle-difference identities) divided by the
     cell's spacing: the bilinear weights of ``(phi - phi_j) / (phi_{j+1} -
     phi_j)``, to rounding. No branch depends on the data, so the loop runs in
     SIMD lanes.
@@ -161,33 +159,41 @@ def _global_cells(m, px, py, pz, tables, ux, uy, uz, cj, ci, ci1, fy, fx):
     nrow_bins, ncolumn_bins = row_guess.shape[0], column_guess.shape[0]
     nlon = sin_lon.shape[0]
     last_row = sin_lat.shape[0] - 2
+    # Two divisions per parcel (a/b and c/d as (a d, c b) / (b d)): the divider
+    # is the scarcest unit of this loop.
     for q in range(m):
         x, y, z = px[q], py[q], pz[q]
-        inverse = 1.0 / math.sqrt(x * x + y * y + z * z)
-        x, y, z = x * inverse, y * inverse, z * inverse
-        ux[q], uy[q], uz[q] = x, y, z
         rho = math.sqrt(x * x + y * y)
-        j = row_guess[min(int((z / (abs(z) + rho) + 1.0) * (0.5 * nrow_bins)), nrow_bins - 1)]
-        j = min(j + (1 if z >= sin_lat[j + 1] else 0), last_row)
-        f = _angle(z * cos_lat[j] - rho * sin_lat[j], z * sin_lat[j] + rho * cos_lat[j],
-                   1.0) * inv_dlat[j]
-        cj[q] = j
-        fy[q] = min(max(f, 0.0), 1.0)
+        norm = math.sqrt(rho * rho + z * z)
         pole = rho == 0.0  # longitude 0 at a pole, as atan2(0, 0)
-        x = 1.0 if pole else x
-        y = 0.0 if pole else y
-        rho = 1.0 if pole else rho
-        a = abs(x) + abs(y)
-        pseudo = 1.0 - x / a if y >= 0.0 else 3.0 + x / a  # 0..4, increasing with longitude
-        i = column_guess[min(int(pseudo * (0.25 * ncolumn_bins)), ncolumn_bins - 1)]
+        xx = 1.0 if pole else x
+        yy = 0.0 if pole else y
+        rr = 1.0 if pole else rho
+        lat_sum, lon_sum = abs(z) + rho, abs(xx) + abs(yy)
+        inverse = 1.0 / (norm * lat_sum * lon_sum)
+        scale = lat_sum * lon_sum * inverse  # 1 / norm
+        ux[q], uy[q], uz[q] = x * scale, y * scale, z * scale
+        pseudo_lat = z * norm * lon_sum * inverse  # z / (|z| + rho), -1..1
+        ratio = xx * norm * lat_sum * inverse  # x / (|x| + |y|)
+        pseudo_lon = 1.0 - ratio if yy >= 0.0 else 3.0 + ratio  # 0..4, increasing eastward
+        j = row_guess[min(int((pseudo_lat + 1.0) * (0.5 * nrow_bins)), nrow_bins - 1)]
+        j = min(j + (1 if z >= sin_lat[j + 1] * norm else 0), last_row)
+        i = column_guess[min(int(pseudo_lon * (0.25 * ncolumn_bins)), ncolumn_bins - 1)]
         i1 = i + 1 if i + 1 < nlon else 0
-        i = i1 if y * cos_lon[i1] - x * sin_lon[i1] >= 0.0 else i  # at or past the next column
+        i = i1 if yy * cos_lon[i1] - xx * sin_lon[i1] >= 0.0 else i  # at or past the next
         i1 = i + 1 if i + 1 < nlon else 0
-        f = _angle(y * cos_lon[i] - x * sin_lon[i], x * cos_lon[i] + y * sin_lon[i],
-                   rho) * inv_dlon[i]
-        ci[q] = i
-        ci1[q] = i1
-        fx[q] = min(max(f, 0.0), 1.0)
+        # Angles from the cell's first row and column: norm sin and norm cos of
+        # phi - phi_j, rho sin and rho cos of lambda - lambda_i.
+        lat_sin = z * cos_lat[j] - rho * sin_lat[j]
+        lat_cos = z * sin_lat[j] + rho * cos_lat[j]
+        lon_sin = yy * cos_lon[i] - xx * sin_lon[i]
+        lon_cos = xx * cos_lon[i] + yy * sin_lon[i]
+        lat_den, lon_den = norm + lat_cos, rr + lon_cos
+        inverse = 1.0 / (lat_den * lon_den)
+        f = _twice_arctan(lat_sin * lon_den * inverse) * inv_dlat[j]
+        cj[q], fy[q] = j, min(max(f, 0.0), 1.0)
+        f = _twice_arctan(lon_sin * lat_den * inverse) * inv_dlon[i]
+        ci[q], ci1[q], fx[q] = i, i1, min(max(f, 0.0), 1.0)
 
 
 @numba.njit(**BLOCK_LOOP)
@@ -352,18 +358,18 @@ def _runge_kutta_stage(m, first, stage, h, pos, level, status, settled, flag, va
     """
     share = (1.0 if stage == 0 or stage == 3 else 2.0) / 6.0
     reach = 0.5 * h if stage < 2 else h
-    for q in range(m):
+    for q in range(m):  # (selects rather than a branch: the loop runs in SIMD lanes)
         p = first + q
-        if _counts(p, q, status, settled, flag, values):
-            kx, ky, kz, kl = _rate(q, values, ux, uy, uz, vertical_scale, radius)
-            mean[0, q] += share * kx
-            mean[1, q] += share * ky
-            mean[2, q] += share * kz
-            mean[3, q] += share * kl
-            px[q] = pos[p, 0] + reach * kx
-            py[q] = pos[p, 1] + reach * ky
-            pz[q] = pos[p, 2] + reach * kz
-            pl[q] = level[p] + reach * kl
+        use = _counts(p, q, status, settled, flag, values)
+        kx, ky, kz, kl = _rate(q, values, ux, uy, uz, vertical_scale, radius)
+        mean[0, q] = mean[0, q] + share * kx if use else mean[0, q]
+        mean[1, q] = mean[1, q] + share * ky if use else mean[1, q]
+        mean[2, q] = mean[2, q] + share * kz if use else mean[2, q]
+        mean[3, q] = mean[3, q] + share * kl if use else mean[3, q]
+        px[q] = pos[p, 0] + reach * kx if use else px[q]
+        py[q] = pos[p, 1] + reach * ky if use else py[q]
+        pz[q] = pos[p, 2] + reach * kz if use else pz[q]
+        pl[q] = level[p] + reach * kl if use else pl[q]
 
 
 @numba.njit(**BLOCK_LOOP)
