@@ -245,9 +245,21 @@ def _vertical_cells(m, vertical, levels, log_levels, ck, fz, between):
 
 
 @numba.njit(cache=True, inline="always")
-def _bilinear(field, slot, k, j, i, i1, c, w00, w01, w10, w11):
-    return (w00 * field[slot, k, j, i, c] + w01 * field[slot, k, j, i1, c]
-            + w10 * field[slot, k, j + 1, i, c] + w11 * field[slot, k, j + 1, i1, c])
+def _space_time(field, s0, s1, a, b, k, j, i, i1, c, y, x):
+    """Component ``c`` on level ``k``: bilinear in the cell ``(j, i, i1)`` with fractions
+    ``(y, x)``, weights ``a`` and ``b`` on the slots ``s0`` and ``s1``."""
+    w00, w01, w10, w11 = (1.0 - y) * (1.0 - x), (1.0 - y) * x, y * (1.0 - x), y * x
+    return (a * (w00 * field[s0, k, j, i, c] + w01 * field[s0, k, j, i1, c]
+                 + w10 * field[s0, k, j + 1, i, c] + w11 * field[s0, k, j + 1, i1, c])
+            + b * (w00 * field[s1, k, j, i, c] + w01 * field[s1, k, j, i1, c]
+                   + w10 * field[s1, k, j + 1, i, c] + w11 * field[s1, k, j + 1, i1, c]))
+
+
+@numba.njit(cache=True, inline="always")
+def _between_levels(field, s0, s1, a, b, k, j, i, i1, c, y, x, z):
+    """:func:`_space_time`, linear between the levels ``k`` and ``k + 1`` (fraction ``z``)."""
+    return ((1.0 - z) * _space_time(field, s0, s1, a, b, k, j, i, i1, c, y, x)
+            + z * _space_time(field, s0, s1, a, b, k + 1, j, i, i1, c, y, x))
 
 
 @numba.njit(**BLOCK_LOOP)
@@ -257,8 +269,9 @@ def _gather(m, field, s0, s1, wt, cj, ci, ci1, ck, fy, fx, values):
 
     Linear in time between slots ``s0`` and ``s1`` (weight ``wt`` on ``s1``;
     both slots must hold loaded slices, the same one for a single time) and
-    bilinear in latitude-longitude index space. The loops over parcels are
-    innermost, so they run in SIMD lanes.
+    bilinear in latitude-longitude index space (:func:`_space_time`). The
+    loops over parcels are innermost, so they run in SIMD lanes; the three
+    Cartesian wind components share one loop (their cell read once).
 
     References
     ----------
@@ -270,18 +283,23 @@ def _gather(m, field, s0, s1, wt, cj, ci, ci1, ck, fy, fx, values):
     J. Appl. Meteor. 34, 2149-2165 (from memory).
     """
     a, b = 1.0 - wt, wt
-    for c in range(field.shape[4]):
+    ncomp = field.shape[4]
+    grouped = 3 if ncomp >= 3 else 0
+    if grouped:
         for q in range(m):
             j, i, i1, k, y, x = cj[q], ci[q], ci1[q], ck[q], fy[q], fx[q]
-            w00, w01, w10, w11 = (1.0 - y) * (1.0 - x), (1.0 - y) * x, y * (1.0 - x), y * x
-            values[c, q] = (a * _bilinear(field, s0, k, j, i, i1, c, w00, w01, w10, w11)
-                            + b * _bilinear(field, s1, k, j, i, i1, c, w00, w01, w10, w11))
+            for c in range(3):
+                values[c, q] = _space_time(field, s0, s1, a, b, k, j, i, i1, c, y, x)
+    for c in range(grouped, ncomp):
+        for q in range(m):
+            j, i, i1, k, y, x = cj[q], ci[q], ci1[q], ck[q], fy[q], fx[q]
+            values[c, q] = _space_time(field, s0, s1, a, b, k, j, i, i1, c, y, x)
 
 
 @numba.njit(**BLOCK_LOOP)
 def _gather_between_levels(m, field, s0, s1, wt, cj, ci, ci1, ck, fy, fx, fz, values):
-    """:func:`_gather`, and linear between the levels ``k`` and ``k + 1`` with the
-    fractions ``fz``.
+    """:func:`_gather`, linear between the levels ``k`` and ``k + 1`` with the fractions
+    ``fz`` (:func:`_between_levels`).
 
     References
     ----------
@@ -289,15 +307,17 @@ def _gather_between_levels(m, field, s0, s1, wt, cj, ci, ci1, ck, fy, fx, fz, va
     levels (common practice).
     """
     a, b = 1.0 - wt, wt
-    for c in range(field.shape[4]):
+    ncomp = field.shape[4]
+    grouped = 3 if ncomp >= 3 else 0
+    if grouped:
         for q in range(m):
             j, i, i1, k, y, x, z = cj[q], ci[q], ci1[q], ck[q], fy[q], fx[q], fz[q]
-            w00, w01, w10, w11 = (1.0 - y) * (1.0 - x), (1.0 - y) * x, y * (1.0 - x), y * x
-            lower = (a * _bilinear(field, s0, k, j, i, i1, c, w00, w01, w10, w11)
-                     + b * _bilinear(field, s1, k, j, i, i1, c, w00, w01, w10, w11))
-            upper = (a * _bilinear(field, s0, k + 1, j, i, i1, c, w00, w01, w10, w11)
-                     + b * _bilinear(field, s1, k + 1, j, i, i1, c, w00, w01, w10, w11))
-            values[c, q] = (1.0 - z) * lower + z * upper
+            for c in range(3):
+                values[c, q] = _between_levels(field, s0, s1, a, b, k, j, i, i1, c, y, x, z)
+    for c in range(grouped, ncomp):
+        for q in range(m):
+            j, i, i1, k, y, x, z = cj[q], ci[q], ci1[q], ck[q], fy[q], fx[q], fz[q]
+            values[c, q] = _between_levels(field, s0, s1, a, b, k, j, i, i1, c, y, x, z)
 
 
 @numba.njit(cache=True, inline="always")
