@@ -4,6 +4,8 @@ from __future__ import annotations
 
 import numpy as np
 
+from ._kernels import unit_vectors_into
+
 
 def unit_vectors(latitude: np.ndarray, longitude: np.ndarray) -> np.ndarray:
     """Unit position vectors of points given in degrees, shape ``(..., 3)``.
@@ -22,9 +24,12 @@ def unit_vectors(latitude: np.ndarray, longitude: np.ndarray) -> np.ndarray:
     ----------
     Spherical to Cartesian coordinates (common practice).
     """
-    phi = np.radians(np.asarray(latitude, dtype=np.float64))
-    lam = np.radians(np.asarray(longitude, dtype=np.float64))
-    return np.stack([np.cos(phi) * np.cos(lam), np.cos(phi) * np.sin(lam), np.sin(phi)], axis=-1)
+    lat, lon = np.broadcast_arrays(np.asarray(latitude, dtype=np.float64),
+                                   np.asarray(longitude, dtype=np.float64))
+    out = np.empty(lat.shape + (3,))
+    # (compiled, in parallel: numpy's cosine and sine are slow for float64 here)
+    unit_vectors_into(np.ravel(lat), np.ravel(lon), out.reshape(-1, 3))
+    return out
 
 
 def latitude_longitude(vectors: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
@@ -43,7 +48,7 @@ def latitude_longitude(vectors: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     Cartesian to spherical coordinates (common practice).
     """
     x, y, z = vectors[..., 0], vectors[..., 1], vectors[..., 2]
-    lat = np.degrees(np.arctan2(z, np.hypot(x, y)))
+    lat = np.degrees(np.arctan2(z, np.sqrt(x * x + y * y)))  # (hypot: slower, no gain here)
     lon = np.degrees(np.arctan2(y, x))
     return lat, lon
 

@@ -711,6 +711,27 @@ def sample(pos, level, status, field, s0, s1, wt, lat, lat_uniform, lon, lon_uni
                 out[first + q, c] = values[c, q] if live else np.nan
 
 
+@numba.njit(cache=True, parallel=True, fastmath=FASTMATH, error_model="numpy")
+def unit_vectors_into(latitude, longitude, out):
+    """Unit position vectors of points given in degrees, into ``out[p] = (cos(lat) cos(lon),
+    cos(lat) sin(lon), sin(lat))``.
+
+    Parameters
+    ----------
+    latitude, longitude : ndarray, shape (n,)
+        Degrees north and east.
+    out : ndarray, shape (n, 3)
+
+    References
+    ----------
+    Spherical to Cartesian coordinates (common practice).
+    """
+    for p in numba.prange(latitude.shape[0]):
+        phi, lam = math.radians(latitude[p]), math.radians(longitude[p])
+        c = math.cos(phi)
+        out[p, 0], out[p, 1], out[p, 2] = c * math.cos(lam), c * math.sin(lam), math.sin(phi)
+
+
 @numba.njit(cache=True)
 def cartesian_slice(u, v, sin_lat, cos_lat, sin_lon, cos_lon, order, row0, out):
     """Write the Cartesian wind of one time slice into ``out[:, row0:row0 + nlat, :, :3]``.
