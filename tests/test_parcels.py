@@ -9,7 +9,11 @@ import xarray as xr
 
 from flowpipe.constants import EARTH_RADIUS
 from flowpipe.errors import InputError, UsageError
+from flowpipe.grid import gaussian_latitudes
+from flowpipe.parcels import _kernels as K
 from flowpipe.parcels import advect, analytic, starts_box, starts_line, starts_ring
+from flowpipe.parcels._geometry import unit_vectors
+from flowpipe.parcels._window import cell_tables
 
 KM = 1e3
 DAY = 86400.0
@@ -362,3 +366,71 @@ def test_missing_wind_stops_the_parcel():
     lon = tracks["longitude"].values[0]
     assert np.nanmax(lon) < 0.0 and np.isnan(lon[-1])
     assert status.values[1] == 0 and np.isfinite(tracks["longitude"].values[1]).all()
+
+
+def _cells_by_trigonometry(vectors, lat, lon):
+    """Reference cells: latitude and longitude by numpy's arctan2, cells by searchsorted."""
+    x, y, z = vectors.T
+    phi = np.degrees(np.arctan2(z, np.hypot(x, y)))
+    lam = np.mod(np.degrees(np.arctan2(y, x)), 360.0)
+    j = np.clip(np.searchsorted(lat, phi, side="right") - 1, 0, lat.size - 2)
+    i = (np.searchsorted(lon, lam, side="right") - 1) % lon.size  # before lon[0]: the last
+    return phi, lam, j, i
+
+
+@pytest.mark.parametrize("kind", ["equiangular", "offset", "gaussian"])
+def test_global_cell_search_agrees_with_direct_trigonometry(kind):
+    # Reference: numpy's arctan2 and searchsorted (a general-purpose library) locate each
+    # position; the kernels' table-guided search without trigonometric calls must find
+    # the same cell, and its fractions must give back the position's latitude and
+    # longitude to rounding, on grids with pole rows, offset grids and Gaussian grids.
+    if kind == "equiangular":
+        inner, lon = np.linspace(-90.0, 90.0, 181), np.arange(0.0, 360.0, 1.0)
+    elif kind == "offset":
+        inner, lon = np.arange(-88.75, 89.0, 2.5), np.arange(1.25, 360.0, 2.5)
+    else:
+        inner, lon = gaussian_latitudes(48), np.arange(0.0, 360.0, 3.75)
+    lat = np.unique(np.concatenate([[-90.0], inner, [90.0]]))  # pole rows, as for trajectories
+    rng = np.random.default_rng(4)
+    grid_points = np.stack(np.meshgrid(lat[1:-1], lon, indexing="ij"), axis=-1).reshape(-1, 2)
+    points = np.concatenate([
+        np.column_stack([np.degrees(np.arcsin(rng.uniform(-1, 1, 20000))),
+                         rng.uniform(0, 360, 20000)]),
+        grid_points,  # on grid lines
+        [[90.0, 0.0], [-90.0, 0.0], [89.9999, 17.0], [-89.9999, 359.9999]],
+    ])
+    vectors = unit_vectors(points[:, 0], points[:, 1])
+    vectors *= rng.uniform(0.999, 1.001, (len(vectors), 1))  # stage points are not normalised
+    m = len(vectors)
+    out = [np.empty(m) for _ in range(3)] + [np.empty(m, np.int64) for _ in range(3)] + [
+        np.empty(m) for _ in range(2)]
+    K._global_cells(m, *[np.ascontiguousarray(vectors[:, c]) for c in range(3)],
+                    cell_tables(lat, lon), *out)
+    ux, uy, uz, cj, ci, ci1, fy, fx = out
+    phi, lam, j, i = _cells_by_trigonometry(vectors, lat, lon)
+    assert np.allclose(np.stack([ux, uy, uz], axis=1),
+                       vectors / np.linalg.norm(vectors, axis=1, keepdims=True), atol=1e-15)
+    assert np.all(ci1 == (ci + 1) % lon.size)
+    lat_back = lat[cj] + fy * (lat[cj + 1] - lat[cj])
+    assert np.max(np.abs(lat_back - phi)) < 1e-9
+    away = np.abs(np.abs(phi) - 90.0) > 1e-6  # longitude is arbitrary at a pole
+    step = np.mod(lon[ci1] - lon[ci], 360.0)
+    lon_back = np.mod(lon[ci] + fx * step, 360.0)
+    gap = np.abs(np.mod(lon_back - lam + 180.0, 360.0) - 180.0)
+    assert np.max(gap[away]) < 1e-9
+    # The same cell, except within rounding of a grid line (either side is right there).
+    inside_row = (fy > 1e-9) & (fy < 1 - 1e-9)
+    inside_column = (fx > 1e-9) & (fx < 1 - 1e-9) & away
+    assert np.all(cj[inside_row] == j[inside_row])
+    assert np.all(ci[inside_column] == i[inside_column])
+    assert inside_row.sum() > 19000 and inside_column.sum() > 19000
+
+
+def test_global_grids_coarser_than_the_series_limit_are_refused():
+    # The fractions use a truncated arctangent series exact to rounding for cells of at
+    # most MAX_GLOBAL_SPACING degrees (Abramowitz & Stegun 1964, eq. 4.4.42, from
+    # memory): coarser global grids get a clear error, not silently worse weights.
+    lat, lon = np.arange(-90.0, 90.1, 30.0), np.arange(0.0, 360.0, 30.0)
+    u = np.ones((lat.size, lon.size))
+    with pytest.raises(InputError, match="too coarse"):
+        advect(steady_wind(u, 0 * u, lat, lon), [(0.0, 10.0)], 6.0, steady=True)

@@ -358,7 +358,7 @@ def advect(
     References
     ----------
     The kernels: :func:`flowpipe.parcels._kernels.advance` (Runge-Kutta,
-    Petterssen 1940) and :func:`flowpipe.parcels._kernels.interpolate`; CF
+    Petterssen 1940) and :func:`flowpipe.parcels._kernels._gather` (space-time sampling); CF
     discrete sampling geometries: CF Conventions 1.11, chapter 9 and
     appendix H.4 (trajectories).
     """

@@ -247,7 +247,13 @@ def _vertical_cells(m, vertical, levels, log_levels, ck, fz, between):
 @numba.njit(cache=True, inline="always")
 def _space_time(field, s0, s1, a, b, k, j, i, i1, c, y, x):
     """Component ``c`` on level ``k``: bilinear in the cell ``(j, i, i1)`` with fractions
-    ``(y, x)``, weights ``a`` and ``b`` on the slots ``s0`` and ``s1``."""
+    ``(y, x)``, weights ``a`` and ``b`` on the slots ``s0`` and ``s1``.
+
+    References
+    ----------
+    Press, Teukolsky, Vetterling & Flannery (2007), Numerical Recipes, 3rd
+    ed., section 3.6, eq. 3.6.5 (bilinear); linear in time (common practice).
+    """
     w00, w01, w10, w11 = (1.0 - y) * (1.0 - x), (1.0 - y) * x, y * (1.0 - x), y * x
     return (a * (w00 * field[s0, k, j, i, c] + w01 * field[s0, k, j, i1, c]
                  + w10 * field[s0, k, j + 1, i, c] + w11 * field[s0, k, j + 1, i1, c])
@@ -257,7 +263,13 @@ def _space_time(field, s0, s1, a, b, k, j, i, i1, c, y, x):
 
 @numba.njit(cache=True, inline="always")
 def _between_levels(field, s0, s1, a, b, k, j, i, i1, c, y, x, z):
-    """:func:`_space_time`, linear between the levels ``k`` and ``k + 1`` (fraction ``z``)."""
+    """:func:`_space_time`, linear between the levels ``k`` and ``k + 1`` (fraction ``z``).
+
+    References
+    ----------
+    Linear interpolation in log-pressure (or height) between levels (common
+    practice).
+    """
     return ((1.0 - z) * _space_time(field, s0, s1, a, b, k, j, i, i1, c, y, x)
             + z * _space_time(field, s0, s1, a, b, k + 1, j, i, i1, c, y, x))
 

@@ -27,7 +27,7 @@ from ._kernels import MAX_GLOBAL_SPACING, cartesian_slice
 
 @dataclass(frozen=True)
 class SliceGrid:
-    """The grid as the kernels see it (see :func:`flowpipe.parcels._kernels.interpolate`)."""
+    """The grid as the kernels see it (see :func:`flowpipe.parcels._kernels.advance`)."""
 
     latitude: np.ndarray          # ascending, with pole rows on global grids
     lat_uniform: bool
