@@ -17,3 +17,10 @@ class InputError(FlowpipeError):
 
 class UsageError(FlowpipeError):
     """An option, argument or config value that is out of range or inconsistent."""
+
+
+class FlowpipeWarning(UserWarning):
+    """Something a result lacks or leaves out that the user should know about.
+
+    The command line prints ``flowpipe: warning: <message>``.
+    """

@@ -52,7 +52,7 @@ from shapely.geometry import LineString  # noqa: E402
 
 from ._version import __version__  # noqa: E402
 from .annotate import CAUTION_SHORT, iso_time  # noqa: E402
-from .errors import InputError, UsageError  # noqa: E402
+from .errors import FlowpipeWarning, InputError, UsageError  # noqa: E402
 from .ingest import find_coordinate  # noqa: E402
 from .store import atomic_path  # noqa: E402
 
@@ -105,7 +105,7 @@ CAP_EDGE = 15.0
 ARROWS = 20
 
 
-class MapWarning(UserWarning):
+class MapWarning(FlowpipeWarning):
     """A map was drawn without something it would normally have (coastlines)."""
 
 

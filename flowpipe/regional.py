@@ -29,6 +29,13 @@ and the variational fit's only grid-scale null mode (the corner checkerboard,
 which produces no wind) carries the largest gradient energy, so the
 least-energy pair has none.
 
+Pieces: valid points that share no cell corner with the rest (a valley cut
+off by mountains below the ground, seas between masked land) form separate
+domains, and each connected piece is decomposed on its own. Pieces too small
+for the stencils (under 5x5 points or without a 2x2 block) are left missing;
+the output counts their points (attribute ``points_left_missing``) and a
+:class:`flowpipe.errors.FlowpipeWarning` says so.
+
 Speed: everything that depends only on the grid and the mask is built once
 and cached (keyed by grid, mask, scheme and solver settings), then reused for
 every level and time. On a complete grid, ``dirichlet`` is a separable fast
@@ -46,6 +53,7 @@ which are read once up front to check them.
 from __future__ import annotations
 
 import threading
+import warnings
 from collections import OrderedDict
 from typing import Any
 
@@ -65,7 +73,7 @@ from ._poisson import (
 from ._staggered import StaggeredGrid, interior_corners
 from .annotate import figure, global_attrs, variable_attrs
 from .constants import EARTH_RADIUS
-from .errors import InputError, UsageError
+from .errors import FlowpipeWarning, InputError, UsageError
 from .grid import describe_grid
 
 SCHEMES = ("variational", "dirichlet")
@@ -163,22 +171,44 @@ def _solve_slabs(u: np.ndarray, v: np.ndarray, *, lat: np.ndarray, lon: np.ndarr
         us = np.asarray(u[index], dtype=np.float64)
         vs = np.asarray(v[index], dtype=np.float64)
         valid = np.isfinite(us) & np.isfinite(vs)
-        us = np.where(valid, us, np.nan)
-        vs = np.where(valid, vs, np.nan)
-        solver = _solver(grid, valid, scheme, regularisation, tolerance, max_iterations)
-        if scheme == "dirichlet":
-            parts, quality = dirichlet_partition(grid, us, vs, solver)
-        else:
-            parts, quality = variational_partition(grid, us, vs, solver)
-            # The harmonic flow that the least-energy split shares evenly between its
-            # two parts, for reference: Lynch's harmonic wind, one more direct solve.
-            lynch, _ = dirichlet_partition(grid, us, vs, _solver(grid, valid, "dirichlet", 0.0,
-                                                                 tolerance, max_iterations))
-            parts["u_harmonic"], parts["v_harmonic"] = lynch["u_harmonic"], lynch["v_harmonic"]
-        for k, name in enumerate(names):
-            fields[index + (k,)] = parts[name]
-        diagnostics[index] = [quality[name] for name in DIAGNOSTICS]
+        # Each connected piece on its own; the relative quality figures of the pieces
+        # combined with weights of their wind energy, the iterations as the most.
+        energy = np.where(valid, grid.centre_area * (us**2 + vs**2), 0.0)
+        shares, figures = [], []
+        for piece in solvable_pieces(valid, grid)[0]:
+            parts, quality = _solve_piece(grid, piece, np.where(piece, us, np.nan),
+                                          np.where(piece, vs, np.nan), scheme, regularisation,
+                                          tolerance, max_iterations)
+            for k, name in enumerate(names):
+                fields[index + (k,)] = np.where(piece, parts[name], fields[index + (k,)])
+            shares.append(float(energy[piece].sum()))
+            figures.append([quality[name] for name in DIAGNOSTICS])
+        w = np.asarray(shares) / max(sum(shares), np.finfo(float).tiny)
+        error, harmonic, iterations = np.asarray(figures).T
+        diagnostics[index] = [np.sqrt(w @ error**2), w @ harmonic, iterations.max()]
     return fields, diagnostics
+
+
+def _solve_piece(grid: StaggeredGrid, valid: np.ndarray, us: np.ndarray, vs: np.ndarray,
+                 scheme: str, regularisation: float, tolerance: float, max_iterations: int
+                 ) -> tuple[dict[str, np.ndarray], dict[str, float]]:
+    """Decompose the wind of one connected piece (NaN outside it).
+
+    References
+    ----------
+    :func:`flowpipe._poisson.dirichlet_partition` and
+    :func:`flowpipe._poisson.variational_partition`.
+    """
+    solver = _solver(grid, valid, scheme, regularisation, tolerance, max_iterations)
+    if scheme == "dirichlet":
+        return dirichlet_partition(grid, us, vs, solver)
+    parts, quality = variational_partition(grid, us, vs, solver)
+    # The harmonic flow that the least-energy split shares evenly between its two
+    # parts, for reference: Lynch's harmonic wind, one more direct solve.
+    lynch, _ = dirichlet_partition(grid, us, vs, _solver(grid, valid, "dirichlet", 0.0,
+                                                         tolerance, max_iterations))
+    parts["u_harmonic"], parts["v_harmonic"] = lynch["u_harmonic"], lynch["v_harmonic"]
+    return parts, quality
 
 
 def _slab_label(da: xr.DataArray, flat_index: int) -> str:
@@ -214,31 +244,53 @@ def _pieces(valid: np.ndarray, periodic: bool) -> tuple[int, np.ndarray]:
     return int(np.unique(labels[labels >= 0]).size), labels
 
 
-def _check_mask(valid: np.ndarray, where: str, lat: np.ndarray, lon: np.ndarray,
-                grid: StaggeredGrid) -> None:
+def _large_enough(piece: np.ndarray, grid: StaggeredGrid) -> bool:
+    """Whether a piece of valid points can be decomposed: at least ``MINIMUM_SIZE`` rows and
+    columns, ``MINIMUM_SIZE**2`` points and one 2x2 block."""
+    return (int(piece.sum()) >= MINIMUM_SIZE**2 and int(piece.any(axis=1).sum()) >= MINIMUM_SIZE
+            and int(piece.any(axis=0).sum()) >= MINIMUM_SIZE
+            and bool(interior_corners(grid, piece).any()))
+
+
+def solvable_pieces(valid: np.ndarray, grid: StaggeredGrid) -> tuple[list[np.ndarray], int]:
+    """The connected pieces of the valid points that can be decomposed, each alone, and the
+    number of valid points in pieces too small for that (left missing).
+
+    Pieces share no grid-cell corner, so their potentials are independent: each is a
+    Poisson problem (or least-squares fit) of its own domain.
+
+    References
+    ----------
+    Connected components of a graph: Tarjan (1972), "Depth-first search and linear
+    graph algorithms", SIAM J. Comput. 1, 146-160, through
+    :func:`scipy.sparse.csgraph.connected_components`; a potential per connected
+    domain is common practice.
+    """
+    _, labels = _pieces(valid, grid.periodic)
+    pieces, small = [], 0
+    for label in np.unique(labels[labels >= 0]):
+        piece = labels == label
+        if _large_enough(piece, grid):
+            pieces.append(piece)
+        else:
+            small += int(piece.sum())
+    return pieces, small
+
+
+def _check_mask(valid: np.ndarray, where: str, grid: StaggeredGrid) -> int:
+    """Refuse a slab with nothing to decompose; return its valid points left missing."""
     count = int(valid.sum())
     if count == 0:
         raise InputError(f"u/v: every point of {where} is missing; drop it or fill it")
-    rows = int(valid.any(axis=1).sum())
-    cols = int(valid.any(axis=0).sum())
-    if count < MINIMUM_SIZE**2 or rows < MINIMUM_SIZE or cols < MINIMUM_SIZE:
+    pieces, small = solvable_pieces(valid, grid)
+    if not pieces:
+        rows = int(valid.any(axis=1).sum())
+        cols = int(valid.any(axis=0).sum())
         raise InputError(
-            f"u/v: {where} has {count} valid points in {rows} rows and {cols} columns; the "
-            f"regional decomposition needs at least {MINIMUM_SIZE}x{MINIMUM_SIZE}: use a larger "
-            "domain")
-    npieces, labels = _pieces(valid, grid.periodic)
-    if npieces > 1:
-        described = []
-        for label in np.unique(labels[labels >= 0]):
-            jj, ii = np.nonzero(labels == label)
-            described.append(f"{jj.size} points near {lat[int(np.median(jj))]:.2f}N "
-                             f"{lon[int(np.median(ii))]:.2f}E")
-        raise InputError(
-            f"u/v: the valid points of {where} form {npieces} separate pieces ("
-            + "; ".join(described) + "); the regional decomposition needs one connected "
-            "domain: cut the grid to one piece or fill the gaps")
-    if not interior_corners(grid, valid).any():
-        raise InputError(f"u/v: {where} has no 2x2 block of valid points; use a larger domain")
+            f"u/v: {where} has {count} valid points in {rows} rows and {cols} columns, in no "
+            f"piece of at least {MINIMUM_SIZE}x{MINIMUM_SIZE} with a 2x2 block: the regional "
+            "decomposition needs a larger domain")
+    return small
 
 
 def _check_grid(wind: xr.Dataset, periodic: bool) -> tuple[np.ndarray, np.ndarray]:
@@ -317,8 +369,8 @@ def decompose_regional(wind: xr.Dataset, scheme: str = "variational", periodic: 
     ------
     flowpipe.errors.InputError
         A grid under 5x5 points, uneven longitudes, a slab
-        with every point missing, with under 5x5 valid points, or whose valid
-        points form disconnected pieces (the message names them).
+        with every point missing, or with no connected piece of at least 5x5
+        valid points.
     flowpipe.errors.UsageError
         An unknown scheme or option, or ``periodic=True`` on a regional grid.
 
@@ -364,18 +416,19 @@ def decompose_regional(wind: xr.Dataset, scheme: str = "variational", periodic: 
     valid_all = np.asarray((u.notnull() & v.notnull()).values).reshape((-1,) + u.shape[-2:])
     solver_names = set()
     grid = _grid(lat, lon, periodic)
-    seen: set[bytes] = set()
+    seen: dict[bytes, int] = {}  # mask -> its valid points left missing
+    left_missing = 0
     for flat_index, valid in enumerate(valid_all):
         key = np.packbits(valid).tobytes()
-        if key in seen:
-            continue
-        seen.add(key)
-        _check_mask(valid, _slab_label(u, flat_index), lat, lon, grid)
-        if scheme == "variational":
-            solver_names.add(VariationalSolver.names[VariationalSolver.kind(grid, valid)])
-        else:
-            solver_names.add(SeparableDirichletSolver.name if valid.all()
-                             else SparseDirichletSolver.name)
+        if key not in seen:
+            seen[key] = _check_mask(valid, _slab_label(u, flat_index), grid)
+            for piece in solvable_pieces(valid, grid)[0]:
+                if scheme == "variational":
+                    solver_names.add(VariationalSolver.names[VariationalSolver.kind(grid, piece)])
+                else:
+                    solver_names.add(SeparableDirichletSolver.name if piece.all()
+                                     else SparseDirichletSolver.name)
+        left_missing += seen[key]
     if u.chunks is not None:
         u = u.chunk({"latitude": -1, "longitude": -1})
         v = v.chunk({"latitude": -1, "longitude": -1})
@@ -415,6 +468,14 @@ def decompose_regional(wind: xr.Dataset, scheme: str = "variational", periodic: 
     )
     if scheme == "variational":
         out.attrs.update(tolerance=tolerance, max_iterations=max_iterations)
+    if left_missing:
+        out.attrs["points_left_missing"] = left_missing
+        out.attrs["points_left_missing_comment"] = (
+            f"valid points in pieces of the domain smaller than {MINIMUM_SIZE}x{MINIMUM_SIZE} "
+            "or without a 2x2 block, over all slabs: too small to decompose, left missing; "
+            "every larger piece is decomposed on its own")
+        warnings.warn(f"{left_missing} valid points in pieces too small to decompose are left "
+                      "missing (attribute points_left_missing)", FlowpipeWarning, stacklevel=2)
     for k, name in enumerate(DIAGNOSTICS):
         out.attrs[name] = figure(quality.isel(diagnostic=k).max())
     return out

@@ -457,8 +457,9 @@ def test_periodic_grid_is_connected_across_the_date_line():
     v_m = np.where(strip[None, :], np.nan, v)
     out = decompose_regional(as_wind(lat, lon, u_m, v_m), periodic=True)
     assert reconstruction_error(out, u_m, v_m) <= 1e-6
-    with pytest.raises(InputError, match="2 separate pieces"):
-        decompose_regional(as_wind(lat, lon, u_m, v_m), periodic=False)
+    assert "points_left_missing" not in out.attrs
+    assert len(regional.solvable_pieces(np.isfinite(u_m), regional._grid(lat, lon, True))[0]) == 1
+    assert len(regional.solvable_pieces(np.isfinite(u_m), regional._grid(lat, lon, False))[0]) == 2
 
 
 # --- bad input -------------------------------------------------------------------------------
@@ -489,13 +490,47 @@ def test_all_missing_is_refused():
         decompose_regional(as_wind(lat, lon, u * np.nan, v * np.nan))
 
 
-def test_disconnected_mask_is_refused_and_named():
-    # Two pieces of valid points share no boundary, so no one potential spans them (a
-    # Poisson problem per connected domain, common practice); the message names both.
-    lat, lon, u, v = small_box(20)
-    u[:, 8:10] = np.nan
-    with pytest.raises(InputError, match=r"2 separate pieces \(160 points .*; 200 points"):
-        decompose_regional(as_wind(lat, lon, u, v))
+@pytest.mark.parametrize("scheme", SCHEMES)
+def test_disconnected_pieces_are_decomposed_each_on_its_own(scheme):
+    # Pieces of valid points that share no cell corner are separate domains, each a
+    # Poisson problem (or least-squares fit) of its own (common practice): each piece's
+    # parts must equal those of the same piece cut out as a limited-area grid of its own,
+    # and add up to the wind there.
+    lat, lon, u, v, _, _ = box_case(0.5)
+    gap = (lon > 1.2) & (lon < 2.8)  # missing meridians split the box in two
+    u_m, v_m = np.where(gap, np.nan, u), np.where(gap, np.nan, v)
+    # (the variational fit converged tightly; its weak constant-fixing term, 1e-6 of the
+    # gravest mode of the whole grid, lets the two fits differ by a few parts in 1e6)
+    tight = {"tolerance": 1e-10} if scheme == "variational" else {}
+    agree = 1e-5 if scheme == "variational" else 1e-6
+    out = decompose_regional(as_wind(lat, lon, u_m, v_m), scheme=scheme, **tight)
+    assert reconstruction_error(out, u_m, v_m) <= 1e-6
+    assert np.isnan(out["u_rotational"].values[:, gap]).all()
+    scale = np.nanmax(np.hypot(u, v))
+    for side in (lon < 1.2, lon > 2.8):
+        alone = decompose_regional(as_wind(lat, lon[side], u[:, side], v[:, side]),
+                                   scheme=scheme, **tight)
+        for name in ("u_rotational", "v_rotational", "u_divergent", "v_divergent",
+                     "vorticity", "divergence"):
+            got, want = out[name].values[:, side], alone[name].values
+            assert np.nanmax(np.abs(got - want)) <= agree * np.nanmax(np.abs(want)), name
+    for name in ("u_rotational", "u_divergent"):  # both parts carry real flow here
+        assert np.nanmax(np.abs(out[name].values)) > 0.1 * scale
+
+
+def test_pieces_too_small_to_decompose_are_left_missing_and_counted():
+    # A piece narrower than the 5 x 5 minimum (from memory of common practice for
+    # stencils that need an interior) cannot be decomposed: it stays missing, the
+    # output says how many valid points that is, and the large piece is decomposed.
+    lat, lon, u, v, _, _ = box_case(0.5)
+    u_m, v_m = u.copy(), v.copy()
+    u_m[:, -6:-3] = np.nan  # leaves a strip three columns wide at the eastern edge
+    with pytest.warns(UserWarning, match="left missing"):
+        out = decompose_regional(as_wind(lat, lon, u_m, v_m))
+    assert out.attrs["points_left_missing"] == 3 * lat.size
+    assert np.isnan(out["streamfunction"].values[:, -3:]).all()
+    assert np.isfinite(out["streamfunction"].values[:, :-6]).all()
+    assert reconstruction_error(out, u_m, v_m) <= 1e-6
 
 
 def test_bad_options_are_usage_errors():

@@ -10,10 +10,11 @@ from __future__ import annotations
 import argparse
 import importlib
 import sys
+import warnings
 from collections.abc import Sequence
 
 from .._version import __version__
-from ..errors import FlowpipeError
+from ..errors import FlowpipeError, FlowpipeWarning
 
 COMMANDS = ("inspect", "decompose", "advect", "map", "run")
 
@@ -49,10 +50,22 @@ def build_parser() -> argparse.ArgumentParser:
     return parser
 
 
+_PYTHON_SHOW_WARNING = warnings.showwarning
+
+
+def _show_warning(message, category, filename, lineno, file=None, line=None) -> None:
+    """Warnings of flowpipe as ``flowpipe: warning: ...`` lines; others as Python shows them."""
+    if issubclass(category, FlowpipeWarning):
+        print(f"flowpipe: warning: {message}", file=sys.stderr)
+    else:
+        _PYTHON_SHOW_WARNING(message, category, filename, lineno, file, line)
+
+
 def main(argv: Sequence[str] | None = None) -> int:
     """Entry point of the ``flowpipe`` command; returns the exit code."""
     parser = build_parser()
     args = parser.parse_args(argv)
+    warnings.showwarning = _show_warning
     try:
         return int(args.handler(args))
     except FlowpipeError as exc:

@@ -4,10 +4,8 @@ from __future__ import annotations
 
 import argparse
 import re
-import sys
-import warnings
 
-from ..maps import PROJECTIONS, MapWarning, render, save
+from ..maps import PROJECTIONS, render, save
 
 
 def register(sub: argparse._SubParsersAction, common: argparse.ArgumentParser) -> argparse.ArgumentParser:
@@ -43,12 +41,7 @@ def parse_size(text: str) -> tuple[int, int]:
 
 
 def run(args: argparse.Namespace) -> int:
-    with warnings.catch_warnings(record=True) as caught:
-        warnings.simplefilter("always", MapWarning)
-        figure = render(args.file, field=args.field, level=args.level, time=args.time,
-                        projection=args.projection, size=args.size)
-        save(figure, args.output, protect=(args.file,))
-    for warning in caught:
-        if issubclass(warning.category, MapWarning):
-            print(f"flowpipe: warning: {warning.message}", file=sys.stderr)
+    figure = render(args.file, field=args.field, level=args.level, time=args.time,
+                    projection=args.projection, size=args.size)
+    save(figure, args.output, protect=(args.file,))
     return 0
