@@ -20,6 +20,7 @@ import signal
 import sys
 import time
 import traceback
+import warnings
 from collections.abc import Callable, Iterator
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -32,7 +33,7 @@ from . import bookkeeping
 from ._version import __version__
 from .annotate import now_iso
 from .config import Config, load_config, render_template
-from .errors import FlowpipeError
+from .errors import FlowpipeError, FlowpipeWarning
 
 log = logging.getLogger("flowpipe.run")
 LOG_NAME = "flowpipe.log"
@@ -180,12 +181,22 @@ class Runner:
             log.info("%s: up to date", self._rel(out))
             return
         started = time.perf_counter()
-        make(out)
+        with warnings.catch_warnings(record=True) as caught:
+            warnings.simplefilter("always", FlowpipeWarning)
+            make(out)
         elapsed = time.perf_counter() - started
         result.timings[stage] = result.timings.get(stage, 0.0) + elapsed
         stages = result.record["stages"]
         stages.setdefault(stage, {"seconds": 0.0, "status": "ok"})
         stages[stage]["seconds"] = round(stages[stage]["seconds"] + elapsed, 3)
+        for warning in caught:  # into the log and the manifest; others as Python shows them
+            if issubclass(warning.category, FlowpipeWarning):
+                log.warning("%s: %s", self._rel(out), warning.message)
+                stages[stage].setdefault("warnings", []).append(f"{self._rel(out)}: "
+                                                                f"{warning.message}")
+            else:
+                warnings.showwarning(warning.message, warning.category, warning.filename,
+                                     warning.lineno)
         result.outputs[self._rel(out)] = {
             "stage": stage, "unit": result.stem, "depends_on": depends, "config": digest,
             "flowpipe_version": __version__, "written": now_iso(),

@@ -257,3 +257,27 @@ def test_distributed_cluster_gives_the_same_outputs(tmp_path):
                 xr.open_dataset(cluster_dir / "out" / f"model_0_{kind}.nc") as b:
             for name in a.data_vars:
                 np.testing.assert_allclose(b[name].values, a[name].values, rtol=1e-12, atol=0)
+
+
+def test_warnings_of_a_stage_reach_the_log_and_the_manifest(tmp_path):
+    # A nightly run has no one watching its terminal: what a stage warns about (here a
+    # piece of the domain too small to decompose, left missing) must be in flowpipe.log
+    # and in the manifest beside the output it concerns (JSON read with :mod:`json`).
+    lat, lon = np.arange(30.0, 50.01, 0.5), np.arange(-10.0, 10.01, 0.5)
+    u = 8.0 + 3.0 * np.sin(np.radians(lon))[None, :] + 0.0 * lat[:, None]
+    v = -2.0 + np.cos(np.radians(lat))[:, None] + 0.0 * lon[None, :]
+    u[:, -6:-3] = np.nan  # cuts off a strip three columns wide
+    xr.Dataset({"u": (("lat", "lon"), u, {"units": "m s-1", "standard_name": "eastward_wind"}),
+                "v": (("lat", "lon"), v, {"units": "m s-1", "standard_name": "northward_wind"})},
+               coords={"lat": ("lat", lat, {"units": "degrees_north"}),
+                       "lon": ("lon", lon, {"units": "degrees_east"})}).to_netcdf(
+        tmp_path / "area.nc")
+    config = tmp_path / "night.toml"
+    config.write_text('[input]\npaths = ["area.nc"]\n\n[decompose]\n\n[output]\ndirectory = "out"\n')
+    summary = run(config, quiet=True, workers=1)
+    assert summary.exit_code == 0
+    manifest = json.loads((tmp_path / "out" / "manifest.json").read_text())
+    (unit,) = manifest["units"].values()
+    (message,) = unit["stages"]["decompose"]["warnings"]
+    assert "left missing" in message and message.startswith("area")
+    assert "left missing" in (tmp_path / "out" / "flowpipe.log").read_text()
