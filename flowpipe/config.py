@@ -1,21 +1,28 @@
 """The batch configuration (TOML): its schema, defaults and error messages.
 
 Every key is documented in ``configs/README.md``. Paths are relative to the
-config file. Unknown keys and wrong types are errors that name the key and
-the line it is on.
+config file. Unknown keys, wrong types and values out of range or not among
+the choices of the library are errors that name the key and the line it is
+on, raised before anything is written.
 """
 
 from __future__ import annotations
 
 import glob
+import math
 import os
 import re
 import tomllib
+from collections.abc import Callable, Iterable
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
+from .decompose import METHODS, SPECTRAL_VARIABLES
 from .errors import UsageError
+from .parcels._advect import VERTICAL
+from .regional import FIELDS as REGIONAL_FIELDS
+from .regional import SCHEMES as REGIONAL_SCHEMES
 
 
 class ConfigError(UsageError):
@@ -63,6 +70,76 @@ SCHEMA: dict[str, dict[str, tuple[tuple[type, ...], Any]]] = {
     "run": {
         "workers": ((int,), None),
         "scheduler": ((str,), None),
+    },
+}
+
+
+@dataclass(frozen=True)
+class Allowed:
+    """The values a key accepts beyond its type.
+
+    Attributes
+    ----------
+    test : callable
+        True for an allowed value (for an allowed item, with ``each``).
+    wording : str
+        What ``test`` allows, as messages say it ("a number above 0").
+    each : bool
+        The value is a list and ``test`` applies to each of its items.
+    empty : bool
+        With ``each``: whether the list may be empty.
+    """
+
+    test: Callable[[Any], bool]
+    wording: str
+    each: bool = False
+    empty: bool = True
+
+
+def _one_of(choices: Iterable[str], each: bool = False) -> Allowed:
+    """Exactly one of ``choices`` (for each item of a list, with ``each``)."""
+    names = tuple(choices)
+    return Allowed(lambda value: value in names, f"one of {', '.join(names)}", each=each)
+
+
+def _finite(value: Any) -> bool:
+    """A TOML integer or float that is neither a bool nor nan nor infinite."""
+    return isinstance(value, _NUMBER) and not isinstance(value, bool) and math.isfinite(value)
+
+
+def _start(value: Any) -> bool:
+    """A start point [lat, lon] or [lat, lon, level] that is a position on the sphere."""
+    return (isinstance(value, list) and len(value) in (2, 3) and all(map(_finite, value))
+            and -90 <= value[0] <= 90)
+
+
+_POSITIVE = Allowed(lambda x: math.isfinite(x) and x > 0, "a finite number above 0")
+_AT_LEAST_1 = Allowed(lambda n: n >= 1, "at least 1")
+# table -> key -> the values it accepts once its type is right (library constants for choices).
+VALUES: dict[str, dict[str, Allowed]] = {
+    "input": {
+        "paths": Allowed(lambda p: isinstance(p, str), "a string", each=True, empty=False),
+    },
+    "decompose": {
+        "method": _one_of(METHODS),
+        "scheme": _one_of(REGIONAL_SCHEMES),
+        "truncation": _AT_LEAST_1,
+        "levels": Allowed(_finite, "a finite number", each=True, empty=False),
+    },
+    "advect": {
+        "starts": Allowed(_start, "[lat, lon] or [lat, lon, level] of finite numbers with lat "
+                          "within -90..90", each=True, empty=False),
+        "hours": _POSITIVE,
+        "step_minutes": _POSITIVE,
+        "vertical": _one_of(VERTICAL),
+        "sample": Allowed(lambda name: isinstance(name, str) and name != "",
+                          "a variable name (a non-empty string)", each=True),
+    },
+    "maps": {
+        "levels": Allowed(_finite, "a finite number", each=True),
+    },
+    "run": {
+        "workers": _AT_LEAST_1,
     },
 }
 STAGES = ("decompose", "advect", "maps")
@@ -124,6 +201,25 @@ def _type_name(types: tuple[type, ...]) -> str:
     return " or ".join(names[t] for t in types)
 
 
+def _refusal(what: str, value: Any, allowed: Allowed) -> str | None:
+    """Why ``value`` of ``what`` (``[table] key``) is refused, or None when it is allowed."""
+    if not allowed.each:
+        return None if allowed.test(value) else f"{what} must be {allowed.wording}, not {value!r}"
+    if not value and not allowed.empty:
+        return f"{what} must hold at least one item ({allowed.wording}), not []"
+    for item in value:
+        if not allowed.test(item):
+            return f"each item of {what} must be {allowed.wording}, not {item!r}"
+    return None
+
+
+def _decomposition_fields(method: str, scheme: str) -> tuple[str, ...]:
+    """The mappable fields a decomposition writes (``"auto"``: either method's)."""
+    spectral = SPECTRAL_VARIABLES if method != "regional" else ()
+    regional = REGIONAL_FIELDS[scheme] if method != "spectral" else ()
+    return tuple(dict.fromkeys(spectral + regional))
+
+
 def load_config(path: str | os.PathLike) -> Config:
     """Read and validate a batch config; inputs are expanded and must exist.
 
@@ -160,6 +256,10 @@ def load_config(path: str | os.PathLike) -> Config:
             if not ok:
                 raise ConfigError(f"{_where(cfg_path, text, table, key)}: [{table}] {key} must be "
                                   f"{_type_name(types)}, not {value!r}")
+            allowed = VALUES.get(table, {}).get(key)
+            refusal = _refusal(f"[{table}] {key}", value, allowed) if allowed else None
+            if refusal:
+                raise ConfigError(f"{_where(cfg_path, text, table, key)}: {refusal}")
             checked[key] = value
         for key, (_, default) in schema.items():
             if key not in checked:
@@ -181,9 +281,6 @@ def _check_values(config: Config, text: str) -> None:
     base = cfg_path.parent
     inputs: list[Path] = []
     for item in config.tables["input"]["paths"]:
-        if not isinstance(item, str):
-            raise ConfigError(f"{_where(cfg_path, text, 'input', 'paths')}: [input] paths must "
-                              f"be a list of strings, not {item!r}")
         pattern = str(base / item)
         matches = sorted(glob.glob(pattern)) if glob.has_magic(pattern) else (
             [pattern] if Path(pattern).exists() else [])
@@ -204,15 +301,18 @@ def _check_values(config: Config, text: str) -> None:
         if adv["starts_file"] is not None and not (base / adv["starts_file"]).is_file():
             raise ConfigError(f"{_where(cfg_path, text, 'advect', 'starts_file')}: [advect] "
                               f"starts_file {adv['starts_file']} does not exist")
-        for start in adv["starts"] or []:
-            if not (isinstance(start, list) and len(start) in (2, 3)
-                    and all(isinstance(x, _NUMBER) and not isinstance(x, bool) for x in start)):
-                raise ConfigError(f"{_where(cfg_path, text, 'advect', 'starts')}: [advect] each "
-                                  f"start must be [lat, lon] or [lat, lon, level], not {start!r}")
-    workers = config.tables.get("run", {}).get("workers")
-    if workers is not None and workers < 1:
-        raise ConfigError(f"{_where(cfg_path, text, 'run', 'workers')}: [run] workers must be "
-                          "at least 1")
+    if "decompose" in config.tables:
+        dec = config.tables["decompose"]
+        if dec["method"] == "regional" and dec["truncation"] is not None:
+            raise ConfigError(f"{_where(cfg_path, text, 'decompose', 'truncation')}: [decompose] "
+                              "truncation applies to the spectral method only, not to method "
+                              "\"regional\"; drop it or use method \"spectral\" or \"auto\"")
+        if "maps" in config.tables:
+            fields = _one_of(_decomposition_fields(dec["method"], dec["scheme"]), each=True)
+            refusal = _refusal("[maps] fields", config.tables["maps"]["fields"], fields)
+            if refusal:
+                raise ConfigError(f"{_where(cfg_path, text, 'maps', 'fields')}: {refusal} "
+                                  f"(the fields of [decompose] method \"{dec['method']}\")")
 
 
 def check_template(template: str, allowed: set[str], where: str, what: str) -> None:

@@ -132,18 +132,59 @@ def _check_classic_size(path: Path) -> None:
         ) from exc
 
 
-def _open_one(path: Path, u: str | None, v: str | None) -> xr.Dataset:
+#: First bytes of NetCDF files: classic, 64-bit offset and 64-bit data (NetCDF-3), and
+#: HDF5 (NetCDF-4), whose signature may follow a user block of 512, 1024, ... bytes.
+NETCDF3_SIGNATURES = (b"CDF\x01", b"CDF\x02", b"CDF\x05")
+HDF5_SIGNATURE = b"\x89HDF\r\n\x1a\n"
+
+
+def open_netcdf(path: Path, **options) -> xr.Dataset:
+    """``xarray.open_dataset`` of a file that must be NetCDF, with one-line errors.
+
+    Raises
+    ------
+    flowpipe.errors.InputError
+        For a file that is not NetCDF (by its signature), a truncated one, or
+        one the netCDF library cannot read.
+
+    References
+    ----------
+    File signatures: NetCDF User Guide, "File Format Specifications" (classic,
+    64-bit offset and CDF-5 headers start with ``CDF`` and a version byte);
+    HDF5 File Format Specification, section II.A (the superblock signature
+    at byte 0, 512, 1024, 2048, ...).
+    """
+    try:
+        handle = open(path, "rb")
+    except OSError as exc:
+        raise InputError(f"{path}: cannot be read ({exc.strerror})") from None
+    with handle:
+        netcdf3 = handle.read(4) in NETCDF3_SIGNATURES
+        hdf5, offset = False, 0
+        while not (netcdf3 or hdf5) and offset <= 1 << 20:
+            handle.seek(offset)
+            block = handle.read(8)
+            hdf5 = block == HDF5_SIGNATURE
+            if len(block) < 8:
+                break
+            offset = 512 if offset == 0 else 2 * offset
+    if not (netcdf3 or hdf5):
+        raise InputError(f"{path}: is not a NetCDF file (neither NetCDF-3 nor NetCDF-4/HDF5 "
+                         "by its first bytes); check the path")
     _check_classic_size(path)
     try:
-        raw = xr.open_dataset(
-            path, chunks={}, decode_times=xr.coders.CFDatetimeCoder(use_cftime=None)
-        )
+        return xr.open_dataset(path, decode_times=xr.coders.CFDatetimeCoder(use_cftime=None),
+                               **options)
     except Exception as exc:  # netCDF4/HDF5 raise many types for unreadable files
         reason = str(exc).splitlines()[0] if str(exc) else type(exc).__name__
         raise InputError(
             f"{path}: cannot be read as NetCDF ({reason}); check that the file is complete "
             "and is NetCDF-3 or NetCDF-4"
         ) from exc
+
+
+def _open_one(path: Path, u: str | None, v: str | None) -> xr.Dataset:
+    raw = open_netcdf(path, chunks={})
     try:
         return _canonical(raw, path, u, v)
     except InputError:
@@ -359,6 +400,25 @@ def _orient(ds: xr.Dataset, path: Path) -> xr.Dataset:
     return ds
 
 
+def canonical_levels(values: np.ndarray, units: str | None) -> tuple[np.ndarray, str]:
+    """Vertical coordinates in hPa (pressure) or m (height), and which: ``"pressure"``,
+    ``"height"`` or ``"other"`` (values unchanged).
+
+    References
+    ----------
+    Unit conversion by UDUNITS-2 through cf-units.
+    """
+    try:
+        unit = cf_units.Unit(units) if units else None
+    except ValueError:
+        unit = None
+    if unit is not None and unit.is_convertible("Pa"):
+        return unit.convert(np.asarray(values, dtype=np.float64), "hPa"), "pressure"
+    if unit is not None and unit.is_convertible("m"):
+        return unit.convert(np.asarray(values, dtype=np.float64), "m"), "height"
+    return values, "other"
+
+
 def _vertical(ds: xr.Dataset, path: Path) -> xr.Dataset:
     if "level" not in ds.dims:
         ds.attrs["level_type"] = "none"
@@ -367,24 +427,13 @@ def _vertical(ds: xr.Dataset, path: Path) -> xr.Dataset:
     level = ds["level"]
     if _strictly_monotonic(level.values) == 0:
         raise InputError(f"{path}: vertical coordinate is not strictly monotonic")
-    units = level.attrs.get("units")
-    kind = "other"
-    values = level.values
+    values, kind = canonical_levels(level.values, level.attrs.get("units"))
     attrs = dict(level.attrs)
-    if units:
-        try:
-            unit = cf_units.Unit(units)
-        except ValueError:
-            unit = None
-        if unit is not None and unit.is_convertible("Pa"):
-            values = unit.convert(values.astype(np.float64), "hPa")
-            attrs.update(units="hPa", standard_name="air_pressure", positive="down", axis="Z")
-            kind = "pressure"
-        elif unit is not None and unit.is_convertible("m"):
-            values = unit.convert(values.astype(np.float64), "m")
-            attrs.update(units="m", standard_name=attrs.get("standard_name", "height"),
-                         positive="up", axis="Z")
-            kind = "height"
+    if kind == "pressure":
+        attrs.update(units="hPa", standard_name="air_pressure", positive="down", axis="Z")
+    elif kind == "height":
+        attrs.update(units="m", standard_name=attrs.get("standard_name", "height"),
+                     positive="up", axis="Z")
     ds = ds.assign_coords(level=("level", values, attrs))
     ds["level"].encoding = {}
     ds.attrs["level_type"] = kind

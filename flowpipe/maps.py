@@ -53,7 +53,7 @@ from shapely.geometry import LineString  # noqa: E402
 from ._version import __version__  # noqa: E402
 from .annotate import CAUTION_SHORT, iso_time  # noqa: E402
 from .errors import FlowpipeWarning, InputError, UsageError  # noqa: E402
-from .ingest import find_coordinate  # noqa: E402
+from .ingest import canonical_levels, find_coordinate, open_netcdf  # noqa: E402
 from .store import atomic_path  # noqa: E402
 
 #: Where Debian's python-cartopy-data puts Natural Earth and GSHHS files.
@@ -182,11 +182,7 @@ def _open(source: str | os.PathLike | xr.Dataset) -> tuple[xr.Dataset, str]:
     path = Path(source)
     if not path.is_file():
         raise InputError(f"{path}: no such file")
-    try:
-        ds = xr.open_dataset(path, decode_times=xr.coders.CFDatetimeCoder(use_cftime=None))
-    except Exception as exc:  # netCDF4/HDF5 raise many types for unreadable files
-        raise InputError(f"{path}: cannot be read as NetCDF ({exc})") from exc
-    return ds, str(path)
+    return open_netcdf(path), str(path)
 
 
 # ---------------------------------------------------------------- coordinates
@@ -225,12 +221,16 @@ def _select(ds: xr.Dataset, da: xr.DataArray, label: str, level: float | None,
     words: list[str] = []
     vertical = find_coordinate(ds, da, "vertical", "Z")
     if vertical is not None and vertical in da.dims:
-        values = ds[vertical].values
-        units = ds[vertical].attrs.get("units", "")
+        # in hPa or m, as everywhere in flowpipe (inputs may say Pa or km)
+        values, kind = canonical_levels(ds[vertical].values, ds[vertical].attrs.get("units"))
+        units = {"pressure": "hPa", "height": "m"}.get(kind, ds[vertical].attrs.get("units", ""))
         if level is None:
             index = 0
         else:
             hits = np.flatnonzero(np.isclose(values, level, rtol=1e-6, atol=1e-9))
+            if not hits.size:  # also in the file's own units (a level copied from it)
+                hits = np.flatnonzero(np.isclose(ds[vertical].values, level, rtol=1e-6,
+                                                 atol=1e-9))
             if not hits.size:
                 available = ", ".join(f"{x:g}" for x in values)
                 raise InputError(f"{label}: level {level:g} is not in {da.name}; available "

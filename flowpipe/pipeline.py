@@ -388,13 +388,18 @@ def _versions() -> dict[str, str]:
 def _scheduler(workers: int, scheduler: str | None) -> Iterator[None]:
     """Dask's local threads (``workers`` of them, sharing ``workers`` cores), or a cluster."""
     if scheduler:
-        from distributed import Client
+        from distributed import Client, default_client
 
         try:
             client = Client(scheduler, timeout="20s")
-        except OSError as exc:
+        except (OSError, ValueError, TypeError) as exc:  # unreachable, or a malformed address
+            # A client that failed to connect stays dask's default and would take every
+            # later computation of the process (a notebook's too): close it.
+            with contextlib.suppress(ValueError):
+                default_client().close()
             raise FlowpipeError(f"cannot reach the dask scheduler at {scheduler} ({exc}); "
-                                "check the address and that the scheduler runs") from exc
+                                "check the address (tcp://HOST:PORT) and that the scheduler "
+                                "runs") from exc
         log.info("using the dask.distributed scheduler at %s", scheduler)
         with client:
             yield

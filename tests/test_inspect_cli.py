@@ -69,7 +69,7 @@ def test_gaussian_variant_is_reported(tmp_path, capsys):
 def _not_netcdf(tmp_path):
     path = tmp_path / "notes.nc"
     path.write_text("this is not a NetCDF file\n")
-    return path, "cannot be read as NetCDF"
+    return path, "is not a NetCDF file"
 
 
 def _truncated(tmp_path):

@@ -268,13 +268,17 @@ def test_bad_input_names_what_is_available(files, tmp_path):
 
 
 def test_foreign_file_with_the_variables_maps(tmp_path):
-    # demo_regional.nc: not a flowpipe output; latitudes descending, levels in Pa.
-    fig = maps.render(REGIONAL, field="uwind", level=50000.0, size=SIZE)
+    # demo_regional.nc: not a flowpipe output; latitudes descending, levels in Pa. The
+    # level is given and shown in hPa as everywhere in flowpipe (1 hPa = 100 Pa,
+    # UDUNITS-2); the file's own value is accepted too.
+    fig = maps.render(REGIONAL, field="uwind", level=500.0, size=SIZE)
     with xr.open_dataset(REGIONAL) as ds:
         values = ds["uwind"].sel(pressure=50000.0).isel(time=0).values
     bar = _colour_bar(fig)
     assert bar.vmin <= values.min() and bar.vmax >= values.max()
-    assert "50000 Pa" in _map_axes(fig).get_title(loc="left")
+    assert "500 hPa" in _map_axes(fig).get_title(loc="left")
+    same = maps.render(REGIONAL, field="uwind", level=50000.0, size=SIZE)
+    assert _map_axes(same).get_title(loc="left") == _map_axes(fig).get_title(loc="left")
 
 
 def test_command_line(files, capsys):

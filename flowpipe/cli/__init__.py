@@ -9,6 +9,8 @@ from __future__ import annotations
 
 import argparse
 import importlib
+import os
+import signal
 import sys
 import warnings
 from collections.abc import Sequence
@@ -34,7 +36,8 @@ class _Parser(argparse.ArgumentParser):
 def build_parser() -> argparse.ArgumentParser:
     """The ``flowpipe`` argument parser with every command registered."""
     common = argparse.ArgumentParser(add_help=False)
-    common.add_argument("--debug", action="store_true",
+    # (after the command too; SUPPRESS keeps a --debug given before it)
+    common.add_argument("--debug", action="store_true", default=argparse.SUPPRESS,
                         help="show the full Python traceback when something fails")
     parser = _Parser(
         prog="flowpipe", parents=[common],
@@ -53,6 +56,14 @@ def build_parser() -> argparse.ArgumentParser:
 _PYTHON_SHOW_WARNING = warnings.showwarning
 
 
+class _Terminated(BaseException):
+    """SIGTERM, raised where the program is, so that clean-up code runs."""
+
+
+def _terminate(signum, frame) -> None:
+    raise _Terminated
+
+
 def _show_warning(message, category, filename, lineno, file=None, line=None) -> None:
     """Warnings of flowpipe as ``flowpipe: warning: ...`` lines; others as Python shows them."""
     if issubclass(category, FlowpipeWarning):
@@ -65,7 +76,11 @@ def main(argv: Sequence[str] | None = None) -> int:
     """Entry point of the ``flowpipe`` command; returns the exit code."""
     parser = build_parser()
     args = parser.parse_args(argv)
+    args.debug = getattr(args, "debug", False)
     warnings.showwarning = _show_warning
+    # A terminated command unwinds like an interrupted one, so that its temporary
+    # output file is removed (the atomic writer cleans up on the way out).
+    signal.signal(signal.SIGTERM, _terminate)
     try:
         return int(args.handler(args))
     except FlowpipeError as exc:
@@ -76,6 +91,13 @@ def main(argv: Sequence[str] | None = None) -> int:
     except KeyboardInterrupt:
         print("flowpipe: interrupted", file=sys.stderr)
         return 130
+    except _Terminated:  # the temporary outputs are gone by now
+        print("flowpipe: terminated", file=sys.stderr)
+        sys.stderr.flush()
+        sys.stdout.flush()
+        # At once: an orderly exit would first wait for the computations still running
+        # in dask's worker threads.
+        os._exit(128 + signal.SIGTERM)
     except Exception as exc:  # a bug: one line, unless --debug
         if args.debug:
             raise

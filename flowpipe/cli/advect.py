@@ -13,6 +13,7 @@ from ..parcels import advect, read_starts
 from ..parcels._kernels import STATUS_MEANINGS
 from ..parcels.starts import parse_start
 from ..store import write
+from ._common import output_file
 
 
 def register(sub: argparse._SubParsersAction, common: argparse.ArgumentParser) -> argparse.ArgumentParser:
@@ -26,7 +27,7 @@ def register(sub: argparse._SubParsersAction, common: argparse.ArgumentParser) -
     # numbers for values, not comma-separated lists beginning with a minus sign.
     parser._negative_number_matcher = re.compile(r"^-\d*\.?\d+(,[-+]?\d*\.?\d+)*$")
     parser.add_argument("files", nargs="+", metavar="FILE", help="NetCDF files or globs")
-    parser.add_argument("-o", "--output", required=True, metavar="OUT.nc",
+    parser.add_argument("-o", "--output", required=True, type=output_file, metavar="OUT.nc",
                         help="the trajectory file to write")
     where = parser.add_mutually_exclusive_group(required=True)
     where.add_argument("--start", action="append", metavar="LAT,LON[,LEVEL]",
@@ -68,5 +69,6 @@ def run(args: argparse.Namespace) -> int:
     counts = np.bincount(tracks["status"].values, minlength=len(STATUS_MEANINGS))
     summary = ", ".join(f"{meaning.replace('_', ' ')} {count}"
                         for meaning, count in zip(STATUS_MEANINGS, counts, strict=True) if count)
-    print(f"wrote {path}: {tracks.sizes['trajectory']} trajectories ({summary})")
+    n = tracks.sizes["trajectory"]
+    print(f"wrote {path}: {n} {'trajectory' if n == 1 else 'trajectories'} ({summary})")
     return 0

@@ -10,7 +10,9 @@ from ..decompose import METHODS, decompose
 from ..errors import UsageError
 from ..ingest import open_wind
 from ..kinematics import kinematics
+from ..regional import SCHEMES
 from ..store import write
+from ._common import output_file
 
 
 def register(sub: argparse._SubParsersAction, common: argparse.ArgumentParser) -> argparse.ArgumentParser:
@@ -23,7 +25,8 @@ def register(sub: argparse._SubParsersAction, common: argparse.ArgumentParser) -
         "global grids use spherical harmonics; limited-area or gappy grids the regional solver.",
     )
     parser.add_argument("files", nargs="+", metavar="FILE", help="NetCDF files or globs")
-    parser.add_argument("-o", "--output", required=True, metavar="OUT.nc", help="file to write")
+    parser.add_argument("-o", "--output", required=True, type=output_file, metavar="OUT.nc",
+                        help="file to write")
     parser.add_argument("--method", choices=METHODS, default="auto",
                         help="spectral (complete global grids), regional, or auto (default)")
     parser.add_argument("--truncation", type=int, metavar="N",
@@ -32,7 +35,7 @@ def register(sub: argparse._SubParsersAction, common: argparse.ArgumentParser) -
     parser.add_argument("--levels", type=_levels, metavar="L1,L2,...",
                         help="only these levels, comma-separated, in the file's level units "
                         "after conversion (hPa or m)")
-    parser.add_argument("--scheme", default="variational",
+    parser.add_argument("--scheme", choices=SCHEMES, default="variational",
                         help="limited-area scheme of the regional method (default: variational)")
     parser.add_argument("--kinematics", action="store_true",
                         help="also write absolute vorticity, deformation and kinetic-energy "
@@ -65,5 +68,7 @@ def run(args: argparse.Namespace) -> int:
                              "without missing values); drop --kinematics")
         extra = kinematics(wind, truncation=args.truncation, levels=args.levels)
         parts = xr.merge([parts, extra], combine_attrs="override")
-    write(parts, args.output, float32=args.float32)
+    path = write(parts, args.output, float32=args.float32)
+    print(f"wrote {path}: {len(parts.data_vars)} variables by the "
+          f"{parts.attrs.get('method', '')} method")
     return 0

@@ -5,6 +5,7 @@ from __future__ import annotations
 import argparse
 import json
 
+from ..ingest import expand_paths
 from ..inspection import inspect_file
 
 
@@ -22,7 +23,7 @@ def register(sub: argparse._SubParsersAction, common: argparse.ArgumentParser) -
 
 
 def run(args: argparse.Namespace) -> int:
-    for path in args.files:
+    for path in expand_paths(args.files):  # one report per file, globs expanded here too
         report = inspect_file(path, u=args.u, v=args.v)
         if args.json:
             print(json.dumps(report))

@@ -6,6 +6,7 @@ import argparse
 import re
 
 from ..maps import PROJECTIONS, render, save
+from ._common import output_file
 
 
 def register(sub: argparse._SubParsersAction, common: argparse.ArgumentParser) -> argparse.ArgumentParser:
@@ -15,7 +16,7 @@ def register(sub: argparse._SubParsersAction, common: argparse.ArgumentParser) -
         "wind as arrows) or the tracks of a trajectory file, and write it as a PNG image.",
     )
     parser.add_argument("file", metavar="FILE.nc", help="a flowpipe output or any CF NetCDF file")
-    parser.add_argument("-o", "--output", required=True, metavar="OUT.png",
+    parser.add_argument("-o", "--output", required=True, type=output_file, metavar="OUT.png",
                         help="the image to write (written atomically)")
     parser.add_argument("--field", metavar="NAME",
                         help="variable to draw (default: streamfunction, velocity_potential, "
@@ -31,12 +32,18 @@ def register(sub: argparse._SubParsersAction, common: argparse.ArgumentParser) -
     return parser
 
 
+#: Largest width or height of a map in pixels (a 10000 x 10000 RGBA image takes 400 MB).
+MAX_PIXELS = 10000
+
+
 def parse_size(text: str) -> tuple[int, int]:
     """``1200x800`` -> (1200, 800)."""
     match = re.fullmatch(r"\s*(\d+)\s*[xX]\s*(\d+)\s*", text)
-    if not match or min(int(match[1]), int(match[2])) < 100:
+    if not match or min(int(match[1]), int(match[2])) < 100 \
+            or max(int(match[1]), int(match[2])) > MAX_PIXELS:
         raise argparse.ArgumentTypeError(
-            f"{text!r}: give WIDTHxHEIGHT in pixels, each at least 100 (for example 1200x800)")
+            f"{text!r}: give WIDTHxHEIGHT in pixels, each from 100 to {MAX_PIXELS} (for "
+            "example 1200x800)")
     return int(match[1]), int(match[2])
 
 

@@ -146,9 +146,12 @@ def _check_wind(wind: xr.Dataset, vertical: str | None, sample: Sequence[str]) -
                              "level-following 2-D trajectories)")
         needed, scale = VERTICAL[vertical]
         if vertical not in wind:
+            other = [name for name, (kind, _) in VERTICAL.items()
+                     if name != vertical and name in wind and kind == level_type]
+            hint = f"use --vertical {other[0]}, or leave" if other else "leave"
             raise InputError(f"{_name(wind)}: 3-D trajectories with --vertical {vertical} need "
-                             f"a vertical velocity {vertical!r}, which the input lacks; leave out "
-                             "--vertical for level-following trajectories")
+                             f"a vertical velocity {vertical!r}, which the input lacks; {hint} "
+                             "out --vertical for level-following trajectories")
         if level_type != needed or "level" not in wind.dims:
             raise InputError(f"{_name(wind)}: --vertical {vertical} needs {needed} levels, but "
                              f"the input has {level_type} levels")

@@ -194,6 +194,9 @@ def read_starts(path: str | os.PathLike) -> pd.DataFrame:
             rows = list(csv.reader(handle))
     except OSError as exc:
         raise InputError(f"{path}: cannot be read ({exc.strerror})") from None
+    except (UnicodeDecodeError, csv.Error):
+        raise InputError(f"{path}: is not a text CSV file; give a header row "
+                         "latitude,longitude[,level][,time] and one start per line") from None
     if not rows:
         raise InputError(f"{path}: is empty; give a header row latitude,longitude[,level][,time]")
     header = [h.strip().lower() for h in rows[0]]

@@ -1,0 +1,137 @@
+"""Mistakes at the command line: the contract's one-line errors, exit 2, nothing written.
+
+The contract (DESIGN.md, "Exit codes"): a usage error or unusable input exits 2 with
+one line beginning ``flowpipe: error:`` that names what is wrong and what to do, and
+no Python traceback unless ``--debug`` is given; outputs are written to a temporary
+name and renamed, so nothing half-written is ever left behind.
+"""
+
+from __future__ import annotations
+
+import signal
+import subprocess
+import sys
+import time
+from pathlib import Path
+
+import dask
+import dask.array
+import matplotlib.text
+import numpy as np
+import pytest
+import xarray as xr
+
+from flowpipe.cli import main
+from flowpipe.errors import InputError
+from flowpipe.maps import render
+
+ROOT = Path(__file__).resolve().parents[1]
+GLOBAL = str(ROOT / "sample_data" / "demo_global.nc")
+REGIONAL = str(ROOT / "sample_data" / "demo_regional.nc")
+
+
+def _one_error_line(capsys, text: str) -> None:
+    err = capsys.readouterr().err.strip().splitlines()
+    assert len(err) == 1 and err[0].startswith("flowpipe: error:") and text in err[0], err
+    assert "Traceback" not in err[0]
+
+
+def test_debug_before_the_command_shows_the_traceback(tmp_path):
+    # --help lists --debug before the command; given there it must not be lost.
+    with pytest.raises(InputError):
+        main(["--debug", "decompose", str(tmp_path / "missing.nc"), "-o", str(tmp_path / "o.nc")])
+    with pytest.raises(InputError):
+        main(["decompose", str(tmp_path / "missing.nc"), "-o", str(tmp_path / "o.nc"), "--debug"])
+
+
+@pytest.mark.parametrize("make_args, text", [
+    (lambda t: ["decompose", GLOBAL, "-o", str(t)], "is a directory"),
+    (lambda t: ["map", GLOBAL, "-o", str(t), "--field", "u"], "is a directory"),
+    (lambda t: ["decompose", GLOBAL, "-o", str(t / "o.nc"), "--scheme", "foo"], "invalid choice"),
+    (lambda t: ["map", GLOBAL, "-o", str(t / "m.png"), "--size", "100000x100000"],
+     "from 100 to"),
+])
+def test_bad_arguments_are_refused_before_any_work(tmp_path, capsys, make_args, text):
+    with pytest.raises(SystemExit) as stop:
+        main(make_args(tmp_path))
+    assert stop.value.code == 2
+    _one_error_line(capsys, text)
+    assert not list(tmp_path.iterdir())
+
+
+def test_a_start_file_that_is_not_text_is_an_input_error(tmp_path, capsys):
+    assert main(["advect", GLOBAL, "-o", str(tmp_path / "t.nc"), "--starts", GLOBAL,
+                 "--hours", "6"]) == 2
+    _one_error_line(capsys, "is not a text CSV file")
+    assert not list(tmp_path.iterdir())
+
+
+@pytest.mark.parametrize("content", [b"", b"latitude,longitude\n50,0\n", b"\x89PNG\r\n\x1a\n"])
+def test_a_file_that_is_not_netcdf_is_named_in_one_line(tmp_path, capsys, content):
+    # File signatures: NetCDF User Guide (CDF header), HDF5 File Format Specification.
+    path = tmp_path / "wind.nc"
+    path.write_bytes(content)
+    for args in (["inspect", str(path)], ["map", str(path), "-o", str(tmp_path / "m.png")]):
+        assert main(args) == 2
+        _one_error_line(capsys, "is not a NetCDF file")
+
+
+def test_a_malformed_scheduler_address_is_a_usage_error(tmp_path, capsys):
+    config = tmp_path / "night.toml"
+    config.write_text(f'[input]\npaths = ["{GLOBAL}"]\n\n[decompose]\n\n[output]\n'
+                      f'directory = "out"\n')
+    assert main(["run", str(config), "--scheduler", "foo", "--quiet"]) == 2
+    assert "cannot reach the dask scheduler" in capsys.readouterr().err
+    # and the failed client does not stay behind to take later computations
+    assert dask.config.get("scheduler", None) != "dask.distributed"
+    assert float(dask.array.ones(4).sum().compute()) == 4.0
+
+
+def test_inspect_expands_a_quoted_glob_into_one_report_per_file(capsys):
+    assert main(["inspect", str(ROOT / "sample_data" / "demo_*.nc")]) == 0
+    out = capsys.readouterr().out
+    assert out.count("demo_global.nc") == 1 and out.count("demo_regional.nc") == 1
+
+
+def test_map_levels_are_in_hectopascals_whatever_the_file_says(tmp_path):
+    # The regional sample stores its levels in Pa; flowpipe speaks hPa everywhere
+    # (1 hPa = 100 Pa, UDUNITS-2).
+    with xr.open_dataset(REGIONAL) as ds:
+        assert any(ds[name].attrs.get("units") == "Pa" for name in ds.coords)
+    out = tmp_path / "m.png"
+    assert main(["map", REGIONAL, "-o", str(out), "--level", "850", "--field", "uwind"]) == 0
+    assert out.stat().st_size > 0
+    figure = render(REGIONAL, field="uwind", level=850.0)
+    texts = [t.get_text() for t in figure.findobj(matplotlib.text.Text)]
+    assert any("850 hPa" in t for t in texts) and not any("85000" in t for t in texts)
+
+
+def test_a_terminated_command_leaves_no_temporary_file(tmp_path):
+    # SIGTERM (what a batch system sends first) must unwind like an interrupt: the
+    # temporary output is removed and no final file appears.
+    lat, lon = np.linspace(-90, 90, 181), np.arange(0.0, 360.0, 1.0)
+    levels = np.arange(1000.0, 90.0, -30.0)
+    shape = (4, levels.size, lat.size, lon.size)
+    rng = np.random.default_rng(0)
+    u = 10 + rng.standard_normal(shape).astype(np.float32)
+    xr.Dataset({"u": (("time", "plev", "lat", "lon"), u, {"units": "m s-1"}),
+                "v": (("time", "plev", "lat", "lon"), u[:, :, ::-1], {"units": "m s-1"})},
+               coords={"time": np.datetime64("2026-01-01", "ns") + np.arange(4) * np.timedelta64(6, "h"),
+                       "plev": ("plev", levels, {"units": "hPa"}),
+                       "lat": ("lat", lat, {"units": "degrees_north"}),
+                       "lon": ("lon", lon, {"units": "degrees_east"})}).to_netcdf(tmp_path / "in.nc")
+    out = tmp_path / "out"
+    out.mkdir()
+    process = subprocess.Popen([sys.executable, "-m", "flowpipe", "decompose",
+                                str(tmp_path / "in.nc"), "-o", str(out / "parts.nc")],
+                               stderr=subprocess.PIPE, text=True)
+    deadline = time.monotonic() + 60
+    while not list(out.glob(".parts.nc.tmp-*")) and time.monotonic() < deadline \
+            and process.poll() is None:
+        time.sleep(0.02)
+    assert list(out.glob(".parts.nc.tmp-*")), "the writer never started"
+    process.send_signal(signal.SIGTERM)
+    _, err = process.communicate(timeout=60)
+    assert process.returncode == 128 + signal.SIGTERM, err
+    assert "flowpipe: terminated" in err
+    assert not list(out.iterdir())
