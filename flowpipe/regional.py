@@ -277,8 +277,9 @@ def solvable_pieces(valid: np.ndarray, grid: StaggeredGrid) -> tuple[list[np.nda
     return pieces, small
 
 
-def _check_mask(valid: np.ndarray, where: str, grid: StaggeredGrid) -> int:
-    """Refuse a slab with nothing to decompose; return its valid points left missing."""
+def _check_mask(valid: np.ndarray, where: str, grid: StaggeredGrid
+                ) -> tuple[list[np.ndarray], int]:
+    """Refuse a slab with nothing to decompose; return :func:`solvable_pieces`."""
     count = int(valid.sum())
     if count == 0:
         raise InputError(f"u/v: every point of {where} is missing; drop it or fill it")
@@ -290,7 +291,7 @@ def _check_mask(valid: np.ndarray, where: str, grid: StaggeredGrid) -> int:
             f"u/v: {where} has {count} valid points in {rows} rows and {cols} columns, in no "
             f"piece of at least {MINIMUM_SIZE}x{MINIMUM_SIZE} with a 2x2 block: the regional "
             "decomposition needs a larger domain")
-    return small
+    return pieces, small
 
 
 def _check_grid(wind: xr.Dataset, periodic: bool) -> tuple[np.ndarray, np.ndarray]:
@@ -421,8 +422,8 @@ def decompose_regional(wind: xr.Dataset, scheme: str = "variational", periodic: 
     for flat_index, valid in enumerate(valid_all):
         key = np.packbits(valid).tobytes()
         if key not in seen:
-            seen[key] = _check_mask(valid, _slab_label(u, flat_index), grid)
-            for piece in solvable_pieces(valid, grid)[0]:
+            pieces, seen[key] = _check_mask(valid, _slab_label(u, flat_index), grid)
+            for piece in pieces:
                 if scheme == "variational":
                     solver_names.add(VariationalSolver.names[VariationalSolver.kind(grid, piece)])
                 else:

@@ -76,7 +76,7 @@ def main(argv: Sequence[str] | None = None) -> int:
     """Entry point of the ``flowpipe`` command; returns the exit code."""
     parser = build_parser()
     args = parser.parse_args(argv)
-    args.debug = getattr(args, "debug", False)
+    args.debug = getattr(args, "debug", False)  # (absent when given nowhere)
     warnings.showwarning = _show_warning
     # A terminated command unwinds like an interrupted one, so that its temporary
     # output file is removed (the atomic writer cleans up on the way out).

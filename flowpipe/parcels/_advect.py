@@ -496,9 +496,10 @@ def _steps(pos, lev, status, t0, sign, schedule, clock, winds, grid, vertical_sc
     t = t0
     obs = 1
     chunk: list[tuple[float, list[tuple[int, int, float]]]] = []
+    needed: set[int] = set()  # the input times the steps of the chunk read
 
     def flush() -> None:
-        indices = sorted({k for _, brackets in chunk for b in brackets for k in b[:2]})
+        indices = sorted(needed)
         slot = dict(zip(indices, winds.slots_for(indices), strict=True))
         steps = np.array([h for h, _ in chunk])
         slot0 = np.array([[slot[b[0]] for b in brackets] for _, brackets in chunk], np.int64)
@@ -508,14 +509,16 @@ def _steps(pos, lev, status, t0, sign, schedule, clock, winds, grid, vertical_sc
                   vertical_scale, lowest_at_top, EARTH_RADIUS, scheme, PETTERSSEN_ITERATIONS,
                   PETTERSSEN_TOLERANCE)
         chunk.clear()
+        needed.clear()
 
     for length, recorded in zip(schedule.steps, schedule.recorded, strict=True):
         h = sign * length
         brackets = [clock.bracket(t + f * h) for f in (0.0, 0.5, 1.0)]
-        held = {k for _, earlier in chunk for b in earlier for k in b[:2]}
-        if len(held | {k for b in brackets for k in b[:2]}) > winds.slots:
+        times = {k for b in brackets for k in b[:2]}
+        if len(needed | times) > winds.slots:
             flush()
         chunk.append((h, brackets))
+        needed |= times
         t += h
         if recorded:
             flush()

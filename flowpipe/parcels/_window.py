@@ -247,7 +247,6 @@ class SliceWindow:
         shape = (slots, grid.levels.size, grid.latitude.size, grid.longitude.size, ncomp)
         self.field = np.empty(shape)
         self.held: list[int | None] = [None] * slots
-        self.slots = slots
 
     def _prepare(self, index: int, out: np.ndarray) -> None:
         """Read input time ``index`` and write it, prepared, into the slot ``out``."""
@@ -269,6 +268,11 @@ class SliceWindow:
         for c, name in enumerate(self.names, start=first):
             out[:, rows, :, c] = part[name][order]
         _close_poles(out, self.grid, self.input_lat)
+
+    @property
+    def slots(self) -> int:
+        """How many slices are held at once."""
+        return len(self.held)
 
     def slots_for(self, indices: list[int]) -> list[int]:
         """Slots holding the input time ``indices``, loading those not yet held."""
