@@ -376,7 +376,7 @@ def _coastlines(ax) -> bool:
                 _shorelines(directory), facecolor="none", edgecolor="black", linewidth=0.6,
                 zorder=3, path_effects=[patheffects.withStroke(linewidth=1.8, foreground="white")])
             return True
-    searched = ", ".join(d for d in (configured, *COASTLINE_DIRS) if d)
+    searched = ", ".join(str(d) for d in (configured, *COASTLINE_DIRS) if d)
     warnings.warn(f"no coastline data found (looked for {GSHHS_COARSE} in {searched}); the map "
                   "has no coastlines: install the python-cartopy-data package", MapWarning,
                   stacklevel=3)
