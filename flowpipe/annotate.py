@@ -15,10 +15,12 @@ import sys
 from collections.abc import Hashable
 
 import cf_units
+import dask
 import numpy as np
 import xarray as xr
 
 from ._version import __version__
+from .constants import EARTH_RADIUS
 
 CONVENTIONS = "CF-1.11, ACDD-1.3"
 
@@ -103,6 +105,14 @@ TIME_UNITS_METADATA = "leap_seconds: none"
 
 _VERTICAL = ("air_pressure", "height", "altitude")
 
+#: Name of the grid mapping variable of gridded outputs (CF 1.11 section 5.6).
+CRS = "crs"
+
+#: Global attributes a site's ``[metadata]`` table (or ``--attribute``) may not
+#: replace: they say what the file is and how it was made.
+PROTECTED_ATTRIBUTES = ("Conventions", "featureType", "source", "history", "date_created",
+                        "input_files", "level_type")
+
 
 def variable_attrs(name: str) -> dict[str, str]:
     """CF attributes of a contract output variable."""
@@ -153,7 +163,7 @@ def global_attrs(ds: xr.Dataset, *, title: str, summary: str, references: str) -
     }
 
 
-def complete(ds: xr.Dataset) -> xr.Dataset:
+def complete(ds: xr.Dataset, site: dict[str, str] | None = None) -> xr.Dataset:
     """A shallow copy of ``ds`` with every CF / ACDD attribute flowpipe can infer.
 
     Fills in, without overwriting what is set: the contract's attributes of
@@ -163,14 +173,31 @@ def complete(ds: xr.Dataset) -> xr.Dataset:
     time, latitude, longitude and the vertical position coordinates); and
     the global ACDD set, including geospatial and time coverage and keywords.
     ``Conventions`` is always flowpipe's, and ``comment`` always includes
-    :data:`CAUTION`.
+    :data:`CAUTION`. Gridded outputs get a grid mapping variable (:data:`CRS`)
+    and latitude-longitude cell bounds. Attribute values are only of types a
+    netCDF-3 file can hold (no 64-bit integers, no booleans).
+
+    Parameters
+    ----------
+    ds : xarray.Dataset
+        A stage's result.
+    site : dict, optional
+        Global attributes a site stamps on every output (the config's
+        ``[metadata]`` table, ``--attribute KEY=VALUE``): they replace what the
+        stage set, except :data:`PROTECTED_ATTRIBUTES`; ``id_prefix`` becomes
+        the ACDD ``id`` (the prefix, then the title's words) unless ``id`` is given.
     """
     out = ds.copy()
     if str(out.attrs.get("featureType", "")).lower() == "trajectory":
         located = [name for name in out.data_vars if _is_location(out[name])]
         out = out.set_coords(located)
+        _point_coordinates(out)
+    else:
+        out = _grid_mapping(out)
+    bounds = {var.attrs["bounds"] for var in out.variables.values() if "bounds" in var.attrs}
     for name in list(out.variables):
-        _complete_variable(out, name)
+        if name not in bounds:  # bounds inherit their coordinate's attributes (CF 7.1)
+            _complete_variable(out, name)
     attrs = dict(out.attrs)
     if "date_created" not in attrs:  # not yet annotated by a stage
         stage = global_attrs(
@@ -187,7 +214,88 @@ def complete(ds: xr.Dataset) -> xr.Dataset:
         attrs["comment"] = f"{comment}\n{CAUTION}" if comment else CAUTION
     for key, value in _discovery(out).items():
         attrs.setdefault(key, value)
-    out.attrs = attrs
+    attrs.update(_site_attributes(site or {}, attrs))
+    out.attrs = {key: netcdf3_value(value) for key, value in attrs.items()}
+    for var in out.variables.values():
+        var.attrs = {key: netcdf3_value(value) for key, value in var.attrs.items()}
+    return out
+
+
+def _site_attributes(site: dict[str, str], attrs: dict[str, object]) -> dict[str, str]:
+    """The site's global attributes, ``id_prefix`` turned into an ACDD ``id``."""
+    found = {key: str(value) for key, value in site.items()
+             if key not in PROTECTED_ATTRIBUTES and key != "id_prefix"}
+    if "id_prefix" in site and "id" not in found:
+        words = "_".join(str(attrs.get("title", "flowpipe output")).lower().split())
+        found["id"] = f"{site['id_prefix']}{words}_{attrs.get('date_created', now_iso())}"
+    return found
+
+
+def netcdf3_value(value: object) -> object:
+    """An attribute value as a type netCDF-3 files can hold.
+
+    The classic format has 8-, 16- and 32-bit integers, 32- and 64-bit floats
+    and text (NetCDF User Guide, "Data Types"); 64-bit and unsigned integers
+    and booleans become 32-bit integers where they fit, doubles otherwise.
+    """
+    if isinstance(value, str | bytes) or dask.is_dask_collection(value):
+        return value
+    array = np.asarray(value)
+    if array.dtype == bool:
+        return array.astype(np.int8) if array.ndim else np.int8(array)
+    if np.issubdtype(array.dtype, np.integer) and array.dtype.itemsize * 8 > 32 - (
+            array.dtype.kind == "u"):
+        info = np.iinfo(np.int32)
+        fits = array.size == 0 or (array.min() >= info.min and array.max() <= info.max)
+        converted = array.astype(np.int32 if fits else np.float64)
+        return converted if array.ndim else converted[()]
+    return value
+
+
+def _point_coordinates(ds: xr.Dataset) -> None:
+    """Name the position coordinates in every per-point variable (CF 1.11 section 9.1).
+
+    A reader of discrete sampling geometries finds a feature's space-time
+    coordinates through the ``coordinates`` attribute of its data variables.
+    """
+    located = [str(name) for name in ds.coords if "obs" in ds[name].dims and name != "obs"]
+    for name in ds.data_vars:
+        if "obs" in ds[name].dims:
+            ds[name].encoding["coordinates"] = " ".join(located)
+
+
+def _grid_mapping(ds: xr.Dataset) -> xr.Dataset:
+    """Add the latitude-longitude grid mapping and cell bounds to a gridded Dataset.
+
+    CF 1.11 section 5.6 (``grid_mapping_name = "latitude_longitude"``, with
+    the Earth radius flowpipe computes with, section 5.6.1) and section 7.1
+    (cell boundaries). A coordinate's bounds lie half-way between its points
+    and half a spacing beyond the outer ones; latitudes stop at the poles.
+    """
+    if "latitude" not in ds.dims or "longitude" not in ds.dims:
+        return ds
+    out = ds.assign({CRS: xr.DataArray(np.int32(0), attrs={
+        "grid_mapping_name": "latitude_longitude",
+        "earth_radius": EARTH_RADIUS,
+        "long_name": "coordinate reference system: a sphere of the radius flowpipe computes with"})})
+    for name in out.data_vars:
+        dims = out[name].dims
+        if name != CRS and "latitude" in dims and "longitude" in dims:
+            out[name].attrs.setdefault("grid_mapping", CRS)
+    for name, limit in (("latitude", 90.0), ("longitude", None)):
+        bounds = f"{name}_bounds"
+        if bounds in out.variables or out[name].size < 2:
+            continue
+        values = np.asarray(out[name].values, dtype=np.float64)
+        edges = np.concatenate([[1.5 * values[0] - 0.5 * values[1]],
+                                0.5 * (values[1:] + values[:-1]),
+                                [1.5 * values[-1] - 0.5 * values[-2]]])
+        if limit is not None:
+            edges = np.clip(edges, -limit, limit)
+        # a data variable, not a coordinate: xarray would list a coordinate in every
+        # field's ``coordinates`` attribute, which CF reserves for auxiliary coordinates
+        out[bounds] = ((name, "bounds"), np.stack([edges[:-1], edges[1:]], axis=1))
+        out[name].attrs["bounds"] = bounds
     return out
 
 
@@ -271,6 +379,27 @@ def iso_time(value: object, timespec: str = "seconds") -> str:
     return f"{value.isoformat(timespec=timespec)}Z"
 
 
+def longitude_range(values: np.ndarray) -> tuple[float, float]:
+    """The shortest arc of longitudes that holds every value: (west end, east end).
+
+    The arc is the circle less its largest empty gap, so a track that crosses
+    180 degrees gets a west end greater than its east end, as ACDD-1.3 allows
+    for ``geospatial_lon_min`` / ``geospatial_lon_max``. When the gap across
+    the ends of the values' own range is as large as any, that range is kept.
+    """
+    finite = np.asarray(values, dtype=np.float64)
+    finite = finite[np.isfinite(finite)]
+    low, high = float(finite.min()), float(finite.max())
+    unique = np.unique(np.mod(finite + 180.0, 360.0) - 180.0)
+    if unique.size < 2:
+        return low, high
+    gaps = np.diff(np.concatenate([unique, [unique[0] + 360.0]]))
+    largest = int(np.argmax(gaps))
+    if gaps[-1] >= gaps[largest] or high - low <= 360.0 - gaps[largest]:
+        return low, high
+    return float(unique[largest + 1]), float(unique[largest])
+
+
 def _discovery(ds: xr.Dataset) -> dict[str, object]:
     """ACDD-1.3 coverage, keyword and vocabulary attributes read off the Dataset."""
     found: dict[str, object] = {}
@@ -283,8 +412,10 @@ def _discovery(ds: xr.Dataset) -> dict[str, object]:
                                       ("lon", "longitude", "degrees_east")):
         da = _find(ds, (standard_name,))
         if da is not None and da.size and np.isfinite(da.values).any():
-            found[f"geospatial_{key}_min"] = float(np.nanmin(da.values))
-            found[f"geospatial_{key}_max"] = float(np.nanmax(da.values))
+            low, high = (longitude_range(da.values) if key == "lon" else
+                         (float(np.nanmin(da.values)), float(np.nanmax(da.values))))
+            found[f"geospatial_{key}_min"] = low
+            found[f"geospatial_{key}_max"] = high
             found[f"geospatial_{key}_units"] = units
     vertical = _find(ds, _VERTICAL)
     if vertical is not None and vertical.size and np.isfinite(vertical.values).any():

@@ -117,6 +117,7 @@ def chunk_sizes(dims: tuple[str, ...], shape: tuple[int, ...], itemsize: int) ->
 
 def _encoding(ds: xr.Dataset, float32: bool) -> dict[str, dict]:
     encoding: dict[str, dict] = {}
+    bounds = {var.attrs["bounds"] for var in ds.variables.values() if "bounds" in var.attrs}
     for name, var in ds.variables.items():
         old = var.encoding
         enc: dict = {}
@@ -127,13 +128,17 @@ def _encoding(ds: xr.Dataset, float32: bool) -> dict[str, dict]:
             if "calendar" in old:
                 enc["calendar"] = old["calendar"]
             enc["_FillValue"] = None if is_dim else FILL_FLOAT
-        elif is_dim:
+        elif var.dtype.kind in "US" and var.ndim:
+            enc["dtype"] = "S1"  # a character array: netCDF-3 has no variable-length strings
+        elif is_dim or name in bounds:
             enc["_FillValue"] = None
         elif np.issubdtype(var.dtype, np.floating):
             enc.update(zlib=True, complevel=4, shuffle=True, _FillValue=FILL_FLOAT,
                        dtype=np.dtype(np.float32 if float32 else var.dtype))
         elif np.issubdtype(var.dtype, np.integer):
             enc.update(zlib=True, complevel=4, shuffle=True, _FillValue=None)
+            if var.dtype.itemsize == 8:  # netCDF-3 readers have no 64-bit integers
+                enc["dtype"] = np.dtype(np.int32)
         if enc.get("zlib") and var.ndim:
             itemsize = np.dtype(enc.get("dtype", var.dtype)).itemsize
             enc["chunksizes"] = chunk_sizes(tuple(map(str, var.dims)), var.shape, itemsize)
@@ -145,7 +150,8 @@ def _encoding(ds: xr.Dataset, float32: bool) -> dict[str, dict]:
 WRITE_CHUNK_CACHE = 4 * 2**20
 
 
-def write(ds: xr.Dataset, path: str | os.PathLike, *, float32: bool = False) -> Path:
+def write(ds: xr.Dataset, path: str | os.PathLike, *, float32: bool = False,
+          attributes: dict[str, str] | None = None) -> Path:
     """Write a Dataset to NetCDF-4 atomically, CF-1.11 and ACDD-1.3 annotated.
 
     Attributes are completed by :func:`flowpipe.annotate.complete`; data
@@ -171,6 +177,10 @@ def write(ds: xr.Dataset, path: str | os.PathLike, *, float32: bool = False) -> 
         accuracy of 7e-46; values beyond about 3.4e38 cannot be stored. Each
         such variable says so in its ``comment`` (:data:`FLOAT32_NOTE`).
 
+    attributes : dict, optional
+        A site's global attributes (``[metadata]``, ``--attribute``); see
+        :func:`flowpipe.annotate.complete`.
+
     Returns
     -------
     pathlib.Path
@@ -186,14 +196,15 @@ def write(ds: xr.Dataset, path: str | os.PathLike, *, float32: bool = False) -> 
     if lazy:
         ds = ds.copy()
         ds.attrs = {k: v for k, v in ds.attrs.items() if k not in lazy}
-    out = annotate.complete(ds)
+    out = annotate.complete(ds, attributes)
     encoding = _encoding(out, float32)
     for name, enc in encoding.items():
         if enc.get("dtype") == np.float32 and out[name].dtype != np.float32:
             comment = out[name].attrs.get("comment")
             out[name].attrs["comment"] = f"{comment}\n{FLOAT32_NOTE}" if comment else FLOAT32_NOTE
     for var in out.variables.values():
-        var.encoding = {}
+        # the only encoding kept: the coordinates a stage names (CF 1.11 section 9 readers need them)
+        var.encoding = {"coordinates": var.encoding["coordinates"]} if "coordinates" in var.encoding else {}
     with atomic_path(final, sources(ds)) as tmp, _write_chunk_cache():
         if not lazy:
             out.to_netcdf(tmp, engine="netcdf4", format="NETCDF4", encoding=encoding)

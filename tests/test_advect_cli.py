@@ -40,7 +40,7 @@ def test_backward_run_on_the_sample_file_writes_a_cf_trajectory_file(tmp_path, c
     with xr.open_dataset(out) as ds:
         assert ds.attrs["featureType"] == "trajectory"
         assert ds.attrs["comment"] == CAUTION
-        assert ds["trajectory"].attrs["cf_role"] == "trajectory_id"
+        assert ds["trajectory_id"].attrs["cf_role"] == "trajectory_id"
         assert dict(ds["latitude"].sizes) == {"trajectory": 3, "obs": 49}
         assert ds["latitude"].attrs["standard_name"] == "latitude"
         assert ds["air_pressure"].attrs["standard_name"] == "air_pressure"

@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import datetime as _dt
+import hashlib
 import math
 import re
 from collections.abc import Sequence
@@ -528,21 +529,77 @@ def _steps(pos, lev, status, t0, sign, schedule, clock, winds, grid, vertical_sc
                 break
 
 
+#: What the trajectory identifiers are, for the file's readers.
+ID_COMMENT = ("flowpipe trajectory identifier: 'fp' and 16 hexadecimal digits of a BLAKE2b hash of "
+              "the input files, the start position, level and time, the direction and length of "
+              "the integration and the start's place in the list, so ids from different inputs "
+              "or starts do not collide when files are combined")
+
+
+def wrap_longitude(lon: np.ndarray) -> np.ndarray:
+    """Longitudes in [-180, 180) degrees east, the convention of trajectory files."""
+    return np.mod(np.asarray(lon, dtype=np.float64) + 180.0, 360.0) - 180.0
+
+
+def trajectory_ids(wind: xr.Dataset, clock: _Clock, start: np.ndarray, lat0: np.ndarray,
+                   lon0: np.ndarray, level0: np.ndarray, method: dict) -> np.ndarray:
+    """Identifiers unique to the input, the start and the integration (see :data:`ID_COMMENT`)."""
+    common = "|".join([str(wind.attrs.get("input_files", "")), method["direction"],
+                       f"{method['trajectory_hours']:.6f}"])
+    found = []
+    for i, (t, la, lo, le) in enumerate(zip(start, lat0, lon0, level0, strict=True)):
+        text = f"{common}|{clock.text(float(t))}|{la:.6f}|{lo:.6f}|{le:.6f}|{i}"
+        found.append("fp" + hashlib.blake2b(text.encode(), digest_size=8).hexdigest())
+    return np.array(found, dtype="U18")
+
+
+def path_speed(lat: np.ndarray, lon: np.ndarray, offsets: np.ndarray) -> np.ndarray:
+    """Horizontal speed (m s-1) along recorded paths, from the positions.
+
+    Great-circle distances by the haversine formula (Sinnott 1984, "Virtues of
+    the haversine", Sky and Telescope 68, 159) between consecutive positions,
+    over the time between them; each point gets the mean of the speeds over
+    the intervals on either side (one interval at the ends). Missing where
+    the position is.
+    """
+    phi, lam = np.radians(lat), np.radians(lon)
+    half = (np.sin(0.5 * np.diff(phi, axis=1)) ** 2 + np.cos(phi[:, 1:]) * np.cos(phi[:, :-1])
+            * np.sin(0.5 * np.diff(lam, axis=1)) ** 2)
+    distance = 2.0 * EARTH_RADIUS * np.arcsin(np.sqrt(np.clip(half, 0.0, 1.0)))
+    if distance.shape[1] == 0:
+        return np.where(np.isnan(lat), np.nan, 0.0)
+    interval = distance / np.abs(np.diff(offsets))[None, :]
+    before = np.concatenate([interval[:, :1], interval], axis=1)
+    after = np.concatenate([interval, interval[:, -1:]], axis=1)
+    both = np.stack([before, after])
+    count = np.isfinite(both).sum(axis=0)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        mean = np.where(np.isfinite(both), both, 0.0).sum(axis=0) / count
+    return np.where(np.isnan(lat) | (count == 0), np.nan, mean)
+
+
 def _trajectory_dataset(wind, clock, start, sign, offsets, lat, lon, out_level, out_sample,
                         status, sample, kind, has_levels, method) -> xr.Dataset:
     n, nobs = out_level.shape
-    lon0 = float(wind["longitude"].values[0]) if kind == "regional" else 0.0
-    lon = lon0 + np.mod(lon - lon0, 360.0)
+    lon = wrap_longitude(lon)
     dims = ("trajectory", "obs")
     times = clock.times(start[:, None] + sign * offsets[None, :])
+    stopped = np.isnan(lat)
+    if np.issubdtype(times.dtype, np.datetime64):
+        times[stopped] = np.datetime64("NaT")
+    else:
+        times[stopped] = None
+    ids = trajectory_ids(wind, clock, start, lat[:, 0], lon[:, 0], out_level[:, 0], method)
     coords = {
-        "trajectory": ("trajectory", np.arange(1, n + 1, dtype=np.int32),
-                       {"cf_role": "trajectory_id", "long_name": "trajectory number"}),
+        "trajectory_id": ("trajectory", ids,
+                       {"cf_role": "trajectory_id", "long_name": "trajectory identifier",
+                        "comment": ID_COMMENT}),
         "time": (dims, times, {"standard_name": "time", "long_name": "time of the position"}),
         "latitude": (dims, lat, {"standard_name": "latitude", "units": "degrees_north",
                                  "long_name": "parcel latitude"}),
         "longitude": (dims, lon, {"standard_name": "longitude", "units": "degrees_east",
-                                  "long_name": "parcel longitude"}),
+                                  "long_name": "parcel longitude",
+                                  "comment": "in [-180, 180) degrees east"}),
     }
     level_type = wind.attrs.get("level_type")
     if has_levels:
@@ -565,11 +622,18 @@ def _trajectory_dataset(wind, clock, start, sign, offsets, lat, lon, out_level, 
                  if k in ("units", "standard_name", "long_name")}
         attrs["long_name"] = f"{attrs.get('long_name', name)} along the trajectory"
         data[name] = (dims, out_sample[:, :, i], attrs)
+    data["parcel_speed"] = (dims, path_speed(lat, lon, offsets), {
+        "units": "m s-1", "long_name": "horizontal speed of the parcel along its path",
+        "comment": "great-circle distance between recorded positions over the time between "
+        "them, centred (one-sided at the ends)"})
     ds = xr.Dataset(data, coords=coords)
     epoch = _iso(clock.reference).rstrip("Z").replace("T", " ")
     ds["time"].encoding = {"units": f"seconds since {epoch}"}
+    calendar = (wind["time"].encoding.get("calendar") if "time" in wind.variables else None)
     if not isinstance(clock.reference, np.datetime64):
-        ds["time"].encoding["calendar"] = clock.reference.calendar
+        calendar = clock.reference.calendar
+    if calendar:
+        ds["time"].encoding["calendar"] = calendar
     attrs = annotate.global_attrs(
         wind, title="flowpipe parcel trajectories",
         summary=f"{method['direction'].capitalize()} trajectories of {n} air parcels over "
