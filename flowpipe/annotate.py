@@ -425,6 +425,14 @@ def _discovery(ds: xr.Dataset) -> dict[str, object]:
         found["geospatial_vertical_positive"] = str(
             vertical.attrs.get("positive", "down" if vertical.attrs["standard_name"] ==
                                "air_pressure" else "up"))
+    if "geospatial_lat_min" in found and "geospatial_lon_min" in found:
+        south, north = found["geospatial_lat_min"], found["geospatial_lat_max"]
+        west, east = found["geospatial_lon_min"], found["geospatial_lon_max"]
+        # ACDD-1.3: WKT, with the axis order of its CRS (EPSG:4326 is latitude, longitude)
+        corners = [(south, west), (south, east), (north, east), (north, west), (south, west)]
+        found["geospatial_bounds"] = "POLYGON ((" + ", ".join(
+            f"{la:.6g} {lo:.6g}" for la, lo in corners) + "))"
+        found["geospatial_bounds_crs"] = "EPSG:4326"
     time = next((ds[n] for n in ds.variables if is_time(ds.variables[n])), None)
     if time is not None:
         values = time.values.ravel()
@@ -432,4 +440,21 @@ def _discovery(ds: xr.Dataset) -> dict[str, object]:
         if values.size:
             found["time_coverage_start"] = iso_time(values.min())
             found["time_coverage_end"] = iso_time(values.max())
+            found["time_coverage_duration"] = iso_duration(values.max() - values.min())
+            row = time.values.reshape(-1, time.shape[-1])[0] if time.ndim else time.values
+            steps = {iso_duration(abs(step)) for step in np.diff(row[~xr.DataArray(row).isnull().values])}
+            if len(steps) == 1:
+                found["time_coverage_resolution"] = steps.pop()
     return found
+
+
+def iso_duration(interval: object) -> str:
+    """An ISO 8601 duration (``PT6H``, ``PT90M``, ``PT1.5S``) of a time difference."""
+    if isinstance(interval, np.timedelta64):
+        seconds = float(interval / np.timedelta64(1, "s"))
+    else:  # datetime.timedelta from cftime
+        seconds = interval.total_seconds()
+    for unit, size in (("H", 3600.0), ("M", 60.0)):
+        if seconds % size == 0:
+            return f"PT{seconds / size:.0f}{unit}"
+    return f"PT{seconds:g}S"

@@ -71,7 +71,13 @@ SCHEMA: dict[str, dict[str, tuple[tuple[type, ...], Any]]] = {
         "workers": ((int,), None),
         "scheduler": ((str,), None),
     },
+    # global attributes stamped on every output: any attribute name, text values
+    "metadata": {},
 }
+
+#: A netCDF attribute name flowpipe accepts from a site (letters, digits, underscores;
+#: NetCDF User Guide, "Naming conventions", restricted as CF 1.11 section 2.3 recommends).
+ATTRIBUTE_NAME = re.compile(r"^[A-Za-z][A-Za-z0-9_]*$")
 
 
 @dataclass(frozen=True)
@@ -247,6 +253,9 @@ def load_config(path: str | os.PathLike) -> Config:
                               f"([{table}]), not a single value")
         schema = SCHEMA[table]
         checked: dict[str, Any] = {}
+        if table == "metadata":
+            tables[table] = _metadata(values, cfg_path, text)
+            continue
         for key, value in values.items():
             if key not in schema:
                 raise ConfigError(f"{_where(cfg_path, text, table, key)}: unknown key "
@@ -274,6 +283,18 @@ def load_config(path: str | os.PathLike) -> Config:
     config = Config(path=cfg_path, tables=tables)
     _check_values(config, text)
     return config
+
+
+def _metadata(values: dict[str, Any], cfg_path: Path, text: str) -> dict[str, str]:
+    """The ``[metadata]`` table: attribute names and their text."""
+    for key, value in values.items():
+        where = _where(cfg_path, text, "metadata", key)
+        if not ATTRIBUTE_NAME.match(key):
+            raise ConfigError(f"{where}: [metadata] {key}: an attribute name has letters, digits "
+                              "and underscores and begins with a letter")
+        if not isinstance(value, str):
+            raise ConfigError(f"{where}: [metadata] {key} must be a string, not {value!r}")
+    return dict(values)
 
 
 def _check_values(config: Config, text: str) -> None:

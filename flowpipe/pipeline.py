@@ -208,6 +208,10 @@ class Runner:
     def _inputs_of(self, unit: Unit) -> list[dict]:
         return [self.fingerprints[str(p)] for p in unit.inputs]
 
+    def _site(self) -> list[dict]:
+        """The ``[metadata]`` table, when the config has one (it changes every output)."""
+        return [self.config.tables["metadata"]] if self.config.tables.get("metadata") else []
+
     def _wind(self, unit: Unit):
         from .ingest import open_wind
 
@@ -220,12 +224,12 @@ class Runner:
 
         cfg = self.config.section("decompose")
         out = render_template(cfg["output"], self.out, stem=unit.stem)
-        digest = bookkeeping.section_hash(self.config.section("input"), cfg)
+        digest = bookkeeping.section_hash(self.config.section("input"), cfg, *self._site())
 
         def make(path: Path) -> None:
             parts = decompose(self._wind(unit), method=cfg["method"], truncation=cfg["truncation"],
                               levels=cfg["levels"], scheme=cfg["scheme"])
-            write(parts, path, float32=cfg["float32"])
+            write(parts, path, float32=cfg["float32"], attributes=self.config.tables.get("metadata"))
 
         self._produce("decompose", result, out, self._inputs_of(unit), digest, make)
         return out
@@ -241,14 +245,14 @@ class Runner:
             "starts_file"] else None
         if starts_file is not None:
             depends = depends + [bookkeeping.fingerprint(starts_file)]
-        digest = bookkeeping.section_hash(self.config.section("input"), cfg)
+        digest = bookkeeping.section_hash(self.config.section("input"), cfg, *self._site())
 
         def make(path: Path) -> None:
             starts = starts_file or [tuple(s) for s in cfg["starts"]]
             tracks = advect(self._wind(unit), starts, hours=cfg["hours"], backward=cfg["backward"],
                             step_minutes=cfg["step_minutes"], vertical=cfg["vertical"],
                             sample=tuple(cfg["sample"]))
-            write(tracks, path)
+            write(tracks, path, attributes=self.config.tables.get("metadata"))
 
         self._produce("advect", result, out, depends, digest, make)
         return out

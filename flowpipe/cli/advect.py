@@ -13,7 +13,7 @@ from ..parcels import advect, read_starts
 from ..parcels._kernels import STATUS_MEANINGS
 from ..parcels.starts import parse_start
 from ..store import write
-from ._common import output_file
+from ._common import add_attribute_option, output_file
 
 
 def register(sub: argparse._SubParsersAction, common: argparse.ArgumentParser) -> argparse.ArgumentParser:
@@ -51,6 +51,7 @@ def register(sub: argparse._SubParsersAction, common: argparse.ArgumentParser) -
                         help="integration scheme (default: fourth-order Runge-Kutta)")
     parser.add_argument("--u", metavar="NAME", help="name of the eastward wind variable")
     parser.add_argument("--v", metavar="NAME", help="name of the northward wind variable")
+    add_attribute_option(parser)
     return parser
 
 
@@ -65,7 +66,7 @@ def run(args: argparse.Namespace) -> int:
     tracks = advect(wind, starts, hours=args.hours, backward=args.backward,
                     step_minutes=args.step_minutes, vertical=args.vertical, sample=sample,
                     steady=args.steady, scheme=args.scheme)
-    path = write(tracks, args.output)
+    path = write(tracks, args.output, attributes=dict(args.attribute))
     counts = np.bincount(tracks["status"].values, minlength=len(STATUS_MEANINGS))
     summary = ", ".join(f"{meaning.replace('_', ' ')} {count}"
                         for meaning, count in zip(STATUS_MEANINGS, counts, strict=True) if count)

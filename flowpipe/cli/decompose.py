@@ -12,7 +12,7 @@ from ..ingest import open_wind
 from ..kinematics import kinematics
 from ..regional import SCHEMES
 from ..store import write
-from ._common import output_file
+from ._common import add_attribute_option, output_file
 
 
 def register(sub: argparse._SubParsersAction, common: argparse.ArgumentParser) -> argparse.ArgumentParser:
@@ -44,6 +44,7 @@ def register(sub: argparse._SubParsersAction, common: argparse.ArgumentParser) -
                         help="store the fields in single precision (half the size)")
     parser.add_argument("--u", metavar="NAME", help="name of the eastward wind variable")
     parser.add_argument("--v", metavar="NAME", help="name of the northward wind variable")
+    add_attribute_option(parser)
     return parser
 
 
@@ -68,7 +69,7 @@ def run(args: argparse.Namespace) -> int:
                              "without missing values); drop --kinematics")
         extra = kinematics(wind, truncation=args.truncation, levels=args.levels)
         parts = xr.merge([parts, extra], combine_attrs="override")
-    path = write(parts, args.output, float32=args.float32)
+    path = write(parts, args.output, float32=args.float32, attributes=dict(args.attribute))
     print(f"wrote {path}: {len(parts.data_vars)} variables by the "
           f"{parts.attrs.get('method', '')} method")
     return 0

@@ -404,13 +404,15 @@ def advect(
                              f"({interval / 60:g} minutes); give at most {interval / 60:g}")
     schedule = _schedule(hours * 3600.0, step, record)
 
-    samples = SliceWindow(wind, grid, False, sample) if sample else None
+    # u and v are always sampled: the wind speed along the path is the file's per-point data
+    sampled = sample + tuple(name for name in ("u", "v") if name not in sample)
+    samples = SliceWindow(wind, grid, False, sampled)
     n = lat.size
     nobs = schedule.offsets.size
     out_lat = np.full((n, nobs), np.nan)
     out_lon = np.full((n, nobs), np.nan)
     out_level = np.full((n, nobs), np.nan)
-    out_sample = np.full((n, nobs, len(sample)), np.nan)
+    out_sample = np.full((n, nobs, len(sampled)), np.nan)
     status = np.full(n, K.ACTIVE, dtype=np.int8)
     level_for = level if raw_levels is not None else np.zeros(n)
     for t0 in np.unique(start):
@@ -426,7 +428,7 @@ def advect(
 
     return _trajectory_dataset(
         wind, clock, start, sign, schedule.offsets, out_lat, out_lon, out_level, out_sample, status,
-        sample, kind, raw_levels is not None, dict(
+        sampled, len(sample), kind, raw_levels is not None, dict(
             integration_scheme="classical fourth-order Runge-Kutta" if scheme == "rk4"
             else "Petterssen (1940) iterative scheme",
             time_step_seconds=step, direction="backward" if backward else "forward",
@@ -553,33 +555,8 @@ def trajectory_ids(wind: xr.Dataset, clock: _Clock, start: np.ndarray, lat0: np.
     return np.array(found, dtype="U18")
 
 
-def path_speed(lat: np.ndarray, lon: np.ndarray, offsets: np.ndarray) -> np.ndarray:
-    """Horizontal speed (m s-1) along recorded paths, from the positions.
-
-    Great-circle distances by the haversine formula (Sinnott 1984, "Virtues of
-    the haversine", Sky and Telescope 68, 159) between consecutive positions,
-    over the time between them; each point gets the mean of the speeds over
-    the intervals on either side (one interval at the ends). Missing where
-    the position is.
-    """
-    phi, lam = np.radians(lat), np.radians(lon)
-    half = (np.sin(0.5 * np.diff(phi, axis=1)) ** 2 + np.cos(phi[:, 1:]) * np.cos(phi[:, :-1])
-            * np.sin(0.5 * np.diff(lam, axis=1)) ** 2)
-    distance = 2.0 * EARTH_RADIUS * np.arcsin(np.sqrt(np.clip(half, 0.0, 1.0)))
-    if distance.shape[1] == 0:
-        return np.where(np.isnan(lat), np.nan, 0.0)
-    interval = distance / np.abs(np.diff(offsets))[None, :]
-    before = np.concatenate([interval[:, :1], interval], axis=1)
-    after = np.concatenate([interval, interval[:, -1:]], axis=1)
-    both = np.stack([before, after])
-    count = np.isfinite(both).sum(axis=0)
-    with np.errstate(invalid="ignore", divide="ignore"):
-        mean = np.where(np.isfinite(both), both, 0.0).sum(axis=0) / count
-    return np.where(np.isnan(lat) | (count == 0), np.nan, mean)
-
-
 def _trajectory_dataset(wind, clock, start, sign, offsets, lat, lon, out_level, out_sample,
-                        status, sample, kind, has_levels, method) -> xr.Dataset:
+                        status, sampled, asked, kind, has_levels, method) -> xr.Dataset:
     n, nobs = out_level.shape
     lon = wrap_longitude(lon)
     dims = ("trajectory", "obs")
@@ -617,15 +594,15 @@ def _trajectory_dataset(wind, clock, start, sign, offsets, lat, lon, out_level, 
         "standard_name": "status_flag",
         "flag_values": np.arange(len(K.STATUS_MEANINGS), dtype=np.int8),
         "flag_meanings": " ".join(K.STATUS_MEANINGS)})}
-    for i, name in enumerate(sample):
+    for i, name in enumerate(sampled[:asked]):
         attrs = {k: v for k, v in wind[name].attrs.items()
                  if k in ("units", "standard_name", "long_name")}
         attrs["long_name"] = f"{attrs.get('long_name', name)} along the trajectory"
         data[name] = (dims, out_sample[:, :, i], attrs)
-    data["parcel_speed"] = (dims, path_speed(lat, lon, offsets), {
-        "units": "m s-1", "long_name": "horizontal speed of the parcel along its path",
-        "comment": "great-circle distance between recorded positions over the time between "
-        "them, centred (one-sided at the ends)"})
+    u, v = (out_sample[:, :, sampled.index(name)] for name in ("u", "v"))
+    data["wind_speed"] = (dims, np.hypot(u, v), {
+        "units": "m s-1", "standard_name": "wind_speed",
+        "long_name": "horizontal wind speed at the parcel (its horizontal speed along the path)"})
     ds = xr.Dataset(data, coords=coords)
     epoch = _iso(clock.reference).rstrip("Z").replace("T", " ")
     ds["time"].encoding = {"units": f"seconds since {epoch}"}
