@@ -385,7 +385,7 @@ def longitude_range(values: np.ndarray) -> tuple[float, float]:
     The arc is the circle less its largest empty gap, so a track that crosses
     180 degrees gets a west end greater than its east end, as ACDD-1.3 allows
     for ``geospatial_lon_min`` / ``geospatial_lon_max``. When the gap across
-    the ends of the values' own range is as large as any, that range is kept.
+    the values' own range is as short as that arc, it is kept as it is.
     """
     finite = np.asarray(values, dtype=np.float64)
     finite = finite[np.isfinite(finite)]
@@ -395,8 +395,10 @@ def longitude_range(values: np.ndarray) -> tuple[float, float]:
         return low, high
     gaps = np.diff(np.concatenate([unique, [unique[0] + 360.0]]))
     largest = int(np.argmax(gaps))
-    if gaps[-1] >= gaps[largest] or high - low <= 360.0 - gaps[largest]:
+    if high - low <= 360.0 - gaps[largest]:
         return low, high
+    if largest == gaps.size - 1:
+        return float(unique[0]), float(unique[-1])
     return float(unique[largest + 1]), float(unique[largest])
 
 

@@ -132,6 +132,8 @@ def _encoding(ds: xr.Dataset, float32: bool) -> dict[str, dict]:
             enc["dtype"] = "S1"  # a character array: netCDF-3 has no variable-length strings
         elif is_dim or name in bounds:
             enc["_FillValue"] = None
+            if var.dtype.kind in "iu" and var.dtype.itemsize == 8:
+                enc["dtype"] = np.dtype(np.int32)  # netCDF-3 readers have no 64-bit integers
         elif np.issubdtype(var.dtype, np.floating):
             enc.update(zlib=True, complevel=4, shuffle=True, _FillValue=FILL_FLOAT,
                        dtype=np.dtype(np.float32 if float32 else var.dtype))
