@@ -404,15 +404,14 @@ def advect(
                              f"({interval / 60:g} minutes); give at most {interval / 60:g}")
     schedule = _schedule(hours * 3600.0, step, record)
 
-    # u and v are always sampled: the wind speed along the path is the file's per-point data
-    sampled = sample + tuple(name for name in ("u", "v") if name not in sample)
-    samples = SliceWindow(wind, grid, False, sampled)
+    samples = SliceWindow(wind, grid, False, sample) if sample else None
     n = lat.size
     nobs = schedule.offsets.size
     out_lat = np.full((n, nobs), np.nan)
     out_lon = np.full((n, nobs), np.nan)
     out_level = np.full((n, nobs), np.nan)
-    out_sample = np.full((n, nobs, len(sampled)), np.nan)
+    out_sample = np.full((n, nobs, len(sample)), np.nan)
+    out_speed = np.full((n, nobs), np.nan)
     status = np.full(n, K.ACTIVE, dtype=np.int8)
     level_for = level if raw_levels is not None else np.zeros(n)
     for t0 in np.unique(start):
@@ -422,13 +421,13 @@ def advect(
         st = status[members]
         _integrate(pos, lev, st, float(t0), sign, schedule, clock, winds, samples, grid,
                    vertical_scale, SCHEMES[scheme], out_lat, out_lon, out_level, out_sample,
-                   members)
+                   out_speed, members)
         status[members] = st
     status[status == K.ACTIVE] = K.COMPLETED
 
     return _trajectory_dataset(
-        wind, clock, start, sign, schedule.offsets, out_lat, out_lon, out_level, out_sample, status,
-        sampled, len(sample), kind, raw_levels is not None, dict(
+        wind, clock, start, sign, schedule.offsets, out_lat, out_lon, out_level, out_sample,
+        out_speed, status, sample, kind, raw_levels is not None, dict(
             integration_scheme="classical fourth-order Runge-Kutta" if scheme == "rk4"
             else "Petterssen (1940) iterative scheme",
             time_step_seconds=step, direction="backward" if backward else "forward",
@@ -458,8 +457,14 @@ def _schedule(total: float, step: float, record: float) -> _Schedule:
 
 
 def _integrate(pos, lev, status, t0, sign, schedule, clock, winds, samples, grid,
-               vertical_scale, scheme, out_lat, out_lon, out_level, out_sample, members) -> None:
-    """Integrate one group of parcels sharing a start time, recording as scheduled."""
+               vertical_scale, scheme, out_lat, out_lon, out_level, out_sample, out_speed,
+               members) -> None:
+    """Integrate one group of parcels sharing a start time, recording as scheduled.
+
+    With each position goes the speed of the horizontal wind there: the length
+    of the Cartesian wind vector the parcel moves with (its first three
+    components), interpolated as the integration does.
+    """
     args = grid.kernel_args()
 
     def record(obs: int, t: float) -> None:
@@ -467,8 +472,12 @@ def _integrate(pos, lev, status, t0, sign, schedule, clock, winds, samples, grid
         rows = members[alive]
         out_lat[rows, obs], out_lon[rows, obs] = latitude_longitude(pos[alive])
         out_level[rows, obs] = lev[alive]
+        k0, k1, w = clock.bracket(t)
+        s0, s1 = winds.slots_for([k0, k1])
+        wind_here = np.empty((pos.shape[0], winds.field.shape[4]))
+        K.sample(pos, lev, status, winds.field, s0, s1, w, *args, wind_here)
+        out_speed[members, obs] = np.sqrt(np.sum(wind_here[:, :3] ** 2, axis=1))
         if samples is not None:
-            k0, k1, w = clock.bracket(t)
             s0, s1 = samples.slots_for([k0, k1])
             values = np.empty((pos.shape[0], len(samples.names)))
             K.sample(pos, lev, status, samples.field, s0, s1, w, *args, values)
@@ -556,7 +565,7 @@ def trajectory_ids(wind: xr.Dataset, clock: _Clock, start: np.ndarray, lat0: np.
 
 
 def _trajectory_dataset(wind, clock, start, sign, offsets, lat, lon, out_level, out_sample,
-                        status, sampled, asked, kind, has_levels, method) -> xr.Dataset:
+                        out_speed, status, sample, kind, has_levels, method) -> xr.Dataset:
     n, nobs = out_level.shape
     lon = wrap_longitude(lon)
     dims = ("trajectory", "obs")
@@ -594,13 +603,12 @@ def _trajectory_dataset(wind, clock, start, sign, offsets, lat, lon, out_level, 
         "standard_name": "status_flag",
         "flag_values": np.arange(len(K.STATUS_MEANINGS), dtype=np.int8),
         "flag_meanings": " ".join(K.STATUS_MEANINGS)})}
-    for i, name in enumerate(sampled[:asked]):
+    for i, name in enumerate(sample):
         attrs = {k: v for k, v in wind[name].attrs.items()
                  if k in ("units", "standard_name", "long_name")}
         attrs["long_name"] = f"{attrs.get('long_name', name)} along the trajectory"
         data[name] = (dims, out_sample[:, :, i], attrs)
-    u, v = (out_sample[:, :, sampled.index(name)] for name in ("u", "v"))
-    data["wind_speed"] = (dims, np.hypot(u, v), {
+    data["wind_speed"] = (dims, out_speed, {
         "units": "m s-1", "standard_name": "wind_speed",
         "long_name": "horizontal wind speed at the parcel (its horizontal speed along the path)"})
     ds = xr.Dataset(data, coords=coords)
