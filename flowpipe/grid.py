@@ -216,9 +216,10 @@ def _equally_spaced(values: np.ndarray) -> bool:
 
 
 def _reaches_poles(lat: np.ndarray, tol: float) -> bool:
-    """True when the outer rows lie no further from their pole than one row spacing."""
-    south = lat[0] + 90.0 <= (lat[1] - lat[0]) + tol
-    north = 90.0 - lat[-1] <= (lat[-1] - lat[-2]) + tol
+    """True when the outer rows lie no further from their pole than half a row spacing
+    (pole rows, offset grids; Gaussian grids are recognised on their own)."""
+    south = lat[0] + 90.0 <= 0.5 * (lat[1] - lat[0]) + tol
+    north = 90.0 - lat[-1] <= 0.5 * (lat[-1] - lat[-2]) + tol
     return bool(south and north)
 
 
@@ -240,8 +241,8 @@ def classify(latitude: np.ndarray, longitude: np.ndarray) -> GridInfo:
     :func:`numpy.polynomial.legendre.leggauss`; a grid is global when its
     longitudes are equally spaced and ``nlon * dlon = 360`` (common practice),
     and its rows reach both poles: the gap between the outer row and the pole
-    is at most the spacing to the next row (pole rows, offset and Gaussian
-    grids; common practice). A grid periodic in longitude that stops short of
+    is at most half the spacing to the next row (pole rows, offset grids),
+    or the rows are Gaussian (common practice). A grid periodic in longitude that stops short of
     a pole is a band.
     """
     lat = np.asarray(latitude)
@@ -260,7 +261,8 @@ def classify(latitude: np.ndarray, longitude: np.ndarray) -> GridInfo:
         spacing = "irregular"
     kind: GridKind = "regional"
     if global_lon:
-        kind = "global" if lat.size > 2 and _reaches_poles(lat.astype(np.float64), tol) else "band"
+        whole = spacing == "gaussian" or (lat.size > 2 and _reaches_poles(lat.astype(np.float64), tol))
+        kind = "global" if whole else "band"
     return GridInfo(
         latitude=lat.astype(np.float64),
         longitude=lon.astype(np.float64),
