@@ -105,7 +105,7 @@ def decompose(
                              "decomposed with the regional method: drop --truncation")
         from .regional import decompose_regional
 
-        parts = decompose_regional(wind, scheme=scheme, periodic=grid.kind == "global",
+        parts = decompose_regional(wind, scheme=scheme, periodic=grid.periodic,
                                    **regional_options)
     else:
         if regional_options:

@@ -25,7 +25,7 @@ TOLERANCE_FLOAT64 = 1e-6
 #: float32 latitude near 90 degrees carries a rounding error of up to 3.8e-6.
 TOLERANCE_FLOAT32 = 2e-5
 
-GridKind = Literal["global", "regional"]
+GridKind = Literal["global", "band", "regional"]
 LatitudeKind = Literal["equiangular", "gaussian", "irregular"]
 
 
@@ -64,8 +64,13 @@ class GridInfo:
     ----------
     latitude, longitude : numpy.ndarray
         Coordinates in degrees, ascending.
-    kind : {"global", "regional"}
-        ``"global"`` when the longitudes are equally spaced and span 360 degrees.
+    kind : {"global", "band", "regional"}
+        ``"global"`` when the longitudes are equally spaced, span 360 degrees and
+        the latitude rows reach both poles (a row on the pole, or the first row
+        no further from it than one row spacing, as on offset or Gaussian grids);
+        ``"band"`` for all longitudes but only part of the latitudes (a
+        hemisphere, a tropical channel), with at most one pole row;
+        ``"regional"`` for a limited area.
     latitudes : {"equiangular", "gaussian", "irregular"}
         How the latitude rows are spaced.
     poles : bool
@@ -77,6 +82,11 @@ class GridInfo:
     kind: GridKind
     latitudes: LatitudeKind
     poles: bool
+
+    @property
+    def periodic(self) -> bool:
+        """True when the grid is periodic in longitude (global or band)."""
+        return self.kind in ("global", "band")
 
     @property
     def nlat(self) -> int:
@@ -205,6 +215,14 @@ def _equally_spaced(values: np.ndarray) -> bool:
     return bool(np.max(np.abs(steps - steps.mean())) < _tolerance(values))
 
 
+def _reaches_poles(lat: np.ndarray, tol: float) -> bool:
+    """True when the outer rows lie no further from their pole than half a row spacing
+    (pole rows, offset grids; Gaussian grids are recognised on their own)."""
+    south = lat[0] + 90.0 <= 0.5 * (lat[1] - lat[0]) + tol
+    north = 90.0 - lat[-1] <= 0.5 * (lat[-1] - lat[-2]) + tol
+    return bool(south and north)
+
+
 def classify(latitude: np.ndarray, longitude: np.ndarray) -> GridInfo:
     """Classify a grid from ascending 1-D latitudes and longitudes in degrees.
 
@@ -221,7 +239,11 @@ def classify(latitude: np.ndarray, longitude: np.ndarray) -> GridInfo:
     ----------
     Gaussian latitudes are recognised against the Gauss-Legendre nodes of
     :func:`numpy.polynomial.legendre.leggauss`; a grid is global when its
-    longitudes are equally spaced and ``nlon * dlon = 360`` (common practice).
+    longitudes are equally spaced and ``nlon * dlon = 360`` (common practice),
+    and its rows reach both poles: the gap between the outer row and the pole
+    is at most half the spacing to the next row (pole rows, offset grids),
+    or the rows are Gaussian (common practice). A grid periodic in longitude that stops short of
+    a pole is a band.
     """
     lat = np.asarray(latitude)
     lon = np.asarray(longitude)
@@ -237,10 +259,14 @@ def classify(latitude: np.ndarray, longitude: np.ndarray) -> GridInfo:
         spacing = "equiangular"
     else:
         spacing = "irregular"
+    kind: GridKind = "regional"
+    if global_lon:
+        whole = spacing == "gaussian" or (lat.size > 2 and _reaches_poles(lat.astype(np.float64), tol))
+        kind = "global" if whole else "band"
     return GridInfo(
         latitude=lat.astype(np.float64),
         longitude=lon.astype(np.float64),
-        kind="global" if global_lon else "regional",
+        kind=kind,
         latitudes=spacing,
         poles=poles,
     )

@@ -313,7 +313,7 @@ def _check_grid(wind: xr.Dataset, periodic: bool) -> tuple[np.ndarray, np.ndarra
     if np.max(np.abs(steps - steps.mean())) > 1e-6 * max(1.0, abs(steps.mean())) + 1e-9:
         raise InputError("longitudes are not equally spaced; regrid to a regular "
                          "latitude-longitude grid first")
-    if periodic and describe_grid(wind).kind != "global":
+    if periodic and not describe_grid(wind).periodic:
         raise UsageError("periodic=True needs longitudes that span 360 degrees equally spaced; "
                          "this grid is regional: use periodic=False")
     return lat, lon

@@ -26,11 +26,11 @@ def test_gaussian_latitudes_are_the_gauss_legendre_nodes():
         (np.linspace(-90, 90, 73), np.arange(0, 360, 2.5), ("global", "equiangular", True, "CC")),
         (np.arange(-89.0, 90, 2.0), np.arange(0, 360, 2.0), ("global", "equiangular", False, "F1")),
         (gaussian_latitudes(48), np.arange(0, 360, 3.75), ("global", "gaussian", False, "GL")),
-        (np.arange(-80.0, 80.1, 2.0), np.arange(0, 360, 2.0), ("global", "equiangular", False, None)),
+        (np.arange(-80.0, 80.1, 2.0), np.arange(0, 360, 2.0), ("band", "equiangular", False, None)),
         (np.arange(30.0, 60.1, 0.5), np.arange(-20.0, 10.1, 0.5),
          ("regional", "equiangular", False, None)),
         (np.array([-60.0, -30.0, -10.0, 0.0, 20.0, 70.0]), np.arange(0, 360, 10.0),
-         ("global", "irregular", False, None)),
+         ("band", "irregular", False, None)),
     ],
 )
 def test_classification(lat, lon, expected):
