@@ -213,6 +213,12 @@ def _resolve_starts(table: pd.DataFrame, wind: xr.Dataset, clock: _Clock, grid_k
                 f"{origin(table, row)}: ({lat[row]:g}, {lon[row]:g}) lies outside the "
                 f"limited-area domain (latitude {glat[0]:g}..{glat[-1]:g}, longitude "
                 f"{glon[0]:g}..{glon[-1]:g})")
+    if grid_kind == "band":
+        row = _first_bad((lat < glat[0]) | (lat > glat[-1]))
+        if row is not None:
+            raise InputError(
+                f"{origin(table, row)}: ({lat[row]:g}, {lon[row]:g}) lies outside the latitude "
+                f"band of the input ({glat[0]:g}..{glat[-1]:g})")
     given = np.isfinite(level)
     if "level" not in wind.dims:
         row = _first_bad(given)
@@ -383,7 +389,7 @@ def advect(
     table = as_start_table(starts)
     lat, lon, level, start = _resolve_starts(table, wind, clock, kind, hours, sign)
 
-    grid = slice_grid(wind, periodic)
+    grid = slice_grid(wind, periodic, band=kind == "band")
     names = (vertical,) if vertical else ()
     winds = SliceWindow(wind, grid, True, names)
     raw_levels = wind["level"].values.astype(np.float64) if "level" in wind.dims else None

@@ -40,6 +40,7 @@ class SliceGrid:
     add_south: bool               # a virtual pole row is added south of the input rows
     add_north: bool
     tables: tuple                 # cell_tables (global grids; empty on limited areas)
+    wrap_column: bool = False     # a band: the first column repeated 360 degrees east
 
     def kernel_args(self) -> tuple:
         """The grid arguments of the kernels, in their order."""
@@ -139,15 +140,23 @@ def cell_tables(latitude: np.ndarray, longitude: np.ndarray) -> tuple:
             sin_lon, cos_lon, 1.0 / np.diff(np.append(lam, lam[0] + 2 * np.pi)), column_guess)
 
 
-def slice_grid(wind: xr.Dataset, periodic: bool) -> SliceGrid:
+def slice_grid(wind: xr.Dataset, periodic: bool, band: bool = False) -> SliceGrid:
     """Describe the grid of a canonical wind Dataset for the kernels.
+
+    A periodic band (all longitudes, part of the latitudes) goes to the
+    limited-area kernels with its first column repeated 360 degrees east:
+    parcels then wrap in longitude and stop (``left_domain``) at the open
+    latitude edges, with no rows invented beyond the data. A pole row the band
+    has is closed as on the globe (:func:`_close_poles`), so parcels cross it.
 
     Parameters
     ----------
     wind : xarray.Dataset
         Canonical wind Dataset.
     periodic : bool
-        True on a global grid.
+        True on a complete global grid.
+    band : bool
+        True on a periodic band.
 
     Returns
     -------
@@ -162,6 +171,8 @@ def slice_grid(wind: xr.Dataset, periodic: bool) -> SliceGrid:
     add_north = periodic and lat[-1] < 90.0 - 1e-9
     full_lat = np.concatenate([[-90.0] if add_south else [], lat, [90.0] if add_north else []])
     lon = wind["longitude"].values.astype(np.float64)
+    if band:
+        lon = np.append(lon, lon[0] + 360.0)
     log_levels = wind.attrs.get("level_type") == "pressure"
     if "level" in wind.dims:
         raw = wind["level"].values.astype(np.float64)
@@ -177,7 +188,7 @@ def slice_grid(wind: xr.Dataset, periodic: bool) -> SliceGrid:
         empty, none = np.zeros(0), np.zeros(0, np.int64)
         tables = (empty, empty, empty, none, empty, empty, empty, none)
     return SliceGrid(full_lat, _uniform(full_lat), lon, _uniform(lon), periodic, levels,
-                     log_levels, order, add_south, add_north, tables)
+                     log_levels, order, add_south, add_north, tables, band)
 
 
 def _close_poles(out: np.ndarray, grid: SliceGrid, input_lat: np.ndarray) -> None:
@@ -198,7 +209,7 @@ def _close_poles(out: np.ndarray, grid: SliceGrid, input_lat: np.ndarray) -> Non
     estimated by the mean of the Cartesian vectors round the nearest ring
     (common practice for pole points of latitude-longitude grids).
     """
-    if not grid.periodic:
+    if not (grid.periodic or grid.wrap_column):
         return
     if grid.add_south or abs(input_lat[0] + 90.0) <= 1e-9:
         ring = 1 if grid.add_south else 0
@@ -265,8 +276,11 @@ class SliceWindow:
         if self.wind_components:
             cartesian_slice(part["u"], part["v"], *self.trig, order, row0, out)
             first = 3
+        columns = slice(0, self.grid.longitude.size - int(self.grid.wrap_column))
         for c, name in enumerate(self.names, start=first):
-            out[:, rows, :, c] = part[name][order]
+            out[:, rows, columns, c] = part[name][order]
+        if self.grid.wrap_column:
+            out[:, :, -1] = out[:, :, 0]
         _close_poles(out, self.grid, self.input_lat)
 
     @property
