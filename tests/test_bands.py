@@ -122,3 +122,34 @@ def test_southward_wind_leaves_a_tropical_band_at_its_edge(tmp_path):
         crossing = np.radians(phi0 + 30.0) * EARTH_RADIUS / V
         last = (np.isfinite(lat[i]).sum() - 1) * record  # the last recorded time
         assert crossing - record - step <= last <= crossing + step
+
+
+def test_constant_omega_on_a_band_moves_parcels_by_omega_times_time(tmp_path):
+    # Constant vertical velocity omega in pressure coordinates: dp/dt = omega, so a parcel's
+    # pressure after t is p0 + omega t (analytic), on a band as on the globe.
+    omega = 0.1  # Pa s-1, descent
+    lat = np.arange(-40.0, 40.1, 1.0)
+    lon = np.arange(0.0, 360.0, 1.0)
+    levels = np.array([500.0, 700.0, 850.0, 1000.0])
+    t = np.datetime64("2026-03-01") + np.arange(5) * np.timedelta64(6, "h")
+    shape = (t.size, levels.size, lat.size, lon.size)
+    dims = ("time", "level", "latitude", "longitude")
+    ds = xr.Dataset(
+        {"u": (dims, np.full(shape, 10.0), {"units": "m s-1", "standard_name": "eastward_wind"}),
+         "v": (dims, np.zeros(shape), {"units": "m s-1", "standard_name": "northward_wind"}),
+         "omega": (dims, np.full(shape, omega), {"units": "Pa s-1", "standard_name":
+                                                 "lagrangian_tendency_of_air_pressure"})},
+        coords={"time": t,
+                "level": ("level", levels, {"units": "hPa", "standard_name": "air_pressure",
+                                            "positive": "down"}),
+                "latitude": ("latitude", lat, {"units": "degrees_north", "standard_name": "latitude"}),
+                "longitude": ("longitude", lon, {"units": "degrees_east",
+                                                 "standard_name": "longitude"})})
+    ds.to_netcdf(tmp_path / "omega.nc")
+    wind = fp.open_wind(str(tmp_path / "omega.nc"))
+    assert fp.describe_grid(wind).kind == "band"
+    hours = 18.0
+    tracks = fp.advect(wind, [(0.0, 350.0, 600.0), (30.0, 10.0, 700.0)], hours=hours,
+                       vertical="omega")
+    expected = np.array([600.0, 700.0]) + omega * hours * 3600.0 / 100.0  # hPa
+    np.testing.assert_allclose(tracks["air_pressure"].values[:, -1], expected, rtol=1e-6)
