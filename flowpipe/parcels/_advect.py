@@ -547,10 +547,10 @@ def _steps(pos, lev, status, t0, sign, schedule, clock, winds, grid, vertical_sc
 
 
 #: What the trajectory identifiers are, for the file's readers.
-ID_COMMENT = ("flowpipe trajectory identifier: 'fp' and 16 hexadecimal digits of a BLAKE2b hash of "
-              "the input files, the start position, level and time, the direction and length of "
-              "the integration and the start's place in the list, so ids from different inputs "
-              "or starts do not collide when files are combined")
+ID_COMMENT = ("flowpipe trajectory identifier: 'fp', 12 hexadecimal digits of a BLAKE2b hash of "
+              "the input files, every start (position, level, time), the direction and the length "
+              "of the integration, then the start's number in the list; ids from different "
+              "inputs or starts do not collide when files are combined")
 
 
 def wrap_longitude(lon: np.ndarray) -> np.ndarray:
@@ -558,16 +558,21 @@ def wrap_longitude(lon: np.ndarray) -> np.ndarray:
     return np.mod(np.asarray(lon, dtype=np.float64) + 180.0, 360.0) - 180.0
 
 
-def trajectory_ids(wind: xr.Dataset, clock: _Clock, start: np.ndarray, lat0: np.ndarray,
-                   lon0: np.ndarray, level0: np.ndarray, method: dict) -> np.ndarray:
-    """Identifiers unique to the input, the start and the integration (see :data:`ID_COMMENT`)."""
-    common = "|".join([str(wind.attrs.get("input_files", "")), method["direction"],
-                       f"{method['trajectory_hours']:.6f}"])
-    found = []
-    for i, (t, la, lo, le) in enumerate(zip(start, lat0, lon0, level0, strict=True)):
-        text = f"{common}|{clock.text(float(t))}|{la:.6f}|{lo:.6f}|{le:.6f}|{i}"
-        found.append("fp" + hashlib.blake2b(text.encode(), digest_size=8).hexdigest())
-    return np.array(found, dtype="U18")
+def trajectory_ids(wind: xr.Dataset, start: np.ndarray, lat0: np.ndarray, lon0: np.ndarray,
+                   level0: np.ndarray, method: dict) -> np.ndarray:
+    """Identifiers unique to the input, the starts and the integration (see :data:`ID_COMMENT`).
+
+    One hash of everything that defines the run, then each start's number:
+    cheap for a million parcels, and the same again for the same job.
+    """
+    digest = hashlib.blake2b(digest_size=6)
+    digest.update("|".join([str(wind.attrs.get("input_files", "")), method["direction"],
+                            f"{method['trajectory_hours']:.6f}"]).encode())
+    for values in (start, lat0, lon0, level0):
+        digest.update(np.ascontiguousarray(values, dtype=np.float64).tobytes())
+    width = len(str(max(start.size, 1)))
+    numbers = np.char.zfill(np.arange(1, start.size + 1).astype(str), width)
+    return np.char.add(f"fp{digest.hexdigest()}-", numbers)
 
 
 def _trajectory_dataset(wind, clock, start, sign, offsets, lat, lon, out_level, out_sample,
@@ -581,7 +586,7 @@ def _trajectory_dataset(wind, clock, start, sign, offsets, lat, lon, out_level, 
         times[stopped] = np.datetime64("NaT")
     else:
         times[stopped] = None
-    ids = trajectory_ids(wind, clock, start, lat[:, 0], lon[:, 0], out_level[:, 0], method)
+    ids = trajectory_ids(wind, start, lat[:, 0], lon[:, 0], out_level[:, 0], method)
     coords = {
         "trajectory_id": ("trajectory", ids,
                        {"cf_role": "trajectory_id", "long_name": "trajectory identifier",
