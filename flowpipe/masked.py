@@ -1,13 +1,24 @@
-"""Masked complete global levels: harmonic fill of the missing points (work in progress).
+"""Masked complete global levels: harmonic fill of the missing points.
 
-Not yet wired into :func:`flowpipe.decompose.decompose`; see the branch report.
+A complete global grid whose wind is missing at some points (below the
+ground, say) is decomposed by spherical harmonics after the missing points are
+filled by discrete Laplace interpolation (:func:`harmonic_fill`); every output
+is masked again at those points (:func:`masked_helmholtz_slab`).
+:func:`flowpipe.decompose.decompose` takes this route with ``method="auto"``.
 """
 
 from __future__ import annotations
 
+from collections.abc import Callable
+
 import numpy as np
 import scipy.sparse as sp
 import scipy.sparse.linalg as spla
+
+#: How the route treats missing points, for the output attributes.
+MASKED_POINTS = ("missing points of u or v (if any) filled by harmonic (Laplace) "
+                 "interpolation before the transforms, then set missing again in every output; "
+                 "the reconstruction error is taken over the valid points only")
 
 
 def harmonic_fill(u: np.ndarray, v: np.ndarray, latitude: np.ndarray
@@ -71,3 +82,56 @@ def harmonic_fill(u: np.ndarray, v: np.ndarray, latitude: np.ndarray
     uf.ravel()[idx] = solution[:, 0]
     vf.ravel()[idx] = solution[:, 1]
     return uf, vf, mask
+
+
+def masked_helmholtz_slab(
+    u: np.ndarray, v: np.ndarray, *, spectral_kernel: Callable[..., tuple], latitude: np.ndarray,
+    weights: np.ndarray, **kwargs,
+) -> tuple[np.ndarray, ...]:
+    """Helmholtz decomposition of one global slab with missing points.
+
+    Parameters
+    ----------
+    u, v : numpy.ndarray
+        Eastward and northward wind, shape ``(nlat, nlon)``, latitudes
+        ascending; NaN where missing.
+    spectral_kernel : callable
+        The spectral kernel of a complete slab,
+        :func:`flowpipe.decompose.helmholtz_slab` (passed in, so that this
+        lower module does not import the stage).
+    latitude : numpy.ndarray
+        Row latitudes in degrees (ascending).
+    weights : numpy.ndarray
+        Quadrature weight of each row, for the error norms.
+    **kwargs
+        Further arguments of ``spectral_kernel`` (geometry, truncation, radius,
+        nthreads).
+
+    Returns
+    -------
+    tuple of numpy.ndarray
+        As ``spectral_kernel``: the eight fields, NaN
+        where ``u`` or ``v`` is missing, then the area-weighted sums of the
+        squared reconstruction residual and of ``|(u, v)|**2`` over the valid
+        points only. Without missing points the result is that of
+        ``spectral_kernel`` itself.
+
+    References
+    ----------
+    Laplace interpolation of the missing points (:func:`harmonic_fill`;
+    Press et al. 2007, "Numerical Recipes", 3rd ed., section 3.8), then the
+    spectral decomposition of Swarztrauber (1981), SIAM J. Numer. Anal. 18,
+    191-210.
+    """
+    u = np.asarray(u, dtype=np.float64)
+    v = np.asarray(v, dtype=np.float64)
+    uf, vf, mask = harmonic_fill(u, v, latitude)
+    out = spectral_kernel(uf, vf, weights=weights, **kwargs)
+    if not mask.any():
+        return out
+    fields = tuple(np.where(mask, np.nan, f) for f in out[:8])
+    valid = ~mask
+    residual = np.where(valid, (fields[4] + fields[6] - u) ** 2 + (fields[5] + fields[7] - v) ** 2,
+                        0.0)
+    norm = np.where(valid, u**2 + v**2, 0.0)
+    return fields + (weights @ residual.sum(axis=1), weights @ norm.sum(axis=1))
