@@ -101,3 +101,24 @@ def test_unmasked_level_through_the_masked_kernel_equals_the_spectral_kernel():
                                     **options)
     for a, b in zip(plain, through, strict=True):
         assert np.max(np.abs(a - b)) <= 1e-9 * max(np.max(np.abs(a)), 1e-300)
+
+
+def test_lazy_masked_levels_compute_nothing_while_building():
+    # The missing points are found inside each slab task: building the result must not run
+    # the dask graph (a scheduler that raises, per dask's documented `scheduler=` callable).
+    import dask
+
+    lat, lon, phi, lam, u, v, exact, mask = _case()
+    uu = np.stack([np.where(mask, np.nan, u), u])
+    vv = np.stack([np.where(mask, np.nan, v), v])
+    wind = wind_dataset(uu, vv, lat, lon, levels=np.array([850.0, 500.0])).chunk({"level": 1})
+
+    def refuse(*args, **kwargs):
+        raise AssertionError("computed while building")
+
+    with dask.config.set(scheduler=refuse):
+        parts = fp.decompose(wind)
+    assert parts["streamfunction"].data.numblocks == (2, 1, 1)
+    computed = parts.compute()
+    assert np.isnan(computed["streamfunction"].values[0][mask]).all()
+    assert np.isfinite(computed["streamfunction"].values[1]).all()
