@@ -22,6 +22,7 @@ from .annotate import figure, global_attrs, variable_attrs
 from .constants import EARTH_RADIUS
 from .errors import InputError, UsageError
 from .grid import GridInfo, describe_grid
+from .masked import MASKED_POINTS, masked_helmholtz_slab
 
 METHODS = ("auto", "spectral", "regional")
 #: The contract variables of the spectral decomposition, in kernel output order.
@@ -57,7 +58,12 @@ def decompose(
     method : {"auto", "spectral", "regional"}
         ``"spectral"``: spherical harmonics, for complete global grids
         without missing values. ``"regional"``: the limited-area solvers of
-        :mod:`flowpipe.regional`. ``"auto"``: spectral when possible.
+        :mod:`flowpipe.regional`. ``"auto"``: spectral on complete global
+        grids, also where u or v has missing points (below the ground, say):
+        those are filled by harmonic (Laplace) interpolation before the
+        transforms and set missing again in every output, and the
+        reconstruction error counts the valid points only (attribute
+        ``masked_points``; :mod:`flowpipe.masked`); regional otherwise.
     truncation : int, optional
         Triangular truncation ``N`` of the spectral method; the default is
         the largest the grid resolves (:func:`flowpipe.spectral.max_truncation`).
@@ -90,15 +96,18 @@ def decompose(
     ----------
     Helmholtz decomposition with vector spherical harmonics: Swarztrauber
     (1981), "The approximation of vector functions and their derivatives on
-    the sphere", SIAM J. Numer. Anal. 18, 191-210.
+    the sphere", SIAM J. Numer. Anal. 18, 191-210. Missing points of a
+    global grid: Laplace interpolation (Press et al. 2007, "Numerical
+    Recipes", 3rd ed., section 3.8).
     """
     if method not in METHODS:
         raise UsageError(f"method {method!r} is not one of {', '.join(METHODS)}")
     wind, descending = canonical_order(select_levels(wind, levels))
     grid = describe_grid(wind)
-    missing = missing_points(wind) if grid.spectral and method != "regional" else None
+    masked = method == "auto" and grid.spectral  # missing points are filled, found per slab
+    missing = missing_points(wind) if method == "spectral" and grid.spectral else None
     if method == "auto":
-        method = "spectral" if grid.spectral and not missing else "regional"
+        method = "spectral" if grid.spectral else "regional"
     if method == "regional":
         if truncation is not None:
             raise UsageError("truncation applies to the spectral method only; the grid is "
@@ -111,7 +120,7 @@ def decompose(
         if regional_options:
             raise UsageError(f"options {', '.join(sorted(regional_options))} apply to the "
                              "regional method only; drop them or use --method regional")
-        parts = _decompose_spectral(wind, grid, truncation, missing)
+        parts = _decompose_spectral(wind, grid, truncation, 0 if masked else missing, masked)
     return parts.isel(latitude=slice(None, None, -1)) if descending else parts
 
 
@@ -381,12 +390,18 @@ def helmholtz_slab(
 
 
 def _decompose_spectral(
-    wind: xr.Dataset, grid: GridInfo, truncation: int | None, missing: int | None
+    wind: xr.Dataset, grid: GridInfo, truncation: int | None, missing: int | None,
+    masked: bool = False,
 ) -> xr.Dataset:
     geometry, n = spectral_plan(wind, grid, truncation, missing)
+    kernel, extra = helmholtz_slab, {}
+    if masked:
+        kernel = masked_helmholtz_slab
+        extra = {"spectral_kernel": helmholtz_slab, "latitude": grid.latitude}
     outputs = apply_slab_kernel(
-        helmholtz_slab, wind, [HORIZONTAL] * len(SPECTRAL_VARIABLES) + [[], []],
+        kernel, wind, [HORIZONTAL] * len(SPECTRAL_VARIABLES) + [[], []],
         geometry=geometry, truncation=n, radius=EARTH_RADIUS, weights=grid.ring_weights(),
+        **extra,
     )
     fields = dict(zip(SPECTRAL_VARIABLES, outputs[:-2], strict=True))
     residual, norm = outputs[-2:]
@@ -410,6 +425,8 @@ def _decompose_spectral(
         pole_rows="each pole row replaced by the least-squares fit of a single vector"
         if geometry == "CC" else "none (no rows on the poles)",
     )
+    if masked:
+        parts.attrs["masked_points"] = MASKED_POINTS
     parts.attrs["reconstruction_error"] = figure(np.sqrt(residual.sum() / norm.sum()))
     return parts
 

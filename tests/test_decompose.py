@@ -194,9 +194,11 @@ def test_cli_bad_options_exit_2_with_one_line(tmp_path, capsys, extra, needle):
     assert not (tmp_path / "x.nc").exists()
 
 
-def test_auto_dispatches_gappy_and_limited_area_grids_to_the_regional_method(monkeypatch):
+def test_auto_sends_limited_area_grids_to_the_regional_method_and_gappy_global_ones_to_spectral(monkeypatch):
     # The contract (shared/DESIGN.md, decomposition): spherical harmonics on complete global
     # grids, the limited-area solver otherwise; the solver is told whether the grid wraps.
+    # A complete global grid with missing points stays spectral (Laplace fill, flowpipe.masked);
+    # the regional solver takes it when asked for.
     import flowpipe.regional
 
     calls = []
@@ -209,7 +211,9 @@ def test_auto_dispatches_gappy_and_limited_area_grids_to_the_regional_method(mon
     wind, _ = _grid_wind("GL", 32, 64, "case6")
     gappy = wind.copy(deep=True)
     gappy["v"][3, 4] = np.nan
-    assert fp.decompose(gappy, scheme="dirichlet").attrs["method"] == "regional"
+    assert fp.decompose(gappy).attrs["method"] == "spectral"
+    assert "masked_points" in fp.decompose(gappy).attrs
+    assert fp.decompose(gappy, method="regional", scheme="dirichlet").attrs["method"] == "regional"
     assert fp.decompose(wind.isel(longitude=slice(0, 30)), tolerance=1e-3).attrs["method"] == "regional"
     assert fp.decompose(wind, method="regional").attrs["method"] == "regional"
     assert fp.decompose(wind).attrs["method"] == "spectral"

@@ -1,0 +1,121 @@
+"""Cost of the spectral route for masked global levels against the transform floor.
+
+On global equiangular levels with pole rows (1, 0.5 and 0.25 degree) carrying a wind
+whose kinetic-energy spectrum falls as l^-3 (random spherical-harmonic coefficients of
+psi and chi, synthesised with ducc0), masked by an orography-like mask (a wavy
+Antarctica south of about 80S and several blobs, 5-10 % of the points), it times per
+level, alternating the sides, median of 3:
+
+* the floor: the bare ducc0 transforms a decomposition needs (one spin-1 analysis,
+  two spin-1 and four scalar syntheses) on prepared float64 arrays of the same grid;
+* ``flowpipe.decompose`` (method ``auto``: harmonic fill, transforms, masking again),
+  in-memory Dataset to in-memory Dataset;
+
+and prints their ratio (target <= 10) and the reconstruction error over the valid
+points. The regional route (``method="regional"``) is timed once at 1 degree.
+
+Run: ``.venv/bin/python benchmarks/bench_masked.py``
+"""
+
+from __future__ import annotations
+
+import os
+import sys
+import time
+from functools import partial
+from pathlib import Path
+
+import ducc0
+import numpy as np
+
+sys.path.insert(0, str(Path(__file__).resolve().parents[1] / "tests"))
+from _williamson import A, mesh, wind_dataset  # noqa: E402
+
+import flowpipe as fp  # noqa: E402
+from flowpipe import spectral  # noqa: E402
+
+REPEATS = 3
+NTHREADS = len(os.sched_getaffinity(0))
+
+
+def random_wind(nlat: int, nlon: int, seed: int = 1) -> tuple[np.ndarray, np.ndarray]:
+    """u, v from psi, chi with |c_lm| ~ l^-3 (so E(l) ~ l^-3), chi 0.3 times psi."""
+    n = spectral.max_truncation("CC", nlat, nlon)
+    rng = np.random.default_rng(seed)
+    ell = spectral.degrees(n).astype(float)
+    amp = np.where(ell > 0, np.maximum(ell, 1.0) ** -3.0, 0.0) * 5e7
+    def coeffs():
+        c = (rng.standard_normal(ell.size) + 1j * rng.standard_normal(ell.size)) * amp
+        c[spectral.orders(n) == 0] = c[spectral.orders(n) == 0].real
+        return c
+    psi, chi = coeffs(), 0.3 * coeffs()
+    grid = {"geometry": "CC", "nlat": nlat, "nlon": nlon, "truncation": n, "radius": A}
+    east, north = spectral.gradient_synthesis(psi, **grid)
+    u_div, v_div = spectral.gradient_synthesis(chi, **grid)
+    return -north + u_div, east + v_div
+
+
+def orography_mask(phi: np.ndarray, lam: np.ndarray) -> np.ndarray:
+    """Wavy Antarctica (south of 80S +- 2 degrees) and blobs of 6-12 degrees radius."""
+    mask = np.degrees(phi) < -80.0 + 2.0 * np.sin(3 * lam)
+    for lat0, lon0, radius in ((35, 90, 12), (40, 255, 10), (-20, 292, 7), (5, 30, 6),
+                               (62, 300, 9), (-25, 135, 12)):
+        p0, l0 = np.radians(lat0), np.radians(lon0)
+        cosd = np.sin(phi) * np.sin(p0) + np.cos(phi) * np.cos(p0) * np.cos(lam - l0)
+        mask |= np.degrees(np.arccos(np.clip(cosd, -1.0, 1.0))) < radius
+    return mask
+
+
+def floor_transforms(spin_map: np.ndarray, nlat: int, nlon: int, lmax: int) -> None:
+    """The transforms alone: 1 spin-1 analysis, 2 spin-1 and 4 scalar syntheses."""
+    sht = ducc0.sht.experimental
+    eb = sht.analysis_2d(map=spin_map, spin=1, lmax=lmax, geometry="CC", nthreads=NTHREADS)
+    for k in (0, 1):
+        sht.synthesis_2d(alm=eb[k:k + 1], spin=1, lmax=lmax, geometry="CC", ntheta=nlat,
+                         nphi=nlon, mode="GRAD_ONLY", nthreads=NTHREADS)
+    for alm in (eb[0:1], eb[1:2], eb[0:1], eb[1:2]):
+        sht.synthesis_2d(alm=alm, spin=0, lmax=lmax, geometry="CC", ntheta=nlat, nphi=nlon,
+                         nthreads=NTHREADS)
+
+
+def timed(fn) -> tuple[float, object]:
+    start = time.perf_counter()
+    out = fn()
+    return time.perf_counter() - start, out
+
+
+def main(resolutions=(1.0, 0.5, 0.25)) -> None:
+    print(f"threads for ducc0: {NTHREADS}; per level, median of {REPEATS}, sides alternated")
+    for step in resolutions:
+        nlat, nlon = int(round(180 / step)) + 1, int(round(360 / step))
+        lat = np.linspace(-90.0, 90.0, nlat)
+        lon, phi, lam = mesh(lat, nlon)
+        u, v = random_wind(nlat, nlon)
+        mask = orography_mask(phi, lam)
+        wind = wind_dataset(np.where(mask, np.nan, u), np.where(mask, np.nan, v), lat, lon)
+        spin_map = np.stack([-v[::-1], u[::-1]]).copy()
+        lmax = spectral.max_truncation("CC", nlat, nlon)
+        floors, routes, parts = [], [], None
+        for _ in range(REPEATS):
+            floors.append(timed(partial(floor_transforms, spin_map, nlat, nlon, lmax))[0])
+            t, parts = timed(partial(fp.decompose, wind))
+            routes.append(t)
+        f, r = float(np.median(floors)), float(np.median(routes))
+        du = parts["u_rotational"].values + parts["u_divergent"].values - u
+        dv = parts["v_rotational"].values + parts["v_divergent"].values - v
+        worst = np.nanmax(np.hypot(du, dv)[~mask]) / np.max(np.hypot(u, v)[~mask])
+        print(f"{step:g} deg {nlat}x{nlon}, masked {mask.mean():.1%} of points: "
+              f"floor {f * 1e3:.1f} ms, masked spectral {r * 1e3:.1f} ms, ratio {r / f:.1f}x; "
+              f"reconstruction error (valid points) 2-norm "
+              f"{float(parts.attrs['reconstruction_error']):.2e}, max {worst:.2e}")
+        if step == 1.0:
+            t, reg = timed(partial(fp.decompose, wind, method="regional"))
+            du = reg["u_rotational"].values + reg["u_divergent"].values - u
+            dv = reg["v_rotational"].values + reg["v_divergent"].values - v
+            worst = np.nanmax(np.hypot(du, dv)[~mask]) / np.max(np.hypot(u, v)[~mask])
+            print(f"  regional route once at 1 deg: {t * 1e3:.1f} ms "
+                  f"({t / f:.1f}x the floor), reconstruction max error {worst:.2e}")
+
+
+if __name__ == "__main__":
+    main()
