@@ -59,11 +59,13 @@ def decompose(
         ``"spectral"``: spherical harmonics, for complete global grids
         without missing values. ``"regional"``: the limited-area solvers of
         :mod:`flowpipe.regional`. ``"auto"``: spectral on complete global
-        grids, also where u or v has missing points (below the ground, say):
-        those are filled by harmonic (Laplace) interpolation before the
-        transforms and set missing again in every output, and the
-        reconstruction error counts the valid points only (attribute
-        ``masked_points``; :mod:`flowpipe.masked`); regional otherwise.
+        grids without missing values, regional otherwise. Asked for on a
+        complete global grid whose u or v has missing points (below the
+        ground, say), ``"spectral"`` fills those by harmonic (Laplace)
+        interpolation before the transforms and sets them missing again in
+        every output; the reconstruction error counts the valid points only
+        and is not at rounding level next to the mask (attribute
+        ``masked_points``; :mod:`flowpipe.masked`).
     truncation : int, optional
         Triangular truncation ``N`` of the spectral method; the default is
         the largest the grid resolves (:func:`flowpipe.spectral.max_truncation`).
@@ -104,10 +106,11 @@ def decompose(
         raise UsageError(f"method {method!r} is not one of {', '.join(METHODS)}")
     wind, descending = canonical_order(select_levels(wind, levels))
     grid = describe_grid(wind)
-    masked = method == "auto" and grid.spectral  # missing points are filled, found per slab
-    missing = missing_points(wind) if method == "spectral" and grid.spectral else None
+    # asked for spectral: missing points are filled, found inside each slab task
+    masked = method == "spectral" and grid.spectral
+    missing = missing_points(wind) if method == "auto" and grid.spectral else None
     if method == "auto":
-        method = "spectral" if grid.spectral else "regional"
+        method = "spectral" if grid.spectral and not missing else "regional"
     if method == "regional":
         if truncation is not None:
             raise UsageError("truncation applies to the spectral method only; the grid is "

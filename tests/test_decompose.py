@@ -133,11 +133,13 @@ def test_bad_inputs_name_the_problem():
     regional = wind.isel(longitude=slice(0, 40))
     with pytest.raises(fp.InputError, match="--method regional"):
         fp.decompose(regional, method="spectral")
-    # Missing values: how many, and where.
+    # Missing values under method="spectral": filled for the transforms, then missing again
+    # in every output (flowpipe.masked); auto keeps them for the regional solver.
     gappy = wind.copy(deep=True)
     gappy["u"][10:12, 5:7] = np.nan
-    with pytest.raises(fp.InputError, match=r"4 missing points.*latitudes"):
-        fp.decompose(gappy, method="spectral")
+    filled = fp.decompose(gappy, method="spectral")
+    assert "masked_points" in filled.attrs
+    assert int(filled["streamfunction"].isnull().sum()) == 4
     # Too coarse for the truncation: the largest allowed N (GL limit nlat - 1 of the
     # ducc0 analysis_2d documentation, and (nlon - 1) // 2 = 31).
     with pytest.raises(fp.UsageError, match="largest allowed N is 31"):
@@ -194,11 +196,9 @@ def test_cli_bad_options_exit_2_with_one_line(tmp_path, capsys, extra, needle):
     assert not (tmp_path / "x.nc").exists()
 
 
-def test_auto_sends_limited_area_grids_to_the_regional_method_and_gappy_global_ones_to_spectral(monkeypatch):
+def test_auto_dispatches_gappy_and_limited_area_grids_to_the_regional_method(monkeypatch):
     # The contract (shared/DESIGN.md, decomposition): spherical harmonics on complete global
     # grids, the limited-area solver otherwise; the solver is told whether the grid wraps.
-    # A complete global grid with missing points stays spectral (Laplace fill, flowpipe.masked);
-    # the regional solver takes it when asked for.
     import flowpipe.regional
 
     calls = []
@@ -211,9 +211,7 @@ def test_auto_sends_limited_area_grids_to_the_regional_method_and_gappy_global_o
     wind, _ = _grid_wind("GL", 32, 64, "case6")
     gappy = wind.copy(deep=True)
     gappy["v"][3, 4] = np.nan
-    assert fp.decompose(gappy).attrs["method"] == "spectral"
-    assert "masked_points" in fp.decompose(gappy).attrs
-    assert fp.decompose(gappy, method="regional", scheme="dirichlet").attrs["method"] == "regional"
+    assert fp.decompose(gappy, scheme="dirichlet").attrs["method"] == "regional"
     assert fp.decompose(wind.isel(longitude=slice(0, 30)), tolerance=1e-3).attrs["method"] == "regional"
     assert fp.decompose(wind, method="regional").attrs["method"] == "regional"
     assert fp.decompose(wind).attrs["method"] == "spectral"
