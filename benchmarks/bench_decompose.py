@@ -30,13 +30,13 @@ from pathlib import Path
 
 import dask
 import dask.array
-import ducc0
 import numpy as np
 import psutil
 import scipy.sparse
 import scipy.sparse.linalg
 
 sys.path.insert(0, str(Path(__file__).resolve().parents[1] / "tests"))
+from _transforms import floor_transforms  # noqa: E402
 from _williamson import A, case6, mesh, relative_max_error, wind_dataset  # noqa: E402
 
 import flowpipe as fp  # noqa: E402
@@ -63,19 +63,6 @@ def best_of(fn, repeats: int = REPEATS) -> tuple[float, object]:
         result = fn()
         best = min(best, time.perf_counter() - start)
     return best, result
-
-
-def floor_transforms(spin_map: np.ndarray, nthreads: int) -> None:
-    """The transforms alone: 1 spin-1 analysis, 2 spin-1 and 4 scalar syntheses."""
-    sht = ducc0.sht.experimental
-    lmax = NLAT - 2
-    eb = sht.analysis_2d(map=spin_map, spin=1, lmax=lmax, geometry="CC", nthreads=nthreads)
-    for k in (0, 1):
-        sht.synthesis_2d(alm=eb[k:k + 1], spin=1, lmax=lmax, geometry="CC", ntheta=NLAT,
-                         nphi=NLON, mode="GRAD_ONLY", nthreads=nthreads)
-    for alm in (eb[0:1], eb[1:2], eb[0:1], eb[1:2]):
-        sht.synthesis_2d(alm=alm, spin=0, lmax=lmax, geometry="CC", ntheta=NLAT, nphi=NLON,
-                         nthreads=nthreads)
 
 
 def finite_difference(u: np.ndarray, v: np.ndarray, lat: np.ndarray) -> tuple[np.ndarray, ...]:
@@ -133,7 +120,7 @@ def single_level() -> None:
     cores = len(os.sched_getaffinity(0))
     spin_map = np.ascontiguousarray(np.stack([-ref["v"][::-1], ref["u"][::-1]]))
 
-    t_floor, _ = best_of(lambda: floor_transforms(spin_map, cores))
+    t_floor, _ = best_of(lambda: floor_transforms(spin_map, NLAT, NLON, NLAT - 2, cores))
     t_flow, parts = best_of(lambda: fp.decompose(wind, method="spectral"))
     t_fd, (psi_fd, chi_fd) = best_of(lambda: finite_difference(ref["u"], ref["v"], lat), 1)
 

@@ -25,10 +25,10 @@ import time
 from functools import partial
 from pathlib import Path
 
-import ducc0
 import numpy as np
 
 sys.path.insert(0, str(Path(__file__).resolve().parents[1] / "tests"))
+from _transforms import floor_transforms  # noqa: E402
 from _williamson import A, mesh, wind_dataset  # noqa: E402
 
 import flowpipe as fp  # noqa: E402
@@ -66,18 +66,6 @@ def orography_mask(phi: np.ndarray, lam: np.ndarray) -> np.ndarray:
     return mask
 
 
-def floor_transforms(spin_map: np.ndarray, nlat: int, nlon: int, lmax: int) -> None:
-    """The transforms alone: 1 spin-1 analysis, 2 spin-1 and 4 scalar syntheses."""
-    sht = ducc0.sht.experimental
-    eb = sht.analysis_2d(map=spin_map, spin=1, lmax=lmax, geometry="CC", nthreads=NTHREADS)
-    for k in (0, 1):
-        sht.synthesis_2d(alm=eb[k:k + 1], spin=1, lmax=lmax, geometry="CC", ntheta=nlat,
-                         nphi=nlon, mode="GRAD_ONLY", nthreads=NTHREADS)
-    for alm in (eb[0:1], eb[1:2], eb[0:1], eb[1:2]):
-        sht.synthesis_2d(alm=alm, spin=0, lmax=lmax, geometry="CC", ntheta=nlat, nphi=nlon,
-                         nthreads=NTHREADS)
-
-
 def timed(fn) -> tuple[float, object]:
     start = time.perf_counter()
     out = fn()
@@ -97,7 +85,7 @@ def main(resolutions=(1.0, 0.5, 0.25)) -> None:
         lmax = spectral.max_truncation("CC", nlat, nlon)
         floors, routes, parts = [], [], None
         for _ in range(REPEATS):
-            floors.append(timed(partial(floor_transforms, spin_map, nlat, nlon, lmax))[0])
+            floors.append(timed(partial(floor_transforms, spin_map, nlat, nlon, lmax, NTHREADS))[0])
             t, parts = timed(partial(fp.decompose, wind, method="spectral"))
             routes.append(t)
         f, r = float(np.median(floors)), float(np.median(routes))
