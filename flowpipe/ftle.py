@@ -26,8 +26,19 @@ from . import annotate
 from .errors import InputError, UsageError
 from .grid import describe_grid
 from .parcels import _kernels as K
-from .parcels._advect import (COURANT, RECORD_MINUTES, SCHEMES, TIME_TOLERANCE, _check_wind,
-                              _clock, _courant_step, _iso, _name, _schedule, _steps)
+from .parcels._advect import (
+    COURANT,
+    RECORD_MINUTES,
+    SCHEMES,
+    TIME_TOLERANCE,
+    _check_wind,
+    _clock,
+    _courant_step,
+    _iso,
+    _name,
+    _schedule,
+    _steps,
+)
 from .parcels._geometry import unit_vectors
 from .parcels._window import SliceWindow, slice_grid
 

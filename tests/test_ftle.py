@@ -1,0 +1,109 @@
+"""FTLE checks against published analytic flows."""
+
+from __future__ import annotations
+
+import subprocess
+import sys
+
+import numpy as np
+import pandas as pd
+import pytest
+import xarray as xr
+
+import flowpipe as fp
+from flowpipe.ftle import ftle
+
+A = 6.371e6  # Earth radius of flowpipe.constants (m)
+
+
+def _write(path, lat, lon, u_fn, hours):
+    times = pd.date_range("2031-05-01", periods=hours + 1, freq="h")
+    la, lo = np.meshgrid(lat, lon, indexing="ij")
+    u = np.empty((times.size, lat.size, lon.size))
+    v = np.empty_like(u)
+    for k in range(times.size):
+        u[k], v[k] = u_fn(la, lo, 3600.0 * k)
+    ds = xr.Dataset(
+        {"u": (("time", "latitude", "longitude"), u, {"units": "m s-1",
+                                                     "standard_name": "eastward_wind"}),
+         "v": (("time", "latitude", "longitude"), v, {"units": "m s-1",
+                                                     "standard_name": "northward_wind"})},
+        coords={"time": times,
+                "latitude": ("latitude", lat, {"units": "degrees_north",
+                                               "standard_name": "latitude"}),
+                "longitude": ("longitude", lon, {"units": "degrees_east",
+                                                 "standard_name": "longitude"})},
+        attrs={"Conventions": "CF-1.11"})
+    ds.to_netcdf(path)
+    return path
+
+
+S = 2e-5  # strain rate (s-1)
+
+
+def _strain(la, lo, t):
+    return S * A * np.radians(lo), -S * A * np.radians(la)
+
+
+@pytest.fixture(scope="module")
+def strain_file(tmp_path_factory):
+    lat = np.linspace(-2.0, 2.0, 81)
+    lon = np.linspace(-2.0, 2.0, 81)
+    return _write(tmp_path_factory.mktemp("ftle") / "strain.nc", lat, lon, _strain, 24)
+
+
+@pytest.mark.parametrize("backward", [False, True])
+def test_linear_strain_exponent_is_strain_rate(strain_file, backward):
+    # The exponent of a linear hyperbolic flow u = s x, v = -s y is s
+    # (Shadden, Lekien & Marsden 2005, Physica D 212, section 2).
+    wind = fp.open_wind(strain_file)
+    out = ftle(wind, hours=12, backward=backward, spacing=0.05, region=(-0.3, 0.3, -0.3, 0.3))
+    value = out["ftle"].isel(time=0).values
+    assert np.all(np.isfinite(value))
+    assert np.max(np.abs(value / S - 1.0)) <= 0.01
+    assert out["ftle"].attrs["units"] == "s-1"
+
+
+def test_convergence_when_spacing_halves(strain_file):
+    # *common practice*: a resolved smooth flow gives a spacing-independent FTLE.
+    wind = fp.open_wind(strain_file)
+    kw = dict(hours=12, region=(-0.2, 0.2, -0.2, 0.2))
+    coarse = ftle(wind, spacing=0.1, **kw)["ftle"]
+    fine = ftle(wind, spacing=0.05, **kw)["ftle"]
+    common = fine.sel(latitude=coarse.latitude, longitude=coarse.longitude, method="nearest")
+    assert float(np.max(np.abs(common.values / coarse.values - 1.0))) < 0.01
+
+
+OMEGA = 2 * np.pi / (12 * 86400.0)  # Williamson et al. (1992) case 1: one turn in 12 days
+ALPHA = np.pi / 2 - 0.05
+
+
+def _solid_body(la, lo, t):
+    phi, lam = np.radians(la), np.radians(lo)
+    u0 = OMEGA * A
+    u = u0 * (np.cos(phi) * np.cos(ALPHA) + np.sin(phi) * np.cos(lam) * np.sin(ALPHA))
+    v = -u0 * np.sin(lam) * np.sin(ALPHA)
+    return u, v
+
+
+def test_solid_body_rotation_stretches_nothing(tmp_path):
+    # Williamson et al. (1992), J. Comput. Phys. 102, 211-224, test case 1:
+    # a rotation is an isometry, so the exponent vanishes.
+    lat = np.linspace(-90, 90, 91)
+    lon = np.arange(0, 360, 2.0)
+    wind = fp.open_wind(_write(tmp_path / "rot.nc", lat, lon, _solid_body, 48))
+    out = ftle(wind, hours=48, spacing=4.0, region=(-80, 80, 0, 356))
+    value = out["ftle"].values
+    assert np.all(np.isfinite(value))
+    assert np.max(np.abs(value)) <= 1e-3 * OMEGA
+
+
+@pytest.mark.parametrize("args", [
+    ["--region", "40,50,10,20"], ["--spacing", "0"], ["--spacing", "-1"], ["--hours", "0"]])
+def test_bad_input_exits_2_with_one_line(strain_file, tmp_path, args):
+    base = ["--hours", "6"] if "--hours" not in args else []
+    proc = subprocess.run([sys.executable, "-m", "flowpipe", "ftle", str(strain_file), "-o",
+                           str(tmp_path / "o.nc"), *base, *args], capture_output=True, text=True)
+    assert proc.returncode == 2
+    lines = proc.stderr.strip().splitlines()
+    assert len(lines) == 1 and lines[0].startswith("flowpipe: error:")
