@@ -102,7 +102,7 @@ def _tangent(at: np.ndarray, points: np.ndarray) -> np.ndarray:
     The logarithmic map of the sphere at ``at``: distances and bearings from
     ``at`` are kept, so it is exact to first order for the flow-map gradient.
     """
-    x, y, z = at[..., 0], at[..., 1], at[..., 2]
+    x, y = at[..., 0], at[..., 1]
     horiz = np.hypot(x, y)
     ex = np.stack([-y, x, np.zeros_like(x)], axis=-1) / np.maximum(horiz, 1e-300)[..., None]
     nx = np.cross(at, ex)
