@@ -113,7 +113,7 @@ def _tangent(at: np.ndarray, points: np.ndarray) -> np.ndarray:
     return np.stack([np.sum(v * ex, axis=-1) * scale, np.sum(v * nx, axis=-1) * scale], axis=-1)
 
 
-def ftle_from_positions(initial: np.ndarray, final: np.ndarray, seed: np.ndarray,
+def ftle_from_positions(initial: np.ndarray, final: np.ndarray,
                         seconds: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     """FTLE and dominant stretching direction from a stencil's initial and final positions.
 
@@ -123,8 +123,6 @@ def ftle_from_positions(initial: np.ndarray, final: np.ndarray, seed: np.ndarray
         Unit vectors of the stencil: the seed, then east, west, north, south
         neighbours (a missing neighbour replaced by the seed itself, which
         makes that difference one-sided).
-    seed : numpy.ndarray, shape (n,)
-        Unused placeholder for the seed indices (kept for symmetry of callers).
     seconds : numpy.ndarray, shape (n,)
         Integration time (s, > 0) of each seed.
 
@@ -337,7 +335,7 @@ def _one_start(initial, seed_level, stencil, t0, sign, schedule, clock, winds, g
         if elapsed <= 0 or (complete_only and abs(elapsed) < schedule.offsets[-1] - 1e-6):
             return
         idx = stencil[seeds]
-        value, direction = ftle_from_positions(initial[idx], positions[idx], seeds,
+        value, direction = ftle_from_positions(initial[idx], positions[idx],
                                                np.full(seeds.size, elapsed))
         out[seeds], dirs[seeds], used[seeds] = value, direction, elapsed
 
