@@ -107,3 +107,43 @@ def test_bad_input_exits_2_with_one_line(strain_file, tmp_path, args):
     assert proc.returncode == 2
     lines = proc.stderr.strip().splitlines()
     assert len(lines) == 1 and lines[0].startswith("flowpipe: error:")
+
+
+# Double gyre of Shadden, Lekien & Marsden (2005), Physica D 212, section 4.1:
+# psi = A sin(pi f(x, t)) sin(pi y), f = eps sin(w t) x^2 + (1 - 2 eps sin(w t)) x on
+# 0 <= x <= 2, 0 <= y <= 1, with A = 0.1, eps = 0.25, w = 2 pi / 10 (*from memory*).
+# Scaled to an equatorial box: one length unit = one degree (of longitude and of
+# latitude; cos(latitude) > 0.9998 in the box), one time unit = 2.4 h, so the forcing
+# period 10 is 24 h and the velocity unit is (A * 1 degree in radians) / 8640 s.
+GYRE_L = A * np.radians(1.0)  # m per length unit
+GYRE_TAU = 8640.0  # s per time unit
+GYRE_PERIOD_HOURS = 24.0
+
+
+def _double_gyre(la, lo, t):
+    x, y, s = lo, la, 0.25 * np.sin(2 * np.pi / 10 * t / GYRE_TAU)
+    f = s * x**2 + (1 - 2 * s) * x
+    dfdx = 2 * s * x + 1 - 2 * s
+    scale = GYRE_L / GYRE_TAU  # m s-1 per velocity unit
+    u = -np.pi * 0.1 * np.sin(np.pi * f) * np.cos(np.pi * y)
+    v = np.pi * 0.1 * np.cos(np.pi * f) * np.sin(np.pi * y) * dfdx
+    return scale * u, scale * v
+
+
+def test_double_gyre_ridge_oscillates_with_the_forcing(tmp_path):
+    # The forward-FTLE ridge between the gyres moves to both sides of the midline
+    # x = 1 over one forcing period and is back after one period (Shadden, Lekien &
+    # Marsden 2005, section 4.1, figures of the time-dependent double gyre).
+    lat = np.linspace(0.0, 1.0, 21)
+    lon = np.linspace(0.0, 2.0, 41)
+    hours, step = 15 * GYRE_TAU / 3600, 3.0  # T = 15 time units, as in that section
+    total = int(np.ceil(hours + GYRE_PERIOD_HOURS + step))
+    path = _write(tmp_path / "gyre.nc", lat, lon, _double_gyre, total)
+    out = ftle(fp.open_wind(path), hours=hours, spacing=0.02, every=step)
+    row = out["ftle"].sel(latitude=0.5, method="nearest").sel(longitude=slice(0.6, 1.4))
+    ridge = row["longitude"].values[np.nanargmax(row.values, axis=1)]
+    per = int(round(GYRE_PERIOD_HOURS / step))
+    assert out.sizes["time"] > per
+    cycle = ridge[:per]
+    assert cycle.min() < 1.0 - 0.03 and cycle.max() > 1.0 + 0.03, ridge
+    np.testing.assert_allclose(ridge[per], ridge[0], atol=0.021)
