@@ -147,3 +147,23 @@ def test_double_gyre_ridge_oscillates_with_the_forcing(tmp_path):
     cycle = ridge[:per]
     assert cycle.min() < 1.0 - 0.03 and cycle.max() > 1.0 + 0.03, ridge
     np.testing.assert_allclose(ridge[per], ridge[0], atol=0.021)
+
+
+def test_map_of_ftle_is_sequential_from_zero(tmp_path):
+    # An FTLE is a growth rate, >= 0 where the flow does not converge: a perceptually
+    # uniform sequential matplotlib colour map (matplotlib documentation, "Choosing
+    # Colormaps": viridis family) whose colour-bar lower limit is zero.
+    from pathlib import Path
+
+    from test_maps import SEQUENTIAL, _colour_bar
+
+    from flowpipe import maps
+
+    demo = Path(__file__).resolve().parents[1] / "sample_data" / "demo_global.nc"
+    out = ftle(fp.open_wind(demo), hours=6, spacing=6.0)
+    path = fp.write(out, tmp_path / "ftle.nc")
+    fig = maps.render(path, field="ftle", size=(640, 360))
+    bar = _colour_bar(fig)
+    assert bar.cmap.name in SEQUENTIAL
+    assert bar.vmin == 0.0
+    assert bar.vmax >= float(out["ftle"].max())
