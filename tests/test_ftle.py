@@ -167,3 +167,28 @@ def test_map_of_ftle_is_sequential_from_zero(tmp_path):
     assert bar.cmap.name in SEQUENTIAL
     assert bar.vmin == 0.0
     assert bar.vmax >= float(out["ftle"].max())
+
+
+def test_batch_config_ftle_table(tmp_path):
+    # A [ftle] table in a batch config writes {stem}_ftle.nc with the same field as
+    # the library call (netCDF-C, through xarray, reads it back); bad values are a
+    # config error naming the key.
+    import shutil
+    from pathlib import Path
+
+    from flowpipe.config import ConfigError
+    from flowpipe.pipeline import run
+
+    demo = Path(__file__).resolve().parents[1] / "sample_data" / "demo_global.nc"
+    shutil.copy(demo, tmp_path / "demo.nc")
+    config = tmp_path / "night.toml"
+    config.write_text('[input]\npaths = ["demo.nc"]\n\n[ftle]\nhours = 6\nspacing = 6.0\n'
+                      'region = [-30.0, 30.0, 0.0, 90.0]\n\n[output]\ndirectory = "out"\n')
+    run(config, quiet=True)
+    written = tmp_path / "out" / "demo_ftle.nc"
+    expected = ftle(fp.open_wind(demo), hours=6, spacing=6.0, region=(-30.0, 30.0, 0.0, 90.0))
+    with xr.open_dataset(written) as ds:
+        np.testing.assert_allclose(ds["ftle"].values, expected["ftle"].values, rtol=1e-12)
+    config.write_text(config.read_text().replace("spacing = 6.0", "spacing = -1"))
+    with pytest.raises(ConfigError, match="spacing"):
+        run(config, quiet=True)
