@@ -16,6 +16,7 @@ Public API (re-exports only)::
 from ._version import __version__
 from .decompose import decompose
 from .errors import FlowpipeError, InputError, UsageError
+from .ftle import ftle
 from .grid import GridInfo, describe_grid
 from .ingest import open_wind
 from .inspection import describe_wind
@@ -34,6 +35,7 @@ __all__ = [
     "decompose",
     "describe_grid",
     "describe_wind",
+    "ftle",
     "kinematics",
     "open_wind",
     "render",

@@ -58,6 +58,14 @@ SCHEMA: dict[str, dict[str, tuple[tuple[type, ...], Any]]] = {
         "sample": ((list,), []),
         "output": ((str,), "{stem}_trajectories.nc"),
     },
+    "ftle": {
+        "hours": (_NUMBER, REQUIRED),
+        "backward": ((bool,), False),
+        "spacing": (_NUMBER, None),
+        "region": ((list,), None),
+        "levels": ((list,), None),
+        "output": ((str,), "{stem}_ftle.nc"),
+    },
     "maps": {
         "fields": ((list,), ["streamfunction", "velocity_potential"]),
         "levels": ((list,), None),
@@ -141,6 +149,13 @@ VALUES: dict[str, dict[str, Allowed]] = {
         "sample": Allowed(lambda name: isinstance(name, str) and name != "",
                           "a variable name (a non-empty string)", each=True),
     },
+    "ftle": {
+        "hours": _POSITIVE,
+        "spacing": _POSITIVE,
+        "region": Allowed(lambda r: len(r) == 4 and all(map(_finite, r)),
+                          "[south, north, west, east] of finite numbers"),
+        "levels": Allowed(_finite, "a finite number", each=True, empty=False),
+    },
     "maps": {
         "levels": Allowed(_finite, "a finite number", each=True),
     },
@@ -148,10 +163,11 @@ VALUES: dict[str, dict[str, Allowed]] = {
         "workers": _AT_LEAST_1,
     },
 }
-STAGES = ("decompose", "advect", "maps")
+STAGES = ("decompose", "advect", "ftle", "maps")
 TEMPLATE_FIELDS = {
     "decompose": {"stem"},
     "advect": {"stem"},
+    "ftle": {"stem"},
     "maps": {"stem", "field", "level", "time"},
 }
 

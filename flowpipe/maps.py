@@ -406,6 +406,12 @@ def _contour_levels(low: float, high: float, signed: bool) -> np.ndarray:
     return ticks[max(first, 0): last + 1]
 
 
+def _from_zero(field: str, da: xr.DataArray) -> bool:
+    """Whether a field is a finite-time Lyapunov exponent (mapped on a scale from zero)."""
+    return field == "ftle" or (str(da.attrs.get("units", "")) == "s-1"
+                               and "lyapunov" in str(da.attrs.get("long_name", "")).lower())
+
+
 def _nice(value: float) -> float:
     """The largest of 1, 2 or 5 times a power of ten not above ``value`` (reference arrow)."""
     exponent = np.floor(np.log10(value))
@@ -462,7 +468,13 @@ def _field_map(fig: Figure, ds: xr.Dataset, label: str, field: str | None, level
 
     low, high = float(np.nanmin(values)), float(np.nanmax(values))
     names = (field, str(da.attrs.get("standard_name", "")))
-    signed = any(n in SIGNED for n in names) or low < 0 < high
+    from_zero = _from_zero(field, da)
+    if from_zero:
+        # growth rates: a sequential scale from zero (a rare negative exponent of a
+        # converging flow is drawn in the lowest band)
+        values = np.maximum(values, 0.0)
+        low = 0.0
+    signed = not from_zero and (any(n in SIGNED for n in names) or low < 0 < high)
     levels = _contour_levels(low, high, signed)
     filled, lon_c = values, lon
     if _lon_span(lon)[1] + step >= WRAP_SPAN:

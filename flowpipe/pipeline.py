@@ -257,6 +257,21 @@ class Runner:
         self._produce("advect", result, out, depends, digest, make)
         return out
 
+    def ftle(self, unit: Unit, result: UnitResult) -> Path:
+        from .ftle import ftle
+        from .store import write
+
+        cfg = self.config.section("ftle")
+        out = render_template(cfg["output"], self.out, stem=unit.stem)
+        digest = bookkeeping.section_hash(self.config.section("input"), cfg)
+
+        def make(path: Path) -> None:
+            write(ftle(self._wind(unit), hours=cfg["hours"], backward=cfg["backward"],
+                       spacing=cfg["spacing"], region=cfg["region"], levels=cfg["levels"]), path)
+
+        self._produce("ftle", result, out, self._inputs_of(unit), digest, make)
+        return out
+
     def maps(self, unit: Unit, result: UnitResult, sources: dict[str, Path]) -> None:
         import xarray as xr
 

@@ -162,6 +162,7 @@ def outputs(tmp_path_factory) -> dict[str, Path]:
         "kinematics": (fp.kinematics(wind.isel(time=slice(0, 1))), False),
         "advect": (fp.advect(fp.open_wind(GLOBAL), [(52.0, 4.0, 850.0), (-40.0, 300.0, 500.0)],
                              hours=6, backward=True), False),
+        "ftle": (fp.ftle(fp.open_wind(GLOBAL), hours=6, spacing=4.0), False),
     }
     return {kind: fp.write(ds, directory / f"{kind}.nc", float32=single)
             for kind, (ds, single) in kinds.items()}
@@ -174,7 +175,7 @@ def reports(outputs) -> dict[str, dict]:
 
 KINDS = ("global-decomposition", "regional-decomposition", "kinematics-float32",
          "trajectories-3d", "trajectories-2d", "decompose-spectral", "decompose-regional",
-         "kinematics", "advect")
+         "kinematics", "advect", "ftle")
 
 
 @pytest.mark.parametrize("kind", KINDS)

@@ -1,0 +1,194 @@
+"""FTLE checks against published analytic flows."""
+
+from __future__ import annotations
+
+import subprocess
+import sys
+
+import numpy as np
+import pandas as pd
+import pytest
+import xarray as xr
+
+import flowpipe as fp
+from flowpipe.ftle import ftle
+
+A = 6.371e6  # Earth radius of flowpipe.constants (m)
+
+
+def _write(path, lat, lon, u_fn, hours):
+    times = pd.date_range("2031-05-01", periods=hours + 1, freq="h")
+    la, lo = np.meshgrid(lat, lon, indexing="ij")
+    u = np.empty((times.size, lat.size, lon.size))
+    v = np.empty_like(u)
+    for k in range(times.size):
+        u[k], v[k] = u_fn(la, lo, 3600.0 * k)
+    ds = xr.Dataset(
+        {"u": (("time", "latitude", "longitude"), u, {"units": "m s-1",
+                                                     "standard_name": "eastward_wind"}),
+         "v": (("time", "latitude", "longitude"), v, {"units": "m s-1",
+                                                     "standard_name": "northward_wind"})},
+        coords={"time": times,
+                "latitude": ("latitude", lat, {"units": "degrees_north",
+                                               "standard_name": "latitude"}),
+                "longitude": ("longitude", lon, {"units": "degrees_east",
+                                                 "standard_name": "longitude"})},
+        attrs={"Conventions": "CF-1.11"})
+    ds.to_netcdf(path)
+    return path
+
+
+S = 2e-5  # strain rate (s-1)
+
+
+def _strain(la, lo, t):
+    return S * A * np.radians(lo), -S * A * np.radians(la)
+
+
+@pytest.fixture(scope="module")
+def strain_file(tmp_path_factory):
+    lat = np.linspace(-2.0, 2.0, 81)
+    lon = np.linspace(-2.0, 2.0, 81)
+    return _write(tmp_path_factory.mktemp("ftle") / "strain.nc", lat, lon, _strain, 24)
+
+
+@pytest.mark.parametrize("backward", [False, True])
+def test_linear_strain_exponent_is_strain_rate(strain_file, backward):
+    # The exponent of a linear hyperbolic flow u = s x, v = -s y is s
+    # (Shadden, Lekien & Marsden 2005, Physica D 212, section 2).
+    wind = fp.open_wind(strain_file)
+    out = ftle(wind, hours=12, backward=backward, spacing=0.05, region=(-0.3, 0.3, -0.3, 0.3))
+    value = out["ftle"].isel(time=0).values
+    assert np.all(np.isfinite(value))
+    assert np.max(np.abs(value / S - 1.0)) <= 0.01
+    assert out["ftle"].attrs["units"] == "s-1"
+
+
+def test_convergence_when_spacing_halves(strain_file):
+    # *common practice*: a resolved smooth flow gives a spacing-independent FTLE.
+    wind = fp.open_wind(strain_file)
+    kw = dict(hours=12, region=(-0.2, 0.2, -0.2, 0.2))
+    coarse = ftle(wind, spacing=0.1, **kw)["ftle"]
+    fine = ftle(wind, spacing=0.05, **kw)["ftle"]
+    common = fine.sel(latitude=coarse.latitude, longitude=coarse.longitude, method="nearest")
+    assert float(np.max(np.abs(common.values / coarse.values - 1.0))) < 0.01
+
+
+OMEGA = 2 * np.pi / (12 * 86400.0)  # Williamson et al. (1992) case 1: one turn in 12 days
+ALPHA = np.pi / 2 - 0.05
+
+
+def _solid_body(la, lo, t):
+    phi, lam = np.radians(la), np.radians(lo)
+    u0 = OMEGA * A
+    u = u0 * (np.cos(phi) * np.cos(ALPHA) + np.sin(phi) * np.cos(lam) * np.sin(ALPHA))
+    v = -u0 * np.sin(lam) * np.sin(ALPHA)
+    return u, v
+
+
+def test_solid_body_rotation_stretches_nothing(tmp_path):
+    # Williamson et al. (1992), J. Comput. Phys. 102, 211-224, test case 1:
+    # a rotation is an isometry, so the exponent vanishes.
+    lat = np.linspace(-90, 90, 91)
+    lon = np.arange(0, 360, 2.0)
+    wind = fp.open_wind(_write(tmp_path / "rot.nc", lat, lon, _solid_body, 48))
+    out = ftle(wind, hours=48, spacing=4.0, region=(-80, 80, 0, 356))
+    value = out["ftle"].values
+    assert np.all(np.isfinite(value))
+    assert np.max(np.abs(value)) <= 1e-3 * OMEGA
+
+
+@pytest.mark.parametrize("args", [
+    ["--region", "40,50,10,20"], ["--spacing", "0"], ["--spacing", "-1"], ["--hours", "0"]])
+def test_bad_input_exits_2_with_one_line(strain_file, tmp_path, args):
+    base = ["--hours", "6"] if "--hours" not in args else []
+    proc = subprocess.run([sys.executable, "-m", "flowpipe", "ftle", str(strain_file), "-o",
+                           str(tmp_path / "o.nc"), *base, *args], capture_output=True, text=True)
+    assert proc.returncode == 2
+    lines = proc.stderr.strip().splitlines()
+    assert len(lines) == 1 and lines[0].startswith("flowpipe: error:")
+
+
+# Double gyre of Shadden, Lekien & Marsden (2005), Physica D 212, section 4.1:
+# psi = A sin(pi f(x, t)) sin(pi y), f = eps sin(w t) x^2 + (1 - 2 eps sin(w t)) x on
+# 0 <= x <= 2, 0 <= y <= 1, with A = 0.1, eps = 0.25, w = 2 pi / 10 (*from memory*).
+# Scaled to an equatorial box: one length unit = one degree (of longitude and of
+# latitude; cos(latitude) > 0.9998 in the box), one time unit = 2.4 h, so the forcing
+# period 10 is 24 h and the velocity unit is (A * 1 degree in radians) / 8640 s.
+GYRE_L = A * np.radians(1.0)  # m per length unit
+GYRE_TAU = 8640.0  # s per time unit
+GYRE_PERIOD_HOURS = 24.0
+
+
+def _double_gyre(la, lo, t):
+    x, y, s = lo, la, 0.25 * np.sin(2 * np.pi / 10 * t / GYRE_TAU)
+    f = s * x**2 + (1 - 2 * s) * x
+    dfdx = 2 * s * x + 1 - 2 * s
+    scale = GYRE_L / GYRE_TAU  # m s-1 per velocity unit
+    u = -np.pi * 0.1 * np.sin(np.pi * f) * np.cos(np.pi * y)
+    v = np.pi * 0.1 * np.cos(np.pi * f) * np.sin(np.pi * y) * dfdx
+    return scale * u, scale * v
+
+
+def test_double_gyre_ridge_oscillates_with_the_forcing(tmp_path):
+    # The forward-FTLE ridge between the gyres moves to both sides of the midline
+    # x = 1 over one forcing period and is back after one period (Shadden, Lekien &
+    # Marsden 2005, section 4.1, figures of the time-dependent double gyre).
+    lat = np.linspace(0.0, 1.0, 21)
+    lon = np.linspace(0.0, 2.0, 41)
+    hours, step = 15 * GYRE_TAU / 3600, 3.0  # T = 15 time units, as in that section
+    total = int(np.ceil(hours + GYRE_PERIOD_HOURS + step))
+    path = _write(tmp_path / "gyre.nc", lat, lon, _double_gyre, total)
+    out = ftle(fp.open_wind(path), hours=hours, spacing=0.02, every=step)
+    row = out["ftle"].sel(latitude=0.5, method="nearest").sel(longitude=slice(0.6, 1.4))
+    ridge = row["longitude"].values[np.nanargmax(row.values, axis=1)]
+    per = int(round(GYRE_PERIOD_HOURS / step))
+    assert out.sizes["time"] > per
+    cycle = ridge[:per]
+    assert cycle.min() < 1.0 - 0.03 and cycle.max() > 1.0 + 0.03, ridge
+    np.testing.assert_allclose(ridge[per], ridge[0], atol=0.021)
+
+
+def test_map_of_ftle_is_sequential_from_zero(tmp_path):
+    # An FTLE is a growth rate, >= 0 where the flow does not converge: a perceptually
+    # uniform sequential matplotlib colour map (matplotlib documentation, "Choosing
+    # Colormaps": viridis family) whose colour-bar lower limit is zero.
+    from pathlib import Path
+
+    from test_maps import SEQUENTIAL, _colour_bar
+
+    from flowpipe import maps
+
+    demo = Path(__file__).resolve().parents[1] / "sample_data" / "demo_global.nc"
+    out = ftle(fp.open_wind(demo), hours=6, spacing=6.0)
+    path = fp.write(out, tmp_path / "ftle.nc")
+    fig = maps.render(path, field="ftle", size=(640, 360))
+    bar = _colour_bar(fig)
+    assert bar.cmap.name in SEQUENTIAL
+    assert bar.vmin == 0.0
+    assert bar.vmax >= float(out["ftle"].max())
+
+
+def test_batch_config_ftle_table(tmp_path):
+    # A [ftle] table in a batch config writes {stem}_ftle.nc with the same field as
+    # the library call (netCDF-C, through xarray, reads it back); bad values are a
+    # config error naming the key.
+    import shutil
+    from pathlib import Path
+
+    from flowpipe.config import ConfigError
+    from flowpipe.pipeline import run
+
+    demo = Path(__file__).resolve().parents[1] / "sample_data" / "demo_global.nc"
+    shutil.copy(demo, tmp_path / "demo.nc")
+    config = tmp_path / "night.toml"
+    config.write_text('[input]\npaths = ["demo.nc"]\n\n[ftle]\nhours = 6\nspacing = 6.0\n'
+                      'region = [-30.0, 30.0, 0.0, 90.0]\n\n[output]\ndirectory = "out"\n')
+    run(config, quiet=True)
+    written = tmp_path / "out" / "demo_ftle.nc"
+    expected = ftle(fp.open_wind(demo), hours=6, spacing=6.0, region=(-30.0, 30.0, 0.0, 90.0))
+    with xr.open_dataset(written) as ds:
+        np.testing.assert_allclose(ds["ftle"].values, expected["ftle"].values, rtol=1e-12)
+    config.write_text(config.read_text().replace("spacing = 6.0", "spacing = -1"))
+    with pytest.raises(ConfigError, match="spacing"):
+        run(config, quiet=True)
