@@ -263,11 +263,12 @@ class Runner:
 
         cfg = self.config.section("ftle")
         out = render_template(cfg["output"], self.out, stem=unit.stem)
-        digest = bookkeeping.section_hash(self.config.section("input"), cfg)
+        digest = bookkeeping.section_hash(self.config.section("input"), cfg, *self._site())
 
         def make(path: Path) -> None:
             write(ftle(self._wind(unit), hours=cfg["hours"], backward=cfg["backward"],
-                       spacing=cfg["spacing"], region=cfg["region"], levels=cfg["levels"]), path)
+                       spacing=cfg["spacing"], region=cfg["region"], levels=cfg["levels"]), path,
+                  attributes=self.config.tables.get("metadata"))
 
         self._produce("ftle", result, out, self._inputs_of(unit), digest, make)
         return out

@@ -9,7 +9,7 @@ from ..errors import UsageError
 from ..ftle import ftle
 from ..ingest import open_wind
 from ..store import write
-from ._common import output_file
+from ._common import add_attribute_option, output_file
 
 
 def register(sub: argparse._SubParsersAction, common: argparse.ArgumentParser) -> argparse.ArgumentParser:
@@ -37,6 +37,7 @@ def register(sub: argparse._SubParsersAction, common: argparse.ArgumentParser) -
                         help="leave seeds whose parcels stopped early missing")
     parser.add_argument("--u", metavar="NAME")
     parser.add_argument("--v", metavar="NAME")
+    add_attribute_option(parser)
     return parser
 
 
@@ -55,7 +56,7 @@ def run(args: argparse.Namespace) -> int:
                region=_numbers(args.region, "--region"), levels=_numbers(args.level, "--level"),
                start=args.start, every=args.every, steady=args.steady,
                complete_only=args.complete_only)
-    path = write(out, args.output)
+    path = write(out, args.output, attributes=dict(args.attribute))
     print(f"wrote {path}: ftle on {out.sizes['latitude']} x {out.sizes['longitude']} seeds, "
           f"{out.sizes['time']} start time(s)")
     return 0
