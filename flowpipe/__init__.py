@@ -14,6 +14,7 @@ Public API (re-exports only)::
 """
 
 from ._version import __version__
+from .contours import circulation
 from .decompose import decompose
 from .errors import FlowpipeError, InputError, UsageError
 from .grid import GridInfo, describe_grid
@@ -31,6 +32,7 @@ __all__ = [
     "UsageError",
     "__version__",
     "advect",
+    "circulation",
     "decompose",
     "describe_grid",
     "describe_wind",

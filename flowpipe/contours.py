@@ -389,7 +389,7 @@ def circulation(wind: xr.Dataset, contours: Sequence[Contour], *,
         pa = wind.level.values * 100.0
         ds["omega"] = xr.apply_ufunc(
             lambda d, **kw: kinematic_omega(divergence=d, **kw),
-            ds.mean_divergence.transpose(..., "contour", "level"),
+            ds.mean_divergence.transpose(..., "contour", "level").chunk({"level": -1}),
             input_core_dims=[["level"]], output_core_dims=[["level"]],
             kwargs={"pressure": pa, "surface": surface_omega,
                     "top": top_omega if obrien else None},
