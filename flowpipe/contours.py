@@ -441,8 +441,8 @@ def _describe(ds: xr.Dataset, contours, grid, pressure, obrien, surface, top) ->
                                                              "cf_role": "timeseries_id"})
     for name, (units, long_name) in _ATTRS.items():
         if name in ds:
-            ds[name].attrs.update(units=units, long_name=long_name, geometry="contour_geometry",
-                                  coordinates="contour_name")
+            ds[name].attrs = {"units": units, "long_name": long_name,
+                              "geometry": "contour_geometry", "coordinates": "contour_name"}
     if "omega" in ds:
         ds["omega"].attrs["standard_name"] = "lagrangian_tendency_of_air_pressure"
         ds["omega"].attrs["comment"] = (
