@@ -8,7 +8,8 @@ polygon) is turned once into two sparse matrices on the wind's grid:
   ``circulation = Lu @ u + Lv @ v`` and likewise for the outward flux; per slab
   this is one sparse mat-vec for all contours together;
 * an *area* matrix: the area of each grid cell inside the contour (by
-  sub-sampling each cell at ``SUBSAMPLES**2`` equal-area points), so that the
+  sub-sampling each cell at ``SUBSAMPLES**2`` equal-area points; exact overlaps for
+  boxes), so that the
   area integral of a gridded field is one sparse mat-vec.
 
 Sampling rule: contour points are spaced at most a quarter of the grid
@@ -256,6 +257,21 @@ def area_matrix(grid: _Grid, contours: Sequence[Contour]) -> sp.csr_array:
             lo, hi = (lo, 90.0) if c.params[0] > 0 else (-90.0, hi)
         if c.kind == "box":
             lo, hi = c.params[0], c.params[1]
+        if c.kind == "box":  # exact cell fractions: overlaps in sin(latitude) and longitude
+            s_, n_, w, e = c.params
+            width = (e - w) % 360 or 360
+            top, bot = np.minimum(sin_e[1:], np.sin(np.radians(n_))), np.maximum(
+                sin_e[:-1], np.sin(np.radians(s_)))
+            flat = np.clip(top - bot, 0, None) / (sin_e[1:] - sin_e[:-1])
+            west = (grid.lon - grid.dlon / 2 - w + 180.0) % 360.0 - 180.0
+            flon = sum(np.clip(np.minimum(west + grid.dlon, width + shift) - np.maximum(west, shift),
+                               0, None) for shift in (-360.0, 0.0, 360.0)) / grid.dlon
+            f = flat[:, None] * flon[None, :]
+            r, j = np.nonzero(f)
+            rows.append(np.full(len(r), k))
+            cols.append(r * grid.nlon + j)
+            vals.append(f[r, j] * cell_area[r])
+            continue
         ii = np.nonzero((grid.lat_edges[1:] >= lo) & (grid.lat_edges[:-1] <= hi))[0]
         if not len(ii):
             raise InputError(f"contour {c.name!r} lies outside the data; move it")

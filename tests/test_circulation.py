@@ -61,8 +61,8 @@ def test_stokes_solid_body_box_and_polar_circle():
 def test_gauss_outward_flux_of_polygon_vs_quadrature():
     # Velocity potential chi = a^2 Re Y_3^2 (scipy.special.sph_harm_y); divergence
     # lap chi = -l(l+1) Re Y; wind = grad chi. Reference: scipy dblquad of div.
-    l, m = 3, 2
-    ylm = lambda p, lam: scipy.special.sph_harm_y(l, m, np.pi / 2 - p, lam).real  # noqa: E731
+    deg, m = 3, 2
+    ylm = lambda p, lam: scipy.special.sph_harm_y(deg, m, np.pi / 2 - p, lam).real  # noqa: E731
     h = 1e-6
 
     def u_fn(p, lam):
@@ -79,7 +79,7 @@ def test_gauss_outward_flux_of_polygon_vs_quadrature():
     path = Path(np.column_stack([lo, la]))
 
     def div(p, lam):
-        return -l * (l + 1) * ylm(p, lam) * A**2 * np.cos(p) * path.contains_point((lam, p))
+        return -deg * (deg + 1) * ylm(p, lam) * A**2 * np.cos(p) * path.contains_point((lam, p))
     ref, _ = scipy.integrate.dblquad(div, lo.min(), lo.max(), la.min(), la.max(),
                                      epsabs=1e-3, epsrel=1e-6)
     assert out.outward_flux.values.item() == pytest.approx(ref, rel=5e-3)
@@ -148,3 +148,28 @@ def test_contour_outside_limited_area_is_an_error(tmp_path):
                            "--circle=-30,100,500"], capture_output=True, text=True)
     assert proc.returncode == 2
     assert "circle -30,100,500km" in proc.stderr and len(proc.stderr.strip().splitlines()) == 1
+
+
+def test_dateline_box_and_off_centre_polar_circle_match_area_integrals():
+    # Stokes: on solid-body rotation (Williamson et al. 1992, test case 1) the line integral
+    # equals the area integral of zeta = 2 U sin(phi) / a, for a box across 180 degrees and a
+    # circle that encloses the pole without being centred on it.
+    out = C.circulation(_solid(0.5), [C.box(20, 50, 170, -160), C.circle(80, 30, 1500)]).compute()
+    assert np.all(out.vorticity_disagreement.values < 1e-3)
+    # the box's exact value: U a dlam (sin^2 phi2 - sin^2 phi1), dlam = 30 degrees
+    exact = U * A * np.radians(30) * (np.sin(np.radians(50)) ** 2 - np.sin(np.radians(20)) ** 2)
+    assert out.circulation.values.ravel()[0] == pytest.approx(exact, rel=1e-4)
+
+
+def test_line_vs_area_on_rossby_haurwitz_second_order():
+    # Williamson et al. (1992) test case 6 (tests/_williamson.py): the disagreement of line and
+    # gridded-area mean vorticity falls at second order with refinement.
+    from _williamson import case6
+
+    dis = []
+    for res in (2.0, 1.0):
+        ds = _wind(res, lambda p, lam: case6(p, lam)["u"], lambda p, lam: case6(p, lam)["v"])
+        out = C.circulation(ds, [C.box(20 + 2 / 3, 50 + 2 / 3, 10.0, 60.0)]).compute()
+        dis.append(out.vorticity_disagreement.values.item())
+    order = np.log2(dis[0] / dis[1])
+    assert 1.7 <= order <= 2.3
