@@ -14,6 +14,7 @@ Public API (re-exports only)::
 """
 
 from ._version import __version__
+from .contours import circulation
 from .decompose import decompose
 from .errors import FlowpipeError, InputError, UsageError
 from .ftle import ftle
@@ -32,6 +33,7 @@ __all__ = [
     "UsageError",
     "__version__",
     "advect",
+    "circulation",
     "decompose",
     "describe_grid",
     "describe_wind",

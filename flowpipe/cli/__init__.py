@@ -18,7 +18,7 @@ from collections.abc import Sequence
 from .._version import __version__
 from ..errors import FlowpipeError, FlowpipeWarning
 
-COMMANDS = ("inspect", "decompose", "advect", "map", "run", "ftle")
+COMMANDS = ("inspect", "decompose", "advect", "map", "run", "circulation", "ftle")
 
 #: Exit code for an unexpected internal failure (a bug): distinct from the
 #: contract's 1 (some batch inputs failed) and 2 (usage or unusable input).

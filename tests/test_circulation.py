@@ -1,0 +1,175 @@
+"""Checks of flowpipe.contours against analytic cases (sources beside each)."""
+
+from __future__ import annotations
+
+import subprocess
+import sys
+
+import numpy as np
+import pytest
+import scipy.integrate
+import scipy.special
+import xarray as xr
+
+from flowpipe import contours as C
+
+A = C.EARTH_RADIUS
+U = 38.61  # Williamson et al. (1992) test case 1: u0 = 2 pi a / 12 days (rounded)
+
+
+def _wind(res: float, u_fn, v_fn, levels=(500.0,)) -> xr.Dataset:
+    lat = np.linspace(-90, 90, int(round(180 / res)) + 1)
+    lon = np.arange(0, 360, res)
+    phi, lam = np.meshgrid(np.radians(lat), np.radians(lon), indexing="ij")
+    u = np.broadcast_to(u_fn(phi, lam), (1, len(levels), *phi.shape))
+    v = np.broadcast_to(v_fn(phi, lam), (1, len(levels), *phi.shape))
+    dims = ("time", "level", "latitude", "longitude")
+    ds = xr.Dataset({"u": (dims, u.copy()), "v": (dims, v.copy())},
+                    coords={"time": [np.datetime64("2026-01-01")], "level": list(levels),
+                            "latitude": lat, "longitude": lon})
+    ds.attrs["level_type"] = "pressure"
+    return ds
+
+
+def _solid(res):
+    return _wind(res, lambda p, lam: U * np.cos(p), lambda p, lam: 0 * p)
+
+
+def test_stokes_solid_body_box_and_polar_circle():
+    # Williamson et al. (1992) test case 1, alpha = 0: u = U cos(phi). Counter-clockwise
+    # box: south edge eastward U cos^2(phi1) a dlam, north edge westward -> U a dlam
+    # (cos^2 phi1 - cos^2 phi2) = U a dlam (sin^2 phi2 - sin^2 phi1); polar cap: 2 pi a U cos^2.
+    # edges at 2/3 of a cell on every grid (x/h mod 1 in {1/3, 2/3}: the same bilinear
+    # error factor t(1 - t)), so the measured order is not disturbed by the edge position
+    s, n, w, e = 12 + 2 / 3, 46 + 2 / 3, 350.0, 20.0  # crosses the prime meridian
+    dlam = np.radians(30.0)
+    expect_box = U * A * dlam * (np.sin(np.radians(n)) ** 2 - np.sin(np.radians(s)) ** 2)
+    radius = 2000.0
+    phi0 = np.pi / 2 - radius * 1e3 / A
+    expect_cap = 2 * np.pi * A * U * np.cos(phi0) ** 2
+    errors = []
+    for res in (2.0, 1.0, 0.5):
+        out = C.circulation(_solid(res), [C.box(s, n, w, e), C.circle(90, 0, radius)]).compute()
+        c = out.circulation.values.ravel()
+        errors.append((abs(c[0] / expect_box - 1), abs(c[1] / expect_cap - 1)))
+    errors = np.array(errors)
+    assert errors[-1].max() <= 1e-4
+    order = np.log2(errors[0, 0] / errors[-1, 0]) / 2
+    assert 1.7 <= order <= 2.3
+
+
+def test_gauss_outward_flux_of_polygon_vs_quadrature():
+    # Velocity potential chi = a^2 Re Y_3^2 (scipy.special.sph_harm_y); divergence
+    # lap chi = -l(l+1) Re Y; wind = grad chi. Reference: scipy dblquad of div.
+    deg, m = 3, 2
+    ylm = lambda p, lam: scipy.special.sph_harm_y(deg, m, np.pi / 2 - p, lam).real  # noqa: E731
+    h = 1e-6
+
+    def u_fn(p, lam):
+        return A * (ylm(p, lam + h) - ylm(p, lam - h)) / (2 * h) / np.cos(p)
+
+    def v_fn(p, lam):
+        return A * (ylm(p + h, lam) - ylm(p - h, lam)) / (2 * h)
+
+    lat = [10.0, 20.0, 40.0, 30.0]
+    lon = [10.0, 50.0, 45.0, 5.0]
+    out = C.circulation(_wind(0.5, u_fn, v_fn), [C.polygon(lat, lon)]).compute()
+    la, lo = np.radians(np.append(lat, lat[0])), np.radians(np.append(lon, lon[0]))
+    from matplotlib.path import Path
+    path = Path(np.column_stack([lo, la]))
+
+    def div(p, lam):
+        return -deg * (deg + 1) * ylm(p, lam) * A**2 * np.cos(p) * path.contains_point((lam, p))
+    ref, _ = scipy.integrate.dblquad(div, lo.min(), lo.max(), la.min(), la.max(),
+                                     epsabs=1e-3, epsrel=1e-6)
+    assert out.outward_flux.values.item() == pytest.approx(ref, rel=5e-3)
+
+
+def test_kinematic_omega_constant_divergence_and_obrien():
+    # Continuity in pressure coordinates, d omega / dp = -div (Holton & Hakim 2013, 3.5):
+    # constant delta gives omega = -delta (p - p_bottom) exactly.
+    p = np.array([100000.0, 85000.0, 70000.0, 50000.0, 30000.0])
+    delta = 3e-6
+    om = C.kinematic_omega(p, np.full(5, delta))
+    np.testing.assert_allclose(om, -delta * (p - p[0]), rtol=1e-14)
+    # O'Brien (1970): omega_c = omega - omega_top (p - p_b) / (p_t - p_b); hand-computed
+    # three-layer (four-level) case: div = 1e-5, 0, -1e-5, -2e-5 at 1000, 800, 500, 200 hPa.
+    p = np.array([100000.0, 80000.0, 50000.0, 20000.0])
+    d = np.array([1e-5, 0.0, -1e-5, -2e-5])
+    # layers: -(0.5e-5)(-2e4) = 0.1; -(-0.5e-5)(-3e4) = -0.15; -(-1.5e-5)(-3e4) = -0.45
+    raw = np.array([0.0, 0.1, -0.05, -0.5])
+    np.testing.assert_allclose(C.kinematic_omega(p, d), raw, atol=1e-12)
+    corrected = raw - (-0.5) * (p - p[0]) / (p[-1] - p[0])
+    got = C.kinematic_omega(p, d, top=0.0)
+    np.testing.assert_allclose(got, corrected, atol=1e-12)
+    assert got[-1] == pytest.approx(0.0, abs=1e-15)
+
+
+def test_rankine_vortex_on_limited_area():
+    # Rankine vortex: outside the core v = v_max R0 / r, circulation 2 pi R0 v_max at any
+    # radius beyond R0 (textbook; *from memory*). Small area, f-plane-like geometry.
+    lat = np.arange(30.0, 50.01, 0.1)
+    lon = np.arange(-20.0, 0.01, 0.1)
+    phi, lam = np.meshgrid(np.radians(lat), np.radians(lon), indexing="ij")
+    p0, l0 = np.radians(40.0), np.radians(-10.0)
+    x = A * np.cos(phi) * (lam - l0)
+    y = A * (phi - p0)
+    r = np.hypot(x, y) + 1e-9
+    r0, vmax = 100e3, 30.0
+    speed = np.where(r < r0, vmax * r / r0, vmax * r0 / r)
+    dims = ("time", "level", "latitude", "longitude")
+    ds = xr.Dataset({"u": (dims, (-speed * y / r)[None, None]), "v": (dims, (speed * x / r)[None, None])},
+                    coords={"time": [np.datetime64("2026-01-01")], "level": [850.0],
+                            "latitude": lat, "longitude": lon})
+    out = C.circulation(ds, [C.circle(40.0, -10.0, 300.0)]).compute()
+    assert out.circulation.values.item() == pytest.approx(2 * np.pi * r0 * vmax, rel=2e-2)
+
+
+@pytest.mark.parametrize("args,needle", [
+    (["--circle", "40,10,-5"], "radius"),
+    (["--box", "80,95,0,10"], "S < N"),
+    (["--polygon", "POLY"], "not simple"),
+])
+def test_bad_input_exits_2_with_one_line(tmp_path, args, needle):
+    poly = tmp_path / "bow.csv"
+    poly.write_text("latitude,longitude\n40,0\n50,10\n40,10\n50,0\n")
+    args = [str(poly) if a == "POLY" else a for a in args]
+    proc = subprocess.run([sys.executable, "-m", "flowpipe", "circulation",
+                           "sample_data/demo_global.nc", "-o", str(tmp_path / "o.nc"), *args],
+                          capture_output=True, text=True)
+    assert proc.returncode == 2
+    lines = proc.stderr.strip().splitlines()
+    assert len(lines) == 1 and needle in lines[0]
+
+
+def test_contour_outside_limited_area_is_an_error(tmp_path):
+    proc = subprocess.run([sys.executable, "-m", "flowpipe", "circulation",
+                           "sample_data/demo_regional.nc", "-o", str(tmp_path / "o.nc"),
+                           "--circle=-30,100,500"], capture_output=True, text=True)
+    assert proc.returncode == 2
+    assert "circle -30,100,500km" in proc.stderr and len(proc.stderr.strip().splitlines()) == 1
+
+
+def test_dateline_box_and_off_centre_polar_circle_match_area_integrals():
+    # Stokes: on solid-body rotation (Williamson et al. 1992, test case 1) the line integral
+    # equals the area integral of zeta = 2 U sin(phi) / a, for a box across 180 degrees and a
+    # circle that encloses the pole without being centred on it.
+    out = C.circulation(_solid(0.5), [C.box(20, 50, 170, -160), C.circle(80, 30, 1500)]).compute()
+    assert np.all(out.vorticity_disagreement.values < 1e-3)
+    # the box's exact value: U a dlam (sin^2 phi2 - sin^2 phi1), dlam = 30 degrees
+    exact = U * A * np.radians(30) * (np.sin(np.radians(50)) ** 2 - np.sin(np.radians(20)) ** 2)
+    assert out.circulation.values.ravel()[0] == pytest.approx(exact, rel=1e-4)
+
+
+def test_line_vs_area_on_rossby_haurwitz_second_order():
+    # Williamson et al. (1992) test case 6 (tests/_williamson.py): the disagreement of line and
+    # gridded-area mean vorticity falls at second order with refinement.
+    from _williamson import case6
+
+    dis = []
+    for res in (2.0, 1.0):
+        ds = _wind(res, lambda p, lam: case6(p, lam)["u"], lambda p, lam: case6(p, lam)["v"])
+        out = C.circulation(ds, [C.box(20 + 2 / 3, 50 + 2 / 3, 10.0, 60.0)]).compute()
+        dis.append(out.vorticity_disagreement.values.item())
+    order = np.log2(dis[0] / dis[1])
+    assert 1.7 <= order <= 2.3
