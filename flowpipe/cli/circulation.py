@@ -11,7 +11,7 @@ from ..contours import box, circle, circulation, polygon
 from ..errors import InputError
 from ..ingest import open_wind
 from ..store import write
-from ._common import output_file
+from ._common import add_attribute_option, output_file
 from .decompose import _levels
 
 
@@ -53,6 +53,7 @@ def register(sub: argparse._SubParsersAction, common: argparse.ArgumentParser) -
                         help="omega at the top level with --obrien (default 0)")
     parser.add_argument("--u", metavar="NAME", help="name of the eastward wind variable")
     parser.add_argument("--v", metavar="NAME", help="name of the northward wind variable")
+    add_attribute_option(parser)
     return parser
 
 
@@ -100,6 +101,6 @@ def run(args: argparse.Namespace) -> int:
     wind = open_wind(args.files, u=args.u, v=args.v)
     result = circulation(wind, contours, levels=args.levels, obrien=args.obrien,
                          surface_omega=args.surface_omega, top_omega=args.top_omega)
-    path = write(result, args.output)
+    path = write(result, args.output, attributes=dict(args.attribute))
     print(f"wrote {path}: {len(contours)} contours")
     return 0
