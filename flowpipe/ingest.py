@@ -135,8 +135,8 @@ def open_wind(
     wanted = dict(DEFAULT_CHUNKS)
     wanted.update(chunks or {})
     ds = ds.chunk({d: c for d, c in wanted.items() if d in ds.dims})
-    ds = _plausible(ds, max_speed, implausible)
     ds.attrs["input_files"] = "\n".join(str(p) for p in files)
+    ds = _plausible(ds, max_speed, implausible)
     return ds
 
 
