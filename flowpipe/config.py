@@ -20,6 +20,7 @@ from typing import Any
 
 from .decompose import METHODS, SPECTRAL_VARIABLES
 from .errors import UsageError
+from .ingest import DEFAULT_MAX_SPEED, IMPLAUSIBLE_CHOICES
 from .parcels._advect import VERTICAL
 from .regional import FIELDS as REGIONAL_FIELDS
 from .regional import SCHEMES as REGIONAL_SCHEMES
@@ -39,6 +40,9 @@ SCHEMA: dict[str, dict[str, tuple[tuple[type, ...], Any]]] = {
         "v": ((str,), None),
         "combine": ((bool,), False),
         "name": ((str,), "series"),
+        "max_speed": (_NUMBER, DEFAULT_MAX_SPEED),
+        "implausible": ((str,), "refuse"),
+        "allow_gaps": ((bool,), False),
     },
     "decompose": {
         "method": ((str,), "auto"),
@@ -133,6 +137,8 @@ _AT_LEAST_1 = Allowed(lambda n: n >= 1, "at least 1")
 VALUES: dict[str, dict[str, Allowed]] = {
     "input": {
         "paths": Allowed(lambda p: isinstance(p, str), "a string", each=True, empty=False),
+        "max_speed": Allowed(lambda x: _finite(x) and x > 0, "a number above 0 (m s-1)"),
+        "implausible": _one_of(IMPLAUSIBLE_CHOICES),
     },
     "decompose": {
         "method": _one_of(METHODS),

@@ -27,6 +27,7 @@ from __future__ import annotations
 
 import glob
 import os
+import warnings
 from collections.abc import Iterable, Mapping
 from pathlib import Path
 
@@ -35,7 +36,7 @@ import cf_xarray  # noqa: F401  (registers the .cf accessor)
 import numpy as np
 import xarray as xr
 
-from .errors import InputError
+from .errors import FlowpipeWarning, InputError, UsageError
 
 #: Standard names that identify the eastward and northward wind (CF 1.11
 #: standard-name table), in order of preference.
@@ -51,6 +52,16 @@ VERTICAL_VELOCITIES = (
 )
 CANONICAL_DIMS = ("time", "level", "latitude", "longitude")
 DEFAULT_CHUNKS = {"time": 1, "level": 1, "latitude": -1, "longitude": -1}
+
+#: Largest plausible horizontal wind speed, m s-1. The largest speeds ever analysed in the
+#: atmosphere are about 135 m s-1 (Doppler radar in the Bridge Creek-Moore tornado of
+#: 3 May 1999) and about 120 m s-1 in the strongest jet streams and polar-night jets
+#: (*from memory*; no source at hand). 250 m s-1 leaves room for the upper stratosphere and
+#: mesosphere of deep reanalyses while catching fill values and unit mistakes (1e30, knots
+#: as cm s-1, ...).
+DEFAULT_MAX_SPEED = 250.0
+#: What to do with values that are not finite or faster than the limit.
+IMPLAUSIBLE_CHOICES = ("refuse", "missing")
 
 
 def expand_paths(paths: str | os.PathLike | Iterable[str | os.PathLike]) -> list[Path]:
@@ -78,6 +89,10 @@ def open_wind(
     u: str | None = None,
     v: str | None = None,
     chunks: Mapping[str, int] | None = None,
+    *,
+    max_speed: float = DEFAULT_MAX_SPEED,
+    implausible: str = "refuse",
+    allow_gaps: bool = False,
 ) -> xr.Dataset:
     """Open one file, several files or a glob as one canonical wind Dataset.
 
@@ -91,6 +106,18 @@ def open_wind(
     chunks : mapping, optional
         Dask chunk sizes by canonical dimension name; the default is one whole
         latitude-longitude slab per chunk.
+    max_speed : float
+        Largest plausible wind speed in m s-1 (:data:`DEFAULT_MAX_SPEED`).
+    implausible : {"refuse", "missing"}
+        What to do with wind values that are not finite (inf) or whose speed
+        exceeds ``max_speed``: refuse the input (an :class:`InputError` naming
+        the variable, the count and the first location, raised when the slab
+        is computed), or treat them as missing (a warning per slab, and the
+        lazily computed count in the attribute ``implausible_values``).
+        The check runs inside each slab's dask task: building a result
+        computes nothing.
+    allow_gaps : bool
+        Accept a time series whose spacing has gaps (refused by default).
 
     Returns
     -------
@@ -104,11 +131,12 @@ def open_wind(
     """
     files = expand_paths(paths)
     parts = [_open_one(path, u, v) for path in files]
-    ds = _combine(parts, files)
+    ds = _combine(parts, files, allow_gaps)
     wanted = dict(DEFAULT_CHUNKS)
     wanted.update(chunks or {})
     ds = ds.chunk({d: c for d, c in wanted.items() if d in ds.dims})
     ds.attrs["input_files"] = "\n".join(str(p) for p in files)
+    ds = _plausible(ds, max_speed, implausible)
     return ds
 
 
@@ -229,7 +257,7 @@ def _canonical(raw: xr.Dataset, path: Path, u_name: str | None, v_name: str | No
         present = ", ".join(sorted(map(str, raw.data_vars))) or "none"
         raise InputError(
             f"{path}: no wind variable found for {' and '.join(missing)}; variables present: "
-            f"{present}; name them with --u NAME --v NAME (open_wind(u=..., v=...))"
+            f"{present}; name them with --u NAME --v NAME (config: [input] u, v)"
         )
     un, vn = names
     if raw[un].dims != raw[vn].dims or any(
@@ -453,7 +481,7 @@ def _probe(ds: xr.Dataset, path: Path) -> None:
             ) from exc
 
 
-def _combine(parts: list[xr.Dataset], files: list[Path]) -> xr.Dataset:
+def _combine(parts: list[xr.Dataset], files: list[Path], allow_gaps: bool = False) -> xr.Dataset:
     first = parts[0]
     for part, path in zip(parts[1:], files[1:], strict=True):
         for coord in ("latitude", "longitude", "level"):
@@ -471,16 +499,53 @@ def _combine(parts: list[xr.Dataset], files: list[Path]) -> xr.Dataset:
     if "time" not in first.dims:
         raise InputError(f"{files[0]}: several files were given but they have no time "
                          "dimension to combine them along")
+    owner = np.concatenate([np.full(p.sizes["time"], i) for i, p in enumerate(parts)])
     ds = xr.concat(parts, dim="time", data_vars="all", coords="minimal", compat="override",
                    join="override", combine_attrs="drop_conflicts")
     times = ds["time"].values
     order = np.argsort(times, kind="stable")
     sorted_times = times[order]
-    if any(sorted_times[i] == sorted_times[i + 1] for i in range(len(sorted_times) - 1)):
-        raise InputError("the input files repeat one or more times; give each time once")
+    for i in range(len(sorted_times) - 1):
+        if sorted_times[i] == sorted_times[i + 1]:
+            a, b = files[owner[order[i]]], files[owner[order[i + 1]]]
+            where = f"in {a} and {b}" if a != b else f"twice in {a}"
+            raise InputError(f"time {_time_text(sorted_times[i])} is given {where}; "
+                             "give each time once")
+    if not allow_gaps:
+        _check_gaps(sorted_times, [files[owner[k]] for k in order])
     if not np.array_equal(order, np.arange(order.size)):
         ds = ds.isel(time=order)
     return ds
+
+
+def _time_text(value) -> str:
+    return str(value)[:19].replace("T", " ")
+
+
+def _check_gaps(times: np.ndarray, owners: list[Path]) -> None:
+    """Refuse a series with a step larger than its usual (most frequent) spacing.
+
+    A missing file would otherwise be interpolated over in time (a 12 h step in a
+    6-hourly series).
+    """
+    if times.size < 3:
+        return
+    steps = [times[i + 1] - times[i] for i in range(times.size - 1)]
+    values, counts = np.unique(np.array(steps), return_counts=True)
+    usual = values[int(np.argmax(counts))]
+    for i, step in enumerate(steps):
+        if step > usual * 1.5:
+            missing = []
+            t = times[i] + usual
+            while t < times[i + 1] and len(missing) < 5:
+                missing.append(_time_text(t))
+                t = t + usual
+            more = " ..." if t < times[i + 1] else ""
+            raise InputError(
+                f"the time series has a gap: {', '.join(missing)}{more} missing between "
+                f"{_time_text(times[i])} ({owners[i]}) and {_time_text(times[i + 1])} "
+                f"({owners[i + 1]}); add the missing file(s), or accept the gap with "
+                "--allow-gaps (config: [input] allow_gaps = true)")
 
 
 def missing_counts(ds: xr.Dataset, names: Iterable[str] = ("u", "v")) -> dict[str, int]:
@@ -502,3 +567,87 @@ def missing_counts(ds: xr.Dataset, names: Iterable[str] = ("u", "v")) -> dict[st
             raise InputError(f"{ds.attrs.get('input_files', '?').splitlines()[0]}: variable "
                              f"{source} has no valid value (every point is missing)")
     return result
+
+
+def _first_location(bad: np.ndarray, coords: list[tuple[str, np.ndarray]]) -> str:
+    index = np.unravel_index(int(np.argmax(bad)), bad.shape)
+    parts = []
+    for (dim, values), i in zip(coords, index, strict=True):
+        value = values[i]
+        if dim == "time":
+            text = str(value)[:19]
+        elif isinstance(value, float | np.floating):
+            text = f"{float(value):g}"
+        else:
+            text = str(value)
+        parts.append(f"{dim} {text}")
+    return ", ".join(parts)
+
+
+def _implausible_mask(u: np.ndarray, v: np.ndarray, *, max_speed: float, refuse: bool,
+                      coords: list[tuple[str, np.ndarray]], offsets: tuple[int, ...],
+                      source: str, names: tuple[str, str]) -> np.ndarray:
+    """True where a slab's wind is not finite or faster than ``max_speed`` (NaN is missing,
+    not implausible); raises :class:`InputError` there when ``refuse``."""
+    with np.errstate(over="ignore", invalid="ignore"):
+        speed = np.hypot(u, v)
+        bad = np.isinf(u) | np.isinf(v) | (speed > max_speed)
+    if bad.any():
+        local = [(dim, values[o:o + n]) for (dim, values), o, n
+                 in zip(coords, offsets, bad.shape, strict=True)]
+        where = _first_location(bad, local)
+        count = int(bad.sum())
+        nonfinite = int((np.isinf(u) | np.isinf(v)).sum())
+        what = (f"{count} point(s) of {names[0]}/{names[1]} not finite or faster than "
+                f"{max_speed:g} m s-1 ({nonfinite} not finite), the first at {where}")
+        if refuse:
+            raise InputError(f"{source}: {what}; fix the file, or treat them as missing with "
+                             "--implausible missing (config: [input] implausible = \"missing\") "
+                             "or raise the limit with --max-speed")
+        warnings.warn(f"{source}: {what}: treated as missing", FlowpipeWarning, stacklevel=2)
+    return bad
+
+
+def _plausible(ds: xr.Dataset, max_speed: float, implausible: str) -> xr.Dataset:
+    """Refuse, or mask as missing, wind values that are not finite or implausibly fast.
+
+    Lazy: the check is a dask task per slab (the same chunks as ``u`` and ``v``), so it
+    runs while a result is computed, in the same pass.
+    """
+    import dask.array as dsa
+
+    if implausible not in IMPLAUSIBLE_CHOICES:
+        raise UsageError(f"implausible must be one of {', '.join(IMPLAUSIBLE_CHOICES)}, "
+                         f"not {implausible!r}")
+    if not (np.isfinite(max_speed) and max_speed > 0):
+        raise UsageError(f"the maximum speed must be a number above 0 m s-1, not {max_speed!r}")
+    u, v = ds["u"], ds["v"]
+    coords = [(str(d), ds[d].values if d in ds.coords else np.arange(ds.sizes[d]))
+              for d in u.dims]
+    source = ds.attrs.get("input_files", "?").splitlines()[0]
+    if len(ds.attrs.get("input_files", "").splitlines()) > 1:
+        source += " ..."
+    names = (u.attrs.get("source_name", "u"), v.attrs.get("source_name", "v"))
+    refuse = implausible == "refuse"
+
+    def block(ub, vb, block_info=None):
+        offsets = tuple(lo for lo, _ in block_info[0]["array-location"])
+        return _implausible_mask(ub, vb, max_speed=max_speed, refuse=refuse, coords=coords,
+                                 offsets=offsets, source=source, names=names)
+
+    udata = u.data if isinstance(u.data, dsa.Array) else dsa.from_array(u.data)
+    vdata = v.data if isinstance(v.data, dsa.Array) else dsa.from_array(v.data)
+    bad = dsa.map_blocks(block, udata, vdata, dtype=bool)
+    out = ds.copy()
+    out["u"] = u.copy(data=dsa.where(bad, np.nan, udata))
+    out["v"] = v.copy(data=dsa.where(bad, np.nan, vdata))
+    out.attrs["implausible_limit"] = f"{max_speed:g} m s-1"
+    if not refuse:
+        out.attrs["implausible_values"] = bad.sum()
+    return out
+
+
+def input_notes(wind: xr.Dataset) -> dict:
+    """Attributes of the wind that an output should carry (the plausibility check's count,
+    lazy until written)."""
+    return {k: wind.attrs[k] for k in ("implausible_values",) if k in wind.attrs}

@@ -216,7 +216,9 @@ class Runner:
         from .ingest import open_wind
 
         section = self.config.section("input")
-        return open_wind(unit.inputs, u=section["u"], v=section["v"])
+        return open_wind(unit.inputs, u=section["u"], v=section["v"],
+                         max_speed=section["max_speed"], implausible=section["implausible"],
+                         allow_gaps=section["allow_gaps"])
 
     def decompose(self, unit: Unit, result: UnitResult) -> Path:
         from .decompose import decompose
@@ -227,8 +229,12 @@ class Runner:
         digest = bookkeeping.section_hash(self.config.section("input"), cfg, *self._site())
 
         def make(path: Path) -> None:
-            parts = decompose(self._wind(unit), method=cfg["method"], truncation=cfg["truncation"],
+            from .ingest import input_notes
+
+            wind = self._wind(unit)
+            parts = decompose(wind, method=cfg["method"], truncation=cfg["truncation"],
                               levels=cfg["levels"], scheme=cfg["scheme"])
+            parts.attrs.update(input_notes(wind))
             write(parts, path, float32=cfg["float32"], attributes=self.config.tables.get("metadata"))
 
         self._produce("decompose", result, out, self._inputs_of(unit), digest, make)
@@ -249,9 +255,13 @@ class Runner:
 
         def make(path: Path) -> None:
             starts = starts_file or [tuple(s) for s in cfg["starts"]]
-            tracks = advect(self._wind(unit), starts, hours=cfg["hours"], backward=cfg["backward"],
+            from .ingest import input_notes
+
+            wind = self._wind(unit)
+            tracks = advect(wind, starts, hours=cfg["hours"], backward=cfg["backward"],
                             step_minutes=cfg["step_minutes"], vertical=cfg["vertical"],
                             sample=tuple(cfg["sample"]))
+            tracks.attrs.update(input_notes(wind))
             write(tracks, path, attributes=self.config.tables.get("metadata"))
 
         self._produce("advect", result, out, depends, digest, make)

@@ -31,3 +31,24 @@ def attribute(text: str) -> tuple[str, str]:
             f"{text!r}: give KEY=VALUE, KEY of letters, digits and underscores beginning with a "
             "letter, e.g. institution=\"Harbour Weather Office\"")
     return key.strip(), value
+
+
+def add_input_options(parser: argparse.ArgumentParser) -> None:
+    """Options of the plausibility check and the time series, shared by the commands
+    that read winds (see :func:`flowpipe.ingest.open_wind`)."""
+    from ..ingest import DEFAULT_MAX_SPEED, IMPLAUSIBLE_CHOICES
+
+    parser.add_argument("--max-speed", type=float, default=DEFAULT_MAX_SPEED, metavar="M_S",
+                        help="largest plausible wind speed in m s-1 (default: "
+                        f"{DEFAULT_MAX_SPEED:g}, above the largest speeds ever analysed)")
+    parser.add_argument("--implausible", choices=IMPLAUSIBLE_CHOICES, default="refuse",
+                        help="winds that are not finite or faster than --max-speed: refuse "
+                        "the input (default) or treat them as missing")
+    parser.add_argument("--allow-gaps", action="store_true",
+                        help="accept a time series with missing times (default: refused)")
+
+
+def input_options(args: argparse.Namespace) -> dict:
+    """The keyword arguments of ``open_wind`` given by :func:`add_input_options`."""
+    return {"max_speed": args.max_speed, "implausible": args.implausible,
+            "allow_gaps": args.allow_gaps}

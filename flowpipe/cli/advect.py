@@ -8,12 +8,12 @@ import re
 import numpy as np
 import pandas as pd
 
-from ..ingest import open_wind
+from ..ingest import input_notes, open_wind
 from ..parcels import advect, read_starts
 from ..parcels._kernels import STATUS_MEANINGS
 from ..parcels.starts import parse_start
 from ..store import write
-from ._common import add_attribute_option, output_file
+from ._common import add_attribute_option, add_input_options, input_options, output_file
 
 
 def register(sub: argparse._SubParsersAction, common: argparse.ArgumentParser) -> argparse.ArgumentParser:
@@ -52,6 +52,7 @@ def register(sub: argparse._SubParsersAction, common: argparse.ArgumentParser) -
     parser.add_argument("--u", metavar="NAME", help="name of the eastward wind variable")
     parser.add_argument("--v", metavar="NAME", help="name of the northward wind variable")
     add_attribute_option(parser)
+    add_input_options(parser)
     return parser
 
 
@@ -60,12 +61,13 @@ def run(args: argparse.Namespace) -> int:
         starts = read_starts(args.starts)
     else:
         starts = pd.DataFrame([parse_start(text, i) for i, text in enumerate(args.start, 1)])
-    wind = open_wind(args.files, u=args.u, v=args.v)
+    wind = open_wind(args.files, u=args.u, v=args.v, **input_options(args))
     sample = [name.strip() for name in args.sample.split(",") if name.strip()] \
         if args.sample else []
     tracks = advect(wind, starts, hours=args.hours, backward=args.backward,
                     step_minutes=args.step_minutes, vertical=args.vertical, sample=sample,
                     steady=args.steady, scheme=args.scheme)
+    tracks.attrs.update(input_notes(wind))
     path = write(tracks, args.output, attributes=dict(args.attribute))
     counts = np.bincount(tracks["status"].values, minlength=len(STATUS_MEANINGS))
     summary = ", ".join(f"{meaning.replace('_', ' ')} {count}"

@@ -8,11 +8,11 @@ import xarray as xr
 
 from ..decompose import METHODS, decompose
 from ..errors import UsageError
-from ..ingest import open_wind
+from ..ingest import input_notes, open_wind
 from ..kinematics import kinematics
 from ..regional import SCHEMES
 from ..store import write
-from ._common import add_attribute_option, output_file
+from ._common import add_attribute_option, add_input_options, input_options, output_file
 
 
 def register(sub: argparse._SubParsersAction, common: argparse.ArgumentParser) -> argparse.ArgumentParser:
@@ -45,6 +45,7 @@ def register(sub: argparse._SubParsersAction, common: argparse.ArgumentParser) -
     parser.add_argument("--u", metavar="NAME", help="name of the eastward wind variable")
     parser.add_argument("--v", metavar="NAME", help="name of the northward wind variable")
     add_attribute_option(parser)
+    add_input_options(parser)
     return parser
 
 
@@ -60,7 +61,7 @@ def _levels(text: str) -> list[float]:
 
 
 def run(args: argparse.Namespace) -> int:
-    wind = open_wind(args.files, u=args.u, v=args.v)
+    wind = open_wind(args.files, u=args.u, v=args.v, **input_options(args))
     parts = decompose(wind, method=args.method, truncation=args.truncation, levels=args.levels,
                       scheme=args.scheme)
     if args.kinematics:
@@ -69,6 +70,7 @@ def run(args: argparse.Namespace) -> int:
                              "without missing values); drop --kinematics")
         extra = kinematics(wind, truncation=args.truncation, levels=args.levels)
         parts = xr.merge([parts, extra], combine_attrs="override")
+    parts.attrs.update(input_notes(wind))
     path = write(parts, args.output, float32=args.float32, attributes=dict(args.attribute))
     print(f"wrote {path}: {len(parts.data_vars)} variables by the "
           f"{parts.attrs.get('method', '')} method")
