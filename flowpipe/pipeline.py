@@ -33,7 +33,7 @@ from . import bookkeeping
 from ._version import __version__
 from .annotate import now_iso
 from .config import Config, load_config, render_template
-from .errors import FlowpipeError, FlowpipeWarning
+from .errors import EnvironmentProblem, FlowpipeError, FlowpipeWarning, from_os_error
 
 log = logging.getLogger("flowpipe.run")
 LOG_NAME = "flowpipe.log"
@@ -61,10 +61,13 @@ class RunSummary:
     failures: dict[str, str] = field(default_factory=dict)
     manifest: Path | None = None
     report: Path | None = None
+    #: What the run could not write about itself (manifest, report, log): one line each.
+    unrecorded: list[str] = field(default_factory=list)
 
     @property
     def exit_code(self) -> int:
-        return 1 if self.failures else 0
+        """0 all fine, 1 some inputs failed, 2 the run could not record what it did."""
+        return 2 if self.unrecorded else 1 if self.failures else 0
 
 
 @dataclass
@@ -126,6 +129,7 @@ class Runner:
         self.out = config.output_dir
         self.previous = bookkeeping.read_manifest(self.out)
         self.summary = RunSummary()
+        self.unsaved: str | None = None  # why the last save of the manifest failed
         known = self.previous.get("inputs", {})
         # A pool process gets the run's fingerprints: every input is hashed once per run.
         self.fingerprints = fingerprints or {
@@ -144,8 +148,19 @@ class Runner:
         }
 
     # -- bookkeeping ---------------------------------------------------------
-    def _save(self) -> None:
-        bookkeeping.write_json(self.out / bookkeeping.MANIFEST_NAME, self.manifest)
+    def _save(self) -> bool:
+        """Save the manifest; when the disk refuses, log it and leave it to the next save."""
+        try:
+            bookkeeping.write_json(self.out / bookkeeping.MANIFEST_NAME, self.manifest)
+        except EnvironmentProblem as exc:
+            if self.unsaved is None:
+                log.error("manifest not saved (%s); trying again after the next output", exc)
+            self.unsaved = str(exc)
+            return False
+        if self.unsaved is not None:
+            log.info("manifest saved again")
+        self.unsaved = None
+        return True
 
     def merge(self, result: UnitResult) -> None:
         """Take one unit's result into the manifest and save it (atomically)."""
@@ -324,6 +339,8 @@ class Runner:
                 else:
                     sources[stage] = getattr(self, stage)(unit, result)
             except Exception as exc:  # one bad input must not sink the rest
+                if isinstance(exc, OSError):  # the user's environment, not a bug
+                    exc = from_os_error(exc)
                 message = str(exc).splitlines()[0] if str(exc) else type(exc).__name__
                 if not isinstance(exc, FlowpipeError):
                     message = f"{type(exc).__name__}: {message}"
@@ -365,8 +382,10 @@ class Runner:
                                     if k in live or (self.out / k).exists()}
         self.manifest["finished"] = now_iso()
         self.manifest["status"] = "failed" if self.summary.failures else "ok"
-        self._save()
-        self.summary.manifest = self.out / bookkeeping.MANIFEST_NAME
+        if self._save():
+            self.summary.manifest = self.out / bookkeeping.MANIFEST_NAME
+        else:
+            self.summary.unrecorded.append(f"the manifest could not be written: {self.unsaved}")
         return self.summary
 
 
@@ -438,10 +457,29 @@ def _scheduler(workers: int, scheduler: str | None) -> Iterator[None]:
         yield
 
 
+class _LogFile(logging.FileHandler):
+    """The run's log file; a failed write (a full disk) is said once, not as a traceback."""
+
+    def __init__(self, path: Path) -> None:
+        try:
+            path.parent.mkdir(parents=True, exist_ok=True)
+            super().__init__(path)
+        except OSError as exc:
+            raise from_os_error(exc) from None
+        self.failure: str | None = None
+
+    def handleError(self, record: logging.LogRecord) -> None:  # noqa: N802 (logging's name)
+        exc = sys.exc_info()[1]
+        if self.failure is None:
+            self.failure = str(from_os_error(exc, self.baseFilename) if isinstance(exc, OSError)
+                               else exc)
+            print(f"flowpipe: warning: the log file cannot be written: {self.failure}",
+                  file=sys.stderr)
+
+
 @contextlib.contextmanager
-def _logging(directory: Path, quiet: bool) -> Iterator[None]:
-    directory.mkdir(parents=True, exist_ok=True)
-    handler = logging.FileHandler(directory / LOG_NAME)
+def _logging(directory: Path, quiet: bool) -> Iterator[_LogFile]:
+    handler = _LogFile(directory / LOG_NAME)
     handler.setFormatter(logging.Formatter("%(asctime)s %(levelname)s %(message)s"))
     handlers: list[logging.Handler] = [handler]
     if not quiet and not sys.stderr.isatty():
@@ -453,7 +491,7 @@ def _logging(directory: Path, quiet: bool) -> Iterator[None]:
     for h in handlers:
         log.addHandler(h)
     try:
-        yield
+        yield handler
     finally:
         for h in handlers:
             log.removeHandler(h)
@@ -493,7 +531,7 @@ def run(config_path: str | os.PathLike, *, force: bool = False, workers: int | N
     scheduler = scheduler or settings.get("scheduler")
     units = units_of(config)
     n_steps = len(units) * len(config.stages)
-    with _logging(config.output_dir, quiet), bookkeeping.RunLock(config.output_dir):
+    with _logging(config.output_dir, quiet) as log_file, bookkeeping.RunLock(config.output_dir):
         bookkeeping.sweep_temporaries(config.output_dir)
         progress = Progress(n_steps, quiet)
         log.info("run of %s: %d unit(s), flowpipe %s", config.path, len(units), __version__)
@@ -508,7 +546,13 @@ def run(config_path: str | os.PathLike, *, force: bool = False, workers: int | N
             progress.close()
         if not summary.written and not summary.failures:
             log.info("everything is up to date: nothing written")
-        summary.report = write_report(config.output_dir, runner.manifest)
+        try:
+            summary.report = write_report(config.output_dir, runner.manifest)
+        except EnvironmentProblem as exc:
+            log.error("report not written: %s", exc)
+            summary.unrecorded.append(f"the report could not be written: {exc}")
+        if log_file.failure:
+            summary.unrecorded.append(f"the log could not be written: {log_file.failure}")
         log.info("%d written, %d up to date, %d failed", len(summary.written),
                  len(summary.up_to_date), len(summary.failures))
     return summary

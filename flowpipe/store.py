@@ -11,9 +11,12 @@ inputs of the run is never overwritten.
 from __future__ import annotations
 
 import contextlib
+import errno
 import math
 import os
+import shutil
 import uuid
+import warnings
 from collections.abc import Iterable, Iterator
 from pathlib import Path
 
@@ -23,7 +26,17 @@ import numpy as np
 import xarray as xr
 
 from . import annotate
-from .errors import UsageError
+from .errors import (
+    NO_SPACE_ERRNOS,
+    FlowpipeError,
+    FlowpipeWarning,
+    UsageError,
+    existing_directory,
+    from_os_error,
+    megabytes,
+    no_space,
+    read_only,
+)
 
 #: The netCDF default fill value for 32- and 64-bit floats (NetCDF User Guide,
 #: ``NC_FILL_FLOAT`` / ``NC_FILL_DOUBLE``).
@@ -48,11 +61,15 @@ FLOAT32_NOTE = ("stored in single precision (IEEE 754 binary32): relative roundi
 
 
 @contextlib.contextmanager
-def atomic_path(path: str | os.PathLike, protect: Iterable[str | os.PathLike] = ()) -> Iterator[Path]:
+def atomic_path(path: str | os.PathLike, protect: Iterable[str | os.PathLike] = (),
+                needed: int | None = None) -> Iterator[Path]:
     """Yield a temporary path beside ``path``; rename it to ``path`` on success.
 
     The temporary name keeps the suffix of ``path`` so that writers which
-    choose the format from it (matplotlib) see the right one.
+    choose the format from it (matplotlib) see the right one. Errors of the
+    user's environment while writing (permissions, a read-only or full disk)
+    become one-line :class:`~flowpipe.errors.EnvironmentProblem` errors that
+    name the final path, and the temporary file is removed.
 
     Parameters
     ----------
@@ -60,17 +77,25 @@ def atomic_path(path: str | os.PathLike, protect: Iterable[str | os.PathLike] = 
         The final name.
     protect : iterable of path-like
         Paths that must never be overwritten (the inputs of the run).
+    needed : int, optional
+        About how many bytes the file needs, for the message when the disk
+        is full (otherwise the size written when it filled up).
 
     Raises
     ------
     flowpipe.errors.UsageError
         When ``path`` is one of ``protect``.
+    flowpipe.errors.EnvironmentProblem
+        When the operating system refuses the write.
     """
     final = Path(path)
     for item in protect:
         if item and final.exists() and Path(item).exists() and os.path.samefile(item, final):
             raise UsageError(f"{final}: is one of the inputs; choose another output name")
-    final.parent.mkdir(parents=True, exist_ok=True)
+    try:
+        final.parent.mkdir(parents=True, exist_ok=True)
+    except OSError as exc:
+        raise from_os_error(exc) from None
     tmp = final.parent / f".{final.name}.tmp-{os.getpid()}-{uuid.uuid4().hex[:8]}{final.suffix}"
     try:
         yield tmp
@@ -82,9 +107,67 @@ def atomic_path(path: str | os.PathLike, protect: Iterable[str | os.PathLike] = 
             os.fsync(dir_fd)
         finally:
             os.close(dir_fd)
+    except FlowpipeError:
+        raise
+    except OSError as exc:
+        if exc.errno in NO_SPACE_ERRNOS:
+            raise no_space(final, needed or _size(tmp)) from None
+        # an input that fails while it is read for the write is named as itself
+        named = exc.filename if exc.filename and Path(exc.filename) != tmp else final
+        raise from_os_error(exc, named) from None
+    except Exception as exc:
+        # netCDF-C reports a full disk as "NetCDF: HDF error" (no errno): look at the disk
+        if shutil.disk_usage(final.parent).free < FULL_DISK_BYTES:
+            raise no_space(final, needed or _size(tmp)) from exc
+        raise
     finally:
+        # (a read-only file system refuses even to remove what is not there)
         with contextlib.suppress(FileNotFoundError):
-            tmp.unlink()
+            if os.path.lexists(tmp):
+                # emptied first: a writer that failed may keep it open (netCDF-C cannot
+                # close a file it could not flush), and its blocks would stay taken
+                os.truncate(tmp, 0)
+                tmp.unlink()
+
+
+#: Free space below which a write that failed is taken to have filled the disk: less
+#: than one HDF5 chunk of a slab can be written there.
+FULL_DISK_BYTES = MIN_CHUNK_BYTES * 4
+
+
+def _size(path: Path) -> int | None:
+    try:
+        return path.stat().st_size or None
+    except OSError:
+        return None
+
+
+def check_space(path: str | os.PathLike, certain: int, upper: int) -> None:
+    """Refuse a write that cannot fit on its disk; warn when it may not.
+
+    Parameters
+    ----------
+    path : path-like
+        The file to write (its directory may not exist yet).
+    certain : int
+        Bytes the file needs whatever the compression (its uncompressed parts).
+    upper : int
+        Bytes it needs at most (everything uncompressed).
+
+    Raises
+    ------
+    flowpipe.errors.EnvironmentProblem
+        When the free space is less than ``certain``.
+    """
+    where = existing_directory(path)
+    if read_only(path):
+        raise from_os_error(OSError(errno.EROFS, os.strerror(errno.EROFS)), path)
+    free = shutil.disk_usage(where).free
+    if free < certain:
+        raise no_space(path, certain)
+    if free < upper:
+        warnings.warn(f"{path}: may need up to {megabytes(upper)} before compression, "
+                      f"{megabytes(free)} are free there", FlowpipeWarning, stacklevel=3)
 
 
 def sources(ds: xr.Dataset) -> list[str]:
@@ -192,6 +275,10 @@ def write(ds: xr.Dataset, path: str | os.PathLike, *, float32: bool = False,
     ------
     flowpipe.errors.UsageError
         When ``path`` is one of the files ``ds`` was read from.
+    flowpipe.errors.EnvironmentProblem
+        When the disk has not even room for the uncompressed parts (checked
+        before writing; a warning when it may not hold the whole file), or the
+        operating system refuses the write (see :func:`atomic_path`).
     """
     final = Path(path)
     lazy = {k: v for k, v in ds.attrs.items() if dask.is_dask_collection(v)}
@@ -207,7 +294,9 @@ def write(ds: xr.Dataset, path: str | os.PathLike, *, float32: bool = False,
     for var in out.variables.values():
         # the only encoding kept: the coordinates a stage names (CF 1.11 section 9 readers need them)
         var.encoding = {"coordinates": var.encoding["coordinates"]} if "coordinates" in var.encoding else {}
-    with atomic_path(final, sources(ds)) as tmp, _write_chunk_cache():
+    certain, upper = _stored_bytes(out, encoding)
+    check_space(final, certain, upper)
+    with atomic_path(final, sources(ds), needed=upper) as tmp, _write_chunk_cache():
         if not lazy:
             out.to_netcdf(tmp, engine="netcdf4", format="NETCDF4", encoding=encoding)
             return final
@@ -220,6 +309,18 @@ def write(ds: xr.Dataset, path: str | os.PathLike, *, float32: bool = False,
             for name, value in zip(lazy, values, strict=True):
                 nc.setncattr(name, np.asarray(value).item())
     return final
+
+
+def _stored_bytes(ds: xr.Dataset, encoding: dict[str, dict]) -> tuple[int, int]:
+    """Bytes of the data as stored: (those not compressed, all of them uncompressed)."""
+    certain = upper = 0
+    for name, var in ds.variables.items():
+        enc = encoding.get(str(name), {})
+        size = var.size * np.dtype(enc.get("dtype", var.dtype)).itemsize
+        upper += size
+        if not enc.get("zlib"):
+            certain += size
+    return certain, upper
 
 
 @contextlib.contextmanager

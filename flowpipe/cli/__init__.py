@@ -16,7 +16,7 @@ import warnings
 from collections.abc import Sequence
 
 from .._version import __version__
-from ..errors import FlowpipeError, FlowpipeWarning
+from ..errors import FlowpipeError, FlowpipeWarning, from_os_error
 
 COMMANDS = ("inspect", "decompose", "advect", "map", "run", "circulation", "ftle")
 
@@ -82,7 +82,20 @@ def main(argv: Sequence[str] | None = None) -> int:
     # output file is removed (the atomic writer cleans up on the way out).
     signal.signal(signal.SIGTERM, _terminate)
     try:
-        return int(args.handler(args))
+        code = int(args.handler(args))
+        sys.stdout.flush()  # here, where a closed pipe can still be reported
+        return code
+    except BrokenPipeError as exc:
+        # Nothing more can go to the closed pipe, not even at exit (Python documentation,
+        # "Note on SIGPIPE", signal module): point standard output at the null device.
+        os.dup2(os.open(os.devnull, os.O_WRONLY), sys.stdout.fileno())
+        print(f"flowpipe: error: {from_os_error(exc)}", file=sys.stderr)
+        return 2
+    except OSError as exc:  # the user's environment (the stages name their paths themselves)
+        if args.debug:
+            raise
+        print(f"flowpipe: error: {from_os_error(exc)}", file=sys.stderr)
+        return 2
     except FlowpipeError as exc:
         if args.debug:
             raise

@@ -39,4 +39,6 @@ def run(args: argparse.Namespace) -> int:
             print(f"flowpipe: everything is up to date, nothing written ({summary.report})")
     for unit, error in summary.failures.items():
         print(f"flowpipe: error: {unit}: {error}", file=sys.stderr)
+    for problem in summary.unrecorded:
+        print(f"flowpipe: error: {problem}", file=sys.stderr)
     return summary.exit_code
