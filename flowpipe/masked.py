@@ -132,10 +132,12 @@ def masked_helmholtz_slab(
     -------
     tuple of numpy.ndarray
         The eight fields of ``spectral_kernel``, then ``u_unresolved`` and
-        ``v_unresolved`` (the wind minus the rotational and divergent winds),
-        all NaN where ``u`` or ``v`` is missing; then three area-weighted sums
+        ``v_unresolved`` (the wind minus the rotational and divergent winds
+        on a slab with missing points, zero on a complete slab), all NaN
+        where ``u`` or ``v`` is missing; then three area-weighted sums
         over the valid points: of the squared residual
-        ``|rotational + divergent + unresolved - (u, v)|**2`` (rounding level),
+        ``|rotational + divergent + unresolved - (u, v)|**2`` (rounding level
+        on a slab with missing points),
         of ``|unresolved|**2`` and of ``|(u, v)|**2``. Without missing points
         the eight fields are those of ``spectral_kernel`` itself.
 
@@ -151,8 +153,11 @@ def masked_helmholtz_slab(
     uf, vf, mask = harmonic_fill(u, v, latitude)
     out = spectral_kernel(uf, vf, weights=weights, **kwargs)
     fields = tuple(np.where(mask, np.nan, f) for f in out[:8])
-    u_rest = np.where(mask, np.nan, u - fields[4] - fields[6])
-    v_rest = np.where(mask, np.nan, v - fields[5] - fields[7])
+    # On a complete slab nothing was filled: the unresolved wind is zero and the residual is
+    # the plain spectral one, as without this route.
+    keep = 1.0 if mask.any() else 0.0
+    u_rest = np.where(mask, np.nan, keep * (u - fields[4] - fields[6]))
+    v_rest = np.where(mask, np.nan, keep * (v - fields[5] - fields[7]))
     valid = ~mask
 
     def area_sum(x: np.ndarray) -> float:
