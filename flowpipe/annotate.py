@@ -60,6 +60,12 @@ VARIABLES: dict[str, tuple[str | None, str, str]] = {
                    "eastward component of the harmonic (non-divergent and irrotational) wind"),
     "v_harmonic": (None, "m s-1",
                    "northward component of the harmonic (non-divergent and irrotational) wind"),
+    "u_unresolved": (None, "m s-1",
+                     "eastward wind at valid points not carried by the band-limited rotational "
+                     "and divergent winds"),
+    "v_unresolved": (None, "m s-1",
+                     "northward wind at valid points not carried by the band-limited rotational "
+                     "and divergent winds"),
     # kinematics
     "absolute_vorticity": ("atmosphere_absolute_vorticity", "s-1", "absolute vorticity"),
     "stretching_deformation": (None, "s-1", "stretching deformation"),

@@ -22,7 +22,7 @@ from .annotate import figure, global_attrs, variable_attrs
 from .constants import EARTH_RADIUS
 from .errors import InputError, UsageError
 from .grid import GridInfo, describe_grid
-from .masked import MASKED_POINTS, masked_helmholtz_slab
+from .masked import MASKED_POINTS, UNRESOLVED_VARIABLES, masked_helmholtz_slab
 
 METHODS = ("auto", "spectral", "regional")
 #: The contract variables of the spectral decomposition, in kernel output order.
@@ -59,13 +59,16 @@ def decompose(
         ``"spectral"``: spherical harmonics, for complete global grids
         without missing values. ``"regional"``: the limited-area solvers of
         :mod:`flowpipe.regional`. ``"auto"``: spectral on complete global
-        grids without missing values, regional otherwise. Asked for on a
-        complete global grid whose u or v has missing points (below the
-        ground, say), ``"spectral"`` fills those by harmonic (Laplace)
-        interpolation before the transforms and sets them missing again in
-        every output; the reconstruction error counts the valid points only
-        and is not at rounding level next to the mask (attribute
-        ``masked_points``; :mod:`flowpipe.masked`).
+        grids, regional otherwise. On a complete global grid whose u or v
+        has missing points (below the ground, say), the spectral method
+        fills those by harmonic (Laplace) interpolation before the
+        transforms, sets them missing again in every output and adds
+        ``u_unresolved``, ``v_unresolved``: what the rotational and divergent
+        winds leave of the wind at the valid points (about 1e-2 of it next
+        to the mask), with its share ``unresolved_fraction`` (attribute
+        ``masked_points``; :mod:`flowpipe.masked`). ``"auto"`` counts the
+        missing points up front (one read of u and v); ``"spectral"`` takes
+        the masked route without counting.
     truncation : int, optional
         Triangular truncation ``N`` of the spectral method; the default is
         the largest the grid resolves (:func:`flowpipe.spectral.max_truncation`).
@@ -106,11 +109,14 @@ def decompose(
         raise UsageError(f"method {method!r} is not one of {', '.join(METHODS)}")
     wind, descending = canonical_order(select_levels(wind, levels))
     grid = describe_grid(wind)
-    # asked for spectral: missing points are filled, found inside each slab task
-    masked = method == "spectral" and grid.spectral
+    # auto on a complete global grid counts the missing points once (the one up-front read):
+    # with any, the masked spectral route (flowpipe.masked), which measured 3x the transform
+    # floor against 245x for the regional solver at 1 degree (benchmarks/bench_masked.py).
+    # Asked for spectral: the masked route, the missing points found inside each slab task.
     missing = missing_points(wind) if method == "auto" and grid.spectral else None
     if method == "auto":
-        method = "spectral" if grid.spectral and not missing else "regional"
+        method = "spectral" if grid.spectral else "regional"
+    masked = method == "spectral" and grid.spectral and missing != 0
     if method == "regional":
         if truncation is not None:
             raise UsageError("truncation applies to the spectral method only; the grid is "
@@ -397,24 +403,31 @@ def _decompose_spectral(
     masked: bool = False,
 ) -> xr.Dataset:
     geometry, n = spectral_plan(wind, grid, truncation, missing)
-    kernel, extra = helmholtz_slab, {}
+    kernel, extra, names, sums = helmholtz_slab, {}, SPECTRAL_VARIABLES, 2
     if masked:
         kernel = masked_helmholtz_slab
         extra = {"spectral_kernel": helmholtz_slab, "latitude": grid.latitude}
+        names, sums = SPECTRAL_VARIABLES + UNRESOLVED_VARIABLES, 3
     outputs = apply_slab_kernel(
-        kernel, wind, [HORIZONTAL] * len(SPECTRAL_VARIABLES) + [[], []],
+        kernel, wind, [HORIZONTAL] * len(names) + [[]] * sums,
         geometry=geometry, truncation=n, radius=EARTH_RADIUS, weights=grid.ring_weights(),
         **extra,
     )
-    fields = dict(zip(SPECTRAL_VARIABLES, outputs[:-2], strict=True))
-    residual, norm = outputs[-2:]
+    fields = dict(zip(names, outputs[:-sums], strict=True))
+    residual, norm = outputs[-sums], outputs[-1]
     parts = xr.Dataset({name: da.assign_attrs(variable_attrs(name)) for name, da in fields.items()})
     for name in ("streamfunction", "velocity_potential"):
         parts[name].attrs["comment"] = POTENTIAL_CONSTANT
     parts["reconstruction_error"] = np.sqrt(residual / norm).assign_attrs(
         units="1", long_name="relative reconstruction error of the wind, "
         "|(u_rotational + u_divergent, v_rotational + v_divergent) - (u, v)| / |(u, v)|, "
-        "area-weighted 2-norm over each latitude-longitude slab")
+        "area-weighted 2-norm over each latitude-longitude slab"
+        + (" (with u_unresolved, v_unresolved added; valid points only)" if masked else ""))
+    if masked:
+        unresolved = outputs[-2]
+        parts["unresolved_fraction"] = np.sqrt(unresolved / norm).assign_attrs(
+            units="1", long_name="|(u_unresolved, v_unresolved)| / |(u, v)|, area-weighted "
+            "2-norm over the valid points of each latitude-longitude slab")
     parts = label_coordinates(parts)
     parts.attrs = global_attrs(
         wind, title="Helmholtz decomposition of the wind",
@@ -430,6 +443,7 @@ def _decompose_spectral(
     )
     if masked:
         parts.attrs["masked_points"] = MASKED_POINTS
+        parts.attrs["unresolved_fraction"] = figure(np.sqrt(unresolved.sum() / norm.sum()))
     parts.attrs["reconstruction_error"] = figure(np.sqrt(residual.sum() / norm.sum()))
     return parts
 

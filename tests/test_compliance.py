@@ -144,6 +144,13 @@ def _failures(result: dict, priority: str) -> list[str]:
             for msg in item["msgs"]]
 
 
+def below_ground(wind):
+    """The wind missing in a block of points (a plateau below the ground, invented)."""
+    u = wind["u"].where(~((wind.latitude > 25) & (wind.latitude < 40)
+                          & (wind.longitude > 80) & (wind.longitude < 100)))
+    return wind.assign(u=u, v=wind["v"].where(u.notnull()))
+
+
 @pytest.fixture(scope="module")
 def outputs(tmp_path_factory) -> dict[str, Path]:
     """One small file of each kind flowpipe writes: synthetic, then from the real stages."""
@@ -159,6 +166,7 @@ def outputs(tmp_path_factory) -> dict[str, Path]:
         "trajectories-2d": (trajectory_like(vertical=False, backward=True), False),
         "decompose-spectral": (fp.decompose(wind.isel(time=slice(0, 1))), False),
         "decompose-regional": (fp.decompose(regional), True),
+        "decompose-masked": (fp.decompose(below_ground(wind.isel(time=slice(0, 1)))), False),
         "kinematics": (fp.kinematics(wind.isel(time=slice(0, 1))), False),
         "advect": (fp.advect(fp.open_wind(GLOBAL), [(52.0, 4.0, 850.0), (-40.0, 300.0, 500.0)],
                              hours=6, backward=True), False),
@@ -175,7 +183,7 @@ def reports(outputs) -> dict[str, dict]:
 
 KINDS = ("global-decomposition", "regional-decomposition", "kinematics-float32",
          "trajectories-3d", "trajectories-2d", "decompose-spectral", "decompose-regional",
-         "kinematics", "advect", "ftle")
+         "decompose-masked", "kinematics", "advect", "ftle")
 
 
 @pytest.mark.parametrize("kind", KINDS)
@@ -250,9 +258,10 @@ def test_contract_standard_names_and_units(outputs):
     # canonical units (UDUNITS-2).
     table = _standard_name_table()
     with xr.open_dataset(outputs["regional-decomposition"]) as parts, \
-            xr.open_dataset(outputs["kinematics"]) as kin:
+            xr.open_dataset(outputs["kinematics"]) as kin, \
+            xr.open_dataset(outputs["decompose-masked"]) as masked:
         for name, (standard_name, units, _) in annotate.VARIABLES.items():
-            ds = parts if name in parts else kin
+            ds = next(d for d in (parts, masked, kin) if name in d)
             assert ds[name].attrs["units"] == units
             if standard_name is None:
                 assert "standard_name" not in ds[name].attrs

@@ -134,7 +134,7 @@ def test_bad_inputs_name_the_problem():
     with pytest.raises(fp.InputError, match="--method regional"):
         fp.decompose(regional, method="spectral")
     # Missing values under method="spectral": filled for the transforms, then missing again
-    # in every output (flowpipe.masked); auto keeps them for the regional solver.
+    # in every output (flowpipe.masked).
     gappy = wind.copy(deep=True)
     gappy["u"][10:12, 5:7] = np.nan
     filled = fp.decompose(gappy, method="spectral")
@@ -196,7 +196,7 @@ def test_cli_bad_options_exit_2_with_one_line(tmp_path, capsys, extra, needle):
     assert not (tmp_path / "x.nc").exists()
 
 
-def test_auto_dispatches_gappy_and_limited_area_grids_to_the_regional_method(monkeypatch):
+def test_auto_dispatches_limited_area_grids_to_the_regional_method(monkeypatch):
     # The contract (shared/DESIGN.md, decomposition): spherical harmonics on complete global
     # grids, the limited-area solver otherwise; the solver is told whether the grid wraps.
     import flowpipe.regional
@@ -211,7 +211,8 @@ def test_auto_dispatches_gappy_and_limited_area_grids_to_the_regional_method(mon
     wind, _ = _grid_wind("GL", 32, 64, "case6")
     gappy = wind.copy(deep=True)
     gappy["v"][3, 4] = np.nan
-    assert fp.decompose(gappy, scheme="dirichlet").attrs["method"] == "regional"
+    # a gappy complete global grid stays spectral under auto (issue 15; tests/test_masked.py)
+    assert fp.decompose(gappy, method="regional", scheme="dirichlet").attrs["method"] == "regional"
     assert fp.decompose(wind.isel(longitude=slice(0, 30)), tolerance=1e-3).attrs["method"] == "regional"
     assert fp.decompose(wind, method="regional").attrs["method"] == "regional"
     assert fp.decompose(wind).attrs["method"] == "spectral"

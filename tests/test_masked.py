@@ -1,4 +1,5 @@
-"""Masked complete global levels: the spectral route with a harmonic (Laplace) fill.
+"""Masked complete global levels: the spectral route with a harmonic (Laplace) fill and the
+unresolved remainder.
 
 Analytic wind: the Rossby-Haurwitz wave of Williamson et al. (1992, J. Comput. Phys.
 102, 211-224, test case 6; tests/_williamson.py) plus a divergent part built of
@@ -50,24 +51,86 @@ def _angular_distance_to(mask, phi, lam):
 def test_masked_level_is_reconstructed_at_valid_points_and_missing_in_every_output():
     lat, lon, phi, lam, u, v, exact, mask = _case()
     wind = wind_dataset(np.where(mask, np.nan, u), np.where(mask, np.nan, v), lat, lon)
-    parts = fp.decompose(wind, method="spectral")
+    parts = fp.decompose(wind)  # auto: a gappy complete global grid takes the masked route
     assert parts.attrs["method"] == "spectral" and "Laplace" in parts.attrs["masked_points"]
-    for name in FIELDS:
+    for name in FIELDS + ("u_unresolved", "v_unresolved"):
         values = parts[name].values
         assert np.isnan(values[mask]).all(), name
         assert np.isfinite(values[~mask]).all(), name
-    du = parts["u_rotational"].values + parts["u_divergent"].values - u
-    dv = parts["v_rotational"].values + parts["v_divergent"].values - v
-    error = np.max(np.hypot(du, dv)[~mask]) / np.max(np.hypot(u, v))
-    # NOT the 1e-6 asked for: the Laplace fill has kinks at the mask edge, so the filled wind
-    # is not band-limited and the transforms cannot give it back exactly. Measured on this
-    # case: 8.3e-3 max relative, 9.6e-4 area-weighted 2-norm. Bound: 1e-2 (our choice).
-    assert error <= 1e-2
-    # The reported figure is the area-weighted norm over the valid points (Gauss-Legendre
+    scale = np.max(np.hypot(u, v))
+    # rotational + divergent + unresolved = wind at every valid point, to 1e-6 relative
+    # (the issue's bound), against the analytic wind itself.
+    du = parts["u_rotational"].values + parts["u_divergent"].values \
+        + parts["u_unresolved"].values - u
+    dv = parts["v_rotational"].values + parts["v_divergent"].values \
+        + parts["v_unresolved"].values - v
+    assert np.max(np.hypot(du, dv)[~mask]) / scale <= 1e-6
+    assert float(parts.attrs["reconstruction_error"]) <= 1e-6
+    # The unresolved part is small but not at rounding level next to the mask: the Laplace
+    # fill has kinks at the mask edge, so the filled wind is not band-limited. Measured on
+    # this case: 8.3e-3 max relative, 9.6e-4 area-weighted 2-norm. Bound: 1e-2 (our choice).
+    rest = np.hypot(parts["u_unresolved"].values, parts["v_unresolved"].values)
+    assert np.max(rest[~mask]) / scale <= 1e-2
+    # The reported share is the area-weighted norm over the valid points (Gauss-Legendre
     # weights of numpy.polynomial.legendre.leggauss, the reference library).
     w = np.polynomial.legendre.leggauss(NLAT)[1][:, None] * ~mask
-    expected = np.sqrt(np.nansum(w * (du**2 + dv**2)) / np.sum(w * (u**2 + v**2)))
-    assert abs(float(parts.attrs["reconstruction_error"]) - expected) <= 1e-9 * expected
+    expected = np.sqrt(np.nansum(w * rest**2) / np.sum(w * (u**2 + v**2)))
+    assert abs(float(parts.attrs["unresolved_fraction"]) - expected) <= 1e-9 * expected
+    assert 1e-5 <= expected <= 1e-2
+
+
+def test_auto_takes_the_masked_spectral_route_only_for_gappy_complete_global_grids(
+        monkeypatch):
+    # The method choice of flowpipe.decompose (issue 15): spherical harmonics on every complete
+    # global grid, masked or not; the regional solver is not called for them.
+    import flowpipe.regional
+
+    calls = []
+    monkeypatch.setattr(flowpipe.regional, "decompose_regional",
+                        lambda wind, **options: calls.append(options))
+    lat, lon, phi, lam, u, v, exact, mask = _case()
+    gappy = fp.decompose(wind_dataset(np.where(mask, np.nan, u), v, lat, lon))
+    plain = fp.decompose(wind_dataset(u, v, lat, lon))
+    assert calls == []
+    assert "masked_points" in gappy.attrs and "u_unresolved" in gappy
+    assert "masked_points" not in plain.attrs and "u_unresolved" not in plain
+    assert plain.attrs["method"] == gappy.attrs["method"] == "spectral"
+
+
+def test_divergence_of_the_rotational_and_vorticity_of_the_divergent_wind_vanish():
+    # Independent centred differences in spherical coordinates (second order, common
+    # practice): div(V) = (du/dlam + d(v cos phi)/dphi) / (a cos phi), curl likewise. At
+    # valid points whose stencil is valid, within 1 % of the largest vorticity (issue 15).
+    lat, lon, phi, lam, u, v, exact, mask = _case()
+    parts = fp.decompose(wind_dataset(np.where(mask, np.nan, u), np.where(mask, np.nan, v),
+                                      lat, lon))
+    dlam = 2 * np.pi / NLON
+
+    def d_lam(f):
+        return (np.roll(f, -1, axis=1) - np.roll(f, 1, axis=1)) / (2 * dlam)
+
+    def d_phi(f):
+        out = np.full_like(f, np.nan)
+        out[1:-1] = (f[2:] - f[:-2]) / (phi[2:] - phi[:-2])
+        return out
+
+    c = np.cos(phi)
+    ur, vr = parts["u_rotational"].values, parts["v_rotational"].values
+    ud, vd = parts["u_divergent"].values, parts["v_divergent"].values
+    div_rot = (d_lam(ur) + d_phi(vr * c)) / (EARTH_RADIUS * c)
+    curl_div = (d_lam(vd) - d_phi(ud * c)) / (EARTH_RADIUS * c)
+    zeta = (d_lam(v) - d_phi(u * c)) / (EARTH_RADIUS * c)  # of the whole analytic wind
+    from scipy.ndimage import binary_dilation
+
+    # Points more than two grid steps from the mask, away from the pole rows. Measured: 0.81 %
+    # (rotational) and 0.81 % (divergent) there; 1.2 % on the points next to the mask, where
+    # the parts carry the grid-scale ringing of the fill; the same operator on the analytic
+    # rotational wind gives 0.36 % (its own truncation error at 2.8 degrees).
+    inner = np.isfinite(div_rot) & np.isfinite(curl_div) & (np.abs(np.degrees(phi)) < 80) \
+        & ~binary_dilation(mask, iterations=2)
+    largest = np.nanmax(np.abs(zeta))
+    assert np.max(np.abs(div_rot[inner])) <= 1e-2 * largest
+    assert np.max(np.abs(curl_div[inner])) <= 1e-2 * largest
 
 
 def test_away_from_the_mask_the_parts_match_the_analytic_split_better_than_regional():
@@ -86,7 +149,7 @@ def test_away_from_the_mask_the_parts_match_the_analytic_split_better_than_regio
     # Measured on this 64 x 128 Gauss-Legendre case (>= 5 degrees from the mask, max error of
     # the rotational / divergent wind relative to max |wind|): Laplace-filled spectral 2.5e-2,
     # regional variational solver 1.9e-1.
-    filled = worst(fp.decompose(wind, method="spectral"))
+    filled = worst(fp.decompose(wind))
     regional = worst(fp.decompose(wind, method="regional"))
     assert filled <= regional
     assert filled <= 0.05
@@ -100,7 +163,7 @@ def test_unmasked_level_through_the_masked_kernel_equals_the_spectral_kernel():
     plain = helmholtz_slab(u, v, **options)
     through = masked_helmholtz_slab(u, v, spectral_kernel=helmholtz_slab, latitude=lat,
                                     **options)
-    for a, b in zip(plain, through, strict=True):
+    for a, b in zip(plain[:8], through[:8], strict=True):
         assert np.max(np.abs(a - b)) <= 1e-9 * max(np.max(np.abs(a)), 1e-300)
 
 
@@ -120,6 +183,7 @@ def test_lazy_masked_levels_compute_nothing_while_building():
     with dask.config.set(scheduler=refuse):
         parts = fp.decompose(wind, method="spectral")
     assert parts["streamfunction"].data.numblocks == (2, 1, 1)
+    assert parts["u_unresolved"].data.numblocks == (2, 1, 1)
     computed = parts.compute()
     assert np.isnan(computed["streamfunction"].values[0][mask]).all()
     assert np.isfinite(computed["streamfunction"].values[1]).all()
