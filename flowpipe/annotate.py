@@ -264,7 +264,8 @@ def _point_coordinates(ds: xr.Dataset) -> None:
     A reader of discrete sampling geometries finds a feature's space-time
     coordinates through the ``coordinates`` attribute of its data variables.
     """
-    located = [str(name) for name in ds.coords if "obs" in ds[name].dims and name != "obs"]
+    located = [str(name) for name in ds.coords if ("obs" in ds[name].dims and name != "obs")
+               or ds[name].ndim == 0]  # and the one level of a 2-D wind (10 m, say)
     for name in ds.data_vars:
         if "obs" in ds[name].dims:
             ds[name].encoding["coordinates"] = " ".join(located)

@@ -225,8 +225,8 @@ def spectral_plan(
             or not 1 <= truncation <= largest:
         raise UsageError(
             f"truncation {truncation!r} is out of range: the {grid.nlat} x {grid.nlon} "
-            f"{grid.geometry} grid resolves triangular truncations 1..{largest}; the largest "
-            f"allowed N is {largest}")
+            f"{spectral.GRID_WORDS[grid.geometry]} grid resolves triangular truncations 1..{largest}; "
+            f"give N from 1 to {largest}")
     return grid.geometry, int(truncation)
 
 

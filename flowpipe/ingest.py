@@ -260,6 +260,14 @@ def _canonical(raw: xr.Dataset, path: Path, u_name: str | None, v_name: str | No
             f"{present}; name them with --u NAME --v NAME (config: [input] u, v)"
         )
     un, vn = names
+    for dim in raw[un].dims:
+        values = raw[dim].values if dim in raw.coords else None
+        if values is not None and values.dtype.kind == "f" and not np.isfinite(values).all():
+            bad = np.flatnonzero(~np.isfinite(values))
+            raise InputError(
+                f"{path}: coordinate {dim} has {bad.size} missing (NaN or infinite) value(s), "
+                f"the first at index {bad[0]}; a grid needs every coordinate value: repair "
+                "the coordinate")
     if raw[un].dims != raw[vn].dims or any(
         not np.array_equal(raw[un][d].values, raw[vn][d].values)
         for d in raw[un].dims if d in raw[un].coords and d in raw[vn].coords
@@ -287,7 +295,10 @@ def _canonical(raw: xr.Dataset, path: Path, u_name: str | None, v_name: str | No
         )
     vert = find_coordinate(ds, ds[un], "vertical", "Z")
     time = find_coordinate(ds, ds[un], "time", "T")
-    if vert is not None and ds[vert].ndim == 0:  # a single level, such as 10 m: a 2-D field
+    single_level = None
+    if vert is not None and ds[vert].size == 1 and (ds[vert].ndim == 0 or vert not in ds[un].dims):
+        # one level, such as 10 m: a 2-D field that keeps its level as a scalar coordinate
+        single_level = _single_level(ds[vert])
         ds = ds.drop_vars(vert)
         vert = None
     if time is not None and ds[time].ndim == 0:  # one time per file, as a scalar coordinate
@@ -310,6 +321,8 @@ def _canonical(raw: xr.Dataset, path: Path, u_name: str | None, v_name: str | No
     ds = _to_canonical_variables(ds, path, un, vn)
     ds = _orient(ds, path)
     ds = _vertical(ds, path)
+    if single_level is not None:
+        ds = ds.assign_coords({str(single_level.name): single_level})
     _probe(ds, path)
     extra = [d for d in ds["u"].dims if d not in CANONICAL_DIMS]
     order = extra + [d for d in CANONICAL_DIMS if d in ds["u"].dims]
@@ -447,6 +460,24 @@ def canonical_levels(values: np.ndarray, units: str | None) -> tuple[np.ndarray,
     return values, "other"
 
 
+#: Scalar coordinates of a field on one level, by the kind of level (CF standard names).
+SINGLE_LEVEL = {
+    "height": ("height", {"units": "m", "standard_name": "height", "positive": "up", "axis": "Z",
+                          "long_name": "height above the surface"}),
+    "pressure": ("air_pressure", {"units": "hPa", "standard_name": "air_pressure",
+                                  "positive": "down", "axis": "Z"}),
+}
+
+
+def _single_level(coordinate: xr.DataArray) -> xr.DataArray | None:
+    """The one level of a 2-D field (10 m, 850 hPa) as a scalar coordinate, or None."""
+    values, kind = canonical_levels(np.ravel(coordinate.values), coordinate.attrs.get("units"))
+    if kind not in SINGLE_LEVEL:
+        return None
+    name, attrs = SINGLE_LEVEL[kind]
+    return xr.DataArray(float(values[0]), name=name, attrs=attrs)
+
+
 def _vertical(ds: xr.Dataset, path: Path) -> xr.Dataset:
     if "level" not in ds.dims:
         ds.attrs["level_type"] = "none"
@@ -456,6 +487,11 @@ def _vertical(ds: xr.Dataset, path: Path) -> xr.Dataset:
     if _strictly_monotonic(level.values) == 0:
         raise InputError(f"{path}: vertical coordinate is not strictly monotonic")
     values, kind = canonical_levels(level.values, level.attrs.get("units"))
+    if "units" not in level.attrs:
+        warnings.warn(f"{path}: the level coordinate has no units, so its levels are only "
+                      "labels (per-level results, no trajectories across levels); add units "
+                      "such as \"hPa\" or \"m\" to use them as pressure or height",
+                      FlowpipeWarning, stacklevel=2)
     attrs = dict(level.attrs)
     if kind == "pressure":
         attrs.update(units="hPa", standard_name="air_pressure", positive="down", axis="Z")

@@ -240,6 +240,8 @@ def _select(ds: xr.Dataset, da: xr.DataArray, label: str, level: float | None,
         words.append(f"{values[index]:g} {units}".strip())
     elif level is not None:
         raise InputError(f"{label}: {da.name} has no vertical coordinate; leave out the level")
+    elif vertical is not None and ds[vertical].size == 1:  # a field on one level: 10 m, say
+        words.append(_one_level(ds[vertical]))
     tname = find_coordinate(ds, da, "time", "T")
     if tname is not None and tname in da.dims:
         texts = [iso_time(t, "minutes") for t in ds[tname].values]
@@ -641,12 +643,25 @@ def _track_map(fig: Figure, ds: xr.Dataset, label: str, field: str | None,
     bar.set_label(colour_label)
     if colour is not None and colour.attrs.get("positive") == "down":
         bar.ax.invert_yaxis()  # pressure: higher in the atmosphere at the top
-    ax.set_title(_track_title(lat.shape[0], times, elapsed, colour_label), loc="left", fontsize=10)
+    level = next((ds[n] for n in ds.coords if ds[n].ndim == 0 and ds[n].attrs.get("axis") == "Z"),
+                 None)
+    ax.set_title(_track_title(lat.shape[0], times, elapsed, colour_label, level), loc="left",
+                 fontsize=10)
+
+
+def _one_level(coordinate: xr.DataArray) -> str:
+    """The one level of a 2-D field in words: ``"10 m above the surface"``, ``"850 hPa"``."""
+    values, kind = canonical_levels(np.ravel(coordinate.values), coordinate.attrs.get("units"))
+    units = {"pressure": "hPa", "height": "m above the surface"}.get(
+        kind, coordinate.attrs.get("units", ""))
+    return f"{values[0]:g} {units}".strip()
 
 
 def _track_title(count: int, times: xr.DataArray | None, elapsed: np.ndarray | None,
-                 colour_label: str) -> str:
+                 colour_label: str, level: xr.DataArray | None = None) -> str:
     head = f"{count} trajector{'y' if count == 1 else 'ies'}, coloured by {colour_label}"
+    if level is not None:
+        head += f", {_one_level(level)}"
     if times is None:
         return head
     start = iso_time(times.values.ravel()[0], "minutes")

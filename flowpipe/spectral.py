@@ -46,6 +46,10 @@ _SHT = ducc0.sht.experimental
 #: ducc0 ring geometries for which the vector analysis is exact.
 GEOMETRIES = ("CC", "F1", "GL")
 
+#: The same geometries in the words of messages to users.
+GRID_WORDS = {"CC": "equiangular (with pole rows)", "F1": "equiangular (rows offset from the "
+              "poles)", "GL": "Gaussian"}
+
 
 def max_truncation(geometry: str, nlat: int, nlon: int) -> int:
     """The largest triangular truncation a complete global grid resolves.

@@ -142,7 +142,7 @@ def test_bad_inputs_name_the_problem():
     assert int(filled["streamfunction"].isnull().sum()) == 4
     # Too coarse for the truncation: the largest allowed N (GL limit nlat - 1 of the
     # ducc0 analysis_2d documentation, and (nlon - 1) // 2 = 31).
-    with pytest.raises(fp.UsageError, match="largest allowed N is 31"):
+    with pytest.raises(fp.UsageError, match="give N from 1 to 31"):
         fp.decompose(wind, truncation=40)
     with pytest.raises(fp.UsageError, match="method"):
         fp.decompose(wind, method="fourier")

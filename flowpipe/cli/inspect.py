@@ -35,9 +35,14 @@ def run(args: argparse.Namespace) -> int:
 def format_report(report: dict) -> str:
     """The short human-readable summary of one file."""
     levels = report["levels"]
-    level_text = (f"{len(levels)} {report['level_type']} levels "
-                  f"({', '.join(f'{x:g}' for x in levels)} {report['level_units']})"
-                  if levels else "no vertical dimension")
+    if not levels:
+        level_text = "no vertical dimension"
+    elif report["level_units"] is None:
+        level_text = (f"{len(levels)} levels ({', '.join(f'{x:g}' for x in levels)}) of "
+                      "unknown kind: the level coordinate has no units")
+    else:
+        level_text = (f"{len(levels)} {report['level_type']} levels "
+                      f"({', '.join(f'{x:g}' for x in levels)} {report['level_units']})")
     vertical = report["vertical_velocity"] or "none"
     missing = ", ".join(f"{k} {n}" for k, n in report["missing"].items())
     lines = [

@@ -137,8 +137,8 @@ def _check_wind(wind: xr.Dataset, vertical: str | None, sample: Sequence[str]) -
                              "flowpipe.open_wind")
     extra = [d for d in wind["u"].dims if d not in ("time", "level", "latitude", "longitude")]
     if extra:
-        raise UsageError(f"{_name(wind)}: the wind has extra dimensions {extra}; select one "
-                         f"member first (for example wind.isel({extra[0]}=0))")
+        raise UsageError(f"{_name(wind)}: the wind has extra dimensions ({', '.join(extra)}); "
+                         "trajectories need one value of each: give an input without them")
     level_type = wind.attrs.get("level_type", "none")
     scale = 0.0
     if vertical is not None:
@@ -609,6 +609,9 @@ def _trajectory_dataset(wind, clock, start, sign, offsets, lat, lon, out_level, 
             level_attrs.update(standard_name="height", units="m", positive="up")
         level_attrs.update(long_name="parcel vertical position", axis="Z")
         coords[name] = (dims, out_level, level_attrs)
+    else:  # a wind on one level (10 m, 850 hPa) says so as a scalar coordinate
+        coords.update({str(k): v.variable for k, v in wind.coords.items()
+                       if v.ndim == 0 and v.attrs.get("axis") == "Z"})
     data = {"status": ("trajectory", status, {
         "long_name": "how the trajectory ended",
         "standard_name": "status_flag",
