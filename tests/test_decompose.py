@@ -180,7 +180,7 @@ def test_cli_writes_every_contract_variable(tmp_path):
 
 
 @pytest.mark.parametrize(("extra", "needle"), [
-    (["--truncation", "99"], "largest allowed N is 31"),
+    (["--truncation", "99"], "give N from 1 to 31"),
     (["--levels", "850"], "no vertical dimension"),
     (["--method", "regional", "--truncation", "5"], "spectral method only"),
 ])
