@@ -375,8 +375,9 @@ REFERENCE_ATTRS = {"standard_name": "forecast_reference_time",
 PERIOD_ATTRS = {"standard_name": "forecast_period", "long_name": "forecast period (lead time)"}
 
 
-def _forecast_name(ds: xr.Dataset, standard_name: str, short_names: tuple[str, ...],
-                   taken: tuple = ()) -> str | None:
+def forecast_variable(ds: xr.Dataset, standard_name: str, short_names: tuple[str, ...] = (),
+                      taken: tuple = ()) -> str | None:
+    """The variable of ``ds`` with this standard name, else the first of ``short_names``."""
     for name in ds.variables:
         if name not in taken and ds[name].attrs.get("standard_name") == standard_name:
             return str(name)
@@ -402,17 +403,17 @@ def forecast_pieces(raw: xr.Dataset, path: Path) -> list[xr.Dataset]:
     ``forecast_reference_time`` and ``forecast_period`` (valid time = reference
     time + period).
     """
-    ref = _forecast_name(raw, "forecast_reference_time", REFERENCE_NAMES)
-    per = _forecast_name(raw, "forecast_period", PERIOD_NAMES, (ref,))
+    ref = forecast_variable(raw, "forecast_reference_time", REFERENCE_NAMES)
+    per = forecast_variable(raw, "forecast_period", PERIOD_NAMES, (ref,))
     if ref is None and per is None:
         return [raw]
-    valid = _forecast_name(raw, "time", VALID_NAMES, (ref, per))
+    valid = forecast_variable(raw, "time", VALID_NAMES, (ref, per))
     renames = {old: new for old, new in ((ref, "forecast_reference_time"),
                                          (per, "forecast_period"), (valid, "time"))
                if old is not None and old != new}
     ds = raw.rename(renames)
     if "forecast_period" in ds.variables:
-        ds = ds.assign_coords(forecast_period=_as_timedelta(ds["forecast_period"], path,
+        ds = ds.assign_coords(forecast_period=as_timedelta(ds["forecast_period"], path,
                                                             per or ""))
     if "forecast_reference_time" in ds.dims:
         pieces = [ds.isel(forecast_reference_time=i)
@@ -422,7 +423,7 @@ def forecast_pieces(raw: xr.Dataset, path: Path) -> list[xr.Dataset]:
     return [_valid_time_dimension(piece, path) for piece in pieces]
 
 
-def _as_timedelta(da: xr.DataArray, path: Path, name: str) -> xr.DataArray:
+def as_timedelta(da: xr.DataArray, path: Path, name: str) -> xr.DataArray:
     """A lead time as timedelta64 (files whose reader left it as numbers with time units)."""
     attrs = {k: v for k, v in da.attrs.items() if k != "units"}
     if da.dtype.kind == "m":

@@ -218,7 +218,8 @@ class Runner:
         section = self.config.section("input")
         return open_wind(unit.inputs, u=section["u"], v=section["v"],
                          max_speed=section["max_speed"], implausible=section["implausible"],
-                         allow_gaps=section["allow_gaps"])
+                         allow_gaps=section["allow_gaps"], run=section["run"],
+                         leads=section["leads"])
 
     def decompose(self, unit: Unit, result: UnitResult) -> Path:
         from .decompose import decompose

@@ -198,3 +198,42 @@ def test_output_with_forecast_coordinates_is_cf_compliant(files, tmp_path):
             assert nc[name].standard_name == name
             assert cf_units.Unit(nc[name].units.split(" since ")[0]).is_convertible(
                 units[name])
+
+
+def _flowpipe(*args: str, cwd: Path | None = None) -> subprocess.CompletedProcess:
+    return subprocess.run([sys.executable, "-m", "flowpipe", *args], capture_output=True,
+                          text=True, check=False, cwd=cwd)
+
+
+def test_cli_run_and_lead(files, tmp_path):
+    out = tmp_path / "parts.nc"
+    done = _flowpipe("decompose", str(files["archive"]), "--run", "2026-12-01T12Z", "--lead",
+                     "0,24", "-o", str(out))
+    assert done.returncode == 0, done.stderr
+    with xr.open_dataset(out) as back:
+        np.testing.assert_array_equal(back["time"].values, RUNS[1] + LEADS[[0, 4]])
+        assert back["forecast_reference_time"].values == RUNS[1]
+    bad = _flowpipe("decompose", str(files["archive"]), "--run", "2026-12-05T00Z", "-o",
+                    str(tmp_path / "x.nc"))
+    assert bad.returncode == 2 and "Traceback" not in bad.stderr
+    assert bad.stderr.startswith("flowpipe: error:") and "runs present" in bad.stderr
+    assert not (tmp_path / "x.nc").exists()
+    wrong = _flowpipe("advect", str(files["archive"]), "--lead", "six", "--start", "10,20",
+                      "--hours", "6", "-o", str(tmp_path / "t.nc"))
+    assert wrong.returncode == 2 and "lead times in hours" in wrong.stderr
+
+
+def test_config_run_and_leads_are_validated(files, tmp_path):
+    from flowpipe.config import ConfigError, load_config
+
+    config = tmp_path / "forecast.toml"
+    base = f'[input]\npaths = ["{files["archive"]}"]\n'
+    config.write_text(base + 'run = "latest"\nleads = [0, 12]\n[output]\ndirectory = "out"\n')
+    section = load_config(config).section("input")
+    assert section["run"] == "latest" and section["leads"] == [0, 12]
+    for line, message in (('run = "tomorrow"', r"line 3: \[input\] run must be \"latest\" or"),
+                          ("leads = [-6]", r"line 3: each item of \[input\] leads must be"),
+                          ("leads = []", r"\[input\] leads must hold at least one")):
+        config.write_text(base + line + '\n[output]\ndirectory = "out"\n')
+        with pytest.raises(ConfigError, match=message):
+            load_config(config)
