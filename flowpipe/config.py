@@ -186,10 +186,10 @@ VALUES: dict[str, dict[str, Allowed]] = {
 }
 STAGES = ("decompose", "advect", "ftle", "maps")
 TEMPLATE_FIELDS = {
-    "decompose": {"stem"},
-    "advect": {"stem"},
-    "ftle": {"stem"},
-    "maps": {"stem", "field", "level", "time"},
+    "decompose": {"stem", "run", "lead"},
+    "advect": {"stem", "run", "lead"},
+    "ftle": {"stem", "run", "lead"},
+    "maps": {"stem", "field", "level", "time", "run", "lead"},
 }
 
 

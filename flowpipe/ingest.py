@@ -571,6 +571,33 @@ def forecast_axes(paths: str | os.PathLike | Iterable[str | os.PathLike], u: str
     return forecast_runs(parts), leads
 
 
+def files_with_run(paths: Iterable[Path], run: str, u: str | None = None,
+                   v: str | None = None) -> list[Path]:
+    """The files that hold the run ``run`` names (ISO 8601, or ``"latest"``: the newest run
+    among all of them)."""
+    files = expand_paths(paths)
+    runs = {path: forecast_axes(path, u, v)[0] for path in files}
+    chosen = choose_run(run, sorted({r for found in runs.values() for r in found}), files)
+    return [path for path in files if chosen in runs[path]]
+
+
+def forecast_fields(ds: xr.Dataset, index: int | None = None) -> dict[str, str]:
+    """The ``{run}`` and ``{lead}`` of output names: ``2026-12-01T00Z`` and the lead in hours,
+    ``024`` (several: ``000-048``); ``index`` takes the run and lead of one time only."""
+    if "forecast_reference_time" not in ds.variables or "forecast_period" not in ds.variables:
+        raise InputError(f"{_source(ds)}: has no forecast run and lead time for {{run}} or "
+                         "{lead} in an output name; leave them out of the template")
+    runs = np.atleast_1d(ds["forecast_reference_time"].values)
+    hours = np.atleast_1d(lead_hours(ds["forecast_period"].values))
+    if index is not None:
+        hours = hours[index:index + 1]
+        runs = runs[index:index + 1] if runs.size > 1 else runs
+    run = run_text(min(runs)) + ("" if np.all(runs == runs[0]) else f"-{run_text(max(runs))}")
+    low, high = float(hours.min()), float(hours.max())
+    lead = f"{low:03g}" + ("" if low == high else f"-{high:03g}")
+    return {"run": run, "lead": lead}
+
+
 def _check_leads(parts: list[xr.Dataset], leads: list[float], files: list[Path]) -> None:
     """Refuse leads (hours) that none of ``parts`` (the chosen run's) has."""
     for part in parts:

@@ -237,3 +237,59 @@ def test_config_run_and_leads_are_validated(files, tmp_path):
         config.write_text(base + line + '\n[output]\ndirectory = "out"\n')
         with pytest.raises(ConfigError, match=message):
             load_config(config)
+
+
+def test_map_title_names_run_and_lead(files, tmp_path):
+    # The title words of a forecast map: "run 2026-12-01T12Z +24 h, valid 2026-12-02T12:00Z"
+    # (ISO 8601 times; the lead as the difference of the two, CF standard-name table).
+    from flowpipe.maps import render
+
+    parts = fp.write(fp.decompose(fp.open_wind(files["lead"])), tmp_path / "parts.nc")
+    figure = render(parts, field="streamfunction", lead=24)
+    titles = [ax.get_title(loc="left") for ax in figure.axes if ax.get_title(loc="left")]
+    assert len(titles) == 1
+    assert "run 2026-12-01T12Z +24 h, valid 2026-12-02T12:00Z" in titles[0]
+    first = render(parts, field="streamfunction")  # default: the first time, lead 0
+    assert "run 2026-12-01T12Z +0 h, valid 2026-12-01T12:00Z" in "".join(
+        ax.get_title(loc="left") for ax in first.axes)
+
+
+LATEST_CONFIG = """[input]
+paths = ["runs/fc_*.nc"]
+run = "latest"
+[decompose]
+output = "parts_{run}.nc"
+[maps]
+fields = ["streamfunction"]
+output = "{field}_{run}_{lead}.png"
+[output]
+directory = "out"
+"""
+
+
+def test_latest_run_and_a_rerun_after_a_new_run(tmp_path):
+    # A nightly directory: three runs, then a fourth arrives (flowpipe run, a real process).
+    (tmp_path / "runs").mkdir()
+    for run in range(3):
+        valid_time_layout(run).to_netcdf(tmp_path / "runs" / f"fc_{run}.nc")
+    config = tmp_path / "nightly.toml"
+    config.write_text(LATEST_CONFIG)
+    done = _flowpipe("run", "--quiet", str(config))
+    assert done.returncode == 0, done.stderr
+    out = tmp_path / "out"
+    assert sorted(p.name for p in out.glob("parts_*.nc")) == ["parts_2026-12-02T00Z.nc"]
+    assert sorted(p.name for p in out.glob("*.png")) == [
+        f"streamfunction_2026-12-02T00Z_{h:03d}.png" for h in LEAD_HOURS]
+    with xr.open_dataset(out / "parts_2026-12-02T00Z.nc") as back:
+        assert back["forecast_reference_time"].values == RUNS[2]
+    before = {p.name: p.stat().st_mtime_ns for p in out.iterdir() if p.suffix in (".nc", ".png")}
+
+    valid_time_layout(3).to_netcdf(tmp_path / "runs" / "fc_3.nc")
+    again = _flowpipe("run", "--quiet", str(config))
+    assert again.returncode == 0, again.stderr
+    manifest = json.loads((out / "manifest.json").read_text())
+    assert list(manifest["units"]) == ["fc_3"]  # only the new run was processed
+    written = {p.name for p in out.iterdir() if p.suffix in (".nc", ".png")} - set(before)
+    assert written == {"parts_2026-12-02T12Z.nc"} | {
+        f"streamfunction_2026-12-02T12Z_{h:03d}.png" for h in LEAD_HOURS}
+    assert all((out / name).stat().st_mtime_ns == mtime for name, mtime in before.items())
