@@ -88,6 +88,8 @@ COORDINATES: dict[str, tuple[str, str]] = {
     "latitude": ("latitude", "Y"),
     "longitude": ("longitude", "X"),
     "time": ("time", "T"),
+    "forecast_reference_time": ("forecast reference time (the run)", "T"),
+    "forecast_period": ("forecast period (lead time)", "T"),
     "air_pressure": ("pressure level", "Z"),
     "height": ("height above the surface", "Z"),
     "altitude": ("altitude", "Z"),
@@ -442,7 +444,9 @@ def _discovery(ds: xr.Dataset) -> dict[str, object]:
         found["geospatial_bounds"] = "POLYGON ((" + ", ".join(
             f"{la:.6g} {lo:.6g}" for la, lo in corners) + "))"
         found["geospatial_bounds_crs"] = "EPSG:4326"
-    time = next((ds[n] for n in ds.variables if is_time(ds.variables[n])), None)
+    # the valid time: the run (forecast_reference_time) is a time too, but not the coverage
+    time = next((ds[n] for n in ds.variables if is_time(ds.variables[n]) and
+                 ds[n].attrs.get("standard_name") != "forecast_reference_time"), None)
     if time is not None:
         values = time.values.ravel()
         values = values[~xr.DataArray(values).isnull().values]

@@ -19,8 +19,8 @@ from pathlib import Path
 from typing import Any
 
 from .decompose import METHODS, SPECTRAL_VARIABLES
-from .errors import UsageError
-from .ingest import DEFAULT_MAX_SPEED, IMPLAUSIBLE_CHOICES
+from .errors import InputError, UsageError
+from .ingest import DEFAULT_MAX_SPEED, IMPLAUSIBLE_CHOICES, parse_iso
 from .parcels._advect import VERTICAL
 from .regional import FIELDS as REGIONAL_FIELDS
 from .regional import SCHEMES as REGIONAL_SCHEMES
@@ -43,6 +43,8 @@ SCHEMA: dict[str, dict[str, tuple[tuple[type, ...], Any]]] = {
         "max_speed": (_NUMBER, DEFAULT_MAX_SPEED),
         "implausible": ((str,), "refuse"),
         "allow_gaps": ((bool,), False),
+        "run": ((str,), None),
+        "leads": ((list,), None),
     },
     "decompose": {
         "method": ((str,), "auto"),
@@ -125,6 +127,15 @@ def _finite(value: Any) -> bool:
     return isinstance(value, _NUMBER) and not isinstance(value, bool) and math.isfinite(value)
 
 
+def _iso_time(text: str) -> bool:
+    """An ISO 8601 time (as ``--run`` takes it)."""
+    try:
+        parse_iso(text, "run")
+    except InputError:
+        return False
+    return True
+
+
 def _start(value: Any) -> bool:
     """A start point [lat, lon] or [lat, lon, level] that is a position on the sphere."""
     return (isinstance(value, list) and len(value) in (2, 3) and all(map(_finite, value))
@@ -139,6 +150,10 @@ VALUES: dict[str, dict[str, Allowed]] = {
         "paths": Allowed(lambda p: isinstance(p, str), "a string", each=True, empty=False),
         "max_speed": Allowed(lambda x: _finite(x) and x > 0, "a number above 0 (m s-1)"),
         "implausible": _one_of(IMPLAUSIBLE_CHOICES),
+        "run": Allowed(lambda r: r == "latest" or _iso_time(r),
+                       "\"latest\" or an ISO 8601 time such as \"2026-12-01T00Z\""),
+        "leads": Allowed(lambda h: _finite(h) and h >= 0, "a lead time in hours, 0 or more",
+                         each=True, empty=False),
     },
     "decompose": {
         "method": _one_of(METHODS),
@@ -171,10 +186,10 @@ VALUES: dict[str, dict[str, Allowed]] = {
 }
 STAGES = ("decompose", "advect", "ftle", "maps")
 TEMPLATE_FIELDS = {
-    "decompose": {"stem"},
-    "advect": {"stem"},
-    "ftle": {"stem"},
-    "maps": {"stem", "field", "level", "time"},
+    "decompose": {"stem", "run", "lead"},
+    "advect": {"stem", "run", "lead"},
+    "ftle": {"stem", "run", "lead"},
+    "maps": {"stem", "field", "level", "time", "run", "lead"},
 }
 
 

@@ -19,12 +19,21 @@ The canonical wind Dataset every stage receives:
   be sampled along trajectories);
 * times as in the file: numpy datetimes for the standard calendars, cftime
   objects for ``360_day``, ``noleap`` and the others;
+* ``time`` is always the *valid* time. Forecasts also carry the coordinates
+  ``forecast_reference_time`` (the run, or cycle: a scalar when the Dataset
+  holds one run, else 1-D along ``time``) and ``forecast_period`` (the lead
+  time, timedelta64 along ``time``), with those CF standard names and
+  ``time = forecast_reference_time + forecast_period``. Three layouts of a
+  file are read into this one (see :func:`forecast_pieces`): valid time as
+  the dimension with the lead as a coordinate; the lead as the dimension
+  with the valid time as its coordinate; runs x leads with a 2-D valid time;
 * missing values (``_FillValue`` / ``missing_value``) as NaN;
 * dask-backed, one whole latitude-longitude slab per chunk by default.
 """
 
 from __future__ import annotations
 
+import datetime as _dt
 import glob
 import os
 import warnings
@@ -36,6 +45,7 @@ import cf_xarray  # noqa: F401  (registers the .cf accessor)
 import numpy as np
 import xarray as xr
 
+from .annotate import iso_time
 from .errors import FlowpipeWarning, InputError, UsageError
 
 #: Standard names that identify the eastward and northward wind (CF 1.11
@@ -93,6 +103,8 @@ def open_wind(
     max_speed: float = DEFAULT_MAX_SPEED,
     implausible: str = "refuse",
     allow_gaps: bool = False,
+    run: str | None = None,
+    leads: Iterable[float] | None = None,
 ) -> xr.Dataset:
     """Open one file, several files or a glob as one canonical wind Dataset.
 
@@ -117,7 +129,15 @@ def open_wind(
         The check runs inside each slab's dask task: building a result
         computes nothing.
     allow_gaps : bool
-        Accept a time series whose spacing has gaps (refused by default).
+        Accept a time series whose spacing has gaps (refused by default; not
+        checked when ``leads`` are chosen).
+    run : str, optional
+        Keep only the forecast run (``forecast_reference_time``) given in ISO
+        8601 (``"2026-12-01T00"``, ``"2026-12-01T00Z"``), or ``"latest"``, the
+        newest run present in all files. Without it every run is kept, and
+        runs whose valid times overlap are refused (choose one).
+    leads : iterable of float, optional
+        Keep only these lead times (``forecast_period``), in hours.
 
     Returns
     -------
@@ -130,11 +150,24 @@ def open_wind(
         With a one-line message naming the file and the problem.
     """
     files = expand_paths(paths)
-    parts = [_open_one(path, u, v) for path in files]
-    ds = _combine(parts, files, allow_gaps)
+    parts, owners = _open_parts(files, u, v)
+    chosen = choose_run(run, forecast_runs(parts), files)
+    wanted_leads = None if leads is None else [float(h) for h in leads]
+    in_run = [(_select_forecast(part, chosen, None), path)
+              for part, path in zip(parts, owners, strict=True)]
+    in_run = [(part, path) for part, path in in_run if part is not None]
+    kept = in_run
+    if wanted_leads is not None:
+        _check_leads([part for part, _ in in_run], wanted_leads, files)
+        kept = [(_select_forecast(part, None, wanted_leads), path) for part, path in in_run]
+        kept = [(part, path) for part, path in kept if part is not None]
+    ds = _combine([k[0] for k in kept], [k[1] for k in kept],
+                  allow_gaps or wanted_leads is not None)
+    ds = _single_run(ds)
     wanted = dict(DEFAULT_CHUNKS)
     wanted.update(chunks or {})
     ds = ds.chunk({d: c for d, c in wanted.items() if d in ds.dims})
+    ds = ds.assign_coords({n: ds[n].compute() for n in FORECAST_COORDINATES if n in ds.coords})
     ds.attrs["input_files"] = "\n".join(str(p) for p in files)
     ds = _plausible(ds, max_speed, implausible)
     return ds
@@ -211,13 +244,22 @@ def open_netcdf(path: Path, **options) -> xr.Dataset:
         ) from exc
 
 
-def _open_one(path: Path, u: str | None, v: str | None) -> xr.Dataset:
-    raw = open_netcdf(path, chunks={})
-    try:
-        return _canonical(raw, path, u, v)
-    except InputError:
-        raw.close()
-        raise
+def _open_parts(files: list[Path], u: str | None, v: str | None
+                ) -> tuple[list[xr.Dataset], list[Path]]:
+    """The canonical pieces of every file (one per run of a runs x leads file), and the
+    file each came from."""
+    parts: list[xr.Dataset] = []
+    owners: list[Path] = []
+    for path in files:
+        raw = open_netcdf(path, chunks={})
+        try:
+            pieces = [_canonical(piece, path, u, v) for piece in forecast_pieces(raw, path)]
+        except InputError:
+            raw.close()
+            raise
+        parts.extend(pieces)
+        owners.extend([path] * len(pieces))
+    return parts, owners
 
 
 def _find_variable(
@@ -294,7 +336,8 @@ def _canonical(raw: xr.Dataset, path: Path, u_name: str | None, v_name: str | No
             "latitude-longitude grids only so far: regrid to a regular latitude-longitude grid first"
         )
     vert = find_coordinate(ds, ds[un], "vertical", "Z")
-    time = find_coordinate(ds, ds[un], "time", "T")
+    # after forecast_pieces the valid time is "time"; cf-xarray could also offer the run
+    time = "time" if "time" in ds[un].dims else find_coordinate(ds, ds[un], "time", "T")
     single_level = None
     if vert is not None and ds[vert].size == 1 and (ds[vert].ndim == 0 or vert not in ds[un].dims):
         # one level, such as 10 m: a 2-D field that keeps its level as a scalar coordinate
@@ -314,6 +357,7 @@ def _canonical(raw: xr.Dataset, path: Path, u_name: str | None, v_name: str | No
         if new != old and new in ds.variables and new not in renames:
             ds = ds.drop_vars(new)
     ds = ds.rename(renames)
+    ds = _forecast_coordinates(ds, path)
     spatial = set(ds[un].dims)
     keep = [name for name in ds.data_vars if set(ds[name].dims) <= spatial and
             {"latitude", "longitude"} <= set(ds[name].dims)]
@@ -330,6 +374,264 @@ def _canonical(raw: xr.Dataset, path: Path, u_name: str | None, v_name: str | No
     ds.attrs = {"level_type": ds.attrs["level_type"]}
     if "title" in raw.attrs:
         ds.attrs["input_title"] = str(raw.attrs["title"])
+    return ds
+
+
+#: Names of the forecast axes: CF 1.11 standard names first (standard-name table), then
+#: short names in common use when a file carries none (*common practice*).
+REFERENCE_NAMES = ("forecast_reference_time", "reference_time", "init_time")
+PERIOD_NAMES = ("forecast_period", "lead_time", "step")
+VALID_NAMES = ("valid_time", "time")
+FORECAST_COORDINATES = ("forecast_reference_time", "forecast_period")
+REFERENCE_ATTRS = {"standard_name": "forecast_reference_time",
+                   "long_name": "forecast reference time (the run)"}
+PERIOD_ATTRS = {"standard_name": "forecast_period", "long_name": "forecast period (lead time)"}
+
+
+def forecast_variable(ds: xr.Dataset, standard_name: str, short_names: tuple[str, ...] = (),
+                      taken: tuple = ()) -> str | None:
+    """The variable of ``ds`` with this standard name, else the first of ``short_names``."""
+    for name in ds.variables:
+        if name not in taken and ds[name].attrs.get("standard_name") == standard_name:
+            return str(name)
+    return next((n for n in short_names if n in ds.variables and n not in taken), None)
+
+
+def forecast_pieces(raw: xr.Dataset, path: Path) -> list[xr.Dataset]:
+    """A file's Datasets with the valid time as the dimension ``time`` (one per run).
+
+    The three layouts of forecast files, found by the CF standard names
+    ``forecast_reference_time``, ``forecast_period`` and ``time`` (or common
+    short names):
+
+    * valid time as the dimension, lead (and run) as coordinates along it or
+      scalars: returned as it is, the axes under their canonical names;
+    * lead as the dimension, the valid time a coordinate along it (or derived
+      as run + lead): the valid time becomes the dimension;
+    * runs x leads, the valid time 2-D: one piece per run, each as above.
+
+    References
+    ----------
+    CF Conventions 1.11, section 4.4 and the standard-name table entries
+    ``forecast_reference_time`` and ``forecast_period`` (valid time = reference
+    time + period).
+    """
+    ref = forecast_variable(raw, "forecast_reference_time", REFERENCE_NAMES)
+    per = forecast_variable(raw, "forecast_period", PERIOD_NAMES, (ref,))
+    if ref is None and per is None:
+        return [raw]
+    valid = forecast_variable(raw, "time", VALID_NAMES, (ref, per))
+    renames = {old: new for old, new in ((ref, "forecast_reference_time"),
+                                         (per, "forecast_period"), (valid, "time"))
+               if old is not None and old != new}
+    ds = raw.rename(renames)
+    if "forecast_period" in ds.variables:
+        ds = ds.assign_coords(forecast_period=as_timedelta(ds["forecast_period"], path,
+                                                            per or ""))
+    if "forecast_reference_time" in ds.dims:
+        pieces = [ds.isel(forecast_reference_time=i)
+                  for i in range(ds.sizes["forecast_reference_time"])]
+    else:
+        pieces = [ds]
+    return [_valid_time_dimension(piece, path) for piece in pieces]
+
+
+def as_timedelta(da: xr.DataArray, path: Path, name: str) -> xr.DataArray:
+    """A lead time as timedelta64 (files whose reader left it as numbers with time units)."""
+    attrs = {k: v for k, v in da.attrs.items() if k != "units"}
+    if da.dtype.kind == "m":
+        return da.astype("timedelta64[ns]").assign_attrs(attrs)
+    units = da.attrs.get("units")
+    try:
+        unit = cf_units.Unit(units) if units else None
+    except ValueError:
+        unit = None
+    if unit is None or not unit.is_convertible("s"):
+        raise InputError(f"{path}: the lead time {name} has units {units!r}, not a time "
+                         "interval; give it units such as \"hours\"")
+    seconds = unit.convert(np.asarray(da.values, dtype=np.float64), "s")
+    out = xr.DataArray(np.round(seconds * 1e9).astype("timedelta64[ns]"), dims=da.dims,
+                       attrs=attrs)
+    return out
+
+
+def _valid_time_dimension(ds: xr.Dataset, path: Path) -> xr.Dataset:
+    """Swap a lead dimension for the valid time along it."""
+    if "forecast_period" not in ds.dims:
+        return ds
+    if "time" not in ds.variables:
+        if "forecast_reference_time" not in ds.variables or ds["forecast_reference_time"].ndim:
+            raise InputError(f"{path}: the lead time is a dimension but the file has neither "
+                             "a valid time along it nor a forecast_reference_time; add one")
+        valid = ds["forecast_reference_time"] + ds["forecast_period"]
+        ds = ds.assign_coords(time=valid.drop_vars(list(valid.coords)).assign_attrs(
+            standard_name="time"))
+    if ds["time"].dims != ("forecast_period",):
+        raise InputError(f"{path}: the valid time has dimensions {ds['time'].dims}, not that "
+                         "of the lead time; it should be time(forecast_period) or "
+                         "time(forecast_reference_time, forecast_period)")
+    return ds.swap_dims(forecast_period="time")
+
+
+def _forecast_coordinates(ds: xr.Dataset, path: Path) -> xr.Dataset:
+    """``forecast_reference_time`` and ``forecast_period`` along ``time``, each derived from
+    the other where only one is given, checked against the valid time."""
+    has_ref = "forecast_reference_time" in ds.variables
+    has_per = "forecast_period" in ds.variables
+    if not (has_ref or has_per):
+        return ds
+    if "time" not in ds.dims:
+        raise InputError(f"{path}: the file has forecast_reference_time or forecast_period "
+                         "but no valid time; add a time coordinate")
+    time = ds["time"].values
+    ref = np.broadcast_to(ds["forecast_reference_time"].values, time.shape) if has_ref else None
+    per = np.broadcast_to(ds["forecast_period"].values, time.shape) if has_per else None
+    if ref is None:
+        ref = time - per
+    elif per is None:
+        per = time - ref
+    elif np.issubdtype(time.dtype, np.datetime64) and np.any(ref + per != time):
+        raise InputError(f"{path}: the valid time is not forecast_reference_time + "
+                         "forecast_period; check the time coordinates")
+    if not np.issubdtype(np.asarray(per).dtype, np.timedelta64):
+        raise InputError(f"{path}: lead times of this calendar cannot be read yet; give "
+                         "the valid time only")
+    ds = ds.drop_vars([n for n in ("forecast_reference_time", "forecast_period")
+                       if n in ds.variables])
+    ds = ds.assign_coords(
+        forecast_reference_time=("time", np.array(ref), dict(REFERENCE_ATTRS)),
+        forecast_period=("time", np.asarray(per).astype("timedelta64[ns]"), dict(PERIOD_ATTRS)))
+    return ds
+
+
+def parse_iso(text: str, what: str) -> str:
+    """ISO 8601 text as ``YYYY-MM-DDTHH:MMZ`` (UTC), to compare with :func:`iso_time`.
+
+    Raises
+    ------
+    flowpipe.errors.InputError
+        ``what`` and the text, when it is not ISO 8601.
+    """
+    try:
+        parsed = _dt.datetime.fromisoformat(text.strip().replace("Z", "+00:00"))
+    except ValueError as exc:
+        raise InputError(f"{what} {text!r} is not ISO 8601 (for example "
+                         "2026-12-01T00Z or 2026-12-01T06:00)") from exc
+    if parsed.tzinfo is not None:
+        parsed = parsed.astimezone(_dt.UTC).replace(tzinfo=None)
+    return f"{parsed.isoformat(timespec='minutes')}Z"
+
+
+def run_text(value: object) -> str:
+    """A run as people write it: ``2026-12-01T00Z`` (with minutes when they are not 0)."""
+    text = iso_time(value, "minutes")
+    return text[:-4] + "Z" if text.endswith(":00Z") else text
+
+
+def lead_hours(values: object) -> np.ndarray:
+    """Lead times (timedelta64) in hours."""
+    return np.asarray(values, dtype="timedelta64[ns]") / np.timedelta64(1, "h")
+
+
+def forecast_runs(parts: Iterable[xr.Dataset]) -> list:
+    """The runs (forecast reference times) present, oldest first."""
+    found = {value for part in parts if "forecast_reference_time" in part.coords
+             for value in np.atleast_1d(part["forecast_reference_time"].values)}
+    return sorted(found)
+
+
+def choose_run(run: str | None, runs: list, files: list[Path]) -> object:
+    """The run ``run`` names (ISO 8601 or ``"latest"``) among ``runs``; None for all."""
+    if run is None:
+        return None
+    where = f"{files[0]}{' ...' if len(files) > 1 else ''}"
+    if not runs:
+        raise InputError(f"{where}: the input has no forecast_reference_time (no forecast run); "
+                         "leave out --run (config: [input] run)")
+    if run == "latest":
+        return runs[-1]
+    wanted = parse_iso(run, "run")
+    texts = [iso_time(r, "minutes") for r in runs]
+    if wanted not in texts:
+        raise InputError(f"{where}: run {run} is not in the input; runs present: "
+                         f"{', '.join(run_text(r) for r in runs)}")
+    return runs[texts.index(wanted)]
+
+
+def _select_forecast(part: xr.Dataset, run: object,
+                     leads: list[float] | None) -> xr.Dataset | None:
+    """The times of ``part`` in the chosen run and leads (None when none is)."""
+    if run is None and leads is None:
+        return part
+    if "forecast_reference_time" not in part.coords:
+        return None
+    keep = np.ones(part.sizes["time"], dtype=bool)
+    if run is not None:
+        keep &= part["forecast_reference_time"].values == run
+    if leads is not None:
+        hours = lead_hours(part["forecast_period"].values)
+        keep &= np.isclose(hours[:, None], np.array(leads)[None, :], atol=1e-6).any(axis=1)
+    return part.isel(time=np.flatnonzero(keep)) if keep.any() else None
+
+
+def forecast_axes(paths: str | os.PathLike | Iterable[str | os.PathLike], u: str | None = None,
+                  v: str | None = None) -> tuple[list, list[float]]:
+    """The runs (oldest first) and the lead times in hours present in files (for
+    ``flowpipe inspect``: it reads coordinates only)."""
+    parts, _ = _open_parts(expand_paths(paths), u, v)
+    leads = sorted({float(h) for part in parts if "forecast_period" in part.coords
+                    for h in lead_hours(part["forecast_period"].values)})
+    return forecast_runs(parts), leads
+
+
+def files_with_run(paths: Iterable[Path], run: str, u: str | None = None,
+                   v: str | None = None) -> list[Path]:
+    """The files that hold the run ``run`` names (ISO 8601, or ``"latest"``: the newest run
+    among all of them)."""
+    files = expand_paths(paths)
+    runs = {path: forecast_axes(path, u, v)[0] for path in files}
+    chosen = choose_run(run, sorted({r for found in runs.values() for r in found}), files)
+    return [path for path in files if chosen in runs[path]]
+
+
+def forecast_fields(ds: xr.Dataset, index: int | None = None) -> dict[str, str]:
+    """The ``{run}`` and ``{lead}`` of output names: ``2026-12-01T00Z`` and the lead in hours,
+    ``024`` (several: ``000-048``); ``index`` takes the run and lead of one time only."""
+    if "forecast_reference_time" not in ds.variables or "forecast_period" not in ds.variables:
+        raise InputError(f"{_source(ds)}: has no forecast run and lead time for {{run}} or "
+                         "{lead} in an output name; leave them out of the template")
+    runs = np.atleast_1d(ds["forecast_reference_time"].values)
+    hours = np.atleast_1d(lead_hours(ds["forecast_period"].values))
+    if index is not None:
+        hours = hours[index:index + 1]
+        runs = runs[index:index + 1] if runs.size > 1 else runs
+    run = run_text(min(runs)) + ("" if np.all(runs == runs[0]) else f"-{run_text(max(runs))}")
+    low, high = float(hours.min()), float(hours.max())
+    lead = f"{low:03g}" + ("" if low == high else f"-{high:03g}")
+    return {"run": run, "lead": lead}
+
+
+def _check_leads(parts: list[xr.Dataset], leads: list[float], files: list[Path]) -> None:
+    """Refuse leads (hours) that none of ``parts`` (the chosen run's) has."""
+    for part in parts:
+        if "forecast_period" not in part.coords:
+            raise InputError(f"{files[0]}: has no forecast_period (lead time); leave out --lead "
+                             "(config: [input] leads)")
+    hours = np.unique(np.concatenate([lead_hours(p["forecast_period"].values) for p in parts]))
+    missing = [h for h in leads if not np.isclose(hours, h, atol=1e-6).any()]
+    if missing:
+        raise InputError(f"{files[0]}{' ...' if len(files) > 1 else ''}: lead(s) "
+                         f"{', '.join(f'{h:g}' for h in missing)} h not in the input; leads "
+                         f"present: {', '.join(f'{h:g}' for h in hours)} h")
+
+
+def _single_run(ds: xr.Dataset) -> xr.Dataset:
+    """One run: ``forecast_reference_time`` as a scalar coordinate (CF 1.11 section 5.7)."""
+    if "forecast_reference_time" not in ds.coords or ds["forecast_reference_time"].ndim == 0:
+        return ds
+    values = ds["forecast_reference_time"].values
+    if values.size and np.all(values == values[0]):
+        ds = ds.assign_coords(forecast_reference_time=((), values[0], dict(REFERENCE_ATTRS)))
     return ds
 
 
@@ -544,6 +846,7 @@ def _combine(parts: list[xr.Dataset], files: list[Path], allow_gaps: bool = Fals
     for i in range(len(sorted_times) - 1):
         if sorted_times[i] == sorted_times[i + 1]:
             a, b = files[owner[order[i]]], files[owner[order[i + 1]]]
+            _overlapping_runs(ds, order[i], order[i + 1], a)
             where = f"in {a} and {b}" if a != b else f"twice in {a}"
             raise InputError(f"time {_time_text(sorted_times[i])} is given {where}; "
                              "give each time once")
@@ -552,6 +855,24 @@ def _combine(parts: list[xr.Dataset], files: list[Path], allow_gaps: bool = Fals
     if not np.array_equal(order, np.arange(order.size)):
         ds = ds.isel(time=order)
     return ds
+
+
+def _overlapping_runs(ds: xr.Dataset, i: int, j: int, path: Path) -> None:
+    """Refuse two runs that give the same valid time (positions ``i`` and ``j``)."""
+    if "forecast_reference_time" not in ds.coords:
+        return
+    runs = ds["forecast_reference_time"].values
+    if runs[i] != runs[j]:
+        raise InputError(
+            f"{path}: the input holds {len(set(runs.tolist()))} forecast runs whose valid "
+            f"times overlap ({_time_text(ds['time'].values[i])} in runs {run_text(runs[i])} and "
+            f"{run_text(runs[j])}); choose one with --run ISO or --run latest "
+            "(config: [input] run)")
+
+
+def _source(ds: xr.Dataset) -> str:
+    files = ds.attrs.get("input_files", "?").splitlines()
+    return files[0] + (" ..." if len(files) > 1 else "")
 
 
 def _time_text(value) -> str:

@@ -8,7 +8,7 @@ import numpy as np
 import xarray as xr
 
 from .grid import describe_grid
-from .ingest import missing_counts, open_wind
+from .ingest import forecast_axes, missing_counts, open_wind, run_text
 
 
 def _time_text(value) -> str:
@@ -22,7 +22,8 @@ def describe_wind(wind: xr.Dataset) -> dict:
 
     The keys are those of the contract's ``inspect --json`` (``u``, ``v``,
     ``grid``, ``latitudes``, ``poles``, ``nlat``, ``nlon``, ``levels``,
-    ``times``) and a few more.
+    ``times``) and a few more; ``run`` is the forecast run the Dataset holds (ISO
+    8601, ``None`` when it holds no forecast or several runs).
     """
     grid = describe_grid(wind)
     vertical = next((n for n in ("omega", "w") if n in wind), None)
@@ -40,6 +41,9 @@ def describe_wind(wind: xr.Dataset) -> dict:
         "time_range": [_time_text(times[0]), _time_text(times[-1])] if times.size else None,
         "calendar": (wind["time"].encoding.get("calendar", "standard")
                      if "time" in wind.dims else None),
+        "run": (run_text(wind["forecast_reference_time"].values[()])
+                if "forecast_reference_time" in wind.coords and
+                wind["forecast_reference_time"].ndim == 0 else None),
         "missing": missing_counts(wind, ("u", "v", "omega", "w")),
         "other_variables": sorted(str(n) for n in wind.data_vars if n not in ("u", "v", "omega", "w")),
     }
@@ -48,5 +52,9 @@ def describe_wind(wind: xr.Dataset) -> dict:
 
 def inspect_file(path: str | os.PathLike, u: str | None = None, v: str | None = None) -> dict:
     """Open one file (or glob) and describe it, with ``file`` naming it."""
-    wind = open_wind(path, u=u, v=v)
-    return {"file": os.fspath(path), **describe_wind(wind)}
+    runs, leads = forecast_axes(path, u=u, v=v)
+    # several runs overlap in valid time: describe the newest, list them all
+    wind = open_wind(path, u=u, v=v, run="latest" if len(runs) > 1 else None)
+    return {"file": os.fspath(path), **describe_wind(wind),
+            "runs": [run_text(r) for r in runs] if runs else None,
+            "leads": leads or None}

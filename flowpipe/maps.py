@@ -21,7 +21,6 @@ with a :class:`MapWarning`.
 
 from __future__ import annotations
 
-import datetime as _dt
 import functools
 import os
 import re
@@ -53,7 +52,16 @@ from shapely.geometry import LineString  # noqa: E402
 from ._version import __version__  # noqa: E402
 from .annotate import CAUTION_SHORT, iso_time  # noqa: E402
 from .errors import FlowpipeWarning, InputError, UsageError  # noqa: E402
-from .ingest import canonical_levels, find_coordinate, open_netcdf  # noqa: E402
+from .ingest import (  # noqa: E402
+    as_timedelta,
+    canonical_levels,
+    find_coordinate,
+    forecast_variable,
+    lead_hours,
+    open_netcdf,
+    parse_iso,
+    run_text,
+)
 from .store import atomic_path  # noqa: E402
 
 #: Where Debian's python-cartopy-data puts Natural Earth and GSHHS files.
@@ -116,6 +124,9 @@ def render(
     time: str | None = None,
     projection: str | ccrs.Projection | None = None,
     size: tuple[int, int] = (1200, 800),
+    *,
+    run: str | None = None,
+    lead: float | None = None,
     dpi: int = 100,
 ) -> Figure:
     """Draw a map of a file or Dataset and return the matplotlib figure.
@@ -139,6 +150,12 @@ def render(
         Width and height of the image in pixels.
     dpi : int
         Pixels per inch (sets the size of text and lines relative to the image).
+    run : str, optional
+        Forecast run (``forecast_reference_time``), ISO 8601 or ``"latest"``.
+    lead : float, optional
+        Lead time (``forecast_period``) in hours. With ``run`` and ``time``, the
+        first time that matches all that are given is drawn; the title names
+        the run and lead of forecasts ("run 2026-12-01T00Z +24 h, valid ...").
 
     Returns
     -------
@@ -156,12 +173,12 @@ def render(
     width, height = size
     fig = Figure(figsize=(width / dpi, height / dpi), dpi=dpi)
     if str(ds.attrs.get("featureType", "")).lower() == "trajectory":
-        if level is not None or time is not None:
-            raise UsageError(f"{label}: level and time do not apply to a trajectory file; "
-                             "leave them out")
+        if level is not None or time is not None or run is not None or lead is not None:
+            raise UsageError(f"{label}: level, time, run and lead do not apply to a trajectory "
+                             "file; leave them out")
         _track_map(fig, ds, label, field, projection)
     else:
-        _field_map(fig, ds, label, field, level, time, projection)
+        _field_map(fig, ds, label, field, level, (time, run, lead), projection)
     fig.text(0.005, 0.005, f"{Path(label).name} | flowpipe {__version__} | {CAUTION_SHORT}",
              fontsize=6, color="0.3", ha="left", va="bottom")
     return fig
@@ -203,20 +220,45 @@ def _mappable(ds: xr.Dataset) -> list[str]:
     return [str(n) for n in ds.data_vars if _horizontal(ds, ds[n]) is not None]
 
 
-def _parse_time(text: str, label: str) -> str:
-    try:
-        parsed = _dt.datetime.fromisoformat(text.replace("Z", "+00:00"))
-    except ValueError as exc:
-        raise InputError(f"{label}: time {text!r} is not ISO 8601 (for example "
-                         "2026-01-12T06:00)") from exc
-    if parsed.tzinfo is not None:
-        parsed = parsed.astimezone(_dt.UTC).replace(tzinfo=None)
-    return f"{parsed.isoformat(timespec='minutes')}Z"
+def _forecast_along(ds: xr.Dataset, tname: Hashable, label: str
+                    ) -> tuple[np.ndarray | None, np.ndarray | None]:
+    """The run and the lead (hours) of each time of ``tname``, where the file says them."""
+    n = ds[tname].size
+    ref = forecast_variable(ds, "forecast_reference_time")
+    per = forecast_variable(ds, "forecast_period")
+    along = ({tname} if tname in ds.dims else set())
+    runs = (np.broadcast_to(ds[ref].values, (n,)) if ref is not None and
+            set(ds[ref].dims) <= along else None)
+    hours = (np.broadcast_to(lead_hours(as_timedelta(ds[per], Path(label), per).values), (n,))
+             if per is not None and set(ds[per].dims) <= along else None)
+    if hours is None and runs is not None and np.issubdtype(runs.dtype, np.datetime64):
+        hours = lead_hours(ds[tname].values.ravel() - runs)
+    return runs, hours
+
+
+def _wanted_run(run: str, runs: np.ndarray, label: str) -> object:
+    """The run ``run`` names: ``"latest"`` or ISO 8601 (None when absent)."""
+    if run == "latest":
+        return max(runs)
+    wanted = parse_iso(run, f"{label}: run")
+    return next((r for r in runs if iso_time(r, "minutes") == wanted), None)
+
+
+def _forecast_text(runs: np.ndarray | None, hours: np.ndarray | None, index: int,
+                   title: bool = False) -> str:
+    """``run 2026-12-01T00Z +24 h, `` for a title, `` (run ... +24 h)`` in a list."""
+    if runs is None and hours is None:
+        return ""
+    parts = ([f"run {run_text(runs[index])}"] if runs is not None else []) + (
+        [f"+{hours[index]:g} h"] if hours is not None else [])
+    return f"{' '.join(parts)}, " if title else f" ({' '.join(parts)})"
 
 
 def _select(ds: xr.Dataset, da: xr.DataArray, label: str, level: float | None,
-            time: str | None) -> tuple[dict, list[str]]:
-    """Indexers of one horizontal slab, and words for the title."""
+            when: tuple[str | None, str | None, float | None]) -> tuple[dict, list[str]]:
+    """Indexers of one horizontal slab, and words for the title; ``when`` is the valid
+    time, the run and the lead asked for."""
+    time, run, lead = when
     indexers: dict = {}
     words: list[str] = []
     vertical = find_coordinate(ds, da, "vertical", "Z")
@@ -245,17 +287,28 @@ def _select(ds: xr.Dataset, da: xr.DataArray, label: str, level: float | None,
     tname = find_coordinate(ds, da, "time", "T")
     if tname is not None and tname in da.dims:
         texts = [iso_time(t, "minutes") for t in ds[tname].values]
-        wanted = texts[0] if time is None else _parse_time(time, label)
-        if wanted not in texts:
-            raise InputError(f"{label}: time {time} is not in {da.name}; available times: "
-                             f"{', '.join(texts)}")
-        index = texts.index(wanted)
+        runs, hours = _forecast_along(ds, tname, label)
+        chosen = [i for i in range(len(texts))
+                  if (time is None or texts[i] == parse_iso(time, f"{label}: time")) and
+                  (run is None or (runs is not None and runs[i] == _wanted_run(run, runs, label)))
+                  and (lead is None or (hours is not None and abs(hours[i] - lead) < 1e-6))]
+        if not chosen:
+            given = ", ".join(f"{what} {value}" for what, value in (
+                ("time", time), ("run", run), ("lead", None if lead is None else f"{lead:g} h"))
+                if value is not None)
+            available = [f"{texts[i]}{_forecast_text(runs, hours, i)}" for i in range(len(texts))]
+            raise InputError(f"{label}: no time of {da.name} with {given}; available times: "
+                             f"{', '.join(available)}")
+        index = chosen[0]
         indexers[tname] = index
-        words.append(f"valid {texts[index]}")
+        words.append(f"{_forecast_text(runs, hours, index, title=True)}valid {texts[index]}")
     elif tname is not None and ds[tname].size == 1:
-        words.append(f"valid {iso_time(ds[tname].values.ravel()[0], 'minutes')}")
-    elif time is not None:
-        raise InputError(f"{label}: {da.name} has no time coordinate; leave out the time")
+        runs, hours = _forecast_along(ds, tname, label)
+        words.append(f"{_forecast_text(runs, hours, 0, title=True)}valid "
+                     f"{iso_time(ds[tname].values.ravel()[0], 'minutes')}")
+    elif time is not None or run is not None or lead is not None:
+        raise InputError(f"{label}: {da.name} has no time coordinate; leave out the time, "
+                         "run and lead")
     return indexers, words
 
 
@@ -436,7 +489,8 @@ def _wind_names(ds: xr.Dataset, field: str) -> tuple[str, str] | None:
 
 
 def _field_map(fig: Figure, ds: xr.Dataset, label: str, field: str | None, level: float | None,
-               time: str | None, projection: str | ccrs.Projection | None) -> None:
+               when: tuple[str | None, str | None, float | None],
+               projection: str | ccrs.Projection | None) -> None:
     mappable = _mappable(ds)
     if not mappable:
         raise InputError(f"{label}: no variable has latitude/longitude coordinates to map "
@@ -450,7 +504,7 @@ def _field_map(fig: Figure, ds: xr.Dataset, label: str, field: str | None, level
                          f"{', '.join(mappable)}")
     da = ds[field]
     lat_name, lon_name = _horizontal(ds, da)
-    indexers, words = _select(ds, da, label, level, time)
+    indexers, words = _select(ds, da, label, level, when)
     others = {d: 0 for d in da.dims if d not in (lat_name, lon_name, *indexers)}
     words += [f"{d} {ds[d].values[0] if d in ds.coords else 0}" for d in others]
     indexers.update(others)

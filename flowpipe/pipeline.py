@@ -31,7 +31,7 @@ import xarray as xr
 
 from . import bookkeeping
 from ._version import __version__
-from .annotate import now_iso
+from .annotate import iso_time, now_iso
 from .config import Config, load_config, render_template
 from .errors import EnvironmentProblem, FlowpipeError, FlowpipeWarning, from_os_error
 
@@ -84,11 +84,17 @@ class UnitResult:
 
 def units_of(config: Config) -> list[Unit]:
     """The units of work a config describes."""
-    if config.section("input")["combine"]:
-        return [Unit(config.section("input")["name"], list(config.inputs))]
+    section = config.section("input")
+    if section["combine"]:
+        return [Unit(section["name"], list(config.inputs))]
+    inputs = config.inputs
+    if section["run"] is not None:  # each file on its own: only those holding the run
+        from .ingest import files_with_run
+
+        inputs = files_with_run(inputs, section["run"], section["u"], section["v"])
     stems: dict[str, int] = {}
     units = []
-    for path in config.inputs:
+    for path in inputs:
         stem = path.stem
         stems[stem] = stems.get(stem, 0) + 1
         units.append(Unit(stem if stems[stem] == 1 else f"{stem}-{stems[stem]}", [path]))
@@ -233,14 +239,23 @@ class Runner:
         section = self.config.section("input")
         return open_wind(unit.inputs, u=section["u"], v=section["v"],
                          max_speed=section["max_speed"], implausible=section["implausible"],
-                         allow_gaps=section["allow_gaps"])
+                         allow_gaps=section["allow_gaps"], run=section["run"],
+                         leads=section["leads"])
+
+    def _fields(self, unit: Unit, template: str) -> dict[str, str]:
+        """``{stem}``, and ``{run}`` / ``{lead}`` of the unit's wind when the template names
+        them (opening the wind reads its coordinates only)."""
+        from .ingest import forecast_fields
+
+        needs = "{run" in template or "{lead" in template
+        return {"stem": unit.stem, **(forecast_fields(self._wind(unit)) if needs else {})}
 
     def decompose(self, unit: Unit, result: UnitResult) -> Path:
         from .decompose import decompose
         from .store import write
 
         cfg = self.config.section("decompose")
-        out = render_template(cfg["output"], self.out, stem=unit.stem)
+        out = render_template(cfg["output"], self.out, **self._fields(unit, cfg["output"]))
         digest = bookkeeping.section_hash(self.config.section("input"), cfg, *self._site())
 
         def make(path: Path) -> None:
@@ -260,7 +275,7 @@ class Runner:
         from .store import write
 
         cfg = self.config.section("advect")
-        out = render_template(cfg["output"], self.out, stem=unit.stem)
+        out = render_template(cfg["output"], self.out, **self._fields(unit, cfg["output"]))
         depends = self._inputs_of(unit)
         starts_file = (self.config.path.parent / cfg["starts_file"]).resolve() if cfg[
             "starts_file"] else None
@@ -287,7 +302,7 @@ class Runner:
         from .store import write
 
         cfg = self.config.section("ftle")
-        out = render_template(cfg["output"], self.out, stem=unit.stem)
+        out = render_template(cfg["output"], self.out, **self._fields(unit, cfg["output"]))
         digest = bookkeeping.section_hash(self.config.section("input"), cfg, *self._site())
 
         def make(path: Path) -> None:
@@ -301,6 +316,7 @@ class Runner:
     def maps(self, unit: Unit, result: UnitResult, sources: dict[str, Path]) -> None:
         import xarray as xr
 
+        from .ingest import forecast_fields
         from .maps import render, save
 
         cfg = self.config.section("maps")
@@ -308,20 +324,30 @@ class Runner:
         parts = sources.get("decompose")
         if parts is not None and parts.exists():
             depends = [bookkeeping.fingerprint(parts)]
+            # {lead} in the name: a map of every time (each lead), else of the first time
+            each = "{lead" in cfg["output"]
             with xr.open_dataset(parts) as ds:
                 levels = ([float(x) for x in ds["level"].values] if "level" in ds.dims else [None])
-                first_time = ds["time"].values[0] if "time" in ds.dims else None
+                times = list(ds["time"].values) if "time" in ds.dims else [None]
+                times = times if each else times[:1]
+                forecast = ([forecast_fields(ds, i) for i in range(len(times))]
+                            if each or "{run" in cfg["output"] else [{}] * len(times))
             wanted = cfg["levels"] if cfg["levels"] is not None else levels
             for name in cfg["fields"]:
                 for level in wanted:
-                    out = render_template(cfg["output"], self.out, stem=unit.stem, field=name,
-                                          level=_level_text(level), time=_time_text(first_time))
-                    self._produce("maps", result, out, depends, digest,
-                                  lambda p, n=name, lv=level: save(render(parts, field=n, level=lv), p))
+                    for when, names in zip(times, forecast, strict=True):
+                        out = render_template(cfg["output"], self.out, stem=unit.stem, field=name,
+                                              level=_level_text(level), time=_time_text(when),
+                                              **names)
+                        self._produce("maps", result, out, depends, digest,
+                                      lambda p, n=name, lv=level, t=when: save(render(
+                                          parts, field=n, level=lv,
+                                          time=None if t is None else iso_time(t)), p))
         tracks = sources.get("advect")
         if cfg["trajectories"] and tracks is not None and tracks.exists():
-            out = render_template(cfg["output"], self.out, stem=unit.stem, field="trajectories",
-                                  level="all", time="all")
+            out = render_template(cfg["output"], self.out, **{
+                **self._fields(unit, cfg["output"]), "field": "trajectories", "level": "all",
+                "time": "all", "lead": "all"})
             self._produce("maps", result, out, [bookkeeping.fingerprint(tracks)], digest,
                           lambda p: save(render(tracks), p))
 

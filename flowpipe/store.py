@@ -211,6 +211,8 @@ def _encoding(ds: xr.Dataset, float32: bool) -> dict[str, dict]:
             if "calendar" in old:
                 enc["calendar"] = old["calendar"]
             enc["_FillValue"] = None if is_dim else FILL_FLOAT
+        elif var.dtype.kind == "m":  # lead times: hours, as forecast files write them
+            enc.update(units="hours", dtype=np.float64, _FillValue=None)
         elif var.dtype.kind in "US" and var.ndim:
             enc["dtype"] = "S1"  # a character array: netCDF-3 has no variable-length strings
         elif is_dim or name in bounds:

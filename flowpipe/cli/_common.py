@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import argparse
+import math
 from pathlib import Path
 
 
@@ -48,7 +49,36 @@ def add_input_options(parser: argparse.ArgumentParser) -> None:
                         help="accept a time series with missing times (default: refused)")
 
 
+    add_forecast_options(parser)
+
+
+def add_forecast_options(parser: argparse.ArgumentParser) -> None:
+    """``--run ISO|latest`` and ``--lead HOURS[,...]``: one forecast run, some lead times."""
+    parser.add_argument("--run", metavar="ISO",
+                        help="only this forecast run (forecast_reference_time), ISO 8601 such "
+                        "as 2026-12-01T00Z, or \"latest\" for the newest present")
+    parser.add_argument("--lead", type=leads, metavar="HOURS[,...]",
+                        help="only these lead times (forecast_period) in hours, e.g. 0,24,48")
+
+
+def leads(text: str) -> list[float]:
+    """One ``--lead HOURS[,...]``: finite hours, not negative."""
+    try:
+        values = [float(item) for item in text.split(",") if item.strip()]
+    except ValueError:
+        values = []
+    if not values or not all(math.isfinite(h) and h >= 0 for h in values):
+        raise argparse.ArgumentTypeError(
+            f"{text!r}: give lead times in hours, comma-separated, each 0 or more (e.g. 0,24)")
+    return values
+
+
+def forecast_options(args: argparse.Namespace) -> dict:
+    """The keyword arguments of ``open_wind`` given by :func:`add_forecast_options`."""
+    return {"run": args.run, "leads": args.lead}
+
+
 def input_options(args: argparse.Namespace) -> dict:
     """The keyword arguments of ``open_wind`` given by :func:`add_input_options`."""
     return {"max_speed": args.max_speed, "implausible": args.implausible,
-            "allow_gaps": args.allow_gaps}
+            "allow_gaps": args.allow_gaps, **forecast_options(args)}

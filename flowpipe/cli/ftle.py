@@ -9,7 +9,7 @@ from ..errors import UsageError
 from ..ftle import ftle
 from ..ingest import open_wind
 from ..store import write
-from ._common import add_attribute_option, output_file
+from ._common import add_attribute_option, add_forecast_options, forecast_options, output_file
 
 
 def register(sub: argparse._SubParsersAction, common: argparse.ArgumentParser) -> argparse.ArgumentParser:
@@ -38,6 +38,7 @@ def register(sub: argparse._SubParsersAction, common: argparse.ArgumentParser) -
     parser.add_argument("--u", metavar="NAME")
     parser.add_argument("--v", metavar="NAME")
     add_attribute_option(parser)
+    add_forecast_options(parser)
     return parser
 
 
@@ -51,7 +52,7 @@ def _numbers(text: str | None, option: str) -> list[float] | None:
 
 
 def run(args: argparse.Namespace) -> int:
-    wind = open_wind(args.files, u=args.u, v=args.v)
+    wind = open_wind(args.files, u=args.u, v=args.v, **forecast_options(args))
     out = ftle(wind, hours=args.hours, backward=args.backward, spacing=args.spacing,
                region=_numbers(args.region, "--region"), levels=_numbers(args.level, "--level"),
                start=args.start, every=args.every, steady=args.steady,

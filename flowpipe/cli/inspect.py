@@ -58,6 +58,13 @@ def format_report(report: dict) -> str:
            if report["times"] else ""),
         f"  missing    {missing}",
     ]
+    if report.get("runs") or report.get("leads"):
+        runs = report["runs"] or []
+        described = (f" (times above: run {report['run']})"
+                     if len(runs) > 1 and report["run"] else "")
+        lines.insert(-1, f"  forecast   {len(runs)} run{'s' if len(runs) != 1 else ''}"
+                     f"{' ' + ', '.join(runs) if runs else ''}; leads "
+                     f"{', '.join(f'{h:g}' for h in report['leads'] or [])} h{described}")
     if report["other_variables"]:
         lines.append(f"  also       {', '.join(report['other_variables'])}")
     return "\n".join(lines)

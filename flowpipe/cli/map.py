@@ -5,8 +5,9 @@ from __future__ import annotations
 import argparse
 import re
 
+from ..errors import UsageError
 from ..maps import PROJECTIONS, render, save
-from ._common import output_file
+from ._common import add_forecast_options, output_file
 
 
 def register(sub: argparse._SubParsersAction, common: argparse.ArgumentParser) -> argparse.ArgumentParser:
@@ -25,6 +26,7 @@ def register(sub: argparse._SubParsersAction, common: argparse.ArgumentParser) -
     parser.add_argument("--level", type=float, metavar="L",
                         help="vertical level, in the file's units (default: the first)")
     parser.add_argument("--time", metavar="T", help="valid time, ISO 8601 (default: the first)")
+    add_forecast_options(parser)
     parser.add_argument("--projection", choices=PROJECTIONS, default="auto",
                         help="map projection (default: chosen from the domain)")
     parser.add_argument("--size", type=parse_size, default=(1200, 800), metavar="WxH",
@@ -48,7 +50,10 @@ def parse_size(text: str) -> tuple[int, int]:
 
 
 def run(args: argparse.Namespace) -> int:
+    if args.lead and len(args.lead) > 1:
+        raise UsageError("a map shows one lead time: give --lead HOURS once (one value)")
     figure = render(args.file, field=args.field, level=args.level, time=args.time,
+                    run=args.run, lead=args.lead[0] if args.lead else None,
                     projection=args.projection, size=args.size)
     save(figure, args.output, protect=(args.file,))
     return 0

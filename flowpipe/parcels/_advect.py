@@ -626,6 +626,9 @@ def _trajectory_dataset(wind, clock, start, sign, offsets, lat, lon, out_level, 
         "units": "m s-1", "standard_name": "wind_speed",
         "long_name": "horizontal wind speed at the parcel (its horizontal speed along the path)"})
     ds = xr.Dataset(data, coords=coords)
+    if "forecast_reference_time" in wind.coords and wind["forecast_reference_time"].ndim == 0:
+        # one run: its time, a scalar coordinate (CF 1.11 section 5.7); the leads are in time
+        ds = ds.assign_coords(forecast_reference_time=wind["forecast_reference_time"])
     epoch = _iso(clock.reference).rstrip("Z").replace("T", " ")
     ds["time"].encoding = {"units": f"seconds since {epoch}"}
     calendar = (wind["time"].encoding.get("calendar") if "time" in wind.variables else None)
