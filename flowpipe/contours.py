@@ -62,10 +62,11 @@ class Contour:
             s, n, w, e = self.params
             if not (-90 <= s < n <= 90):
                 raise UsageError(f"contour {self.name!r}: box needs -90 <= S < N <= 90")
-            if (e - w) % 360 == 0 and e != w:
-                pass
-            elif (e - w) % 360 == 0:
-                raise UsageError(f"contour {self.name!r}: box has zero width (W = E)")
+            if not (np.isfinite(w) and np.isfinite(e)):
+                raise UsageError(f"contour {self.name!r}: box meridians must be finite numbers")
+            if w == e:  # W = E +- 360 is the whole latitude band; W = E encloses nothing
+                raise UsageError(f"contour {self.name!r}: box has zero width (W = E); "
+                                 "give W < E, or E = W + 360 for a whole latitude band")
         elif self.kind == "circle":
             lat, lon, radius_km = self.params
             if not radius_km > 0:

@@ -128,6 +128,7 @@ def test_rankine_vortex_on_limited_area():
 @pytest.mark.parametrize("args,needle", [
     (["--circle", "40,10,-5"], "radius"),
     (["--box", "80,95,0,10"], "S < N"),
+    (["--box", "10,20,5,5"], "zero width"),
     (["--polygon", "POLY"], "not simple"),
 ])
 def test_bad_input_exits_2_with_one_line(tmp_path, args, needle):

@@ -102,5 +102,6 @@ def run(args: argparse.Namespace) -> int:
     result = circulation(wind, contours, levels=args.levels, obrien=args.obrien,
                          surface_omega=args.surface_omega, top_omega=args.top_omega)
     path = write(result, args.output, attributes=dict(args.attribute))
-    print(f"wrote {path}: {len(contours)} contours")
+    count = len(contours)
+    print(f"wrote {path}: {count} contour{'' if count == 1 else 's'}")
     return 0
