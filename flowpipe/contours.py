@@ -17,6 +17,10 @@ spacing apart (at least 64 per contour); the midpoint rule on those segments
 and bilinear interpolation are both second order, so the line integral
 converges at second order in the grid spacing.
 
+Moving circles (:func:`follow`): a circle of fixed radius whose centre follows a
+track, interpolated along great circles between the track's times; its
+matrices are built once per time of the data.
+
 Sign convention: contours run counter-clockwise seen from above (outside the
 sphere); circulation is then positive for cyclonic rotation in the northern
 hemisphere, and the outward flux ``sum (u dy - v dx)`` is positive for
@@ -25,8 +29,12 @@ outflow.
 
 from __future__ import annotations
 
+import csv
+import json
+import os
 from collections.abc import Sequence
 from dataclasses import dataclass
+from pathlib import Path
 
 import numpy as np
 import scipy.sparse as sp
@@ -103,6 +111,164 @@ def circle(lat: float, lon: float, radius_km: float, name: str | None = None) ->
 def polygon(lat: Sequence[float], lon: Sequence[float], name: str | None = None) -> Contour:
     """A polygon whose edges are straight in latitude-longitude (longitudes unwrapped)."""
     return Contour(name or "polygon", "polygon", (np.asarray(lat, float), np.asarray(lon, float)))
+
+
+@dataclass
+class MovingCircle:
+    """A circle of fixed great-circle radius whose centre follows a track in time."""
+
+    name: str
+    times: np.ndarray
+    latitude: np.ndarray
+    longitude: np.ndarray
+    radius_km: float
+
+    def __post_init__(self) -> None:
+        self.times = np.asarray(self.times, "datetime64[ns]")
+        self.latitude = np.asarray(self.latitude, float)
+        self.longitude = np.asarray(self.longitude, float)
+        if not self.radius_km > 0:
+            raise UsageError(f"track {self.name!r}: radius must be > 0 km, got {self.radius_km}")
+        if not len(self.times) or not (len(self.times) == len(self.latitude) == len(self.longitude)):
+            raise UsageError(f"track {self.name!r}: give one latitude and longitude per time")
+        if np.isnat(self.times).any() or (np.diff(self.times) <= np.timedelta64(0)).any():
+            raise UsageError(f"track {self.name!r}: times must be strictly increasing")
+        if not (np.all(np.abs(self.latitude) <= 90) and np.all(np.isfinite(self.longitude))):
+            raise UsageError(f"track {self.name!r}: latitudes must lie in -90..90 and "
+                             "longitudes be finite")
+
+    def centre(self, times: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        """Latitude and longitude (degrees) of the centre at ``times``.
+
+        Parameters
+        ----------
+        times : numpy.ndarray of datetime64
+            Every one within the track's first and last time.
+
+        Returns
+        -------
+        latitude, longitude : numpy.ndarray
+            Linear in time along the great circle between the bracketing track
+            points (spherical linear interpolation); longitudes in (-180, 180].
+
+        References
+        ----------
+        Shoemake (1985), "Animating rotation with quaternion curves", SIGGRAPH
+        Comput. Graph. 19(3), 245-254 (slerp), as implemented by
+        :func:`scipy.spatial.geometric_slerp`.
+        """
+        from scipy.spatial import geometric_slerp
+
+        t = np.asarray(times, "datetime64[ns]")
+        outside = (t < self.times[0]) | (t > self.times[-1])
+        if outside.any():
+            raise InputError(
+                f"track {self.name!r} covers {_iso(self.times[0])} to {_iso(self.times[-1])}, "
+                f"but the data has time {_iso(t[outside][0])}; give a track covering every "
+                "time of the data")
+        phi, lam = np.radians(self.latitude), np.radians(self.longitude)
+        points = np.column_stack([np.cos(phi) * np.cos(lam), np.cos(phi) * np.sin(lam), np.sin(phi)])
+        k = np.clip(np.searchsorted(self.times, t, side="right") - 1, 0, max(len(self.times) - 2, 0))
+        out = np.empty((len(t), 3))
+        for i, ti in enumerate(t):
+            if len(self.times) == 1 or np.array_equal(points[k[i]], points[k[i] + 1]):
+                out[i] = points[k[i]]
+                continue
+            frac = (ti - self.times[k[i]]) / (self.times[k[i] + 1] - self.times[k[i]])
+            out[i] = geometric_slerp(points[k[i]], points[k[i] + 1], float(frac))
+        lat = np.degrees(np.arcsin(np.clip(out[:, 2], -1, 1)))
+        return lat, np.degrees(np.arctan2(out[:, 1], out[:, 0]))
+
+    def at(self, time: np.datetime64) -> Contour:
+        """The circle at one time (a :class:`Contour` of kind ``"circle"``)."""
+        lat, lon = self.centre(np.array([time]))
+        return circle(float(lat[0]), float(lon[0]), self.radius_km, name=self.name)
+
+
+def follow(times: Sequence, latitude: Sequence[float], longitude: Sequence[float],
+           radius_km: float, name: str | None = None) -> MovingCircle:
+    """A circle of great-circle radius ``radius_km`` whose centre follows a track.
+
+    ``times`` (datetime64 or ISO 8601 text) must increase strictly and cover every
+    time of the wind the circle is used on.
+    """
+    return MovingCircle(name or f"track, {radius_km:g} km", np.asarray(times, "datetime64[ns]"),
+                        np.asarray(latitude, float), np.asarray(longitude, float), radius_km)
+
+
+def read_polygon(path: str | os.PathLike) -> Contour:
+    """A polygon from a CSV (latitude,longitude per line, optional header) or GeoJSON.
+
+    The contour is named after the file's stem.
+    """
+    p = Path(path)
+    text = _read_text(p, "polygon")
+    try:
+        if p.suffix.lower() in (".json", ".geojson"):
+            data = json.loads(text)
+            geom = data.get("features", [data])[0] if data.get("type") == "FeatureCollection" else data
+            geom = geom.get("geometry", geom)
+            ring = geom["coordinates"][0]
+            lon, lat = zip(*[(float(x[0]), float(x[1])) for x in ring], strict=True)
+        else:
+            rows = [r for r in csv.reader(text.splitlines()) if r and r[0].strip()]
+            if rows and not _is_number(rows[0][0]):
+                rows = rows[1:]
+            lat, lon = zip(*[(float(r[0]), float(r[1])) for r in rows], strict=True)
+    except (ValueError, KeyError, IndexError, TypeError, AttributeError):
+        raise InputError(f"{path}: not a CSV of latitude,longitude vertices nor a GeoJSON "
+                         "polygon") from None
+    if len(lat) > 1 and (lat[0], lon[0]) == (lat[-1], lon[-1]):
+        lat, lon = lat[:-1], lon[:-1]
+    return polygon(lat, lon, name=p.stem)
+
+
+def read_track(path: str | os.PathLike, radius_km: float) -> MovingCircle:
+    """A moving circle from a track CSV: a header row ``time,latitude,longitude``.
+
+    Times are ISO 8601; the circle is named after the file's stem.
+    """
+    p = Path(path)
+    rows = [r for r in csv.reader(_read_text(p, "track").splitlines()) if any(c.strip() for c in r)]
+    header = [h.strip().lower() for h in rows[0]] if rows else []
+    if sorted(header) != ["latitude", "longitude", "time"]:
+        raise InputError(f"{path} line 1: the header must be time,latitude,longitude")
+    times, lat, lon = [], [], []
+    for number, row in enumerate(rows[1:], start=2):
+        cells = dict(zip(header, (c.strip() for c in row), strict=False))
+        try:
+            if len(row) != 3:
+                raise ValueError
+            times.append(np.datetime64(cells["time"].removesuffix("Z"), "ns"))
+            lat.append(float(cells["latitude"]))
+            lon.append(float(cells["longitude"]))
+        except ValueError:
+            raise InputError(f"{path} line {number}: give an ISO 8601 time, a latitude and a "
+                             "longitude") from None
+    if not times:
+        raise InputError(f"{path}: has a header but no track rows")
+    return follow(times, lat, lon, radius_km, name=p.stem)
+
+
+def _read_text(path: Path, what: str) -> str:
+    try:
+        return path.read_text(encoding="utf-8-sig")
+    except OSError as exc:
+        raise InputError(f"{path}: cannot read {what} file ({exc.strerror})") from None
+    except UnicodeDecodeError:
+        raise InputError(f"{path}: the {what} file is not UTF-8 text") from None
+
+
+def _iso(time: np.datetime64) -> str:
+    return str(np.datetime_as_string(time, unit="s"))
+
+
+def _is_number(text: str) -> bool:
+    try:
+        float(text)
+    except ValueError:
+        return False
+    return True
 
 
 def _unwrap(lon: np.ndarray) -> np.ndarray:
@@ -331,18 +497,65 @@ def kinematic_omega(pressure: np.ndarray, divergence: np.ndarray, *, surface: fl
     return out
 
 
-def _slab_integrals(u, v, zeta, delta, *, line, area):
+def _slab_integrals(u, v, zeta, delta, step, *, lines, areas):
+    """Line and area integrals of slabs; ``step`` picks each slab's matrices (moving circles)."""
     shape = u.shape[:-2]
-    n = area.shape[0]
+    n = areas[0].shape[0]
     flat = lambda a: a.reshape(-1, a.shape[-2] * a.shape[-1]).T  # noqa: E731
-    lines = line @ np.concatenate([flat(u), flat(v)], axis=0)
-    areas = area @ np.concatenate([flat(zeta), flat(delta)], axis=1)
-    res = [lines[:n].T, lines[n:].T, areas[:, : areas.shape[1] // 2].T,
-           areas[:, areas.shape[1] // 2:].T]
+    fu, fv, fz, fd = flat(u), flat(v), flat(zeta), flat(delta)
+    step = np.broadcast_to(step, shape).ravel()
+    res = np.empty((4, fu.shape[1], n))
+    for k in np.unique(step):
+        sel = step == k
+        m = int(sel.sum())
+        ring = lines[k] @ np.concatenate([fu[:, sel], fv[:, sel]], axis=0)
+        ints = areas[k] @ np.concatenate([fz[:, sel], fd[:, sel]], axis=1)
+        res[:, sel] = [ring[:n].T, ring[n:].T, ints[:, :m].T, ints[:, m:].T]
     return tuple(r.reshape(shape + (n,)) for r in res)
 
 
-def circulation(wind: xr.Dataset, contours: Sequence[Contour], *,
+def _matrices(grid: _Grid, contours: Sequence[Contour | MovingCircle], times: np.ndarray | None):
+    """Line and area matrices, one pair per time when a circle moves (else one pair).
+
+    The rows of fixed contours are built once and reused at every time.
+    """
+    fixed = [i for i, c in enumerate(contours) if isinstance(c, Contour)]
+    moving = [i for i, c in enumerate(contours) if isinstance(c, MovingCircle)]
+    if not moving:
+        snapshots = [list(contours)]
+    else:
+        if times is None:
+            raise UsageError(f"track {contours[moving[0]].name!r}: a moving circle needs data "
+                             "with a time coordinate")
+        centres = [contours[i].centre(times) for i in moving]  # refuses times off the track
+        snapshots = [[contours[i] for i in fixed] + [
+            circle(float(lat[t]), float(lon[t]), contours[i].radius_km, name=contours[i].name)
+            for i, (lat, lon) in zip(moving, centres, strict=True)] for t in range(len(times))]
+    order = np.argsort(fixed + moving) if moving else np.arange(len(contours))
+    n, nf = len(contours), len(fixed)
+    line_f = line_matrices(grid, snapshots[0][:nf]) if moving and fixed else None
+    area_f = area_matrix(grid, snapshots[0][:nf]) if moving and fixed else None
+    lines, areas = [], []
+    for snap in snapshots:
+        part = snap[nf:] if moving else snap
+        line, area = line_matrices(grid, part), area_matrix(grid, part)
+        if line_f is not None:
+            m = len(part)
+            line = sp.vstack([line_f[:nf], line[:m], line_f[nf:], line[m:]], format="csr")
+            area = sp.vstack([area_f, area], format="csr")
+        if moving:  # back to the order the contours were given in
+            line = sp.csr_array(line[np.concatenate([order, n + order])])
+            area = sp.csr_array(area[order])
+        sums = area.sum(axis=1)
+        if (sums <= 0).any():
+            bad = contours[int(np.argmin(sums))].name
+            raise InputError(f"contour {bad!r} encloses no grid cell of the data; enlarge it")
+        lines.append(line)
+        areas.append(area)
+    return lines, areas, [snapshots[0][j] for j in order]
+
+
+def circulation(wind: xr.Dataset, contours: Sequence[Contour | MovingCircle], *,
                 levels: Sequence[float] | None = None, obrien: bool = False,
                 surface_omega: float = 0.0, top_omega: float = 0.0) -> xr.Dataset:
     """Circulation, outward flux, area means and kinematic omega of closed contours.
@@ -351,8 +564,8 @@ def circulation(wind: xr.Dataset, contours: Sequence[Contour], *,
     ----------
     wind : xarray.Dataset
         A canonical wind (:func:`flowpipe.open_wind`).
-    contours : sequence of Contour
-        From :func:`box`, :func:`circle` and :func:`polygon`.
+    contours : sequence of Contour or MovingCircle
+        From :func:`box`, :func:`circle`, :func:`polygon` and :func:`follow`.
     levels : sequence of float, optional
         Only these levels.
     obrien : bool
@@ -363,7 +576,10 @@ def circulation(wind: xr.Dataset, contours: Sequence[Contour], *,
     Returns
     -------
     xarray.Dataset
-        Lazy; dimensions ``(time, level, contour)``.
+        Lazy; dimensions ``(time, level, contour)``. With a moving circle,
+        ``area`` is per ``(time, contour)`` (the grid's sampling of the circle
+        changes as it moves) and ``centre_latitude`` / ``centre_longitude``
+        ``(time, contour)`` give the circles' centres (NaN for boxes and polygons).
 
     References
     ----------
@@ -372,26 +588,27 @@ def circulation(wind: xr.Dataset, contours: Sequence[Contour], *,
     from .decompose import decompose, select_levels
 
     if not contours:
-        raise UsageError("give at least one contour (--box, --circle or --polygon)")
+        raise UsageError("give at least one contour (--box, --circle, --polygon or --follow)")
     wind = select_levels(wind, levels)
     wind = wind.sortby("latitude")
     grid = _Grid(wind.latitude.values, wind.longitude.values)
-    line = line_matrices(grid, contours)
-    area = area_matrix(grid, contours)
-    if (area.sum(axis=1) <= 0).any():
-        bad = contours[int(np.argmin(area.sum(axis=1)))].name
-        raise InputError(f"contour {bad!r} encloses no grid cell of the data; enlarge it")
+    timed = "time" in wind.dims
+    moving = any(isinstance(c, MovingCircle) for c in contours)
+    lines, areas, first = _matrices(grid, contours, wind.time.values if timed else None)
     parts = decompose(wind, levels=None)
     parts = parts.sortby("latitude")
+    step = xr.DataArray(np.arange(wind.sizes["time"]), dims="time") if moving else xr.DataArray(0)
     hz = ["latitude", "longitude"]
     outs = xr.apply_ufunc(
-        _slab_integrals, wind.u, wind.v, parts.vorticity, parts.divergence,
-        input_core_dims=[hz] * 4, output_core_dims=[["contour"]] * 4,
-        kwargs={"line": line, "area": area}, dask="parallelized",
+        _slab_integrals, wind.u, wind.v, parts.vorticity, parts.divergence, step,
+        input_core_dims=[hz] * 4 + [[]], output_core_dims=[["contour"]] * 4,
+        kwargs={"lines": lines, "areas": areas}, dask="parallelized",
         output_dtypes=[float] * 4, dask_gufunc_kwargs={"output_sizes": {"contour": len(contours)}},
     )
     circ, flux, zeta_int, delta_int = outs
-    a = xr.DataArray(np.asarray(area.sum(axis=1)), dims="contour")
+    a = (xr.DataArray(np.stack([np.asarray(m.sum(axis=1)) for m in areas]), dims=("time", "contour"),
+                      coords={"time": wind.time}) if moving
+         else xr.DataArray(np.asarray(areas[0].sum(axis=1)), dims="contour"))
     ds = xr.Dataset({
         "circulation": circ, "outward_flux": flux, "area": a,
         "mean_vorticity": circ / a, "mean_divergence": flux / a,
@@ -412,7 +629,9 @@ def circulation(wind: xr.Dataset, contours: Sequence[Contour], *,
                     "top": top_omega if obrien else None},
             dask="parallelized", output_dtypes=[float])
     ds = ds.transpose(*[d for d in ("time", "level", "contour") if d in ds.dims])
-    _describe(ds, contours, grid, pressure, obrien, surface_omega, top_omega)
+    _describe(ds, first, grid, pressure, obrien, surface_omega, top_omega)
+    if moving:
+        _centres(ds, contours, wind.time)
     from .annotate import global_attrs
 
     ds.attrs = global_attrs(
@@ -467,3 +686,20 @@ def _describe(ds: xr.Dataset, contours, grid, pressure, obrien, surface, top) ->
             + (f"; O'Brien (1970) correction to {top} Pa s-1 at the top" if obrien else ""))
     ds["vorticity_disagreement"].attrs["comment"] = "quality figure of mean_vorticity"
     ds["divergence_disagreement"].attrs["comment"] = "quality figure of mean_divergence"
+
+
+def _centres(ds: xr.Dataset, contours, time: xr.DataArray) -> None:
+    """``centre_latitude`` / ``centre_longitude`` (time, contour) of circles, fixed or moving."""
+    lat = np.full((time.size, len(contours)), np.nan)
+    lon = np.full_like(lat, np.nan)
+    for k, c in enumerate(contours):
+        if isinstance(c, MovingCircle):
+            lat[:, k], lon[:, k] = c.centre(time.values)
+        elif c.kind == "circle":
+            lat[:, k], lon[:, k] = c.params[0], (c.params[1] + 180.0) % 360.0 - 180.0
+    note = ("circles only (NaN for boxes and polygons); the contour geometry shows each "
+            "circle at the first time")
+    ds["centre_latitude"] = xr.DataArray(lat, dims=("time", "contour"), attrs={
+        "units": "degrees_north", "long_name": "latitude of the circle's centre", "comment": note})
+    ds["centre_longitude"] = xr.DataArray(lon, dims=("time", "contour"), attrs={
+        "units": "degrees_east", "long_name": "longitude of the circle's centre", "comment": note})

@@ -174,3 +174,88 @@ def test_line_vs_area_on_rossby_haurwitz_second_order():
         dis.append(out.vorticity_disagreement.values.item())
     order = np.log2(dis[0] / dis[1])
     assert 1.7 <= order <= 2.3
+
+
+def _great_circle(lat0: float, lon0: float, heading: float, angle: np.ndarray) -> np.ndarray:
+    # Unit vectors c0 cos(angle) + d0 sin(angle): uniform motion along the great circle
+    # leaving (lat0, lon0) with the given heading (spherical geometry, common practice).
+    p, lam, h = np.radians(lat0), np.radians(lon0), np.radians(heading)
+    c0 = np.array([np.cos(p) * np.cos(lam), np.cos(p) * np.sin(lam), np.sin(p)])
+    east = np.array([-np.sin(lam), np.cos(lam), 0.0])
+    north = np.array([-np.sin(p) * np.cos(lam), -np.sin(p) * np.sin(lam), np.cos(p)])
+    d0 = np.cos(h) * north + np.sin(h) * east
+    return np.cos(angle)[:, None] * c0 + np.sin(angle)[:, None] * d0
+
+
+def _vortex_speed(r):
+    # smooth vortex, maximum 30 m s-1 at 300 km (the profile of the regional demo storm)
+    rr = r / 300e3
+    return 30.0 * rr * np.exp(0.5 * (1.0 - rr**2))
+
+
+def test_moving_circle_follows_translating_vortex(tmp_path):
+    # An axisymmetric vortex V(r) about a centre c(t) moving uniformly along a great circle;
+    # the wind at x is V(r) (c x x)/|c x x|, r = a arccos(c.x). By the definition of
+    # circulation (Holton & Hakim 2013, section 4.1; Stokes's theorem) a circle of radius R
+    # centred on c(t) has 2 pi a sin(R/a) V(R) at every time: it stays constant as the circle
+    # follows the vortex. The track gives the centre every 12 h only; the data are 6-hourly,
+    # so half the centres come from interpolation in time, which along a great circle at
+    # uniform speed must hit c(t) exactly.
+    hours = np.arange(0, 25, 6.0)
+    centres = _great_circle(20.0, 300.0, 40.0, np.radians(2.5) * hours / 6)  # 46 km per hour
+    lat = np.linspace(-90, 90, 361)
+    lon = np.arange(0, 360, 0.5)
+    phi, lam = np.meshgrid(np.radians(lat), np.radians(lon), indexing="ij")
+    x = np.stack([np.cos(phi) * np.cos(lam), np.cos(phi) * np.sin(lam), np.sin(phi)], -1)
+    east = np.stack([-np.sin(lam), np.cos(lam), 0 * lam], -1)
+    north = np.stack([-np.sin(phi) * np.cos(lam), -np.sin(phi) * np.sin(lam), np.cos(phi)], -1)
+    u, v = np.empty((len(hours), 1, *phi.shape)), np.empty((len(hours), 1, *phi.shape))
+    for t, c in enumerate(centres):
+        axis = np.cross(c, x)
+        sine = np.linalg.norm(axis, axis=-1)
+        w = (_vortex_speed(A * np.arctan2(sine, x @ c)) / np.maximum(sine, 1e-300))[..., None] * axis
+        u[t, 0], v[t, 0] = (w * east).sum(-1), (w * north).sum(-1)
+    times = np.datetime64("2026-01-12T00:00", "ns") + (hours * 3600e9).astype("timedelta64[ns]")
+    dims = ("time", "level", "latitude", "longitude")
+    ds = xr.Dataset({"u": (dims, u), "v": (dims, v)},
+                    coords={"time": times, "level": [850.0], "latitude": lat, "longitude": lon})
+    ds.attrs["level_type"] = "pressure"
+    c_lat = np.degrees(np.arcsin(centres[:, 2]))
+    c_lon = np.degrees(np.arctan2(centres[:, 1], centres[:, 0]))
+    track = tmp_path / "storm.csv"
+    track.write_text("time,latitude,longitude\n" + "".join(
+        f"{str(times[t])[:16]},{float(c_lat[t])!r},{float(c_lon[t])!r}\n" for t in (0, 2, 4)))
+    radius = 600.0
+    out = C.circulation(ds, [C.read_track(track, radius), C.circle(c_lat[0], c_lon[0], radius)]
+                        ).compute()
+    np.testing.assert_allclose(out.centre_latitude.values[:, 0], c_lat, atol=1e-9)
+    np.testing.assert_allclose(out.centre_longitude.values[:, 0], c_lon, atol=1e-9)
+    expect = 2 * np.pi * A * np.sin(radius * 1e3 / A) * _vortex_speed(radius * 1e3)
+    moving, fixed = out.circulation.values[:, 0, 0], out.circulation.values[:, 0, 1]
+    np.testing.assert_allclose(moving, expect, rtol=1e-3)
+    assert abs(fixed[-1] / expect - 1) > 0.5  # the circle left behind loses the vortex
+    assert str(out.contour_name.values[0]) == "storm"
+
+
+@pytest.mark.parametrize("track,extra,needle", [
+    ("time,latitude,longitude\n2026-01-12T06:00,50,-20\n2026-01-13T00:00,52.4,-10.4\n",
+     ["--radius-km", "500"], "covers 2026-01-12T06:00"),
+    ("time,latitude,longitude\n2026-01-12T00:00,50,-20\n2026-01-13T00:00,52.4,-10.4\n",
+     [], "--radius-km"),
+    ("time,latitude,longitude\n2026-01-12T00:00,50,-20\n2026-01-13T00:00,52.4,-10.4\n",
+     ["--radius-km", "0"], "radius must be > 0"),
+    ("time,latitude,longitude\n2026-01-13T00:00,50,-20\n2026-01-12T00:00,52.4,-10.4\n",
+     ["--radius-km", "500"], "strictly increasing"),
+    ("time,lat,lon\n2026-01-12T00:00,50,-20\n", ["--radius-km", "500"], "header"),
+    ("time,latitude,longitude\nyesterday,50,-20\n", ["--radius-km", "500"], "line 2"),
+])
+def test_bad_track_exits_2_with_one_line(tmp_path, track, extra, needle):
+    path = tmp_path / "track.csv"
+    path.write_text(track)
+    proc = subprocess.run([sys.executable, "-m", "flowpipe", "circulation",
+                           "sample_data/demo_regional.nc", "-o", str(tmp_path / "o.nc"),
+                           "--follow", str(path), *extra], capture_output=True, text=True)
+    assert proc.returncode == 2
+    lines = proc.stderr.strip().splitlines()
+    assert len(lines) == 1 and needle in lines[0]
+    assert not (tmp_path / "o.nc").exists()
