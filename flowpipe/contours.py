@@ -250,6 +250,23 @@ def read_track(path: str | os.PathLike, radius_km: float) -> MovingCircle:
     return follow(times, lat, lon, radius_km, name=p.stem)
 
 
+def gather(boxes: Sequence[Sequence[float]] = (), circles: Sequence[Sequence[float]] = (),
+           polygons: Sequence[str | os.PathLike] = (), tracks: Sequence[str | os.PathLike] = (),
+           track_radius_km: float | None = None) -> list[Contour | MovingCircle]:
+    """Contours in the order the command line and batch configs list them.
+
+    ``boxes`` as ``[S, N, W, E]``, ``circles`` as ``[lat, lon, radius_km]``, ``polygons``
+    and ``tracks`` as files (:func:`read_polygon`, :func:`read_track`), the tracks' circles
+    of radius ``track_radius_km``.
+    """
+    if tracks and track_radius_km is None:
+        raise UsageError("a track needs the radius of its circle (--radius-km, or "
+                         "track_radius_km in [circulation])")
+    return ([box(*b) for b in boxes] + [circle(*c) for c in circles]
+            + [read_polygon(p) for p in polygons]
+            + [read_track(t, track_radius_km) for t in tracks])
+
+
 def _read_text(path: Path, what: str) -> str:
     try:
         return path.read_text(encoding="utf-8-sig")

@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import subprocess
 import sys
+from pathlib import Path
 
 import numpy as np
 import pytest
@@ -14,6 +15,7 @@ import xarray as xr
 from flowpipe import contours as C
 
 A = C.EARTH_RADIUS
+ROOT = Path(__file__).resolve().parents[1]
 U = 38.61  # Williamson et al. (1992) test case 1: u0 = 2 pi a / 12 days (rounded)
 
 
@@ -259,3 +261,48 @@ def test_bad_track_exits_2_with_one_line(tmp_path, track, extra, needle):
     lines = proc.stderr.strip().splitlines()
     assert len(lines) == 1 and needle in lines[0]
     assert not (tmp_path / "o.nc").exists()
+
+
+def _run_config(tmp_path, table: str):
+    from flowpipe.cli import main
+
+    (tmp_path / "storm.csv").write_text(
+        "time,latitude,longitude\n2026-01-12T00:00,50.0,-20.0\n2026-01-13T00:00,52.4,-10.4\n")
+    path = tmp_path / "night.toml"
+    path.write_text(f'[input]\npaths = ["{ROOT}/sample_data/demo_regional.nc"]\n\n'
+                    f'[circulation]\n{table}\n[output]\ndirectory = "out"\n')
+    return main(["run", str(path)])
+
+
+def test_circulation_table_in_batch_config(tmp_path):
+    # configs/README.md, [circulation]: the batch stage writes what the API computes for the
+    # same contours (read back with netCDF-C through xarray), named {stem}_circulation.nc.
+    import flowpipe as fp
+
+    table = ('boxes = [[45.0, 55.0, -25.0, -5.0]]\ntracks = ["storm.csv"]\n'
+             'track_radius_km = 500\nobrien = true\n')
+    assert _run_config(tmp_path, table) == 0
+    out = tmp_path / "out" / "demo_regional_circulation.nc"
+    wind = fp.open_wind("sample_data/demo_regional.nc")
+    expect = C.circulation(wind, [C.box(45.0, 55.0, -25.0, -5.0),
+                                  C.read_track(tmp_path / "storm.csv", 500.0)], obrien=True)
+    with xr.open_dataset(out) as got:
+        assert list(got.contour_name.values) == ["box 45,55,-25,-5", "storm"]
+        for name in ("circulation", "outward_flux", "omega", "centre_latitude"):
+            np.testing.assert_allclose(got[name].values, expect[name].values, rtol=1e-12)
+        assert "O'Brien" in got.attrs["omega_correction"]
+
+
+@pytest.mark.parametrize("table,needle", [
+    ("boxes = [[55.0, 45.0, -25.0, -5.0]]\n", "line 5: [circulation] boxes: contour"),
+    ("circles = [[50.0, -20.0, 0]]\n", "radius must be > 0"),
+    ('tracks = ["storm.csv"]\n', "line 5: [circulation] tracks need track_radius_km"),
+    ('polygons = ["nowhere.csv"]\n', "nowhere.csv does not exist"),
+    ("obrien = true\n", "needs at least one contour"),
+])
+def test_circulation_table_errors_name_the_key(tmp_path, capsys, table, needle):
+    # configs/README.md: config errors name the key and its line, exit 2, nothing written.
+    assert _run_config(tmp_path, table) == 2
+    err = capsys.readouterr().err.strip()
+    assert needle in err and len(err.splitlines()) == 1
+    assert not (tmp_path / "out").exists()

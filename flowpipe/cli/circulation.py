@@ -4,7 +4,7 @@ from __future__ import annotations
 
 import argparse
 
-from ..contours import box, circle, circulation, read_polygon, read_track
+from ..contours import circulation, gather
 from ..errors import UsageError
 from ..ingest import open_wind
 from ..store import write
@@ -60,13 +60,9 @@ def register(sub: argparse._SubParsersAction, common: argparse.ArgumentParser) -
 
 
 def run(args: argparse.Namespace) -> int:
-    if args.follow and args.radius_km is None:
-        raise UsageError("--follow needs --radius-km R (the radius of the moving circle in km)")
     if args.radius_km is not None and not args.follow:
         raise UsageError("--radius-km is the radius of --follow circles; give --follow TRACK.csv")
-    contours = ([box(*b) for b in args.box] + [circle(*c) for c in args.circle]
-                + [read_polygon(p) for p in args.polygon]
-                + [read_track(t, args.radius_km) for t in args.follow])
+    contours = gather(args.box, args.circle, args.polygon, args.follow, args.radius_km)
     if not contours:
         raise UsageError("give at least one contour: --box, --circle, --polygon or --follow")
     wind = open_wind(args.files, u=args.u, v=args.v)
