@@ -7,10 +7,11 @@ polygon) is turned once into two sparse matrices on the wind's grid:
   contour and summed with the midpoint rule, so that
   ``circulation = Lu @ u + Lv @ v`` and likewise for the outward flux; per slab
   this is one sparse mat-vec for all contours together;
-* an *area* matrix: the area of each grid cell inside the contour (by
-  sub-sampling each cell at ``SUBSAMPLES**2`` equal-area points; exact overlaps for
-  boxes), so that the
-  area integral of a gridded field is one sparse mat-vec.
+* an *area* matrix: the area of each grid cell inside the contour (exact
+  overlaps for boxes; for circles and polygons the overlaps of the cells with
+  the contour drawn as a chain of nodes in the equal-area plane of longitude
+  and sine of latitude, second order in the node spacing), so that the area
+  integral of a gridded field is one sparse mat-vec.
 
 Sampling rule: contour points are spaced at most a quarter of the grid
 spacing apart (at least 64 per contour); the midpoint rule on those segments
@@ -39,13 +40,10 @@ from pathlib import Path
 import numpy as np
 import scipy.sparse as sp
 import xarray as xr
-from matplotlib.path import Path as _MplPath
 
 from .constants import EARTH_RADIUS
 from .errors import InputError, UsageError
 
-#: Sub-samples per cell side in the area weights (16 equal-area points per cell).
-SUBSAMPLES = 4
 #: Contour points per grid spacing (at least).
 SAMPLES_PER_SPACING = 4
 
@@ -82,17 +80,21 @@ class Contour:
             if not -90 <= lat <= 90:
                 raise UsageError(f"contour {self.name!r}: centre latitude {lat} outside -90..90")
         elif self.kind == "polygon":
-            import shapely
-
             lat, lon = (np.asarray(p, float) for p in self.params)
             if len(lat) < 3:
                 raise UsageError(f"contour {self.name!r}: a polygon needs at least 3 vertices")
-            poly = shapely.Polygon(np.column_stack([_unwrap(lon), lat]))
-            if not poly.is_valid:
+            winding = _winding(lon)
+            # one turn around a pole: the polygon encloses the pole on its vertices' side,
+            # counter-clockwise means eastward around the north pole, westward around the south
+            if winding and (winding > 0) != (lat.mean() >= 0):
+                lat, lon = lat[::-1], lon[::-1]
+            poly = _plane_polygon(np.append(lat, lat[0]), np.append(lon, lon[0]), "latitude")
+            if not poly.is_valid or poly.area == 0:
                 raise UsageError(f"contour {self.name!r}: polygon is not simple "
                                  "(self-intersecting or degenerate); fix its vertices")
-            if poly.exterior.is_ccw is False:  # store counter-clockwise
-                self.params = (lat[::-1], lon[::-1])
+            if not winding and not poly.exterior.is_ccw:  # store counter-clockwise
+                lat, lon = lat[::-1], lon[::-1]
+            self.params = (lat, lon)
         else:
             raise UsageError(f"unknown contour kind {self.kind!r}")
 
@@ -288,6 +290,31 @@ def _is_number(text: str) -> bool:
     return True
 
 
+def _winding(lon: np.ndarray) -> int:
+    """Turns (+1 eastward, -1 westward, 0 none) of a ring of vertices around the poles' axis."""
+    ulon = _unwrap(np.append(lon, lon[0]))
+    return int(round((ulon[-1] - ulon[0]) / 360.0))
+
+
+def _plane_polygon(lat: np.ndarray, lon: np.ndarray, y: str):
+    """A closed ring of nodes as a shapely polygon in the (longitude, ``y``) plane.
+
+    ``y`` is ``"latitude"`` or ``"sine"`` (sine of latitude: the plane of Lambert's
+    cylindrical equal-area projection, where areas are proportional to areas on
+    the sphere). A ring that turns once around a pole is closed along the
+    pole's edge of the plane. Longitudes are unwrapped from the first node.
+    """
+    import shapely
+
+    ulon = _unwrap(lon)
+    turns = int(round((ulon[-1] - ulon[0]) / 360.0))
+    ys = np.asarray(lat, float) if y == "latitude" else np.sin(np.radians(lat))
+    if turns:
+        top = np.sign(turns) * (90.0 if y == "latitude" else 1.0)
+        ulon, ys = np.append(ulon, [ulon[-1], ulon[0]]), np.append(ys, [top, top])
+    return shapely.Polygon(np.column_stack([ulon, ys]))
+
+
 def _unwrap(lon: np.ndarray) -> np.ndarray:
     lon = np.asarray(lon, float)
     return lon[0] + np.cumsum(np.concatenate([[0.0], (np.diff(lon) + 180.0) % 360.0 - 180.0]))
@@ -325,7 +352,10 @@ def contour_nodes(c: Contour, step: float) -> tuple[np.ndarray, np.ndarray]:
         count = max(64, int(np.ceil(2 * np.pi * np.degrees(np.sin(dist)) / step)))
         bearing = -np.linspace(0.0, 2 * np.pi, count + 1)  # decreasing: counter-clockwise
         lat, lon = _destination(lat0, lon0, dist, bearing)
-        return lat, _unwrap(lon)
+        lon = _unwrap(lon)
+        # closed exactly (rounding would leave a sliver that makes the ring self-intersect)
+        lat[-1], lon[-1] = lat[0], lon[0] + 360.0 * round((lon[-1] - lon[0]) / 360.0)
+        return lat, lon
     lat, lon = c.params
     lat = np.append(lat, lat[0])
     lon = _unwrap(np.append(lon, lon[0]))
@@ -336,23 +366,6 @@ def contour_nodes(c: Contour, step: float) -> tuple[np.ndarray, np.ndarray]:
         out_lat.append(lat[i] + t * (lat[i + 1] - lat[i]))
         out_lon.append(lon[i] + t * (lon[i + 1] - lon[i]))
     return np.append(np.concatenate(out_lat), lat[0]), np.append(np.concatenate(out_lon), lon[-1])
-
-
-def _inside(c: Contour, lat: np.ndarray, lon: np.ndarray) -> np.ndarray:
-    if c.kind == "box":
-        s, n, w, e = c.params
-        width = (e - w) % 360 or 360
-        return (lat >= s) & (lat <= n) & ((lon - w) % 360 <= width)
-    if c.kind == "circle":
-        lat0, lon0, r = c.params
-        p0, l0, p, lam = np.radians(lat0), np.radians(lon0), np.radians(lat), np.radians(lon)
-        cosd = np.sin(p0) * np.sin(p) + np.cos(p0) * np.cos(p) * np.cos(lam - l0)
-        return cosd >= np.cos(r * 1e3 / EARTH_RADIUS)
-    plat, plon = c.params
-    ulon = _unwrap(plon)
-    path = _MplPath(np.column_stack([ulon, plat]))
-    shifted = ulon[0] - 180.0 + (lon - ulon[0] + 180.0) % 360.0
-    return path.contains_points(np.column_stack([shifted.ravel(), lat.ravel()])).reshape(lat.shape)
 
 
 class _Grid:
@@ -425,22 +438,25 @@ def line_matrices(grid: _Grid, contours: Sequence[Contour]) -> sp.csr_array:
 
 
 def area_matrix(grid: _Grid, contours: Sequence[Contour]) -> sp.csr_array:
-    """Sparse ``(ncontour, ncell)`` matrix of cell areas (m2) inside each contour."""
-    m = SUBSAMPLES
+    """Sparse ``(ncontour, ncell)`` matrix of cell areas (m2) inside each contour.
+
+    Boxes: exact overlaps in sine of latitude and longitude. Circles and
+    polygons: exact overlaps (:func:`shapely.intersection`) of each cell with the
+    contour drawn in the equal-area plane (longitude, sine of latitude), the
+    contour a chain of nodes :attr:`_Grid.step` apart; the chords' departure from
+    the contour is second order in that spacing, and so are the weights.
+
+    References
+    ----------
+    Snyder (1987), Map Projections: A Working Manual, USGS Professional Paper
+    1395, section 10 (Lambert's cylindrical equal-area projection: the area of a
+    region is ``a**2`` times its area in the plane of longitude in radians and
+    sine of latitude).
+    """
     sin_e = np.sin(np.radians(grid.lat_edges))
-    frac = (np.arange(m) + 0.5) / m
-    sub_lat = np.degrees(np.arcsin(sin_e[:-1, None] + (sin_e[1:] - sin_e[:-1])[:, None]
-                                   * frac[None, :]))  # (nlat, m), equal-area rows
     cell_area = EARTH_RADIUS**2 * np.radians(grid.dlon) * np.abs(sin_e[1:] - sin_e[:-1])
-    sub_lon = grid.lon[:, None] + (frac[None, :] - 0.5) * grid.dlon  # (nlon, m)
     rows, cols, vals = [], [], []
     for k, c in enumerate(contours):
-        lat_n, lon_n = contour_nodes(c, grid.step * SAMPLES_PER_SPACING)
-        lo, hi = lat_n.min(), lat_n.max()
-        if c.kind == "circle" and c.params[2] * 1e3 / EARTH_RADIUS > np.radians(90 - abs(c.params[0])):
-            lo, hi = (lo, 90.0) if c.params[0] > 0 else (-90.0, hi)
-        if c.kind == "box":
-            lo, hi = c.params[0], c.params[1]
         if c.kind == "box":  # exact cell fractions: overlaps in sin(latitude) and longitude
             s_, n_, w, e = c.params
             width = (e - w) % 360 or 360
@@ -452,24 +468,45 @@ def area_matrix(grid: _Grid, contours: Sequence[Contour]) -> sp.csr_array:
                                0, None) for shift in (-360.0, 0.0, 360.0)) / grid.dlon
             f = flat[:, None] * flon[None, :]
             r, j = np.nonzero(f)
-            rows.append(np.full(len(r), k))
-            cols.append(r * grid.nlon + j)
-            vals.append(f[r, j] * cell_area[r])
-            continue
-        ii = np.nonzero((grid.lat_edges[1:] >= lo) & (grid.lat_edges[:-1] <= hi))[0]
-        if not len(ii):
+            cells, areas = r * grid.nlon + j, f[r, j] * cell_area[r]
+        else:
+            cells, areas = _overlaps(grid, _plane_polygon(*contour_nodes(c, grid.step), "sine"),
+                                     sin_e)
+        if not len(cells):
             raise InputError(f"contour {c.name!r} lies outside the data; move it")
-        la = sub_lat[ii][:, None, :, None]
-        lo_ = sub_lon[None, :, None, :]
-        inside = _inside(c, np.broadcast_to(la, (len(ii), grid.nlon, m, m)),
-                         np.broadcast_to(lo_, (len(ii), grid.nlon, m, m)))
-        f = inside.mean(axis=(2, 3))
-        r, j = np.nonzero(f)
-        rows.append(np.full(len(r), k))
-        cols.append(ii[r] * grid.nlon + j)
-        vals.append(f[r, j] * cell_area[ii[r]])
+        rows.append(np.full(len(cells), k))
+        cols.append(cells)
+        vals.append(areas)
     return sp.csr_array((np.concatenate(vals), (np.concatenate(rows), np.concatenate(cols))),
                         shape=(len(contours), grid.nlat * grid.nlon))
+
+
+def _overlaps(grid: _Grid, poly, sin_e: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Cells (flat indices) and their areas (m2) inside ``poly`` (equal-area plane, degrees)."""
+    import shapely
+
+    shapely.prepare(poly)
+    lon_lo, mu_lo, lon_hi, mu_hi = poly.bounds
+    lo, hi = np.minimum(sin_e[:-1], sin_e[1:]), np.maximum(sin_e[:-1], sin_e[1:])
+    ii = np.nonzero((hi > mu_lo) & (lo < mu_hi))[0]
+    west = grid.lon - grid.dlon / 2
+    cells, areas = [], []
+    for turn in range(int(np.floor((lon_lo - west[-1]) / 360.0)),
+                      int(np.floor((lon_hi - west[0]) / 360.0)) + 1):
+        jj = np.nonzero((west + 360.0 * turn < lon_hi) & (west + grid.dlon + 360.0 * turn > lon_lo))[0]
+        if not (len(ii) and len(jj)):
+            continue
+        i, j = (a.ravel() for a in np.meshgrid(ii, jj, indexing="ij"))
+        boxes = shapely.box(west[j] + 360.0 * turn, lo[i], west[j] + grid.dlon + 360.0 * turn, hi[i])
+        area = np.where(shapely.contains_properly(poly, boxes), shapely.area(boxes), 0.0)
+        edge = np.nonzero((area == 0) & shapely.intersects(poly, boxes))[0]
+        area[edge] = shapely.area(shapely.intersection(boxes[edge], poly))
+        keep = area > 0
+        cells.append(i[keep] * grid.nlon + j[keep])
+        areas.append(area[keep] * EARTH_RADIUS**2 * np.pi / 180.0)
+    if not cells:
+        return np.zeros(0, int), np.zeros(0)
+    return np.concatenate(cells), np.concatenate(areas)
 
 
 def kinematic_omega(pressure: np.ndarray, divergence: np.ndarray, *, surface: float = 0.0,

@@ -166,16 +166,46 @@ def test_dateline_box_and_off_centre_polar_circle_match_area_integrals():
 
 def test_line_vs_area_on_rossby_haurwitz_second_order():
     # Williamson et al. (1992) test case 6 (tests/_williamson.py): the disagreement of line and
-    # gridded-area mean vorticity falls at second order with refinement.
+    # gridded-area mean vorticity falls at second order with refinement (measured order
+    # 2 +- 0.3, as the issue asks), for a box, a circle and a polygon.
     from _williamson import case6
 
+    shapes = [C.box(20 + 2 / 3, 50 + 2 / 3, 10.0, 60.0), C.circle(40.3, 35.1, 1500.0),
+              C.polygon([20.3, 30.1, 52.7, 44.2], [10.2, 55.3, 48.9, 3.7])]
     dis = []
-    for res in (2.0, 1.0):
+    for res in (1.0, 0.5):
         ds = _wind(res, lambda p, lam: case6(p, lam)["u"], lambda p, lam: case6(p, lam)["v"])
-        out = C.circulation(ds, [C.box(20 + 2 / 3, 50 + 2 / 3, 10.0, 60.0)]).compute()
-        dis.append(out.vorticity_disagreement.values.item())
+        dis.append(C.circulation(ds, shapes).compute().vorticity_disagreement.values.ravel())
     order = np.log2(dis[0] / dis[1])
-    assert 1.7 <= order <= 2.3
+    assert np.all((1.7 <= order) & (order <= 2.3)), order
+
+
+def test_polygon_around_the_pole_and_circle_area():
+    # A polygon winding once around the north pole, edges straight in latitude-longitude, on
+    # solid-body rotation u = U cos(phi) (Williamson et al. 1992, test case 1): along an edge
+    # phi(lambda) is linear, so the circulation is the sum over edges of the integral of
+    # U a cos^2(phi(lambda)) dlambda, and the enclosed area the integral of
+    # a^2 (1 - sin(phi(lambda))) dlambda (area of a spherical region north of a curve);
+    # both by scipy.integrate.quad. Given clockwise, the polygon is the same contour.
+    lat = np.array([60.0, 75.0, 65.0, 80.0, 70.0])
+    lon = np.array([0.0, 80.0, 170.0, 250.0, 300.0])
+    edges = list(zip(np.append(lon, 360.0)[:-1], np.append(lon, 360.0)[1:],
+                     lat, np.roll(lat, -1), strict=True))
+
+    def along(f):
+        return sum(scipy.integrate.quad(
+            lambda x, l0=l0, l1=l1, p0=p0, p1=p1: f(np.radians(p0 + (p1 - p0) * (x - l0) / (l1 - l0))),
+            l0, l1)[0] for l0, l1, p0, p1 in edges) * np.pi / 180
+
+    circ = along(lambda p: U * A * np.cos(p) ** 2)
+    area = along(lambda p: A**2 * (1 - np.sin(p)))
+    radius = 1500.0
+    cap = 2 * np.pi * A**2 * (1 - np.cos(radius * 1e3 / A))  # spherical cap (common practice)
+    shapes = [C.polygon(lat, lon), C.polygon(lat[::-1], lon[::-1]), C.circle(40.3, 35.1, radius)]
+    out = C.circulation(_solid(0.5), shapes).compute()
+    np.testing.assert_allclose(out.circulation.values.ravel()[:2], circ, rtol=1e-4)
+    np.testing.assert_allclose(out.area.values[:2], area, rtol=1e-4)
+    assert out.area.values[2] == pytest.approx(cap, rel=1e-4)
 
 
 def _great_circle(lat0: float, lon0: float, heading: float, angle: np.ndarray) -> np.ndarray:
