@@ -72,6 +72,18 @@ SCHEMA: dict[str, dict[str, tuple[tuple[type, ...], Any]]] = {
         "levels": ((list,), None),
         "output": ((str,), "{stem}_ftle.nc"),
     },
+    "circulation": {
+        "boxes": ((list,), []),
+        "circles": ((list,), []),
+        "polygons": ((list,), []),
+        "tracks": ((list,), []),
+        "track_radius_km": (_NUMBER, None),
+        "levels": ((list,), None),
+        "obrien": ((bool,), False),
+        "surface_omega": (_NUMBER, 0.0),
+        "top_omega": (_NUMBER, 0.0),
+        "output": ((str,), "{stem}_circulation.nc"),
+    },
     "maps": {
         "fields": ((list,), ["streamfunction", "velocity_potential"]),
         "levels": ((list,), None),
@@ -177,6 +189,20 @@ VALUES: dict[str, dict[str, Allowed]] = {
                           "[south, north, west, east] of finite numbers"),
         "levels": Allowed(_finite, "a finite number", each=True, empty=False),
     },
+    "circulation": {
+        "boxes": Allowed(lambda b: isinstance(b, list) and len(b) == 4 and all(map(_finite, b)),
+                         "[south, north, west, east] of finite numbers", each=True),
+        "circles": Allowed(lambda c: isinstance(c, list) and len(c) == 3 and all(map(_finite, c)),
+                           "[lat, lon, radius_km] of finite numbers", each=True),
+        "polygons": Allowed(lambda name: isinstance(name, str) and name != "",
+                            "a file name (CSV or GeoJSON)", each=True),
+        "tracks": Allowed(lambda name: isinstance(name, str) and name != "",
+                          "a file name (CSV time,latitude,longitude)", each=True),
+        "track_radius_km": _POSITIVE,
+        "levels": Allowed(_finite, "a finite number", each=True, empty=False),
+        "surface_omega": Allowed(_finite, "a finite number (Pa s-1)"),
+        "top_omega": Allowed(_finite, "a finite number (Pa s-1)"),
+    },
     "maps": {
         "levels": Allowed(_finite, "a finite number", each=True),
     },
@@ -184,11 +210,12 @@ VALUES: dict[str, dict[str, Allowed]] = {
         "workers": _AT_LEAST_1,
     },
 }
-STAGES = ("decompose", "advect", "ftle", "maps")
+STAGES = ("decompose", "advect", "ftle", "circulation", "maps")
 TEMPLATE_FIELDS = {
     "decompose": {"stem", "run", "lead"},
     "advect": {"stem", "run", "lead"},
     "ftle": {"stem", "run", "lead"},
+    "circulation": {"stem", "run", "lead"},
     "maps": {"stem", "field", "level", "time", "run", "lead"},
 }
 
@@ -359,6 +386,8 @@ def _check_values(config: Config, text: str) -> None:
         if adv["starts_file"] is not None and not (base / adv["starts_file"]).is_file():
             raise ConfigError(f"{_where(cfg_path, text, 'advect', 'starts_file')}: [advect] "
                               f"starts_file {adv['starts_file']} does not exist")
+    if "circulation" in config.tables:
+        _check_circulation(config, text)
     if "decompose" in config.tables:
         dec = config.tables["decompose"]
         if dec["method"] == "regional" and dec["truncation"] is not None:
@@ -371,6 +400,31 @@ def _check_values(config: Config, text: str) -> None:
             if refusal:
                 raise ConfigError(f"{_where(cfg_path, text, 'maps', 'fields')}: {refusal} "
                                   f"(the fields of [decompose] method \"{dec['method']}\")")
+
+
+def _check_circulation(config: Config, text: str) -> None:
+    """Contours that the library accepts, files that exist, a radius for the tracks."""
+    from .contours import box, circle
+
+    cfg, base = config.tables["circulation"], config.path.parent
+    where = lambda key: _where(config.path, text, "circulation", key)  # noqa: E731
+    if not any(cfg[key] for key in ("boxes", "circles", "polygons", "tracks")):
+        raise ConfigError(f"{where(None)}: [circulation] needs at least one contour: boxes, "
+                          "circles, polygons or tracks")
+    if cfg["tracks"] and cfg["track_radius_km"] is None:
+        raise ConfigError(f"{where('tracks')}: [circulation] tracks need track_radius_km "
+                          "(the radius of the moving circles in km)")
+    for key, make in (("boxes", box), ("circles", circle)):
+        for values in cfg[key]:
+            try:
+                make(*values)
+            except UsageError as exc:
+                raise ConfigError(f"{where(key)}: [circulation] {key}: {exc}") from None
+    for key in ("polygons", "tracks"):
+        for name in cfg[key]:
+            if not (base / name).is_file():
+                raise ConfigError(f"{where(key)}: [circulation] {key}: {name} does not exist "
+                                  "(paths are relative to the config file)")
 
 
 def check_template(template: str, allowed: set[str], where: str, what: str) -> None:

@@ -7,15 +7,20 @@ polygon) is turned once into two sparse matrices on the wind's grid:
   contour and summed with the midpoint rule, so that
   ``circulation = Lu @ u + Lv @ v`` and likewise for the outward flux; per slab
   this is one sparse mat-vec for all contours together;
-* an *area* matrix: the area of each grid cell inside the contour (by
-  sub-sampling each cell at ``SUBSAMPLES**2`` equal-area points; exact overlaps for
-  boxes), so that the
-  area integral of a gridded field is one sparse mat-vec.
+* an *area* matrix: the area of each grid cell inside the contour (exact
+  overlaps for boxes; for circles and polygons the overlaps of the cells with
+  the contour drawn as a chain of nodes in the equal-area plane of longitude
+  and sine of latitude, second order in the node spacing), so that the area
+  integral of a gridded field is one sparse mat-vec.
 
 Sampling rule: contour points are spaced at most a quarter of the grid
 spacing apart (at least 64 per contour); the midpoint rule on those segments
 and bilinear interpolation are both second order, so the line integral
 converges at second order in the grid spacing.
+
+Moving circles (:func:`follow`): a circle of fixed radius whose centre follows a
+track, interpolated along great circles between the track's times; its
+matrices are built once per time of the data.
 
 Sign convention: contours run counter-clockwise seen from above (outside the
 sphere); circulation is then positive for cyclonic rotation in the northern
@@ -25,19 +30,20 @@ outflow.
 
 from __future__ import annotations
 
+import csv
+import json
+import os
 from collections.abc import Sequence
 from dataclasses import dataclass
+from pathlib import Path
 
 import numpy as np
 import scipy.sparse as sp
 import xarray as xr
-from matplotlib.path import Path as _MplPath
 
 from .constants import EARTH_RADIUS
 from .errors import InputError, UsageError
 
-#: Sub-samples per cell side in the area weights (16 equal-area points per cell).
-SUBSAMPLES = 4
 #: Contour points per grid spacing (at least).
 SAMPLES_PER_SPACING = 4
 
@@ -62,10 +68,11 @@ class Contour:
             s, n, w, e = self.params
             if not (-90 <= s < n <= 90):
                 raise UsageError(f"contour {self.name!r}: box needs -90 <= S < N <= 90")
-            if (e - w) % 360 == 0 and e != w:
-                pass
-            elif (e - w) % 360 == 0:
-                raise UsageError(f"contour {self.name!r}: box has zero width (W = E)")
+            if not (np.isfinite(w) and np.isfinite(e)):
+                raise UsageError(f"contour {self.name!r}: box meridians must be finite numbers")
+            if w == e:  # W = E +- 360 is the whole latitude band; W = E encloses nothing
+                raise UsageError(f"contour {self.name!r}: box has zero width (W = E); "
+                                 "give W < E, or E = W + 360 for a whole latitude band")
         elif self.kind == "circle":
             lat, lon, radius_km = self.params
             if not radius_km > 0:
@@ -73,17 +80,21 @@ class Contour:
             if not -90 <= lat <= 90:
                 raise UsageError(f"contour {self.name!r}: centre latitude {lat} outside -90..90")
         elif self.kind == "polygon":
-            import shapely
-
             lat, lon = (np.asarray(p, float) for p in self.params)
             if len(lat) < 3:
                 raise UsageError(f"contour {self.name!r}: a polygon needs at least 3 vertices")
-            poly = shapely.Polygon(np.column_stack([_unwrap(lon), lat]))
-            if not poly.is_valid:
+            winding = _winding(lon)
+            # one turn around a pole: the polygon encloses the pole on its vertices' side,
+            # counter-clockwise means eastward around the north pole, westward around the south
+            if winding and (winding > 0) != (lat.mean() >= 0):
+                lat, lon = lat[::-1], lon[::-1]
+            poly = _plane_polygon(np.append(lat, lat[0]), np.append(lon, lon[0]), "latitude")
+            if not poly.is_valid or poly.area == 0:
                 raise UsageError(f"contour {self.name!r}: polygon is not simple "
                                  "(self-intersecting or degenerate); fix its vertices")
-            if poly.exterior.is_ccw is False:  # store counter-clockwise
-                self.params = (lat[::-1], lon[::-1])
+            if not winding and not poly.exterior.is_ccw:  # store counter-clockwise
+                lat, lon = lat[::-1], lon[::-1]
+            self.params = (lat, lon)
         else:
             raise UsageError(f"unknown contour kind {self.kind!r}")
 
@@ -102,6 +113,206 @@ def circle(lat: float, lon: float, radius_km: float, name: str | None = None) ->
 def polygon(lat: Sequence[float], lon: Sequence[float], name: str | None = None) -> Contour:
     """A polygon whose edges are straight in latitude-longitude (longitudes unwrapped)."""
     return Contour(name or "polygon", "polygon", (np.asarray(lat, float), np.asarray(lon, float)))
+
+
+@dataclass
+class MovingCircle:
+    """A circle of fixed great-circle radius whose centre follows a track in time."""
+
+    name: str
+    times: np.ndarray
+    latitude: np.ndarray
+    longitude: np.ndarray
+    radius_km: float
+
+    def __post_init__(self) -> None:
+        self.times = np.asarray(self.times, "datetime64[ns]")
+        self.latitude = np.asarray(self.latitude, float)
+        self.longitude = np.asarray(self.longitude, float)
+        if not self.radius_km > 0:
+            raise UsageError(f"track {self.name!r}: radius must be > 0 km, got {self.radius_km}")
+        if not len(self.times) or not (len(self.times) == len(self.latitude) == len(self.longitude)):
+            raise UsageError(f"track {self.name!r}: give one latitude and longitude per time")
+        if np.isnat(self.times).any() or (np.diff(self.times) <= np.timedelta64(0)).any():
+            raise UsageError(f"track {self.name!r}: times must be strictly increasing")
+        if not (np.all(np.abs(self.latitude) <= 90) and np.all(np.isfinite(self.longitude))):
+            raise UsageError(f"track {self.name!r}: latitudes must lie in -90..90 and "
+                             "longitudes be finite")
+
+    def centre(self, times: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        """Latitude and longitude (degrees) of the centre at ``times``.
+
+        Parameters
+        ----------
+        times : numpy.ndarray of datetime64
+            Every one within the track's first and last time.
+
+        Returns
+        -------
+        latitude, longitude : numpy.ndarray
+            Linear in time along the great circle between the bracketing track
+            points (spherical linear interpolation); longitudes in (-180, 180].
+
+        References
+        ----------
+        Shoemake (1985), "Animating rotation with quaternion curves", SIGGRAPH
+        Comput. Graph. 19(3), 245-254 (slerp), as implemented by
+        :func:`scipy.spatial.geometric_slerp`.
+        """
+        from scipy.spatial import geometric_slerp
+
+        t = np.asarray(times, "datetime64[ns]")
+        outside = (t < self.times[0]) | (t > self.times[-1])
+        if outside.any():
+            raise InputError(
+                f"track {self.name!r} covers {_iso(self.times[0])} to {_iso(self.times[-1])}, "
+                f"but the data has time {_iso(t[outside][0])}; give a track covering every "
+                "time of the data")
+        phi, lam = np.radians(self.latitude), np.radians(self.longitude)
+        points = np.column_stack([np.cos(phi) * np.cos(lam), np.cos(phi) * np.sin(lam), np.sin(phi)])
+        k = np.clip(np.searchsorted(self.times, t, side="right") - 1, 0, max(len(self.times) - 2, 0))
+        out = np.empty((len(t), 3))
+        for i, ti in enumerate(t):
+            if len(self.times) == 1 or np.array_equal(points[k[i]], points[k[i] + 1]):
+                out[i] = points[k[i]]
+                continue
+            frac = (ti - self.times[k[i]]) / (self.times[k[i] + 1] - self.times[k[i]])
+            out[i] = geometric_slerp(points[k[i]], points[k[i] + 1], float(frac))
+        lat = np.degrees(np.arcsin(np.clip(out[:, 2], -1, 1)))
+        return lat, np.degrees(np.arctan2(out[:, 1], out[:, 0]))
+
+    def at(self, time: np.datetime64) -> Contour:
+        """The circle at one time (a :class:`Contour` of kind ``"circle"``)."""
+        lat, lon = self.centre(np.array([time]))
+        return circle(float(lat[0]), float(lon[0]), self.radius_km, name=self.name)
+
+
+def follow(times: Sequence, latitude: Sequence[float], longitude: Sequence[float],
+           radius_km: float, name: str | None = None) -> MovingCircle:
+    """A circle of great-circle radius ``radius_km`` whose centre follows a track.
+
+    ``times`` (datetime64 or ISO 8601 text) must increase strictly and cover every
+    time of the wind the circle is used on.
+    """
+    return MovingCircle(name or f"track, {radius_km:g} km", np.asarray(times, "datetime64[ns]"),
+                        np.asarray(latitude, float), np.asarray(longitude, float), radius_km)
+
+
+def read_polygon(path: str | os.PathLike) -> Contour:
+    """A polygon from a CSV (latitude,longitude per line, optional header) or GeoJSON.
+
+    The contour is named after the file's stem.
+    """
+    p = Path(path)
+    text = _read_text(p, "polygon")
+    try:
+        if p.suffix.lower() in (".json", ".geojson"):
+            data = json.loads(text)
+            geom = data.get("features", [data])[0] if data.get("type") == "FeatureCollection" else data
+            geom = geom.get("geometry", geom)
+            ring = geom["coordinates"][0]
+            lon, lat = zip(*[(float(x[0]), float(x[1])) for x in ring], strict=True)
+        else:
+            rows = [r for r in csv.reader(text.splitlines()) if r and r[0].strip()]
+            if rows and not _is_number(rows[0][0]):
+                rows = rows[1:]
+            lat, lon = zip(*[(float(r[0]), float(r[1])) for r in rows], strict=True)
+    except (ValueError, KeyError, IndexError, TypeError, AttributeError):
+        raise InputError(f"{path}: not a CSV of latitude,longitude vertices nor a GeoJSON "
+                         "polygon") from None
+    if len(lat) > 1 and (lat[0], lon[0]) == (lat[-1], lon[-1]):
+        lat, lon = lat[:-1], lon[:-1]
+    return polygon(lat, lon, name=p.stem)
+
+
+def read_track(path: str | os.PathLike, radius_km: float) -> MovingCircle:
+    """A moving circle from a track CSV: a header row ``time,latitude,longitude``.
+
+    Times are ISO 8601; the circle is named after the file's stem.
+    """
+    p = Path(path)
+    rows = [r for r in csv.reader(_read_text(p, "track").splitlines()) if any(c.strip() for c in r)]
+    header = [h.strip().lower() for h in rows[0]] if rows else []
+    if sorted(header) != ["latitude", "longitude", "time"]:
+        raise InputError(f"{path} line 1: the header must be time,latitude,longitude")
+    times, lat, lon = [], [], []
+    for number, row in enumerate(rows[1:], start=2):
+        cells = dict(zip(header, (c.strip() for c in row), strict=False))
+        try:
+            if len(row) != 3:
+                raise ValueError
+            times.append(np.datetime64(cells["time"].removesuffix("Z"), "ns"))
+            lat.append(float(cells["latitude"]))
+            lon.append(float(cells["longitude"]))
+        except ValueError:
+            raise InputError(f"{path} line {number}: give an ISO 8601 time, a latitude and a "
+                             "longitude") from None
+    if not times:
+        raise InputError(f"{path}: has a header but no track rows")
+    return follow(times, lat, lon, radius_km, name=p.stem)
+
+
+def gather(boxes: Sequence[Sequence[float]] = (), circles: Sequence[Sequence[float]] = (),
+           polygons: Sequence[str | os.PathLike] = (), tracks: Sequence[str | os.PathLike] = (),
+           track_radius_km: float | None = None) -> list[Contour | MovingCircle]:
+    """Contours in the order the command line and batch configs list them.
+
+    ``boxes`` as ``[S, N, W, E]``, ``circles`` as ``[lat, lon, radius_km]``, ``polygons``
+    and ``tracks`` as files (:func:`read_polygon`, :func:`read_track`), the tracks' circles
+    of radius ``track_radius_km``.
+    """
+    if tracks and track_radius_km is None:
+        raise UsageError("a track needs the radius of its circle (--radius-km, or "
+                         "track_radius_km in [circulation])")
+    return ([box(*b) for b in boxes] + [circle(*c) for c in circles]
+            + [read_polygon(p) for p in polygons]
+            + [read_track(t, track_radius_km) for t in tracks])
+
+
+def _read_text(path: Path, what: str) -> str:
+    try:
+        return path.read_text(encoding="utf-8-sig")
+    except OSError as exc:
+        raise InputError(f"{path}: cannot read {what} file ({exc.strerror})") from None
+    except UnicodeDecodeError:
+        raise InputError(f"{path}: the {what} file is not UTF-8 text") from None
+
+
+def _iso(time: np.datetime64) -> str:
+    return str(np.datetime_as_string(time, unit="s"))
+
+
+def _is_number(text: str) -> bool:
+    try:
+        float(text)
+    except ValueError:
+        return False
+    return True
+
+
+def _winding(lon: np.ndarray) -> int:
+    """Turns (+1 eastward, -1 westward, 0 none) of a ring of vertices around the poles' axis."""
+    ulon = _unwrap(np.append(lon, lon[0]))
+    return int(round((ulon[-1] - ulon[0]) / 360.0))
+
+
+def _plane_polygon(lat: np.ndarray, lon: np.ndarray, y: str):
+    """A closed ring of nodes as a shapely polygon in the (longitude, ``y``) plane.
+
+    ``y`` is ``"latitude"`` or ``"sine"`` (sine of latitude: the plane of Lambert's
+    cylindrical equal-area projection, where areas are proportional to areas on
+    the sphere). A ring that turns once around a pole is closed along the
+    pole's edge of the plane. Longitudes are unwrapped from the first node.
+    """
+    import shapely
+
+    ulon = _unwrap(lon)
+    turns = int(round((ulon[-1] - ulon[0]) / 360.0))
+    ys = np.asarray(lat, float) if y == "latitude" else np.sin(np.radians(lat))
+    if turns:
+        top = np.sign(turns) * (90.0 if y == "latitude" else 1.0)
+        ulon, ys = np.append(ulon, [ulon[-1], ulon[0]]), np.append(ys, [top, top])
+    return shapely.Polygon(np.column_stack([ulon, ys]))
 
 
 def _unwrap(lon: np.ndarray) -> np.ndarray:
@@ -141,7 +352,10 @@ def contour_nodes(c: Contour, step: float) -> tuple[np.ndarray, np.ndarray]:
         count = max(64, int(np.ceil(2 * np.pi * np.degrees(np.sin(dist)) / step)))
         bearing = -np.linspace(0.0, 2 * np.pi, count + 1)  # decreasing: counter-clockwise
         lat, lon = _destination(lat0, lon0, dist, bearing)
-        return lat, _unwrap(lon)
+        lon = _unwrap(lon)
+        # closed exactly (rounding would leave a sliver that makes the ring self-intersect)
+        lat[-1], lon[-1] = lat[0], lon[0] + 360.0 * round((lon[-1] - lon[0]) / 360.0)
+        return lat, lon
     lat, lon = c.params
     lat = np.append(lat, lat[0])
     lon = _unwrap(np.append(lon, lon[0]))
@@ -152,23 +366,6 @@ def contour_nodes(c: Contour, step: float) -> tuple[np.ndarray, np.ndarray]:
         out_lat.append(lat[i] + t * (lat[i + 1] - lat[i]))
         out_lon.append(lon[i] + t * (lon[i + 1] - lon[i]))
     return np.append(np.concatenate(out_lat), lat[0]), np.append(np.concatenate(out_lon), lon[-1])
-
-
-def _inside(c: Contour, lat: np.ndarray, lon: np.ndarray) -> np.ndarray:
-    if c.kind == "box":
-        s, n, w, e = c.params
-        width = (e - w) % 360 or 360
-        return (lat >= s) & (lat <= n) & ((lon - w) % 360 <= width)
-    if c.kind == "circle":
-        lat0, lon0, r = c.params
-        p0, l0, p, lam = np.radians(lat0), np.radians(lon0), np.radians(lat), np.radians(lon)
-        cosd = np.sin(p0) * np.sin(p) + np.cos(p0) * np.cos(p) * np.cos(lam - l0)
-        return cosd >= np.cos(r * 1e3 / EARTH_RADIUS)
-    plat, plon = c.params
-    ulon = _unwrap(plon)
-    path = _MplPath(np.column_stack([ulon, plat]))
-    shifted = ulon[0] - 180.0 + (lon - ulon[0] + 180.0) % 360.0
-    return path.contains_points(np.column_stack([shifted.ravel(), lat.ravel()])).reshape(lat.shape)
 
 
 class _Grid:
@@ -241,22 +438,25 @@ def line_matrices(grid: _Grid, contours: Sequence[Contour]) -> sp.csr_array:
 
 
 def area_matrix(grid: _Grid, contours: Sequence[Contour]) -> sp.csr_array:
-    """Sparse ``(ncontour, ncell)`` matrix of cell areas (m2) inside each contour."""
-    m = SUBSAMPLES
+    """Sparse ``(ncontour, ncell)`` matrix of cell areas (m2) inside each contour.
+
+    Boxes: exact overlaps in sine of latitude and longitude. Circles and
+    polygons: exact overlaps (:func:`shapely.intersection`) of each cell with the
+    contour drawn in the equal-area plane (longitude, sine of latitude), the
+    contour a chain of nodes :attr:`_Grid.step` apart; the chords' departure from
+    the contour is second order in that spacing, and so are the weights.
+
+    References
+    ----------
+    Snyder (1987), Map Projections: A Working Manual, USGS Professional Paper
+    1395, section 10 (Lambert's cylindrical equal-area projection: the area of a
+    region is ``a**2`` times its area in the plane of longitude in radians and
+    sine of latitude).
+    """
     sin_e = np.sin(np.radians(grid.lat_edges))
-    frac = (np.arange(m) + 0.5) / m
-    sub_lat = np.degrees(np.arcsin(sin_e[:-1, None] + (sin_e[1:] - sin_e[:-1])[:, None]
-                                   * frac[None, :]))  # (nlat, m), equal-area rows
     cell_area = EARTH_RADIUS**2 * np.radians(grid.dlon) * np.abs(sin_e[1:] - sin_e[:-1])
-    sub_lon = grid.lon[:, None] + (frac[None, :] - 0.5) * grid.dlon  # (nlon, m)
     rows, cols, vals = [], [], []
     for k, c in enumerate(contours):
-        lat_n, lon_n = contour_nodes(c, grid.step * SAMPLES_PER_SPACING)
-        lo, hi = lat_n.min(), lat_n.max()
-        if c.kind == "circle" and c.params[2] * 1e3 / EARTH_RADIUS > np.radians(90 - abs(c.params[0])):
-            lo, hi = (lo, 90.0) if c.params[0] > 0 else (-90.0, hi)
-        if c.kind == "box":
-            lo, hi = c.params[0], c.params[1]
         if c.kind == "box":  # exact cell fractions: overlaps in sin(latitude) and longitude
             s_, n_, w, e = c.params
             width = (e - w) % 360 or 360
@@ -268,24 +468,45 @@ def area_matrix(grid: _Grid, contours: Sequence[Contour]) -> sp.csr_array:
                                0, None) for shift in (-360.0, 0.0, 360.0)) / grid.dlon
             f = flat[:, None] * flon[None, :]
             r, j = np.nonzero(f)
-            rows.append(np.full(len(r), k))
-            cols.append(r * grid.nlon + j)
-            vals.append(f[r, j] * cell_area[r])
-            continue
-        ii = np.nonzero((grid.lat_edges[1:] >= lo) & (grid.lat_edges[:-1] <= hi))[0]
-        if not len(ii):
+            cells, areas = r * grid.nlon + j, f[r, j] * cell_area[r]
+        else:
+            cells, areas = _overlaps(grid, _plane_polygon(*contour_nodes(c, grid.step), "sine"),
+                                     sin_e)
+        if not len(cells):
             raise InputError(f"contour {c.name!r} lies outside the data; move it")
-        la = sub_lat[ii][:, None, :, None]
-        lo_ = sub_lon[None, :, None, :]
-        inside = _inside(c, np.broadcast_to(la, (len(ii), grid.nlon, m, m)),
-                         np.broadcast_to(lo_, (len(ii), grid.nlon, m, m)))
-        f = inside.mean(axis=(2, 3))
-        r, j = np.nonzero(f)
-        rows.append(np.full(len(r), k))
-        cols.append(ii[r] * grid.nlon + j)
-        vals.append(f[r, j] * cell_area[ii[r]])
+        rows.append(np.full(len(cells), k))
+        cols.append(cells)
+        vals.append(areas)
     return sp.csr_array((np.concatenate(vals), (np.concatenate(rows), np.concatenate(cols))),
                         shape=(len(contours), grid.nlat * grid.nlon))
+
+
+def _overlaps(grid: _Grid, poly, sin_e: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Cells (flat indices) and their areas (m2) inside ``poly`` (equal-area plane, degrees)."""
+    import shapely
+
+    shapely.prepare(poly)
+    lon_lo, mu_lo, lon_hi, mu_hi = poly.bounds
+    lo, hi = np.minimum(sin_e[:-1], sin_e[1:]), np.maximum(sin_e[:-1], sin_e[1:])
+    ii = np.nonzero((hi > mu_lo) & (lo < mu_hi))[0]
+    west = grid.lon - grid.dlon / 2
+    cells, areas = [], []
+    for turn in range(int(np.floor((lon_lo - west[-1]) / 360.0)),
+                      int(np.floor((lon_hi - west[0]) / 360.0)) + 1):
+        jj = np.nonzero((west + 360.0 * turn < lon_hi) & (west + grid.dlon + 360.0 * turn > lon_lo))[0]
+        if not (len(ii) and len(jj)):
+            continue
+        i, j = (a.ravel() for a in np.meshgrid(ii, jj, indexing="ij"))
+        boxes = shapely.box(west[j] + 360.0 * turn, lo[i], west[j] + grid.dlon + 360.0 * turn, hi[i])
+        area = np.where(shapely.contains_properly(poly, boxes), shapely.area(boxes), 0.0)
+        edge = np.nonzero((area == 0) & shapely.intersects(poly, boxes))[0]
+        area[edge] = shapely.area(shapely.intersection(boxes[edge], poly))
+        keep = area > 0
+        cells.append(i[keep] * grid.nlon + j[keep])
+        areas.append(area[keep] * EARTH_RADIUS**2 * np.pi / 180.0)
+    if not cells:
+        return np.zeros(0, int), np.zeros(0)
+    return np.concatenate(cells), np.concatenate(areas)
 
 
 def kinematic_omega(pressure: np.ndarray, divergence: np.ndarray, *, surface: float = 0.0,
@@ -330,18 +551,65 @@ def kinematic_omega(pressure: np.ndarray, divergence: np.ndarray, *, surface: fl
     return out
 
 
-def _slab_integrals(u, v, zeta, delta, *, line, area):
+def _slab_integrals(u, v, zeta, delta, step, *, lines, areas):
+    """Line and area integrals of slabs; ``step`` picks each slab's matrices (moving circles)."""
     shape = u.shape[:-2]
-    n = area.shape[0]
+    n = areas[0].shape[0]
     flat = lambda a: a.reshape(-1, a.shape[-2] * a.shape[-1]).T  # noqa: E731
-    lines = line @ np.concatenate([flat(u), flat(v)], axis=0)
-    areas = area @ np.concatenate([flat(zeta), flat(delta)], axis=1)
-    res = [lines[:n].T, lines[n:].T, areas[:, : areas.shape[1] // 2].T,
-           areas[:, areas.shape[1] // 2:].T]
+    fu, fv, fz, fd = flat(u), flat(v), flat(zeta), flat(delta)
+    step = np.broadcast_to(step, shape).ravel()
+    res = np.empty((4, fu.shape[1], n))
+    for k in np.unique(step):
+        sel = step == k
+        m = int(sel.sum())
+        ring = lines[k] @ np.concatenate([fu[:, sel], fv[:, sel]], axis=0)
+        ints = areas[k] @ np.concatenate([fz[:, sel], fd[:, sel]], axis=1)
+        res[:, sel] = [ring[:n].T, ring[n:].T, ints[:, :m].T, ints[:, m:].T]
     return tuple(r.reshape(shape + (n,)) for r in res)
 
 
-def circulation(wind: xr.Dataset, contours: Sequence[Contour], *,
+def _matrices(grid: _Grid, contours: Sequence[Contour | MovingCircle], times: np.ndarray | None):
+    """Line and area matrices, one pair per time when a circle moves (else one pair).
+
+    The rows of fixed contours are built once and reused at every time.
+    """
+    fixed = [i for i, c in enumerate(contours) if isinstance(c, Contour)]
+    moving = [i for i, c in enumerate(contours) if isinstance(c, MovingCircle)]
+    if not moving:
+        snapshots = [list(contours)]
+    else:
+        if times is None:
+            raise UsageError(f"track {contours[moving[0]].name!r}: a moving circle needs data "
+                             "with a time coordinate")
+        centres = [contours[i].centre(times) for i in moving]  # refuses times off the track
+        snapshots = [[contours[i] for i in fixed] + [
+            circle(float(lat[t]), float(lon[t]), contours[i].radius_km, name=contours[i].name)
+            for i, (lat, lon) in zip(moving, centres, strict=True)] for t in range(len(times))]
+    order = np.argsort(fixed + moving) if moving else np.arange(len(contours))
+    n, nf = len(contours), len(fixed)
+    line_f = line_matrices(grid, snapshots[0][:nf]) if moving and fixed else None
+    area_f = area_matrix(grid, snapshots[0][:nf]) if moving and fixed else None
+    lines, areas = [], []
+    for snap in snapshots:
+        part = snap[nf:] if moving else snap
+        line, area = line_matrices(grid, part), area_matrix(grid, part)
+        if line_f is not None:
+            m = len(part)
+            line = sp.vstack([line_f[:nf], line[:m], line_f[nf:], line[m:]], format="csr")
+            area = sp.vstack([area_f, area], format="csr")
+        if moving:  # back to the order the contours were given in
+            line = sp.csr_array(line[np.concatenate([order, n + order])])
+            area = sp.csr_array(area[order])
+        sums = area.sum(axis=1)
+        if (sums <= 0).any():
+            bad = contours[int(np.argmin(sums))].name
+            raise InputError(f"contour {bad!r} encloses no grid cell of the data; enlarge it")
+        lines.append(line)
+        areas.append(area)
+    return lines, areas, [snapshots[0][j] for j in order]
+
+
+def circulation(wind: xr.Dataset, contours: Sequence[Contour | MovingCircle], *,
                 levels: Sequence[float] | None = None, obrien: bool = False,
                 surface_omega: float = 0.0, top_omega: float = 0.0) -> xr.Dataset:
     """Circulation, outward flux, area means and kinematic omega of closed contours.
@@ -350,8 +618,8 @@ def circulation(wind: xr.Dataset, contours: Sequence[Contour], *,
     ----------
     wind : xarray.Dataset
         A canonical wind (:func:`flowpipe.open_wind`).
-    contours : sequence of Contour
-        From :func:`box`, :func:`circle` and :func:`polygon`.
+    contours : sequence of Contour or MovingCircle
+        From :func:`box`, :func:`circle`, :func:`polygon` and :func:`follow`.
     levels : sequence of float, optional
         Only these levels.
     obrien : bool
@@ -362,7 +630,10 @@ def circulation(wind: xr.Dataset, contours: Sequence[Contour], *,
     Returns
     -------
     xarray.Dataset
-        Lazy; dimensions ``(time, level, contour)``.
+        Lazy; dimensions ``(time, level, contour)``. With a moving circle,
+        ``area`` is per ``(time, contour)`` (the grid's sampling of the circle
+        changes as it moves) and ``centre_latitude`` / ``centre_longitude``
+        ``(time, contour)`` give the circles' centres (NaN for boxes and polygons).
 
     References
     ----------
@@ -371,26 +642,27 @@ def circulation(wind: xr.Dataset, contours: Sequence[Contour], *,
     from .decompose import decompose, select_levels
 
     if not contours:
-        raise UsageError("give at least one contour (--box, --circle or --polygon)")
+        raise UsageError("give at least one contour (--box, --circle, --polygon or --follow)")
     wind = select_levels(wind, levels)
     wind = wind.sortby("latitude")
     grid = _Grid(wind.latitude.values, wind.longitude.values)
-    line = line_matrices(grid, contours)
-    area = area_matrix(grid, contours)
-    if (area.sum(axis=1) <= 0).any():
-        bad = contours[int(np.argmin(area.sum(axis=1)))].name
-        raise InputError(f"contour {bad!r} encloses no grid cell of the data; enlarge it")
+    timed = "time" in wind.dims
+    moving = any(isinstance(c, MovingCircle) for c in contours)
+    lines, areas, first = _matrices(grid, contours, wind.time.values if timed else None)
     parts = decompose(wind, levels=None)
     parts = parts.sortby("latitude")
+    step = xr.DataArray(np.arange(wind.sizes["time"]), dims="time") if moving else xr.DataArray(0)
     hz = ["latitude", "longitude"]
     outs = xr.apply_ufunc(
-        _slab_integrals, wind.u, wind.v, parts.vorticity, parts.divergence,
-        input_core_dims=[hz] * 4, output_core_dims=[["contour"]] * 4,
-        kwargs={"line": line, "area": area}, dask="parallelized",
+        _slab_integrals, wind.u, wind.v, parts.vorticity, parts.divergence, step,
+        input_core_dims=[hz] * 4 + [[]], output_core_dims=[["contour"]] * 4,
+        kwargs={"lines": lines, "areas": areas}, dask="parallelized",
         output_dtypes=[float] * 4, dask_gufunc_kwargs={"output_sizes": {"contour": len(contours)}},
     )
     circ, flux, zeta_int, delta_int = outs
-    a = xr.DataArray(np.asarray(area.sum(axis=1)), dims="contour")
+    a = (xr.DataArray(np.stack([np.asarray(m.sum(axis=1)) for m in areas]), dims=("time", "contour"),
+                      coords={"time": wind.time}) if moving
+         else xr.DataArray(np.asarray(areas[0].sum(axis=1)), dims="contour"))
     ds = xr.Dataset({
         "circulation": circ, "outward_flux": flux, "area": a,
         "mean_vorticity": circ / a, "mean_divergence": flux / a,
@@ -411,7 +683,9 @@ def circulation(wind: xr.Dataset, contours: Sequence[Contour], *,
                     "top": top_omega if obrien else None},
             dask="parallelized", output_dtypes=[float])
     ds = ds.transpose(*[d for d in ("time", "level", "contour") if d in ds.dims])
-    _describe(ds, contours, grid, pressure, obrien, surface_omega, top_omega)
+    _describe(ds, first, grid, pressure, obrien, surface_omega, top_omega)
+    if moving:
+        _centres(ds, contours, wind.time)
     from .annotate import global_attrs
 
     ds.attrs = global_attrs(
@@ -466,3 +740,20 @@ def _describe(ds: xr.Dataset, contours, grid, pressure, obrien, surface, top) ->
             + (f"; O'Brien (1970) correction to {top} Pa s-1 at the top" if obrien else ""))
     ds["vorticity_disagreement"].attrs["comment"] = "quality figure of mean_vorticity"
     ds["divergence_disagreement"].attrs["comment"] = "quality figure of mean_divergence"
+
+
+def _centres(ds: xr.Dataset, contours, time: xr.DataArray) -> None:
+    """``centre_latitude`` / ``centre_longitude`` (time, contour) of circles, fixed or moving."""
+    lat = np.full((time.size, len(contours)), np.nan)
+    lon = np.full_like(lat, np.nan)
+    for k, c in enumerate(contours):
+        if isinstance(c, MovingCircle):
+            lat[:, k], lon[:, k] = c.centre(time.values)
+        elif c.kind == "circle":
+            lat[:, k], lon[:, k] = c.params[0], (c.params[1] + 180.0) % 360.0 - 180.0
+    note = ("circles only (NaN for boxes and polygons); the contour geometry shows each "
+            "circle at the first time")
+    ds["centre_latitude"] = xr.DataArray(lat, dims=("time", "contour"), attrs={
+        "units": "degrees_north", "long_name": "latitude of the circle's centre", "comment": note})
+    ds["centre_longitude"] = xr.DataArray(lon, dims=("time", "contour"), attrs={
+        "units": "degrees_east", "long_name": "longitude of the circle's centre", "comment": note})

@@ -313,6 +313,27 @@ class Runner:
         self._produce("ftle", result, out, self._inputs_of(unit), digest, make)
         return out
 
+    def circulation(self, unit: Unit, result: UnitResult) -> Path:
+        from .contours import circulation, gather
+        from .store import write
+
+        cfg = self.config.section("circulation")
+        out = render_template(cfg["output"], self.out, **self._fields(unit, cfg["output"]))
+        files = [(self.config.path.parent / name).resolve() for name in cfg["polygons"] + cfg["tracks"]]
+        depends = self._inputs_of(unit) + [bookkeeping.fingerprint(f) for f in files]
+        digest = bookkeeping.section_hash(self.config.section("input"), cfg, *self._site())
+
+        def make(path: Path) -> None:
+            polygons, tracks = files[:len(cfg["polygons"])], files[len(cfg["polygons"]):]
+            contours = gather(cfg["boxes"], cfg["circles"], polygons, tracks, cfg["track_radius_km"])
+            write(circulation(self._wind(unit), contours, levels=cfg["levels"],
+                              obrien=cfg["obrien"], surface_omega=cfg["surface_omega"],
+                              top_omega=cfg["top_omega"]), path,
+                  attributes=self.config.tables.get("metadata"))
+
+        self._produce("circulation", result, out, depends, digest, make)
+        return out
+
     def maps(self, unit: Unit, result: UnitResult, sources: dict[str, Path]) -> None:
         import xarray as xr
 

@@ -3,12 +3,9 @@
 from __future__ import annotations
 
 import argparse
-import csv
-import json
-from pathlib import Path
 
-from ..contours import box, circle, circulation, polygon
-from ..errors import InputError
+from ..contours import circulation, gather
+from ..errors import UsageError
 from ..ingest import open_wind
 from ..store import write
 from ._common import add_attribute_option, output_file
@@ -44,6 +41,11 @@ def register(sub: argparse._SubParsersAction, common: argparse.ArgumentParser) -
                         type=_numbers(3, "LAT,LON,RADIUS_KM"), help="great-circle-radius circle")
     parser.add_argument("--polygon", action="append", default=[], metavar="FILE",
                         help="CSV of latitude,longitude vertices, or GeoJSON polygon")
+    parser.add_argument("--follow", action="append", default=[], metavar="TRACK.csv",
+                        help="a circle of --radius-km whose centre follows a track (CSV "
+                        "time,latitude,longitude; interpolated in time along great circles)")
+    parser.add_argument("--radius-km", type=float, metavar="R",
+                        help="radius of the --follow circles in km")
     parser.add_argument("--levels", type=_levels, metavar="L1,L2,...", help="only these levels")
     parser.add_argument("--obrien", action="store_true",
                         help="O'Brien (1970) correction: omega brought to --top-omega at the top")
@@ -57,50 +59,16 @@ def register(sub: argparse._SubParsersAction, common: argparse.ArgumentParser) -
     return parser
 
 
-def read_polygon(path: str):
-    """A polygon from a CSV (latitude,longitude per line, optional header) or GeoJSON."""
-    p = Path(path)
-    try:
-        text = p.read_text()
-    except OSError as exc:
-        raise InputError(f"{path}: cannot read polygon file ({exc.strerror})") from None
-    try:
-        if p.suffix.lower() in (".json", ".geojson"):
-            data = json.loads(text)
-            geom = data.get("features", [data])[0] if data.get("type") == "FeatureCollection" else data
-            geom = geom.get("geometry", geom)
-            ring = geom["coordinates"][0]
-            lon, lat = zip(*[(float(x[0]), float(x[1])) for x in ring], strict=True)
-        else:
-            rows = [r for r in csv.reader(text.splitlines()) if r and r[0].strip()]
-            if rows and not _is_number(rows[0][0]):
-                rows = rows[1:]
-            lat, lon = zip(*[(float(r[0]), float(r[1])) for r in rows], strict=True)
-    except (ValueError, KeyError, IndexError, TypeError):
-        raise InputError(f"{path}: not a CSV of latitude,longitude vertices nor a GeoJSON "
-                         "polygon") from None
-    if len(lat) > 1 and (lat[0], lon[0]) == (lat[-1], lon[-1]):
-        lat, lon = lat[:-1], lon[:-1]
-    return polygon(lat, lon, name=p.stem)
-
-
-def _is_number(text: str) -> bool:
-    try:
-        float(text)
-    except ValueError:
-        return False
-    return True
-
-
 def run(args: argparse.Namespace) -> int:
-    contours = ([box(*b) for b in args.box] + [circle(*c) for c in args.circle]
-                + [read_polygon(p) for p in args.polygon])
+    if args.radius_km is not None and not args.follow:
+        raise UsageError("--radius-km is the radius of --follow circles; give --follow TRACK.csv")
+    contours = gather(args.box, args.circle, args.polygon, args.follow, args.radius_km)
     if not contours:
-        from ..errors import UsageError
-        raise UsageError("give at least one contour: --box, --circle or --polygon")
+        raise UsageError("give at least one contour: --box, --circle, --polygon or --follow")
     wind = open_wind(args.files, u=args.u, v=args.v)
     result = circulation(wind, contours, levels=args.levels, obrien=args.obrien,
                          surface_omega=args.surface_omega, top_omega=args.top_omega)
     path = write(result, args.output, attributes=dict(args.attribute))
-    print(f"wrote {path}: {len(contours)} contours")
+    count = len(contours)
+    print(f"wrote {path}: {count} contour{'' if count == 1 else 's'}")
     return 0
