@@ -833,6 +833,11 @@ def _combine(parts: list[xr.Dataset], files: list[Path], allow_gaps: bool = Fals
         if set(part.data_vars) != set(first.data_vars):
             raise InputError(f"{path}: its variables differ from those of {files[0]}")
     if len(parts) == 1:
+        if "time" in first.dims:  # one file: its own times, each once
+            values, counts = np.unique(first["time"].values, return_counts=True)
+            if (counts > 1).any():
+                raise InputError(f"time {_time_text(values[np.argmax(counts > 1)])} is given "
+                                 f"twice in {files[0]}; give each time once")
         return first
     if "time" not in first.dims:
         raise InputError(f"{files[0]}: several files were given but they have no time "

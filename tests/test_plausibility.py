@@ -131,3 +131,19 @@ def test_duplicated_time_names_both_files(tmp_path):
     assert run.returncode == 2
     errors = _error_lines(run.stderr)
     assert len(errors) == 1 and str(b) in errors[0] and str(c) in errors[0], run.stderr
+
+
+def test_a_time_given_twice_in_one_file_is_refused_by_every_command(tmp_path):
+    # CF 1.11 section 4.4 / 5: a coordinate variable is strictly monotonic, so a time
+    # cannot occur twice along its dimension.
+    with xr.open_dataset(SAMPLE) as src:
+        ds = src.isel(time=[0, 1, 1]).load()
+    source = _write(tmp_path / "twice.nc", ds)
+    for args in (["decompose", source, "-o", tmp_path / "d.nc"],
+                 ["advect", source, "-o", tmp_path / "a.nc", "--start", "40,10,500",
+                  "--hours", "6"]):
+        proc = _run(*args)
+        assert proc.returncode == 2, proc.stderr
+        (line,) = proc.stderr.strip().splitlines()
+        assert "is given twice in" in line and str(source) in line, line
+    assert not list(tmp_path.glob("[da].nc"))
