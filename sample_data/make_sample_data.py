@@ -19,6 +19,9 @@ decomposition of the demo winds is known exactly.
     stored north to south and pressure levels in Pa, as many regional models
     write them; a moving cyclone with low-level inflow and upper-level
     outflow in a uniform westerly.
+``demo_storm_track.csv``
+    the storm's centre of ``demo_regional.nc`` every 12 hours (written by hand from
+    the centre formula in :func:`make_regional`), for ``flowpipe circulation --follow``.
 
 Values are packed as 16-bit integers with ``scale_factor`` and
 ``add_offset`` (CF 1.11, section 8.1), which keeps both files small.
