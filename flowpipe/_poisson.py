@@ -529,17 +529,13 @@ def variational_partition(grid: StaggeredGrid, u: np.ndarray, v: np.ndarray,
     fields : dict of numpy.ndarray
         As :func:`dirichlet_partition`, without the harmonic wind.
     diagnostics : dict of float
-        ``reconstruction_error``, ``harmonic_energy_share`` and ``iterations``.
-
-    Notes
-    -----
-    The harmonic share is ``4 <w_rot, w_div> / |w|^2``. Write the parts as the
-    internal (Dirichlet) parts plus harmonic flows, ``w_rot = w_psi + h_1``,
-    ``w_div = w_chi + h_2``: the internal parts are orthogonal to each other
-    and to every harmonic flow, so ``<w_rot, w_div> = <h_1, h_2>``, and the
-    least-energy split shares the harmonic flow ``h`` evenly,
-    ``h_1 = h_2 = h / 2``, whence ``|h|^2 = 4 <w_rot, w_div>``: the energy the
-    data leave to the choice of split, without a second solve.
+        ``reconstruction_error`` and ``iterations``. The harmonic share is
+        that of the Dirichlet partition's harmonic wind (the one the
+        regional stage writes beside this split): on a limited area the
+        least-energy split shares that flow evenly between its parts, but on
+        a band periodic in longitude the zonal harmonic flow ``u ~ 1/cos(phi)``
+        has a streamfunction and no single-valued velocity potential, so the
+        parts cannot share it and ``<w_rot, w_div>`` says nothing about it.
 
     References
     ----------
@@ -554,11 +550,8 @@ def variational_partition(grid: StaggeredGrid, u: np.ndarray, v: np.ndarray,
     rest_u = u - fields["u_rotational"] - fields["u_divergent"]
     rest_v = v - fields["v_rotational"] - fields["v_divergent"]
     total = _weighted_energy(grid, u, v)
-    overlap = _weighted_inner(grid, fields["u_rotational"], fields["v_rotational"],
-                              fields["u_divergent"], fields["v_divergent"])
     diagnostics = {
         "reconstruction_error": np.sqrt(_weighted_energy(grid, rest_u, rest_v) / total),
-        "harmonic_energy_share": 4.0 * overlap / total,
         "iterations": iterations,
     }
     return fields, diagnostics

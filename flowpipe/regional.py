@@ -116,9 +116,11 @@ RECONSTRUCTION = {
     "dirichlet": "u_rotational + u_divergent + u_harmonic = u",
 }
 VARIATIONAL_HARMONIC = (
-    "For reference: the harmonic wind of the partition of Lynch (1989). The variational split "
-    "already shares it between the rotational and the divergent wind, which alone add up to "
-    "the wind: do not add it to them.")
+    "For reference: the harmonic wind of the partition of Lynch (1989), the wind "
+    "harmonic_energy_share describes. The variational split already carries it in the "
+    "rotational and the divergent wind (on a band periodic in longitude its zonal part, "
+    "u ~ 1/cos(latitude), all in the rotational wind), which alone add up to the wind: do not "
+    "add it to them.")
 REFERENCES = (
     "Li, Chao & McWilliams (2006), Computation of the streamfunction and velocity potential for "
     "limited and irregular domains, Mon. Wea. Rev. 134, 3384-3394; Lynch (1989), Partitioning "
@@ -203,11 +205,12 @@ def _solve_piece(grid: StaggeredGrid, valid: np.ndarray, us: np.ndarray, vs: np.
     if scheme == "dirichlet":
         return dirichlet_partition(grid, us, vs, solver)
     parts, quality = variational_partition(grid, us, vs, solver)
-    # The harmonic flow that the least-energy split shares evenly between its two
-    # parts, for reference: Lynch's harmonic wind, one more direct solve.
-    lynch, _ = dirichlet_partition(grid, us, vs, _solver(grid, valid, "dirichlet", 0.0,
-                                                         tolerance, max_iterations))
+    # The harmonic flow, for reference: Lynch's harmonic wind, one more direct solve; the
+    # share describes this wind, the one written (see variational_partition).
+    lynch, figures = dirichlet_partition(grid, us, vs, _solver(grid, valid, "dirichlet", 0.0,
+                                                               tolerance, max_iterations))
     parts["u_harmonic"], parts["v_harmonic"] = lynch["u_harmonic"], lynch["v_harmonic"]
+    quality["harmonic_energy_share"] = figures["harmonic_energy_share"]
     return parts, quality
 
 
@@ -354,8 +357,8 @@ def decompose_regional(wind: xr.Dataset, scheme: str = "variational", periodic: 
         says what adds up to the wind), on the wind's grid and
         dimensions, NaN where the wind is missing; per-slab quality figures
         ``reconstruction_error``, ``harmonic_energy_share`` (area-weighted,
-        relative; for ``variational`` ``4 <w_rot, w_div> / |w|^2``, the energy
-        of the harmonic flow the fit shared between the parts, see
+        relative, never negative: the energy of the ``u_harmonic``,
+        ``v_harmonic`` written, for both schemes; see
         :func:`flowpipe._poisson.variational_partition`) and
         ``iterations``; attributes ``method`` (``"regional"``), ``scheme``,
         ``regularisation``, ``periodic``, ``solver`` (and ``tolerance``,
@@ -410,6 +413,8 @@ def decompose_regional(wind: xr.Dataset, scheme: str = "variational", periodic: 
         inner = decompose_regional(wind.isel(latitude=np.flatnonzero(~on_pole)), scheme,
                                    periodic, regularisation, **options)
         out = inner.reindex(latitude=wind["latitude"])
+        if wind["u"].chunks is not None:  # one chunk per slab again, as the canonical Dataset
+            out = out.chunk({"latitude": -1})
         out.attrs["pole_rows"] = "missing: wind directions are undefined on a pole"
         return out
     lat, lon = _check_grid(wind, periodic)

@@ -25,8 +25,8 @@ from flowpipe.constants import EARTH_RADIUS
 U = 40.0  # m s-1, test case 1's u0 is 2 pi a / 12 days (about 38.6 m s-1); any speed will do
 
 
-def _band_file(path, lat, u_of, v_of, times=13) -> str:
-    lon = np.arange(0.0, 360.0, 1.0)
+def _band_file(path, lat, u_of, v_of, times=13, dlon=1.0) -> str:
+    lon = np.arange(0.0, 360.0, dlon)
     phi, lam = np.radians(lat)[:, None], np.radians(lon)[None, :]
     shape = (times, lat.size, lon.size)
     t = np.datetime64("2026-03-01") + np.arange(times) * np.timedelta64(6, "h")
@@ -153,3 +153,52 @@ def test_constant_omega_on_a_band_moves_parcels_by_omega_times_time(tmp_path):
                        vertical="omega")
     expected = np.array([600.0, 700.0]) + omega * hours * 3600.0 / 100.0  # hPa
     np.testing.assert_allclose(tracks["air_pressure"].values[:, -1], expected, rtol=1e-6)
+
+
+def test_circulation_on_a_hemisphere_with_its_pole_row(tmp_path):
+    # Stokes' theorem for test case 1 (Williamson et al. 1992, alpha = 0): the counter-
+    # clockwise circulation of a circle of latitude phi0 is u a cos(phi0) 2 pi with
+    # u = U cos(phi0), i.e. 2 pi a U cos^2(phi0), for the cap north of it given as a box up
+    # to the pole and as a circle round the pole; a band whose rows include the pole.
+    path = _band_file(tmp_path / "nh.nc", np.arange(0.0, 90.1, 2.0), _solid, _zero, times=2,
+                      dlon=2.0)
+    out = tmp_path / "circ.nc"
+    radius_km = 30.0 * np.pi / 180.0 * EARTH_RADIUS / 1000.0  # 30 degrees of arc: 60 N
+    run = subprocess.run([sys.executable, "-m", "flowpipe", "circulation", path, "-o", str(out),
+                          "--box", "60,90,0,360", "--circle", f"90,0,{radius_km}"],
+                         capture_output=True, text=True)
+    assert run.returncode == 0, run.stderr
+    expected = 2 * np.pi * EARTH_RADIUS * U * np.cos(np.radians(60.0)) ** 2
+    with xr.open_dataset(out) as ds:
+        np.testing.assert_allclose(ds["circulation"].values, expected, rtol=1e-3)
+
+
+def test_harmonic_wind_of_a_band_and_its_share(tmp_path):
+    # Lynch (1989), Mon. Wea. Rev. 117, 1492-1500: psi = 0 on the boundary leaves the
+    # harmonic part. For test case 1 (Williamson et al. 1992, psi = -a U sin(phi)) on the band
+    # |phi| < phi_e, periodic in longitude, that part is the zonal harmonic flow
+    # psi_h = B atanh(sin(phi)) (Laplace's equation for psi(phi): cos(phi) dpsi/dphi = const)
+    # matching psi at +-phi_e: u_h = U sin(phi_e) / (atanh(sin(phi_e)) cos(phi)), v_h = 0.
+    # The harmonic share reported is the energy of the harmonic wind written (never negative).
+    path = _band_file(tmp_path / "band.nc", np.arange(-60.0, 60.1, 2.0), _solid, _zero, times=1,
+                      dlon=2.0)
+    for scheme in ("variational", "dirichlet"):
+        out = tmp_path / f"{scheme}.nc"
+        run = subprocess.run([sys.executable, "-m", "flowpipe", "decompose", path, "-o", str(out),
+                              "--method", "regional", "--scheme", scheme],
+                             capture_output=True, text=True)
+        assert run.returncode == 0, run.stderr
+        with xr.open_dataset(out) as ds:
+            lat = np.radians(ds["latitude"].values)
+            edge = np.radians(61.0)  # the band's boundary: half a spacing beyond the last row
+            exact = U * np.sin(edge) / (np.arctanh(np.sin(edge)) * np.cos(lat))
+            u_h = ds["u_harmonic"].isel(time=0).values
+            np.testing.assert_allclose(u_h, np.broadcast_to(exact[:, None], u_h.shape),
+                                       rtol=2e-3)
+            assert np.abs(ds["v_harmonic"].values).max() < 1e-3 * U
+            cos = np.cos(lat)[:, None]
+            wind = fp.open_wind(path).isel(time=0)
+            share = (np.sum(cos * (ds["u_harmonic"] ** 2 + ds["v_harmonic"] ** 2).values[0])
+                     / np.sum(cos * (wind["u"] ** 2 + wind["v"] ** 2).values))
+            assert ds["harmonic_energy_share"].values[0] == pytest.approx(share, rel=1e-6)
+            assert share > 0.1  # the analytic harmonic flow carries a good part of the energy
