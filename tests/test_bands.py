@@ -51,22 +51,27 @@ def _solid(phi, lam):
     return U * np.cos(phi) + 0 * lam
 
 
-@pytest.mark.parametrize("lat, kind", [
-    (np.arange(0.0, 90.1, 1.0), "band"),
-    (np.arange(-30.0, 30.1, 1.0), "band"),
-    (np.arange(-78.0, 78.1, 1.0), "band"),
-    (np.arange(-90.0, 90.1, 1.0), "global"),
+@pytest.mark.parametrize("lat, kind, pole_rows, words", [
+    (np.arange(0.0, 90.1, 1.0), "band", ["north"], " with a north pole row,"),
+    (np.arange(-90.0, 0.1, 1.0), "band", ["south"], " with a south pole row,"),
+    (np.arange(-30.0, 30.1, 1.0), "band", [], ","),
+    (np.arange(-78.0, 78.1, 1.0), "band", [], ","),
+    (np.arange(-90.0, 90.1, 1.0), "global", ["south", "north"], " with pole rows,"),
 ])
-def test_inspect_names_the_grid_kind(tmp_path, lat, kind):
-    # shared/DESIGN.md: inspect --json "grid" is global, band or regional
+def test_inspect_names_the_grid_kind(tmp_path, lat, kind, pole_rows, words):
+    # shared/DESIGN.md: inspect --json "grid" is global, band or regional; "poles" is true
+    # with rows on both poles, "pole_rows" names each pole the rows include (a hemisphere's one)
     path = _band_file(tmp_path / "w.nc", lat, _solid, _zero, times=2)
     run = subprocess.run([sys.executable, "-m", "flowpipe", "inspect", path, "--json"],
                          capture_output=True, text=True)
     assert run.returncode == 0, run.stderr
-    assert json.loads(run.stdout)["grid"] == kind
+    report = json.loads(run.stdout)
+    assert report["grid"] == kind
+    assert report["pole_rows"] == pole_rows
+    assert report["poles"] == (len(pole_rows) == 2)
     text = subprocess.run([sys.executable, "-m", "flowpipe", "inspect", path],
                           capture_output=True, text=True).stdout
-    assert kind in text
+    assert f"grid       {kind}, equiangular latitudes{words} " in text
 
 
 def test_solid_body_rotation_on_a_hemisphere_returns_as_on_the_globe(tmp_path):
