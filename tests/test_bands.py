@@ -207,3 +207,94 @@ def test_harmonic_wind_of_a_band_and_its_share(tmp_path):
                      / np.sum(cos * (wind["u"] ** 2 + wind["v"] ** 2).values))
             assert ds["harmonic_energy_share"].values[0] == pytest.approx(share, rel=1e-6)
             assert share > 0.1  # the analytic harmonic flow carries a good part of the energy
+
+
+def _across_the_pole(alpha):
+    # Williamson et al. (1992) test case 1, eq. (75)-(76): the solid-body wind turned by alpha
+    def u_of(phi, lam):
+        return U * (np.cos(phi) * np.cos(alpha) + np.sin(phi) * np.cos(lam) * np.sin(alpha))
+
+    def v_of(phi, lam):
+        return -U * np.sin(lam) * np.sin(alpha) + 0 * phi
+    return u_of, v_of
+
+
+def _rotated(lat, lon, alpha, seconds):
+    # Test case 1 is a rigid rotation at angular speed U / a about the axis
+    # (-sin(alpha), 0, cos(alpha)) (Williamson et al. 1992, section 3.1); positions from
+    # scipy.spatial.transform.Rotation (the reference library).
+    from scipy.spatial.transform import Rotation
+
+    phi, lam = np.radians(lat), np.radians(lon)
+    start = np.column_stack([np.cos(phi) * np.cos(lam), np.cos(phi) * np.sin(lam), np.sin(phi)])
+    axis = np.array([-np.sin(alpha), 0.0, np.cos(alpha)])
+    out = np.stack([Rotation.from_rotvec(axis * U * t / EARTH_RADIUS).apply(start)
+                    for t in seconds], axis=1)
+    return (np.degrees(np.arcsin(np.clip(out[..., 2], -1, 1))),
+            np.degrees(np.arctan2(out[..., 1], out[..., 0])))
+
+
+@pytest.mark.parametrize("pole_row", ["present", "all missing"])
+def test_parcels_cross_the_pole_row_of_a_hemisphere_on_the_great_circle(tmp_path, pole_row):
+    # Test case 1 with alpha = pi/2 - 0.05 (Williamson et al. 1992): the flow crosses the
+    # north pole; on a 0..90 band with its pole row (given, or all missing as archives often
+    # have it: the pole is one point, its vector then the ring mean next to it) the parcels
+    # must cross it and stay on the analytic great circle. Tolerance 1 km after up to
+    # 10 000 km (a fifth of the globe's 5 km after a revolution, tests/test_parcels.py;
+    # about 400 m measured at 1 degree).
+    alpha = np.pi / 2 - 0.05
+    u_of, v_of = _across_the_pole(alpha)
+    path = _band_file(tmp_path / "nh.nc", np.arange(0.0, 90.1, 1.0), u_of, v_of, times=13)
+    if pole_row == "all missing":
+        with xr.open_dataset(path) as ds:
+            ds = ds.load()
+        ds["u"][:, -1] = np.nan
+        ds["v"][:, -1] = np.nan
+        path = str(tmp_path / "nh_missing_pole.nc")
+        ds.to_netcdf(path)
+    starts = [(60.0, 270.0), (75.0, 260.0), (50.0, 285.0)]
+    tracks = fp.advect(fp.open_wind(path), starts, hours=72.0)
+    assert (tracks["status"].values == 0).all()  # completed
+    lat, lon = tracks["latitude"].values, tracks["longitude"].values
+    assert np.nanmax(lat) > 89.0  # they went over the pole (to the 90 E side)
+    seconds = np.arange(lat.shape[1]) * 3600.0
+    xlat, xlon = _rotated(*np.array(starts).T, alpha, seconds)
+    from flowpipe.parcels._geometry import great_circle_distance
+
+    error = great_circle_distance(lat, lon, xlat, xlon, EARTH_RADIUS)
+    print(f"pole row {pole_row}: largest distance from the great circle {error.max():.0f} m")
+    assert error.max() < 1000.0  # m
+
+
+def test_parcels_leave_a_band_without_pole_rows_at_its_last_row(tmp_path):
+    # On -78..78 (no pole rows) the same flow carries parcels poleward beyond the last row:
+    # they stop there with left_domain, never recorded beyond 78 degrees, and not before the
+    # analytic crossing (Williamson et al. 1992 test case 1, rotated as above).
+    alpha = np.pi / 2 - 0.05
+    path = _band_file(tmp_path / "b.nc", np.arange(-78.0, 78.1, 1.0), *_across_the_pole(alpha),
+                      times=13)
+    starts = [(70.0, 270.0), (-70.0, 90.0)]
+    tracks = fp.advect(fp.open_wind(path), starts, hours=48.0)
+    meanings = tracks["status"].attrs["flag_meanings"].split()
+    assert [meanings[s] for s in tracks["status"].values] == ["left_domain"] * 2
+    lat = tracks["latitude"].values
+    assert np.nanmax(np.abs(lat)) <= 78.0 + 1e-9
+    seconds = np.arange(lat.shape[1]) * 3600.0
+    xlat, _ = _rotated(*np.array(starts).T, alpha, seconds)
+    for i in range(2):
+        crossing = seconds[np.argmax(np.abs(xlat[i]) > 78.0)]  # first record beyond the band
+        last = seconds[np.isfinite(lat[i])][-1]
+        assert crossing - 3600.0 - tracks.attrs["time_step_seconds"] <= last < crossing
+
+
+def test_ftle_of_solid_body_rotation_on_a_hemisphere_is_zero(tmp_path):
+    # A rigid rotation (Williamson et al. 1992, test case 1, across the pole) stretches
+    # nothing: its finite-time Lyapunov exponent is zero (Haller 2001, Physica D 149, 248-277:
+    # ln of the largest singular value of the flow map's gradient, 1 for a rotation). Seeds by
+    # the date line and the pole row of a 0..90 band must wrap and cross, not stop.
+    path = _band_file(tmp_path / "nh.nc", np.arange(0.0, 90.1, 1.0),
+                      *_across_the_pole(np.pi / 2), times=3)
+    out = fp.ftle(fp.open_wind(path), hours=12.0, spacing=5.0, region=(60.0, 90.0, 0.0, 360.0))
+    values = out["ftle"].values
+    assert np.isfinite(values).all()
+    assert np.abs(values).max() < 1e-3 * U / EARTH_RADIUS
