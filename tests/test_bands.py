@@ -298,3 +298,31 @@ def test_ftle_of_solid_body_rotation_on_a_hemisphere_is_zero(tmp_path):
     values = out["ftle"].values
     assert np.isfinite(values).all()
     assert np.abs(values).max() < 1e-3 * U / EARTH_RADIUS
+
+
+def test_a_start_outside_the_band_is_skipped_not_the_run(tmp_path):
+    # One start of several outside the -30..30 band: a flowpipe warning, that start kept at 0 h
+    # with the status outside_domain_at_start (CF 1.11 section 3.5 flag_meanings), the others
+    # integrated; with every start outside, the usual one-line error (exit 2).
+    path = _band_file(tmp_path / "tro.nc", np.arange(-30.0, 30.1, 2.0), _solid, _zero, times=3,
+                      dlon=2.0)
+    csv = tmp_path / "starts.csv"
+    csv.write_text("latitude,longitude\n10,20\n45,20\n-20,200\n")
+    out = tmp_path / "tracks.nc"
+    run = subprocess.run([sys.executable, "-m", "flowpipe", "advect", path, "--starts", str(csv),
+                          "--hours", "6", "-o", str(out)], capture_output=True, text=True)
+    assert run.returncode == 0, run.stderr
+    assert "flowpipe: warning:" in run.stderr and "starts.csv line 3" in run.stderr
+    with xr.open_dataset(out) as ds:
+        meanings = ds["status"].attrs["flag_meanings"].split()
+        assert [meanings[s] for s in ds["status"].values] == [
+            "completed", "outside_domain_at_start", "completed"]
+        assert (ds["latitude"].values[1, 0], ds["longitude"].values[1, 0]) == (45.0, 20.0)
+        assert np.isnan(ds["latitude"].values[1, 1:]).all()
+        assert np.isfinite(ds["latitude"].values[[0, 2]]).all()
+    csv.write_text("latitude,longitude\n45,20\n")
+    run = subprocess.run([sys.executable, "-m", "flowpipe", "advect", path, "--starts", str(csv),
+                          "--hours", "6", "-o", str(tmp_path / "none.nc")],
+                         capture_output=True, text=True)
+    assert run.returncode == 2 and "outside the latitude band" in run.stderr
+    assert len(run.stderr.strip().splitlines()) == 1
