@@ -277,16 +277,43 @@ def dirichlet_partition(grid: StaggeredGrid, u: np.ndarray, v: np.ndarray,
     fields["vorticity"], fields["divergence"] = _at_centres(grid, zeta, delta)
     fields["u_harmonic"] = u - fields["u_rotational"] - fields["u_divergent"]
     fields["v_harmonic"] = v - fields["v_rotational"] - fields["v_divergent"]
+    return fields, partition_figures(grid, u, v, fields)
+
+
+def partition_figures(grid: StaggeredGrid, u: np.ndarray, v: np.ndarray,
+                      fields: dict[str, np.ndarray]) -> dict[str, float]:
+    """Quality figures of a partition with a harmonic wind, at the valid points of ``u, v``.
+
+    Parameters
+    ----------
+    grid : StaggeredGrid
+    u, v : numpy.ndarray
+        The wind partitioned, NaN where missing.
+    fields : dict of numpy.ndarray
+        The rotational, divergent and harmonic winds.
+
+    Returns
+    -------
+    dict of float
+        ``reconstruction_error``: the relative area-weighted RMS of what the
+        three parts leave of the wind; ``harmonic_energy_share``: the area-
+        weighted energy of the harmonic wind over that of the wind (never
+        negative); ``iterations`` 0 (direct solves).
+
+    References
+    ----------
+    Lynch (1989), "Partitioning the wind in a limited domain", Mon. Wea.
+    Rev. 117, 1492-1500, eq. 2.6 (the three parts add up to the wind).
+    """
     total = _weighted_energy(grid, u, v)
     rest_u = u - fields["u_rotational"] - fields["u_divergent"] - fields["u_harmonic"]
     rest_v = v - fields["v_rotational"] - fields["v_divergent"] - fields["v_harmonic"]
-    diagnostics = {
+    return {
         "reconstruction_error": np.sqrt(_weighted_energy(grid, rest_u, rest_v) / total),
         "harmonic_energy_share": _weighted_energy(grid, fields["u_harmonic"],
                                                   fields["v_harmonic"]) / total,
         "iterations": 0,
     }
-    return fields, diagnostics
 
 
 def _dot(a: np.ndarray, b: np.ndarray) -> float:

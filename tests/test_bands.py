@@ -326,3 +326,39 @@ def test_a_start_outside_the_band_is_skipped_not_the_run(tmp_path):
                          capture_output=True, text=True)
     assert run.returncode == 2 and "outside the latitude band" in run.stderr
     assert len(run.stderr.strip().splitlines()) == 1
+
+
+@pytest.mark.parametrize("pole_row", ["present", "all missing"])
+def test_harmonic_wind_of_a_hemisphere_treats_the_pole_as_a_point(tmp_path, pole_row):
+    # Lynch (1989): the harmonic part takes the boundary values of psi; on 0..90 with its pole
+    # row the only boundary is the equatorward edge phi_e (half a spacing south of the equator
+    # row); the pole is a point of the domain. Test case 1 (Williamson et al. 1992):
+    # alpha = 0, psi = -a U sin(phi): the harmonic flow that matches it on a circle of
+    # latitude and is regular at the pole is a constant, so u_h = v_h = 0. alpha = pi/2,
+    # psi = a U cos(phi) cos(lambda): harmonic functions stay harmonic under the conformal
+    # stereographic map (Laplace's equation in 2-D is conformally invariant), so
+    # h = A tan(theta/2) cos(lambda) (theta the colatitude), A = a U (1 + sin(phi_e)), and
+    # (u_h, v_h) = U (1 + sin(phi_e)) / (1 + sin(phi)) (cos(lambda), -sin(lambda)).
+    # Before, the edge short of the pole gave u_h ~ 1/cos(phi): hundreds of m/s near it.
+    lat = np.arange(0.0, 90.1, 2.0)
+    edge = np.radians(-1.0)
+    for alpha in (0.0, np.pi / 2):
+        path = _band_file(tmp_path / f"nh{alpha:.1f}.nc", lat, *_across_the_pole(alpha), times=1,
+                          dlon=2.0)
+        wind = fp.open_wind(path)
+        if pole_row == "all missing":
+            wind = wind.load()
+            wind["u"][:, -1] = np.nan
+            wind["v"][:, -1] = np.nan
+        parts = fp.decompose(wind, method="regional", scheme="dirichlet").isel(time=0)
+        phi = np.radians(parts["latitude"].values)[:-1, None]
+        lam = np.radians(parts["longitude"].values)[None, :]
+        size = U * (1 + np.sin(edge)) * np.sin(alpha) / (1 + np.sin(phi))
+        for name, exact in (("u_harmonic", size * np.cos(lam)), ("v_harmonic", -size * np.sin(lam))):
+            values = parts[name].values[:-1]
+            np.testing.assert_allclose(values[:-1], exact[:-1], atol=2.5e-3 * U)
+            # the row next to the pole: within 2 % of U (about 1 % measured at 1 and 2 degrees)
+            np.testing.assert_allclose(values[-1], exact[-1], atol=0.02 * U)
+        assert np.isnan(parts["u_harmonic"].values[-1]).all()  # the pole row: no directions
+        if alpha == 0.0:
+            assert float(parts["harmonic_energy_share"]) < 1e-6
