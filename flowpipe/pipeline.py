@@ -32,7 +32,7 @@ import xarray as xr
 from . import bookkeeping
 from ._version import __version__
 from .annotate import iso_time, now_iso
-from .config import Config, load_config, render_template
+from .config import STORAGE_KEYS, Config, load_config, render_template
 from .errors import EnvironmentProblem, FlowpipeError, FlowpipeWarning, from_os_error
 
 log = logging.getLogger("flowpipe.run")
@@ -229,9 +229,21 @@ class Runner:
     def _inputs_of(self, unit: Unit) -> list[dict]:
         return [self.fingerprints[str(p)] for p in unit.inputs]
 
+    def _storage(self) -> dict:
+        """How every output stores its data: the encoding keys of ``[output]``."""
+        section = self.config.section("output")
+        return {key: section[key] for key in STORAGE_KEYS}
+
     def _site(self) -> list[dict]:
-        """The ``[metadata]`` table, when the config has one (it changes every output)."""
-        return [self.config.tables["metadata"]] if self.config.tables.get("metadata") else []
+        """What changes every output: the storage keys of ``[output]`` and the
+        ``[metadata]`` table, when the config has one."""
+        metadata = self.config.tables.get("metadata")
+        return [self._storage()] + ([metadata] if metadata else [])
+
+    def _write(self, ds, path: Path) -> None:
+        from .store import write
+
+        write(ds, path, **self._storage(), attributes=self.config.tables.get("metadata"))
 
     def _wind(self, unit: Unit):
         from .ingest import open_wind
@@ -252,7 +264,7 @@ class Runner:
 
     def decompose(self, unit: Unit, result: UnitResult) -> Path:
         from .decompose import decompose
-        from .store import write
+        from .fields import select_fields
 
         cfg = self.config.section("decompose")
         out = render_template(cfg["output"], self.out, **self._fields(unit, cfg["output"]))
@@ -264,15 +276,15 @@ class Runner:
             wind = self._wind(unit)
             parts = decompose(wind, method=cfg["method"], truncation=cfg["truncation"],
                               levels=cfg["levels"], scheme=cfg["scheme"])
+            parts = select_fields(parts, wind, cfg["fields"])
             parts.attrs.update(input_notes(wind))
-            write(parts, path, float32=cfg["float32"], attributes=self.config.tables.get("metadata"))
+            self._write(parts, path)
 
         self._produce("decompose", result, out, self._inputs_of(unit), digest, make)
         return out
 
     def advect(self, unit: Unit, result: UnitResult) -> Path:
         from .parcels import advect
-        from .store import write
 
         cfg = self.config.section("advect")
         out = render_template(cfg["output"], self.out, **self._fields(unit, cfg["output"]))
@@ -292,30 +304,28 @@ class Runner:
                             step_minutes=cfg["step_minutes"], vertical=cfg["vertical"],
                             sample=tuple(cfg["sample"]))
             tracks.attrs.update(input_notes(wind))
-            write(tracks, path, attributes=self.config.tables.get("metadata"))
+            self._write(tracks, path)
 
         self._produce("advect", result, out, depends, digest, make)
         return out
 
     def ftle(self, unit: Unit, result: UnitResult) -> Path:
         from .ftle import ftle
-        from .store import write
 
         cfg = self.config.section("ftle")
         out = render_template(cfg["output"], self.out, **self._fields(unit, cfg["output"]))
         digest = bookkeeping.section_hash(self.config.section("input"), cfg, *self._site())
 
         def make(path: Path) -> None:
-            write(ftle(self._wind(unit), hours=cfg["hours"], backward=cfg["backward"],
-                       spacing=cfg["spacing"], region=cfg["region"], levels=cfg["levels"]), path,
-                  attributes=self.config.tables.get("metadata"))
+            self._write(ftle(self._wind(unit), hours=cfg["hours"], backward=cfg["backward"],
+                             spacing=cfg["spacing"], region=cfg["region"], levels=cfg["levels"]),
+                        path)
 
         self._produce("ftle", result, out, self._inputs_of(unit), digest, make)
         return out
 
     def circulation(self, unit: Unit, result: UnitResult) -> Path:
         from .contours import circulation, gather
-        from .store import write
 
         cfg = self.config.section("circulation")
         out = render_template(cfg["output"], self.out, **self._fields(unit, cfg["output"]))
@@ -326,10 +336,9 @@ class Runner:
         def make(path: Path) -> None:
             polygons, tracks = files[:len(cfg["polygons"])], files[len(cfg["polygons"]):]
             contours = gather(cfg["boxes"], cfg["circles"], polygons, tracks, cfg["track_radius_km"])
-            write(circulation(self._wind(unit), contours, levels=cfg["levels"],
-                              obrien=cfg["obrien"], surface_omega=cfg["surface_omega"],
-                              top_omega=cfg["top_omega"]), path,
-                  attributes=self.config.tables.get("metadata"))
+            self._write(circulation(self._wind(unit), contours, levels=cfg["levels"],
+                                    obrien=cfg["obrien"], surface_omega=cfg["surface_omega"],
+                                    top_omega=cfg["top_omega"]), path)
 
         self._produce("circulation", result, out, depends, digest, make)
         return out

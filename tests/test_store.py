@@ -43,7 +43,7 @@ def _leftovers(directory) -> list[str]:
 
 @pytest.mark.parametrize("float32", [False, True])
 def test_round_trip_with_plain_xarray(parts, tmp_path, float32):
-    path = fp.write(parts, tmp_path / "parts.nc", float32=float32)
+    path = fp.write(parts, tmp_path / "parts.nc", precision="single" if float32 else "double")
     with xr.open_dataset(path) as back:
         for name in parts.data_vars:
             expected = parts[name].values
