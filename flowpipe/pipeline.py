@@ -34,6 +34,7 @@ from ._version import __version__
 from .annotate import iso_time, now_iso
 from .config import STORAGE_KEYS, Config, load_config, render_template
 from .errors import EnvironmentProblem, FlowpipeError, FlowpipeWarning, from_os_error
+from .report import output_facts, write_report
 
 log = logging.getLogger("flowpipe.run")
 LOG_NAME = "flowpipe.log"
@@ -197,8 +198,10 @@ class Runner:
     def _produce(self, stage: str, result: UnitResult, out: Path, depends: list[dict],
                  digest: str, make: Callable[[Path], None]) -> None:
         """Make one output unless it is up to date."""
+        states = result.record.setdefault("outputs", {})
         if self._current(out, depends, digest):
             result.up_to_date.append(out)
+            states[self._rel(out)] = "up to date"
             log.info("%s: up to date", self._rel(out))
             return
         started = time.perf_counter()
@@ -220,8 +223,9 @@ class Runner:
                                      warning.lineno)
         result.outputs[self._rel(out)] = {
             "stage": stage, "unit": result.stem, "depends_on": depends, "config": digest,
-            "flowpipe_version": __version__, "written": now_iso(),
+            "flowpipe_version": __version__, "written": now_iso(), "facts": output_facts(out),
         }
+        states[self._rel(out)] = "written"
         result.written.append(out)
         log.info("%s: written in %.2f s", self._rel(out), elapsed)
 
@@ -579,7 +583,6 @@ def run(config_path: str | os.PathLike, *, force: bool = False, workers: int | N
     -------
     RunSummary
     """
-    from .report import write_report
 
     config = load_config(config_path)
     settings = config.tables.get("run", {})

@@ -180,6 +180,81 @@ def test_one_truncated_input_among_four(tmp_path):
     assert manifest["status"] == "failed"
 
 
+class _Text(html.parser.HTMLParser):
+    """The page's text: paragraphs, and table rows as lists of cell texts."""
+
+    def __init__(self) -> None:
+        super().__init__()
+        self.rows: list[list[str]] = []
+        self.paragraphs: list[str] = []
+        self._cell: list[str] | None = None
+        self._para: list[str] | None = None
+
+    def handle_starttag(self, tag, attrs):
+        if tag == "tr":
+            self.rows.append([])
+        elif tag in ("td", "th"):
+            self._cell = []
+        elif tag == "p":
+            self._para = []
+
+    def handle_endtag(self, tag):
+        if tag in ("td", "th") and self._cell is not None:
+            self.rows[-1].append(" ".join("".join(self._cell).split()))
+            self._cell = None
+        elif tag == "p" and self._para is not None:
+            self.paragraphs.append(" ".join("".join(self._para).split()))
+            self._para = None
+
+    def handle_data(self, data):
+        for part in (self._cell, self._para):
+            if part is not None:
+                part.append(data)
+
+
+def _report(out: Path) -> _Text:
+    page = _Text()
+    page.feed((out / "report.html").read_text())
+    return page
+
+
+def test_report_counts_inputs_and_files_and_shows_what_each_file_holds(tmp_path):
+    # The report's facts against the files themselves, read with xarray (netCDF-C).
+    inputs = _inputs(tmp_path, 3)
+    inputs[2].write_bytes(inputs[2].read_bytes()[:2000])  # truncated: that input fails
+    config = _config(tmp_path, inputs, maps=False)
+    assert main(["run", "--quiet", str(config)]) == 1
+    out = tmp_path / "out"
+    page = _report(out)
+    assert "3 inputs: 2 done, 1 failed; 4 files written, 0 up to date" in page.paragraphs
+    rows = {row[0]: row for row in page.rows if row}
+    with xr.open_dataset(inputs[0]) as source:
+        times = source["time"].values
+    start, end = (np.datetime_as_string(t, unit="s") for t in (times.min(), times.max()))
+    assert rows["model_0"][1] == "done" and rows["model_0"][2] == f"{start}Z to {end}Z"
+    assert rows["model_2"][1] == "failed" and "cannot be read as NetCDF" in rows["model_2"][3]
+    with xr.open_dataset(out / "model_1_decomposition.nc") as ds:
+        worst = float(ds["reconstruction_error"].max())
+    decomposition = rows["model_1_decomposition.nc"]
+    assert decomposition[3] == "written"
+    assert f"reconstruction error {worst:.2g}" in decomposition[5]
+    with xr.open_dataset(out / "model_0_trajectories.nc") as ds:
+        meanings = ds["status"].attrs["flag_meanings"].split()
+        counts = np.bincount(ds["status"].values, minlength=len(meanings))
+    expected = "; ".join(f"{m.replace('_', ' ')} {n}" for m, n in zip(meanings, counts, strict=True)
+                         if n)
+    assert rows["model_0_trajectories.nc"][5] == expected
+    assert main(["run", "--quiet", str(config)]) == 1  # again: the good inputs are up to date
+    again = _report(out)
+    line = next(p for p in again.paragraphs if p.startswith("3 inputs"))
+    manifest = json.loads((out / "manifest.json").read_text())
+    last = max(r["written"] for r in manifest["outputs"].values())
+    assert line == (f"3 inputs: 2 done, 1 failed; nothing new: all 4 outputs up to date "
+                    f"(last written {last})")
+    rows = {row[0]: row for row in again.rows if row}
+    assert rows["model_0_decomposition.nc"][3].startswith("up to date, written ")
+
+
 def test_lock_refuses_a_second_run_and_takes_over_a_stale_one(tmp_path, capsys):
     inputs = _inputs(tmp_path, 1)
     config = _config(tmp_path, inputs, maps=False, advect=False)
