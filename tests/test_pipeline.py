@@ -27,7 +27,8 @@ from windfiles import Encoding, encode, reference_field
 
 from flowpipe.bookkeeping import LOCK_NAME
 from flowpipe.cli import main
-from flowpipe.pipeline import run
+from flowpipe.config import STAGES
+from flowpipe.pipeline import STAGE_TABLE, run, why_due
 
 ROOT = Path(__file__).resolve().parents[1]
 LAT, LON, LEVELS = np.linspace(-90, 90, 37), np.arange(0.0, 360.0, 5.0), np.array([850.0, 500.0])
@@ -356,3 +357,55 @@ def test_warnings_of_a_stage_reach_the_log_and_the_manifest(tmp_path):
     (message,) = unit["stages"]["decompose"]["warnings"]
     assert "left missing" in message and message.startswith("area")
     assert "left missing" in (tmp_path / "out" / "flowpipe.log").read_text()
+
+
+_DEPENDS = [{"path": "/data/a.nc", "size": 10, "mtime_ns": 1, "sha256": "ab" * 32}]
+_TABLES = {"decompose": "d1", "input": "i1", "output": "o1"}
+_RECORD = {"depends_on": _DEPENDS, "config_tables": _TABLES, "flowpipe_version": "1.0"}
+
+
+@pytest.mark.parametrize(("previous", "exists", "depends", "tables", "force", "expected"), [
+    # the rules of configs/README.md ("Reruns"): each case changes one thing
+    (_RECORD, True, _DEPENDS, _TABLES, False, None),
+    (_RECORD, False, _DEPENDS, _TABLES, False, "missing"),
+    (None, True, _DEPENDS, _TABLES, False, "not in the manifest"),
+    (_RECORD, True, _DEPENDS, _TABLES, True, "forced (--force)"),
+    ({**_RECORD, "flowpipe_version": "0.9"}, True, _DEPENDS, _TABLES, False,
+     "made by flowpipe 0.9, this is 1.0"),
+    (_RECORD, True, _DEPENDS, {**_TABLES, "decompose": "d2"}, False,
+     "config changed: [decompose]"),
+    (_RECORD, True, _DEPENDS, {**_TABLES, "metadata": "m1"}, False, "config changed: [metadata]"),
+    (_RECORD, True, [{**_DEPENDS[0], "sha256": "cd" * 32}], _TABLES, False,
+     "input changed: a.nc"),
+    (_RECORD, True, [*_DEPENDS, {**_DEPENDS[0], "path": "/data/b.nc"}], _TABLES, False,
+     "input changed: b.nc"),
+])
+def test_planner_decisions(previous, exists, depends, tables, force, expected):
+    assert why_due(previous, exists, depends, tables, force=force, version="1.0") == expected
+
+
+def test_stage_table_covers_every_config_stage():
+    # configs/README.md documents these tables; each has one entry in the stage table
+    assert tuple(STAGE_TABLE) == STAGES
+    for stage in STAGE_TABLE.values():
+        assert set(stage.needs) <= set(STAGES)
+
+
+def test_dry_run_lists_what_is_due_and_writes_nothing(tmp_path, capsys):
+    inputs = _inputs(tmp_path, 2)
+    config = _config(tmp_path, inputs, maps=True, advect=False)
+    assert main(["run", "--dry-run", str(config)]) == 0
+    lines = capsys.readouterr().out.splitlines()
+    assert "model_0_decomposition.nc: missing (decompose)" in lines
+    assert any(line.startswith("maps of model_1_decomposition.nc: after") for line in lines)
+    assert not (tmp_path / "out").exists()  # nothing made, not even the directory
+    assert main(["run", "--quiet", str(config)]) == 0
+    capsys.readouterr()
+    assert main(["run", "--dry-run", str(config)]) == 0
+    assert capsys.readouterr().out.strip() == "flowpipe: nothing due, every output is up to date"
+    time.sleep(0.01)
+    inputs[1].write_bytes(inputs[1].read_bytes())  # same bytes, new mtime
+    assert main(["run", "--dry-run", str(config)]) == 0
+    lines = capsys.readouterr().out.splitlines()
+    assert lines == ["model_1_decomposition.nc: input changed: model_1.nc (decompose)",
+                     "maps of model_1_decomposition.nc: after the decompose output is made (maps)"]
