@@ -35,6 +35,7 @@ from .errors import (
     from_os_error,
     megabytes,
     no_space,
+    os_problem,
     read_only,
 )
 
@@ -195,7 +196,7 @@ def check_space(path: str | os.PathLike, certain: int, upper: int) -> None:
     """
     where = existing_directory(path)
     if read_only(path):
-        raise from_os_error(OSError(errno.EROFS, os.strerror(errno.EROFS)), path)
+        raise os_problem(errno.EROFS, path)
     free = shutil.disk_usage(where).free
     if free < certain:
         raise no_space(path, certain)
