@@ -426,6 +426,12 @@ def write(ds: xr.Dataset, path: str | os.PathLike, *, precision: str = "input",
     for var in out.variables.values():
         # the only encoding kept: the coordinates a stage names (CF 1.11 section 9 readers need them)
         var.encoding = {"coordinates": var.encoding["coordinates"]} if "coordinates" in var.encoding else {}
+    # the grid mapping and cell bounds describe coordinates: scalar coordinates (the run, a
+    # single level) belong to the fields, not to them (xarray would list them everywhere)
+    for name in (annotate.CRS, *(v.attrs["bounds"] for v in out.variables.values()
+                                 if "bounds" in v.attrs)):
+        if name in out.variables:
+            out[name].encoding["coordinates"] = None
     certain, upper = _stored_bytes(out, encoding)
     check_space(final, certain, upper)
     with atomic_path(final, sources(ds), needed=upper) as tmp, _write_chunk_cache():
