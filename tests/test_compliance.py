@@ -29,6 +29,7 @@ from compliance_checker.runner import CheckSuite, ComplianceChecker
 
 import flowpipe as fp
 from flowpipe import annotate
+from flowpipe.fields import WIND_PRODUCTS
 
 ROOT = Path(__file__).resolve().parents[1]
 GLOBAL = ROOT / "sample_data" / "demo_global.nc"
@@ -172,6 +173,8 @@ def outputs(tmp_path_factory) -> dict[str, Path]:
                              hours=6, backward=True), False),
         "ftle": (fp.ftle(fp.open_wind(GLOBAL), hours=6, spacing=4.0), False),
         "decompose-quantized-zstd": (fp.decompose(wind.isel(time=slice(0, 1))), "quantized"),
+        "decompose-wind-products": (fp.select_fields(fp.decompose(wind.isel(time=slice(0, 1))),
+                                                     wind, list(WIND_PRODUCTS)), False),
     }
     options = {False: {"precision": "double"}, True: {"precision": "single"},
                "quantized": {"significant_digits": 3, "compression": "zstd"}}
@@ -186,7 +189,8 @@ def reports(outputs) -> dict[str, dict]:
 
 KINDS = ("global-decomposition", "regional-decomposition", "kinematics-float32",
          "trajectories-3d", "trajectories-2d", "decompose-spectral", "decompose-regional",
-         "decompose-masked", "kinematics", "advect", "ftle", "decompose-quantized-zstd")
+         "decompose-masked", "kinematics", "advect", "ftle", "decompose-quantized-zstd",
+         "decompose-wind-products")
 
 
 @pytest.mark.parametrize("kind", KINDS)
@@ -268,9 +272,10 @@ def test_contract_standard_names_and_units(outputs):
     table = _standard_name_table()
     with xr.open_dataset(outputs["regional-decomposition"]) as parts, \
             xr.open_dataset(outputs["kinematics"]) as kin, \
-            xr.open_dataset(outputs["decompose-masked"]) as masked:
+            xr.open_dataset(outputs["decompose-masked"]) as masked, \
+            xr.open_dataset(outputs["decompose-wind-products"]) as products:
         for name, (standard_name, units, _) in annotate.VARIABLES.items():
-            ds = next(d for d in (parts, masked, kin) if name in d)
+            ds = next(d for d in (parts, masked, kin, products) if name in d)
             assert ds[name].attrs["units"] == units
             if standard_name is None:
                 assert "standard_name" not in ds[name].attrs
