@@ -657,8 +657,36 @@ def _velocity(da: xr.DataArray, path: Path, name: str, target: str) -> xr.DataAr
     out.attrs["units"] = target
     out.attrs["source_name"] = name
     out.attrs["source_units"] = units
-    out.encoding = {}
+    # the precision the file stored the values in: what the outputs follow by default
+    out.encoding = {"dtype": stored_precision(da)}
     return out
+
+
+def stored_precision(da: xr.DataArray) -> np.dtype:
+    """The floating-point type that holds a variable's values as its file stored them.
+
+    Single precision for 32-bit floats and for integers of 16 bits or fewer packed
+    with ``scale_factor``/``add_offset`` (at most 4.8 significant digits, CF 1.11
+    section 8.1); double precision otherwise.
+    """
+    stored = np.dtype(da.encoding.get("dtype", da.dtype))
+    if (stored.kind == "f" and stored.itemsize <= 4) or (stored.kind in "iu" and stored.itemsize <= 2):
+        return np.dtype(np.float32)
+    return np.dtype(np.float64)
+
+
+def with_input_precision(result: xr.Dataset, wind: xr.Dataset) -> xr.Dataset:
+    """``result`` with its floating-point variables to be stored as precisely as ``wind``'s.
+
+    Sets the xarray ``dtype`` encoding, which :func:`flowpipe.write` (precision
+    ``"input"``) and plain ``to_netcdf``/``to_zarr`` both honour; computation stays
+    in double precision, so results are exact to the stored precision's rounding.
+    """
+    dtype = stored_precision(wind["u"])
+    for var in result.data_vars.values():
+        if var.dtype.kind == "f":
+            var.encoding["dtype"] = dtype
+    return result
 
 
 def _to_canonical_variables(ds: xr.Dataset, path: Path, un: str, vn: str) -> xr.Dataset:

@@ -22,6 +22,39 @@ def add_attribute_option(parser: argparse.ArgumentParser) -> None:
                         "(institution, creator_name, license, project, id_prefix, ...); repeatable")
 
 
+def add_encoding_options(parser: argparse.ArgumentParser) -> None:
+    """How the output stores its data: precision, compression, quantization
+    (see :func:`flowpipe.write`)."""
+    from ..store import COMPRESSIONS, DEFAULT_COMPRESSION, PRECISIONS
+
+    parser.add_argument("--precision", choices=PRECISIONS, default="input",
+                        help="floating-point storage: as the input wind was stored (default; "
+                        "float32 or packed 16-bit input gives single precision), single "
+                        "(about 7 significant digits, half the size) or double")
+    parser.add_argument("--compression", choices=COMPRESSIONS, default=DEFAULT_COMPRESSION,
+                        help="lossless compression: zlib with shuffle (default, level 1; every "
+                        "netCDF-4 reader), zstd (faster; readers need netCDF-C 4.9 or later) "
+                        "or none")
+    parser.add_argument("--compression-level", type=int, metavar="N",
+                        help="zlib 1-9 or zstd 1-22 (default 1)")
+    parser.add_argument("--significant-digits", type=int, metavar="N",
+                        help="lossy: keep N significant decimal digits (GranularBitRound "
+                        "quantization, recorded as CF 1.12 section 8.4 describes; relative "
+                        "error at most 0.5*10^(1-N))")
+
+
+def encoding_options(args: argparse.Namespace) -> dict:
+    """The keyword arguments of :func:`flowpipe.write` given by :func:`add_encoding_options`
+    and :func:`add_attribute_option`."""
+    from ..store import check_encoding
+
+    options = {"precision": args.precision, "compression": args.compression,
+               "compression_level": args.compression_level,
+               "significant_digits": args.significant_digits}
+    check_encoding(**options)  # before any work
+    return {**options, "attributes": dict(args.attribute)}
+
+
 def attribute(text: str) -> tuple[str, str]:
     """One ``--attribute KEY=VALUE``."""
     from ..config import ATTRIBUTE_NAME

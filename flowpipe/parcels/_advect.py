@@ -644,6 +644,11 @@ def _trajectory_dataset(wind, clock, start, sign, offsets, lat, lon, out_level, 
         "Analysis and Forecasting; CF Conventions 1.11, chapter 9")
     attrs["featureType"] = "trajectory"
     attrs.update(method)
+    # the domain the winds cover (maps outline it): grid edges, longitudes as in the input
+    attrs["input_latitude_range"] = np.array([float(wind["latitude"].min()),
+                                              float(wind["latitude"].max())])
+    attrs["input_longitude_range"] = np.array([float(wind["longitude"].values[0]),
+                                               float(wind["longitude"].values[-1])])
     if clock.steady and "time" not in wind.dims:
         attrs["time_note"] = "the input has no time: times count from an arbitrary 1970-01-01"
     ds.attrs = attrs
