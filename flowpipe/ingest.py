@@ -61,7 +61,12 @@ VERTICAL_VELOCITIES = (
     ("w", "upward_air_velocity", "m s-1", ("w", "wa", "W")),
 )
 CANONICAL_DIMS = ("time", "level", "latitude", "longitude")
-DEFAULT_CHUNKS = {"time": 1, "level": 1, "latitude": -1, "longitude": -1}
+DEFAULT_CHUNKS = {"realization": 1, "time": 1, "level": 1, "latitude": -1, "longitude": -1}
+#: Ensemble members: the CF standard name ``realization`` (CF 1.11 standard-name table),
+#: else a dimension of one of these names (*common practice*; ``number`` is GRIB's key).
+MEMBER_NAMES = ("realization", "member", "ensemble_member", "ensemble", "ens", "number")
+REALIZATION_ATTRS = {"standard_name": "realization", "long_name": "ensemble member",
+                     "units": "1"}
 
 #: Largest plausible horizontal wind speed, m s-1. The largest speeds ever analysed in the
 #: atmosphere are about 135 m s-1 (Doppler radar in the Bridge Creek-Moore tornado of
@@ -111,7 +116,8 @@ def open_wind(
     Parameters
     ----------
     paths : str, path or iterable of them
-        NetCDF files or glob patterns. Several files are combined along time.
+        NetCDF or GRIB files (told apart by their first bytes) or glob patterns.
+        Several files are combined along time.
     u, v : str, optional
         Names of the eastward and northward wind variables, when they cannot
         be found by CF standard name or common short name.
@@ -231,7 +237,7 @@ def open_netcdf(path: Path, **options) -> xr.Dataset:
             offset = 512 if offset == 0 else 2 * offset
     if not (netcdf3 or hdf5):
         raise InputError(f"{path}: is not a NetCDF file (neither NetCDF-3 nor NetCDF-4/HDF5 "
-                         "by its first bytes); check the path")
+                         "nor GRIB by its first bytes); check the path")
     _check_classic_size(path)
     try:
         return xr.open_dataset(path, decode_times=xr.coders.CFDatetimeCoder(use_cftime=None),
@@ -244,6 +250,78 @@ def open_netcdf(path: Path, **options) -> xr.Dataset:
         ) from exc
 
 
+#: First bytes of a GRIB message (edition 1 or 2): the four letters "GRIB".
+GRIB_SIGNATURE = b"GRIB"
+GRIB_INSTALL = "pip install 'flowpipe[grib]'"
+
+
+def is_grib(path: Path) -> bool:
+    """Whether a file begins with a GRIB message (by its first bytes, not its name).
+
+    References
+    ----------
+    WMO (2019), Manual on Codes, Volume I.2 (WMO-No. 306), FM 92 GRIB edition 2,
+    section 0: octets 1-4 are "GRIB" (CCITT IA5).
+    """
+    try:
+        with open(path, "rb") as handle:
+            return handle.read(4) == GRIB_SIGNATURE
+    except OSError:
+        return False  # open_netcdf names the reason
+
+
+def open_grib(path: Path, u: str | None = None, v: str | None = None) -> xr.Dataset:
+    """A GRIB file as a lazily loaded Dataset, read by cfgrib (on ecCodes).
+
+    cfgrib names the axes by CF standard names: ``forecast_reference_time``
+    (``time``), ``forecast_period`` (``step``), ``time`` (``valid_time``),
+    ``air_pressure`` (``isobaricInhPa``, hPa), ``realization`` (``number``) and
+    ``eastward_wind`` / ``northward_wind`` for u and v, so the file goes through
+    the same ingest as NetCDF. No index file is written beside the input. When the
+    file holds several hypercubes (say pressure levels and 10 m winds), the first
+    one with the wind is taken.
+
+    Raises
+    ------
+    flowpipe.errors.InputError
+        When cfgrib or ecCodes is not installed (the message says how to install
+        them) or the file cannot be decoded.
+
+    References
+    ----------
+    cfgrib documentation, "Dataset / Variable API" (the ``cfgrib`` xarray engine,
+    ``indexpath``, ``open_datasets``); ecCodes GRIB decoding.
+    """
+    try:
+        import cfgrib
+    except (ImportError, RuntimeError):  # RuntimeError: cfgrib without the ecCodes library
+        raise InputError(f"{path}: is a GRIB file; reading GRIB needs the optional readers: "
+                         f"{GRIB_INSTALL}") from None
+    options = {"engine": "cfgrib", "chunks": {},
+               "backend_kwargs": {"indexpath": ""}}  # never write an index beside an input
+    try:
+        try:
+            return xr.open_dataset(path, **options)
+        except cfgrib.dataset.DatasetBuildError:
+            cubes = cfgrib.open_datasets(path, backend_kwargs={"indexpath": ""}, chunks={})
+    except Exception as exc:  # ecCodes raises many types for undecodable messages
+        reason = str(exc).splitlines()[0] if str(exc) else type(exc).__name__
+        raise InputError(f"{path}: cannot be read as GRIB ({reason}); check that the file "
+                         "is complete") from exc
+    for cube in cubes:
+        if None not in (_find_variable(cube, u, U_STANDARD_NAMES, U_SHORT_NAMES),
+                        _find_variable(cube, v, V_STANDARD_NAMES, V_SHORT_NAMES)):
+            return cube
+    return cubes[0]  # _canonical names what is missing
+
+
+def open_input(path: Path, u: str | None = None, v: str | None = None) -> xr.Dataset:
+    """A NetCDF or GRIB file (told apart by its first bytes) as a lazy Dataset."""
+    if is_grib(path):
+        return open_grib(path, u, v)
+    return open_netcdf(path, chunks={})
+
+
 def _open_parts(files: list[Path], u: str | None, v: str | None
                 ) -> tuple[list[xr.Dataset], list[Path]]:
     """The canonical pieces of every file (one per run of a runs x leads file), and the
@@ -251,7 +329,7 @@ def _open_parts(files: list[Path], u: str | None, v: str | None
     parts: list[xr.Dataset] = []
     owners: list[Path] = []
     for path in files:
-        raw = open_netcdf(path, chunks={})
+        raw = open_input(path, u, v)
         try:
             pieces = [_canonical(piece, path, u, v) for piece in forecast_pieces(raw, path)]
         except InputError:
@@ -357,6 +435,7 @@ def _canonical(raw: xr.Dataset, path: Path, u_name: str | None, v_name: str | No
         if new != old and new in ds.variables and new not in renames:
             ds = ds.drop_vars(new)
     ds = ds.rename(renames)
+    ds = _members(ds, un)
     ds = _forecast_coordinates(ds, path)
     spatial = set(ds[un].dims)
     keep = [name for name in ds.data_vars if set(ds[name].dims) <= spatial and
@@ -375,6 +454,36 @@ def _canonical(raw: xr.Dataset, path: Path, u_name: str | None, v_name: str | No
     if "title" in raw.attrs:
         ds.attrs["input_title"] = str(raw.attrs["title"])
     return ds
+
+
+def _members(ds: xr.Dataset, un: str) -> xr.Dataset:
+    """The ensemble-member dimension of ``un`` (if any) as ``realization``, CF-labelled.
+
+    A scalar ``realization`` coordinate (one member in the file) becomes a dimension of
+    length 1, so members of several files are told apart.
+
+    References
+    ----------
+    CF Conventions 1.11, standard-name table: ``realization``, "used to label a
+    dimension that can be thought of as a statistical sample, e.g., labelling members
+    of a model ensemble".
+    """
+    dims = [str(d) for d in ds[un].dims]
+    labelled = [d for d in dims if d in ds.variables
+                and ds[d].attrs.get("standard_name") == "realization"]
+    member = next(iter(labelled), next((n for n in MEMBER_NAMES if n in dims), None))
+    if member is None:
+        scalar = [n for n in ds.coords if ds[n].ndim == 0
+                  and ds[n].attrs.get("standard_name") == "realization"]
+        if not scalar:
+            return ds
+        ds = ds.expand_dims(scalar[0])
+        member = scalar[0]
+    values = ds[member].values if member in ds.variables else np.arange(ds.sizes[member])
+    ds = ds.drop_vars([member], errors="ignore")
+    if member != "realization":
+        ds = ds.drop_vars(["realization"], errors="ignore").rename({member: "realization"})
+    return ds.assign_coords(realization=("realization", values, dict(REALIZATION_ATTRS)))
 
 
 #: Names of the forecast axes: CF 1.11 standard names first (standard-name table), then
@@ -822,7 +931,7 @@ def _probe(ds: xr.Dataset, path: Path) -> None:
 def _combine(parts: list[xr.Dataset], files: list[Path], allow_gaps: bool = False) -> xr.Dataset:
     first = parts[0]
     for part, path in zip(parts[1:], files[1:], strict=True):
-        for coord in ("latitude", "longitude", "level"):
+        for coord in ("latitude", "longitude", "level", "realization"):
             a = first[coord].values if coord in first.coords else None
             b = part[coord].values if coord in part.coords else None
             same = (a is None and b is None) or (
