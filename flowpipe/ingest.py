@@ -45,7 +45,7 @@ import cf_xarray  # noqa: F401  (registers the .cf accessor)
 import numpy as np
 import xarray as xr
 
-from .annotate import iso_time
+from .annotate import CANONICAL_COORDINATES, iso_time
 from .errors import FlowpipeWarning, InputError, UsageError
 
 #: Standard names that identify the eastward and northward wind (CF 1.11
@@ -65,8 +65,6 @@ DEFAULT_CHUNKS = {"realization": 1, "time": 1, "level": 1, "latitude": -1, "long
 #: Ensemble members: the CF standard name ``realization`` (CF 1.11 standard-name table),
 #: else a dimension of one of these names (*common practice*; ``number`` is GRIB's key).
 MEMBER_NAMES = ("realization", "member", "ensemble_member", "ensemble", "ens", "number")
-REALIZATION_ATTRS = {"standard_name": "realization", "long_name": "ensemble member",
-                     "units": "1"}
 
 #: Largest plausible horizontal wind speed, m s-1. The largest speeds ever analysed in the
 #: atmosphere are about 135 m s-1 (Doppler radar in the Bridge Creek-Moore tornado of
@@ -110,6 +108,7 @@ def open_wind(
     allow_gaps: bool = False,
     run: str | None = None,
     leads: Iterable[float] | None = None,
+    members: Iterable[int] | None = None,
 ) -> xr.Dataset:
     """Open one file, several files or a glob as one canonical wind Dataset.
 
@@ -144,6 +143,9 @@ def open_wind(
         runs whose valid times overlap are refused (choose one).
     leads : iterable of float, optional
         Keep only these lead times (``forecast_period``), in hours.
+    members : iterable of int, optional
+        Keep only these ensemble members (values of ``realization``), in this
+        order; the dimension stays, also for one member.
 
     Returns
     -------
@@ -170,6 +172,7 @@ def open_wind(
     ds = _combine([k[0] for k in kept], [k[1] for k in kept],
                   allow_gaps or wanted_leads is not None)
     ds = _single_run(ds)
+    ds = _select_members(ds, members, files)
     wanted = dict(DEFAULT_CHUNKS)
     wanted.update(chunks or {})
     ds = ds.chunk({d: c for d, c in wanted.items() if d in ds.dims})
@@ -483,7 +486,27 @@ def _members(ds: xr.Dataset, un: str) -> xr.Dataset:
     ds = ds.drop_vars([member], errors="ignore")
     if member != "realization":
         ds = ds.drop_vars(["realization"], errors="ignore").rename({member: "realization"})
-    return ds.assign_coords(realization=("realization", values, dict(REALIZATION_ATTRS)))
+    attrs = dict(CANONICAL_COORDINATES["realization"])
+    return ds.assign_coords(realization=("realization", values, attrs))
+
+
+def _select_members(ds: xr.Dataset, members: Iterable[int] | None,
+                    files: list[Path]) -> xr.Dataset:
+    """The chosen ensemble members (values of ``realization``)."""
+    if members is None:
+        return ds
+    wanted = list(members)
+    where = f"{files[0]}{' ...' if len(files) > 1 else ''}"
+    if "realization" not in ds.dims:
+        raise InputError(f"{where}: has no ensemble members (no realization dimension); leave "
+                         "out --members (config: [input] members)")
+    present = list(ds["realization"].values)
+    missing = [m for m in wanted if m not in present]
+    if missing or not wanted:
+        raise InputError(f"{where}: member(s) {', '.join(map(str, missing)) or 'none'} not in "
+                         f"the input; members present (realization): "
+                         f"{', '.join(map(str, present))}")
+    return ds.isel(realization=[present.index(m) for m in wanted])
 
 
 #: Names of the forecast axes: CF 1.11 standard names first (standard-name table), then

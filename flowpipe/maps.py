@@ -127,6 +127,7 @@ def render(
     *,
     run: str | None = None,
     lead: float | None = None,
+    member: int | None = None,
     dpi: int = 100,
 ) -> Figure:
     """Draw a map of a file or Dataset and return the matplotlib figure.
@@ -156,6 +157,10 @@ def render(
         Lead time (``forecast_period``) in hours. With ``run`` and ``time``, the
         first time that matches all that are given is drawn; the title names
         the run and lead of forecasts ("run 2026-12-01T00Z +24 h, valid ...").
+    member : int, optional
+        Ensemble member (value of the ``realization`` coordinate) to draw: its
+        field (default: the first member), or only its tracks (default: the
+        tracks of every member).
 
     Returns
     -------
@@ -176,9 +181,9 @@ def render(
         if level is not None or time is not None or run is not None or lead is not None:
             raise UsageError(f"{label}: level, time, run and lead do not apply to a trajectory "
                              "file; leave them out")
-        _track_map(fig, ds, label, field, projection)
+        _track_map(fig, ds, label, field, projection, member)
     else:
-        _field_map(fig, ds, label, field, level, (time, run, lead), projection)
+        _field_map(fig, ds, label, field, level, (time, run, lead), projection, member)
     fig.text(0.005, 0.005, f"{Path(label).name} | flowpipe {__version__} | {CAUTION_SHORT}",
              fontsize=6, color="0.3", ha="left", va="bottom")
     return fig
@@ -488,9 +493,30 @@ def _wind_names(ds: xr.Dataset, field: str) -> tuple[str, str] | None:
     return pair
 
 
+def _members(ds: xr.Dataset, dims: tuple, label: str, member: int | None
+             ) -> tuple[Hashable | None, np.ndarray | None]:
+    """The ensemble-member dimension among ``dims`` (CF standard name ``realization``) and
+    the positions along it of ``member`` (all members when None)."""
+    name = next((d for d in dims if d in ds.variables
+                 and ds[d].attrs.get("standard_name") == "realization"), None)
+    if name is None:
+        if member is not None:
+            raise InputError(f"{label}: has no ensemble members (no realization coordinate); "
+                             "leave out the member")
+        return None, None
+    values = ds[name].values
+    if member is None:
+        return name, np.arange(values.size)
+    hits = np.flatnonzero(values == member)
+    if not hits.size:
+        raise InputError(f"{label}: member {member} is not in the file; members (realization): "
+                         f"{', '.join(map(str, np.unique(values)))}")
+    return name, hits
+
+
 def _field_map(fig: Figure, ds: xr.Dataset, label: str, field: str | None, level: float | None,
                when: tuple[str | None, str | None, float | None],
-               projection: str | ccrs.Projection | None) -> None:
+               projection: str | ccrs.Projection | None, member: int | None = None) -> None:
     mappable = _mappable(ds)
     if not mappable:
         raise InputError(f"{label}: no variable has latitude/longitude coordinates to map "
@@ -505,6 +531,10 @@ def _field_map(fig: Figure, ds: xr.Dataset, label: str, field: str | None, level
     da = ds[field]
     lat_name, lon_name = _horizontal(ds, da)
     indexers, words = _select(ds, da, label, level, when)
+    name, rows = _members(ds, da.dims, label, member)
+    if name is not None:
+        indexers[name] = int(rows[0])
+        words.append(f"member {ds[name].values[rows[0]]}")
     others = {d: 0 for d in da.dims if d not in (lat_name, lon_name, *indexers)}
     words += [f"{d} {ds[d].values[0] if d in ds.coords else 0}" for d in others]
     indexers.update(others)
@@ -640,7 +670,10 @@ def _track_variables(ds: xr.Dataset, label: str) -> dict[str, xr.DataArray]:
 
 
 def _track_map(fig: Figure, ds: xr.Dataset, label: str, field: str | None,
-               projection: str | ccrs.Projection | None) -> None:
+               projection: str | ccrs.Projection | None, member: int | None = None) -> None:
+    name, rows = _members(ds, tuple(ds.coords), label, member)
+    if name is not None:
+        ds = ds.isel({ds[name].dims[0]: rows})
     found = _track_variables(ds, label)
     lat = np.asarray(found["latitude"].values, dtype=np.float64)
     lon = np.asarray(found["longitude"].values, dtype=np.float64)
@@ -699,8 +732,13 @@ def _track_map(fig: Figure, ds: xr.Dataset, label: str, field: str | None,
         bar.ax.invert_yaxis()  # pressure: higher in the atmosphere at the top
     level = next((ds[n] for n in ds.coords if ds[n].ndim == 0 and ds[n].attrs.get("axis") == "Z"),
                  None)
-    ax.set_title(_track_title(lat.shape[0], times, elapsed, colour_label, level), loc="left",
-                 fontsize=10)
+    title = _track_title(lat.shape[0], times, elapsed, colour_label, level)
+    if name is not None:
+        count = np.unique(ds[name].values).size
+        head, newline, rest = title.partition("\n")
+        title = (f"{head}, member {member}" if member is not None else
+                 f"{head}, {count} member{'s' if count != 1 else ''}") + newline + rest
+    ax.set_title(title, loc="left", fontsize=10)
 
 
 def _one_level(coordinate: xr.DataArray) -> str:
