@@ -952,18 +952,16 @@ def _probe(ds: xr.Dataset, path: Path) -> None:
 
 
 def _combine(parts: list[xr.Dataset], files: list[Path], allow_gaps: bool = False) -> xr.Dataset:
+    by_members: dict[tuple, list[int]] = {}
+    for i, part in enumerate(parts):
+        if "realization" in part.dims:
+            by_members.setdefault(tuple(part["realization"].values.tolist()), []).append(i)
+    if len(by_members) > 1 and sum(map(len, by_members.values())) == len(parts):
+        return _combine_members([_combine([parts[i] for i in group], [files[i] for i in group],
+                                          allow_gaps) for group in by_members.values()],
+                                [files[group[0]] for group in by_members.values()])
     first = parts[0]
-    for part, path in zip(parts[1:], files[1:], strict=True):
-        for coord in ("latitude", "longitude", "level", "realization"):
-            a = first[coord].values if coord in first.coords else None
-            b = part[coord].values if coord in part.coords else None
-            same = (a is None and b is None) or (
-                a is not None and b is not None and a.shape == b.shape and np.allclose(a, b))
-            if not same:
-                raise InputError(f"{path}: its {coord} differs from that of {files[0]}; "
-                                 "files combined in one run must share one grid")
-        if set(part.data_vars) != set(first.data_vars):
-            raise InputError(f"{path}: its variables differ from those of {files[0]}")
+    _same_grid(parts, files, ("latitude", "longitude", "level", "realization"))
     if len(parts) == 1:
         if "time" in first.dims:  # one file: its own times, each once
             values, counts = np.unique(first["time"].values, return_counts=True)
@@ -992,6 +990,43 @@ def _combine(parts: list[xr.Dataset], files: list[Path], allow_gaps: bool = Fals
     if not np.array_equal(order, np.arange(order.size)):
         ds = ds.isel(time=order)
     return ds
+
+
+def _same_grid(parts: list[xr.Dataset], files: list[Path], coords: tuple[str, ...]) -> None:
+    """Refuse parts whose coordinates ``coords`` or variables differ from the first's."""
+    first = parts[0]
+    for part, path in zip(parts[1:], files[1:], strict=True):
+        for coord in coords:
+            a = first[coord].values if coord in first.coords else None
+            b = part[coord].values if coord in part.coords else None
+            same = (a is None and b is None) or (
+                a is not None and b is not None and a.shape == b.shape and np.allclose(a, b))
+            if not same:
+                raise InputError(f"{path}: its {coord} differs from that of {files[0]}; "
+                                 "files combined in one run must share one grid")
+        if set(part.data_vars) != set(first.data_vars):
+            raise InputError(f"{path}: its variables differ from those of {files[0]}")
+
+
+def _combine_members(ensemble: list[xr.Dataset], files: list[Path]) -> xr.Dataset:
+    """Files of different ensemble members (one file, or series, per member) as one
+    Dataset along ``realization``: the same grid and times in each, no member twice."""
+    _same_grid(ensemble, files, ("latitude", "longitude", "level"))
+    values = np.concatenate([part["realization"].values for part in ensemble])
+    unique, counts = np.unique(values, return_counts=True)
+    if (counts > 1).any():
+        raise InputError(f"{files[0]} ...: member {unique[np.argmax(counts > 1)]} (realization) "
+                         "is given by more than one group of files; give each member once")
+    for part, path in zip(ensemble[1:], files[1:], strict=True):
+        a = ensemble[0]["time"].values if "time" in ensemble[0].dims else None
+        b = part["time"].values if "time" in part.dims else None
+        if not (a is None and b is None) and not (
+                a is not None and b is not None and np.array_equal(a, b)):
+            raise InputError(f"{path}: its times differ from those of {files[0]}, another "
+                             "ensemble member; give every member for the same times")
+    ds = xr.concat(ensemble, dim="realization", data_vars="all", coords="minimal",
+                   compat="override", join="override", combine_attrs="drop_conflicts")
+    return ds.isel(realization=np.argsort(values, kind="stable"))
 
 
 def _overlapping_runs(ds: xr.Dataset, i: int, j: int, path: Path) -> None:

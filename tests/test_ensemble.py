@@ -162,6 +162,33 @@ def test_ensemble_outputs_are_cf_compliant(files, tmp_path):
             assert sorted(set(back["realization"].values.tolist())) == [4, 7]
 
 
+def test_one_file_per_member_makes_the_same_ensemble(files, tmp_path):
+    # each file says its member as a scalar coordinate (CF 1.11 section 5.7), shuffled order
+    one_file = fp.open_wind(files["wave"])
+    paths = []
+    for k in (2, 0, 1):
+        member = one_file.isel(realization=k)
+        path = tmp_path / f"member_{int(member['realization'])}.nc"
+        _dataset(member["u"].values, member["v"].values, ("time", "lat", "lon"), {
+            "number": ((), MEMBERS[k], {"standard_name": "realization"})}).to_netcdf(path)
+        paths.append(path)
+    combined = fp.open_wind(paths)
+    np.testing.assert_array_equal(combined["realization"].values, MEMBERS)
+    np.testing.assert_array_equal(combined["u"].values, one_file["u"].values)
+    pair = tmp_path / "pair.nc"
+    _dataset(one_file["u"].values[:2], one_file["v"].values[:2], ("ens", "time", "lat", "lon"),
+             {"ens": ("ens", MEMBERS[:2], {"standard_name": "realization"})}).to_netcdf(pair)
+    with pytest.raises(InputError, match=f"member {MEMBERS[0]} .realization. is given by more "
+                       "than one group of files"):
+        fp.open_wind([pair, paths[1]])
+    late = tmp_path / "late.nc"
+    xr.load_dataset(paths[0]).assign_coords(
+        time=TIMES + np.timedelta64(1, "h"),
+        number=((), 1, {"standard_name": "realization"})).to_netcdf(late)
+    with pytest.raises(InputError, match="its times differ from those of"):
+        fp.open_wind(paths + [late])
+
+
 def test_member_selection_and_its_errors(files):
     wind = fp.open_wind(files["wave"], members=[7])
     assert wind["realization"].values.tolist() == [7]  # the dimension stays
