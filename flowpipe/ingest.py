@@ -280,9 +280,9 @@ def open_grib(path: Path, u: str | None = None, v: str | None = None) -> xr.Data
     (``time``), ``forecast_period`` (``step``), ``time`` (``valid_time``),
     ``air_pressure`` (``isobaricInhPa``, hPa), ``realization`` (``number``) and
     ``eastward_wind`` / ``northward_wind`` for u and v, so the file goes through
-    the same ingest as NetCDF. No index file is written beside the input. When the
-    file holds several hypercubes (say pressure levels and 10 m winds), the first
-    one with the wind is taken.
+    the same ingest as NetCDF. No index file is written beside the input, and a
+    damaged message is an error. When the file holds several hypercubes (say
+    pressure levels and 10 m winds), the one with the most wind values is taken.
 
     Raises
     ------
@@ -300,22 +300,25 @@ def open_grib(path: Path, u: str | None = None, v: str | None = None) -> xr.Data
     except (ImportError, RuntimeError):  # RuntimeError: cfgrib without the ecCodes library
         raise InputError(f"{path}: is a GRIB file; reading GRIB needs the optional readers: "
                          f"{GRIB_INSTALL}") from None
-    options = {"engine": "cfgrib", "chunks": {},
-               "backend_kwargs": {"indexpath": ""}}  # never write an index beside an input
+    # never an index file beside an input; a damaged message is an error, not left out
+    backend = {"indexpath": "", "errors": "raise"}
     try:
         try:
-            return xr.open_dataset(path, **options)
+            return xr.open_dataset(path, engine="cfgrib", chunks={}, backend_kwargs=backend)
         except cfgrib.dataset.DatasetBuildError:
-            cubes = cfgrib.open_datasets(path, backend_kwargs={"indexpath": ""}, chunks={})
+            with warnings.catch_warnings():  # xarray's notices about cfgrib's own merges
+                warnings.simplefilter("ignore", FutureWarning)
+                cubes = cfgrib.open_datasets(path, backend_kwargs=backend, chunks={})
     except Exception as exc:  # ecCodes raises many types for undecodable messages
         reason = str(exc).splitlines()[0] if str(exc) else type(exc).__name__
         raise InputError(f"{path}: cannot be read as GRIB ({reason}); check that the file "
                          "is complete") from exc
-    for cube in cubes:
-        if None not in (_find_variable(cube, u, U_STANDARD_NAMES, U_SHORT_NAMES),
-                        _find_variable(cube, v, V_STANDARD_NAMES, V_SHORT_NAMES)):
-            return cube
-    return cubes[0]  # _canonical names what is missing
+    sizes = {}
+    for i, cube in enumerate(cubes):
+        un = _find_variable(cube, u, U_STANDARD_NAMES, U_SHORT_NAMES)
+        if un is not None and _find_variable(cube, v, V_STANDARD_NAMES, V_SHORT_NAMES):
+            sizes[i] = cube[un].size
+    return cubes[max(sizes, key=sizes.get)] if sizes else cubes[0]  # else _canonical says
 
 
 def open_input(path: Path, u: str | None = None, v: str | None = None) -> xr.Dataset:

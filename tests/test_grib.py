@@ -205,6 +205,45 @@ def test_without_the_grib_readers_the_error_says_how_to_install_them(grib, monke
     assert "pip install 'flowpipe[grib]'" in err[0] and str(path) in err[0]
 
 
+def write_10m_wind(path: Path) -> None:
+    """10 m winds (shortName 10u/10v) from ecCodes' sample regular_ll_sfc_grib2."""
+    with open(path, "wb") as out:
+        for name, values in zip(("10u", "10v"), analytic(1000, 0), strict=True):
+            handle = eccodes.codes_grib_new_from_samples("regular_ll_sfc_grib2")
+            for key, value in {"Ni": LON.size, "Nj": LAT.size,
+                               "latitudeOfFirstGridPointInDegrees": LAT[0],
+                               "latitudeOfLastGridPointInDegrees": LAT[-1],
+                               "longitudeOfFirstGridPointInDegrees": LON[0],
+                               "longitudeOfLastGridPointInDegrees": LON[-1],
+                               "iDirectionIncrementInDegrees": 5.0,
+                               "jDirectionIncrementInDegrees": 5.0, "shortName": name,
+                               "bitsPerValue": BITS}.items():
+                eccodes.codes_set(handle, key, value)
+            eccodes.codes_set_values(handle, values.ravel())
+            eccodes.codes_write(handle, out)
+            eccodes.codes_release(handle)
+
+
+def test_10m_winds_and_a_file_of_two_kinds_of_level(grib, tmp_path):
+    surface = tmp_path / "surface.grib2"
+    write_10m_wind(surface)
+    wind = fp.open_wind(surface)
+    assert wind["u"].dims == ("time", "latitude", "longitude")
+    assert float(wind["height"]) == 10.0 and wind["height"].attrs["units"] == "m"
+    # pressure levels and 10 m in one file: the group with the most wind values
+    mixed = tmp_path / "mixed.grib2"
+    mixed.write_bytes(grib[0].read_bytes() + surface.read_bytes())
+    assert fp.open_wind(mixed)["u"].dims == ("time", "level", "latitude", "longitude")
+
+
+def test_a_truncated_grib_file_is_refused_in_one_line(grib, tmp_path, capsys):
+    path = tmp_path / "cut.grib2"
+    path.write_bytes(grib[0].read_bytes()[:-100])  # the last message loses its end
+    assert main(["inspect", str(path)]) == 2
+    err = capsys.readouterr().err.strip().splitlines()
+    assert len(err) == 1 and "cannot be read as GRIB" in err[0] and str(path) in err[0], err
+
+
 def test_an_ensemble_grib_file_keeps_its_members(tmp_path):
     # cfgrib gives the ensemble member as "number" with standard_name realization
     path = tmp_path / "members.grib2"
