@@ -135,6 +135,18 @@ def test_trajectories_in_every_member_follow_the_single_member_runs(files, tmp_p
     assert f"in each of {MEMBERS.size} ensemble members" in tracks.attrs["summary"]
 
 
+def test_circulation_per_member_equals_the_single_member_run(files):
+    from flowpipe.contours import box
+
+    contour = [box(10.0, 40.0, 0.0, 40.0)]
+    ensemble = fp.circulation(fp.open_wind(files["wave"]), contour).compute()
+    assert ensemble["circulation"].dims == ("realization", "time", "contour")
+    for member in MEMBERS:
+        alone = fp.circulation(fp.open_wind(files[("wave", int(member))]), contour).compute()
+        np.testing.assert_allclose(ensemble["circulation"].sel(realization=member).values,
+                                   alone["circulation"].values, rtol=1e-12)
+
+
 def test_solid_body_rotation_per_member(files):
     # Williamson et al. (1992), case 2 (alpha = 0): latitude kept, longitude + u0 t / a
     hours = 12.0
