@@ -204,6 +204,10 @@ def test_one_file_per_member_makes_the_same_ensemble(files, tmp_path):
 def test_member_selection_and_its_errors(files):
     wind = fp.open_wind(files["wave"], members=[7])
     assert wind["realization"].values.tolist() == [7]  # the dimension stays
+    # trajectories of other members never share an identifier (cf_role trajectory_id)
+    ids = [fp.advect(fp.open_wind(files["wave"], members=[m]), STARTS[:1], hours=6)[
+        "trajectory_id"].values[0] for m in (4, 7)]
+    assert ids[0] != ids[1]
     with pytest.raises(InputError, match="member.s. 5 not in the input; members present "
                        r"\(realization\): 0, 4, 7"):
         fp.open_wind(files["wave"], members=[5])

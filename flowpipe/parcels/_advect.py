@@ -572,10 +572,10 @@ def _steps(pos, lev, status, t0, sign, schedule, clock, winds, grid, vertical_sc
 
 #: What the trajectory identifiers are, for the file's readers.
 ID_COMMENT = ("flowpipe trajectory identifier: 'fp', 12 hexadecimal digits of a BLAKE2b hash of "
-              "the input files, every start (position, level, time), the direction and the length "
-              "of the integration, then the start's number in the list (in an ensemble, "
-              "counting on through the members, member after member); ids from different "
-              "inputs or starts do not collide when files are combined")
+              "the input files, every start (position, level, time), the ensemble members, the "
+              "direction and the length of the integration, then the start's number in the list "
+              "(in an ensemble, counting on through the members, member after member); ids "
+              "from different inputs or starts do not collide when files are combined")
 
 
 def wrap_longitude(lon: np.ndarray) -> np.ndarray:
@@ -595,6 +595,8 @@ def trajectory_ids(wind: xr.Dataset, start: np.ndarray, lat0: np.ndarray, lon0: 
                             f"{method['trajectory_hours']:.6f}"]).encode())
     for values in (start, lat0, lon0, level0):
         digest.update(np.ascontiguousarray(values, dtype=np.float64).tobytes())
+    if "realization" in wind.dims:  # the members chosen
+        digest.update(("|".join(map(str, wind["realization"].values))).encode())
     width = len(str(max(start.size, 1)))
     numbers = np.char.zfill(np.arange(1, start.size + 1).astype(str), width)
     return np.char.add(f"fp{digest.hexdigest()}-", numbers)
