@@ -57,8 +57,10 @@ from .ingest import (  # noqa: E402
     canonical_levels,
     find_coordinate,
     forecast_variable,
+    is_grib,
     lead_hours,
     open_netcdf,
+    open_wind,
     parse_iso,
     run_text,
 )
@@ -204,6 +206,8 @@ def _open(source: str | os.PathLike | xr.Dataset) -> tuple[xr.Dataset, str]:
     path = Path(source)
     if not path.is_file():
         raise InputError(f"{path}: no such file")
+    if is_grib(path):  # a model's GRIB output: its wind, in the canonical form
+        return open_wind(path), str(path)
     return open_netcdf(path), str(path)
 
 

@@ -205,6 +205,15 @@ def test_without_the_grib_readers_the_error_says_how_to_install_them(grib, monke
     assert "pip install 'flowpipe[grib]'" in err[0] and str(path) in err[0]
 
 
+def test_a_map_of_a_grib_file_names_its_level_run_and_lead(grib):
+    from flowpipe.maps import render
+
+    path, _ = grib
+    figure = render(path, field="u", level=500, lead=6)  # the matplotlib figure
+    title = figure.axes[0].get_title(loc="left")
+    assert "500 hPa" in title and "run 2026-12-01T00Z +6 h, valid 2026-12-01T06:00Z" in title
+
+
 def write_10m_wind(path: Path) -> None:
     """10 m winds (shortName 10u/10v) from ecCodes' sample regular_ll_sfc_grib2."""
     with open(path, "wb") as out:
