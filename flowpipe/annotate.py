@@ -111,6 +111,8 @@ COORDINATES: dict[str, tuple[str, str]] = {
 CANONICAL_COORDINATES: dict[str, dict[str, str]] = {
     "latitude": {"standard_name": "latitude", "units": "degrees_north"},
     "longitude": {"standard_name": "longitude", "units": "degrees_east"},
+    # ensemble members (CF 1.11 standard-name table: realization, canonical units 1)
+    "realization": {"standard_name": "realization", "units": "1", "long_name": "ensemble member"},
 }
 #: The same for ``level``, by the Dataset's ``level_type``.
 CANONICAL_LEVELS: dict[str, dict[str, str]] = {

@@ -47,6 +47,7 @@ SCHEMA: dict[str, dict[str, tuple[tuple[type, ...], Any]]] = {
         "allow_gaps": ((bool,), False),
         "run": ((str,), None),
         "leads": ((list,), None),
+        "members": ((list,), None),
     },
     "decompose": {
         "method": ((str,), "auto"),
@@ -172,6 +173,9 @@ VALUES: dict[str, dict[str, Allowed]] = {
                        "\"latest\" or an ISO 8601 time such as \"2026-12-01T00Z\""),
         "leads": Allowed(lambda h: _finite(h) and h >= 0, "a lead time in hours, 0 or more",
                          each=True, empty=False),
+        "members": Allowed(lambda m: isinstance(m, int) and not isinstance(m, bool),
+                           "an ensemble member number (a value of realization)", each=True,
+                           empty=False),
     },
     "decompose": {
         "method": _one_of(METHODS),

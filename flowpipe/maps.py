@@ -57,8 +57,10 @@ from .ingest import (  # noqa: E402
     canonical_levels,
     find_coordinate,
     forecast_variable,
+    is_grib,
     lead_hours,
     open_netcdf,
+    open_wind,
     parse_iso,
     run_text,
 )
@@ -150,6 +152,7 @@ def render(
     *,
     run: str | None = None,
     lead: float | None = None,
+    member: int | None = None,
     dpi: int = 100,
     barbs: bool = False,
     marks_hours: float = 6.0,
@@ -188,6 +191,10 @@ def render(
     marks_hours : float
         Track maps: a dot on each track every this many hours of travel,
         labelled on the first few tracks.
+    member : int, optional
+        Ensemble member (value of the ``realization`` coordinate) to draw: its
+        field (default: the first member), or only its tracks (default: the
+        tracks of every member).
 
     Returns
     -------
@@ -208,9 +215,9 @@ def render(
         if level is not None or time is not None or run is not None or lead is not None:
             raise UsageError(f"{label}: level, time, run and lead do not apply to a trajectory "
                              "file; leave them out")
-        _track_map(fig, ds, label, field, projection, marks_hours)
+        _track_map(fig, ds, label, field, projection, marks_hours, member)
     else:
-        _field_map(fig, ds, label, field, level, (time, run, lead), projection, barbs)
+        _field_map(fig, ds, label, field, level, (time, run, lead), projection, barbs, member)
     fig.text(0.005, 0.005, f"{Path(label).name} | flowpipe {__version__} | {CAUTION_SHORT}",
              fontsize=6, color="0.3", ha="left", va="bottom")
     return fig
@@ -255,6 +262,8 @@ def _open(source: str | os.PathLike | xr.Dataset) -> tuple[xr.Dataset, str]:
     path = Path(source)
     if not path.is_file():
         raise InputError(f"{path}: no such file")
+    if is_grib(path):  # a model's GRIB output: its wind, in the canonical form
+        return open_wind(path), str(path)
     return open_netcdf(path), str(path)
 
 
@@ -544,9 +553,31 @@ def _wind_names(ds: xr.Dataset, field: str) -> tuple[str, str] | None:
     return pair
 
 
+def _members(ds: xr.Dataset, dims: tuple, label: str, member: int | None
+             ) -> tuple[Hashable | None, np.ndarray | None]:
+    """The ensemble-member dimension among ``dims`` (CF standard name ``realization``) and
+    the positions along it of ``member`` (all members when None)."""
+    name = next((d for d in dims if d in ds.variables
+                 and ds[d].attrs.get("standard_name") == "realization"), None)
+    if name is None:
+        if member is not None:
+            raise InputError(f"{label}: has no ensemble members (no realization coordinate); "
+                             "leave out the member")
+        return None, None
+    values = ds[name].values
+    if member is None:
+        return name, np.arange(values.size)
+    hits = np.flatnonzero(values == member)
+    if not hits.size:
+        raise InputError(f"{label}: member {member} is not in the file; members (realization): "
+                         f"{', '.join(map(str, np.unique(values)))}")
+    return name, hits
+
+
 def _field_map(fig: Figure, ds: xr.Dataset, label: str, field: str | None, level: float | None,
                when: tuple[str | None, str | None, float | None],
-               projection: str | ccrs.Projection | None, barbs: bool) -> None:
+               projection: str | ccrs.Projection | None, barbs: bool = False,
+               member: int | None = None) -> None:
     mappable = _mappable(ds)
     if not mappable:
         raise InputError(f"{label}: no variable has latitude/longitude coordinates to map "
@@ -561,6 +592,10 @@ def _field_map(fig: Figure, ds: xr.Dataset, label: str, field: str | None, level
     da = ds[field]
     lat_name, lon_name = _horizontal(ds, da)
     indexers, words = _select(ds, da, label, level, when)
+    name, rows = _members(ds, da.dims, label, member)
+    if name is not None:
+        indexers[name] = int(rows[0])
+        words.append(f"member {ds[name].values[rows[0]]}")
     others = {d: 0 for d in da.dims if d not in (lat_name, lon_name, *indexers)}
     words += [f"{d} {ds[d].values[0] if d in ds.coords else 0}" for d in others]
     indexers.update(others)
@@ -755,7 +790,11 @@ def _track_variables(ds: xr.Dataset, label: str) -> dict[str, xr.DataArray]:
 
 
 def _track_map(fig: Figure, ds: xr.Dataset, label: str, field: str | None,
-               projection: str | ccrs.Projection | None, marks: float) -> None:
+               projection: str | ccrs.Projection | None, marks: float = 6.0,
+               member: int | None = None) -> None:
+    name, rows = _members(ds, tuple(ds.coords), label, member)
+    if name is not None:
+        ds = ds.isel({ds[name].dims[0]: rows})
     found = _track_variables(ds, label)
     lat = np.asarray(found["latitude"].values, dtype=np.float64)
     lon = np.asarray(found["longitude"].values, dtype=np.float64)
@@ -823,8 +862,13 @@ def _track_map(fig: Figure, ds: xr.Dataset, label: str, field: str | None,
         bar.ax.invert_yaxis()  # pressure: higher in the atmosphere at the top
     level = next((ds[n] for n in ds.coords if ds[n].ndim == 0 and ds[n].attrs.get("axis") == "Z"),
                  None)
-    ax.set_title(_track_title(lat.shape[0], times, elapsed, colour_label, level), loc="left",
-                 fontsize=10)
+    title = _track_title(lat.shape[0], times, elapsed, colour_label, level)
+    if name is not None:
+        count = np.unique(ds[name].values).size
+        head, newline, rest = title.partition("\n")
+        title = (f"{head}, member {member}" if member is not None else
+                 f"{head}, {count} member{'s' if count != 1 else ''}") + newline + rest
+    ax.set_title(title, loc="left", fontsize=10)
 
 
 def _domain_outline(ax, ds: xr.Dataset) -> None:

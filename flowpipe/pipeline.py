@@ -320,7 +320,7 @@ class Runner:
         return open_wind(unit.inputs, u=section["u"], v=section["v"],
                          max_speed=section["max_speed"], implausible=section["implausible"],
                          allow_gaps=section["allow_gaps"], run=section["run"],
-                         leads=section["leads"])
+                         leads=section["leads"], members=section["members"])
 
     def _fields(self, unit: Unit, template: str) -> dict[str, str]:
         """``{stem}``, and ``{run}`` / ``{lead}`` of the unit's wind when the template names

@@ -80,6 +80,8 @@ def add_input_options(parser: argparse.ArgumentParser) -> None:
                         "the input (default) or treat them as missing")
     parser.add_argument("--allow-gaps", action="store_true",
                         help="accept a time series with missing times (default: refused)")
+    parser.add_argument("--members", type=members, metavar="N[,...]",
+                        help="only these ensemble members (values of realization), e.g. 0,3")
 
 
     add_forecast_options(parser)
@@ -106,6 +108,18 @@ def leads(text: str) -> list[float]:
     return values
 
 
+def members(text: str) -> list[int]:
+    """One ``--members N[,...]``: ensemble member numbers."""
+    try:
+        values = [int(item) for item in text.split(",") if item.strip()]
+    except ValueError:
+        values = []
+    if not values:
+        raise argparse.ArgumentTypeError(f"{text!r}: give ensemble member numbers (values of "
+                                         "realization), comma-separated, e.g. 0,3")
+    return values
+
+
 def forecast_options(args: argparse.Namespace) -> dict:
     """The keyword arguments of ``open_wind`` given by :func:`add_forecast_options`."""
     return {"run": args.run, "leads": args.lead}
@@ -114,4 +128,4 @@ def forecast_options(args: argparse.Namespace) -> dict:
 def input_options(args: argparse.Namespace) -> dict:
     """The keyword arguments of ``open_wind`` given by :func:`add_input_options`."""
     return {"max_speed": args.max_speed, "implausible": args.implausible,
-            "allow_gaps": args.allow_gaps, **forecast_options(args)}
+            "allow_gaps": args.allow_gaps, "members": args.members, **forecast_options(args)}

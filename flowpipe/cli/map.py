@@ -29,6 +29,9 @@ def register(sub: argparse._SubParsersAction, common: argparse.ArgumentParser) -
                         help="vertical level, in the file's units (default: the first)")
     parser.add_argument("--time", metavar="T", help="valid time, ISO 8601 (default: the first)")
     add_forecast_options(parser)
+    parser.add_argument("--member", type=int, metavar="N",
+                        help="ensemble member (value of realization): its field, or only its "
+                        "tracks (default: the first member's field, every member's tracks)")
     parser.add_argument("--projection", choices=PROJECTIONS, default="auto",
                         help="map projection (default: chosen from the domain)")
     parser.add_argument("--size", type=parse_size, default=(1200, 800), metavar="WxH",
@@ -63,7 +66,7 @@ def run(args: argparse.Namespace) -> int:
     if not args.marks > 0:
         raise UsageError(f"--marks {args.marks:g}: give the hours between time marks, above 0")
     figure = render(args.file, field=args.field, level=args.level, time=args.time,
-                    run=args.run, lead=args.lead[0] if args.lead else None,
+                    run=args.run, lead=args.lead[0] if args.lead else None, member=args.member,
                     projection=args.projection, size=args.size, barbs=args.barbs,
                     marks_hours=args.marks)
     path = save(figure, args.output, protect=(args.file,))
