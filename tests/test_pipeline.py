@@ -28,7 +28,8 @@ from windfiles import Encoding, encode, reference_field
 from flowpipe.bookkeeping import LOCK_NAME
 from flowpipe.cli import main
 from flowpipe.config import STAGES
-from flowpipe.pipeline import STAGE_TABLE, run, why_due
+from flowpipe.pipeline import STAGE_TABLE, run
+from flowpipe.planner import why_due
 
 ROOT = Path(__file__).resolve().parents[1]
 LAT, LON, LEVELS = np.linspace(-90, 90, 37), np.arange(0.0, 360.0, 5.0), np.array([850.0, 500.0])
