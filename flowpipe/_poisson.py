@@ -277,16 +277,43 @@ def dirichlet_partition(grid: StaggeredGrid, u: np.ndarray, v: np.ndarray,
     fields["vorticity"], fields["divergence"] = _at_centres(grid, zeta, delta)
     fields["u_harmonic"] = u - fields["u_rotational"] - fields["u_divergent"]
     fields["v_harmonic"] = v - fields["v_rotational"] - fields["v_divergent"]
+    return fields, partition_figures(grid, u, v, fields)
+
+
+def partition_figures(grid: StaggeredGrid, u: np.ndarray, v: np.ndarray,
+                      fields: dict[str, np.ndarray]) -> dict[str, float]:
+    """Quality figures of a partition with a harmonic wind, at the valid points of ``u, v``.
+
+    Parameters
+    ----------
+    grid : StaggeredGrid
+    u, v : numpy.ndarray
+        The wind partitioned, NaN where missing.
+    fields : dict of numpy.ndarray
+        The rotational, divergent and harmonic winds.
+
+    Returns
+    -------
+    dict of float
+        ``reconstruction_error``: the relative area-weighted RMS of what the
+        three parts leave of the wind; ``harmonic_energy_share``: the area-
+        weighted energy of the harmonic wind over that of the wind (never
+        negative); ``iterations`` 0 (direct solves).
+
+    References
+    ----------
+    Lynch (1989), "Partitioning the wind in a limited domain", Mon. Wea.
+    Rev. 117, 1492-1500, eq. 2.6 (the three parts add up to the wind).
+    """
     total = _weighted_energy(grid, u, v)
     rest_u = u - fields["u_rotational"] - fields["u_divergent"] - fields["u_harmonic"]
     rest_v = v - fields["v_rotational"] - fields["v_divergent"] - fields["v_harmonic"]
-    diagnostics = {
+    return {
         "reconstruction_error": np.sqrt(_weighted_energy(grid, rest_u, rest_v) / total),
         "harmonic_energy_share": _weighted_energy(grid, fields["u_harmonic"],
                                                   fields["v_harmonic"]) / total,
         "iterations": 0,
     }
-    return fields, diagnostics
 
 
 def _dot(a: np.ndarray, b: np.ndarray) -> float:
@@ -529,17 +556,13 @@ def variational_partition(grid: StaggeredGrid, u: np.ndarray, v: np.ndarray,
     fields : dict of numpy.ndarray
         As :func:`dirichlet_partition`, without the harmonic wind.
     diagnostics : dict of float
-        ``reconstruction_error``, ``harmonic_energy_share`` and ``iterations``.
-
-    Notes
-    -----
-    The harmonic share is ``4 <w_rot, w_div> / |w|^2``. Write the parts as the
-    internal (Dirichlet) parts plus harmonic flows, ``w_rot = w_psi + h_1``,
-    ``w_div = w_chi + h_2``: the internal parts are orthogonal to each other
-    and to every harmonic flow, so ``<w_rot, w_div> = <h_1, h_2>``, and the
-    least-energy split shares the harmonic flow ``h`` evenly,
-    ``h_1 = h_2 = h / 2``, whence ``|h|^2 = 4 <w_rot, w_div>``: the energy the
-    data leave to the choice of split, without a second solve.
+        ``reconstruction_error`` and ``iterations``. The harmonic share is
+        that of the Dirichlet partition's harmonic wind (the one the
+        regional stage writes beside this split): on a limited area the
+        least-energy split shares that flow evenly between its parts, but on
+        a band periodic in longitude the zonal harmonic flow ``u ~ 1/cos(phi)``
+        has a streamfunction and no single-valued velocity potential, so the
+        parts cannot share it and ``<w_rot, w_div>`` says nothing about it.
 
     References
     ----------
@@ -554,11 +577,8 @@ def variational_partition(grid: StaggeredGrid, u: np.ndarray, v: np.ndarray,
     rest_u = u - fields["u_rotational"] - fields["u_divergent"]
     rest_v = v - fields["v_rotational"] - fields["v_divergent"]
     total = _weighted_energy(grid, u, v)
-    overlap = _weighted_inner(grid, fields["u_rotational"], fields["v_rotational"],
-                              fields["u_divergent"], fields["v_divergent"])
     diagnostics = {
         "reconstruction_error": np.sqrt(_weighted_energy(grid, rest_u, rest_v) / total),
-        "harmonic_energy_share": 4.0 * overlap / total,
         "iterations": iterations,
     }
     return fields, diagnostics

@@ -287,7 +287,7 @@ def ftle(
                                  f" .. {clock.text(clock.seconds[-1])}; shorten --hours or move "
                                  "--start")
 
-    grid = slice_grid(wind, kind == "global")
+    grid = slice_grid(wind, kind == "global", band=kind == "band")
     winds = SliceWindow(wind, grid, True, ())
     interval = float(np.min(np.diff(clock.seconds))) if clock.seconds.size > 1 and not steady \
         else math.inf

@@ -74,7 +74,8 @@ class GridInfo:
     latitudes : {"equiangular", "gaussian", "irregular"}
         How the latitude rows are spaced.
     poles : bool
-        True when the grid has a row on each pole.
+        True when the grid has a row on each pole (see :attr:`pole_rows` for
+        a band with one).
     """
 
     latitude: np.ndarray
@@ -87,6 +88,13 @@ class GridInfo:
     def periodic(self) -> bool:
         """True when the grid is periodic in longitude (global or band)."""
         return self.kind in ("global", "band")
+
+    @property
+    def pole_rows(self) -> list[str]:
+        """The poles the grid has a row on: ``"south"``, ``"north"``, both or none."""
+        tol = _tolerance(self.latitude)
+        return [name for name, row, pole in (("south", 0, -90.0), ("north", -1, 90.0))
+                if abs(self.latitude[row] - pole) < tol]
 
     @property
     def nlat(self) -> int:
@@ -189,6 +197,7 @@ class GridInfo:
             "grid": self.kind,
             "latitudes": self.latitudes,
             "poles": self.poles,
+            "pole_rows": self.pole_rows,
             "nlat": self.nlat,
             "nlon": self.nlon,
             "geometry": self.geometry,

@@ -21,7 +21,7 @@ def describe_wind(wind: xr.Dataset) -> dict:
     """Describe a canonical wind Dataset as a JSON-friendly dict (computes missing counts).
 
     The keys are those of the contract's ``inspect --json`` (``u``, ``v``,
-    ``grid``, ``latitudes``, ``poles``, ``nlat``, ``nlon``, ``levels``,
+    ``grid``, ``latitudes``, ``poles``, ``pole_rows``, ``nlat``, ``nlon``, ``levels``,
     ``times``) and a few more; ``run`` is the forecast run the Dataset holds (ISO
     8601, ``None`` when it holds no forecast or several runs); ``members`` the number of
     ensemble members (``realization``), ``None`` without them.

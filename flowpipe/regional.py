@@ -68,6 +68,7 @@ from ._poisson import (
     VariationalSolver,
     dirichlet_partition,
     dirichlet_solver,
+    partition_figures,
     variational_partition,
 )
 from ._staggered import StaggeredGrid, interior_corners
@@ -75,6 +76,7 @@ from .annotate import figure, global_attrs, variable_attrs
 from .constants import EARTH_RADIUS
 from .errors import FlowpipeWarning, InputError, UsageError
 from .grid import describe_grid
+from .spectral import pole_row
 
 SCHEMES = ("variational", "dirichlet")
 #: Default dimensionless Tikhonov weight of the variational scheme (the weight of
@@ -116,9 +118,11 @@ RECONSTRUCTION = {
     "dirichlet": "u_rotational + u_divergent + u_harmonic = u",
 }
 VARIATIONAL_HARMONIC = (
-    "For reference: the harmonic wind of the partition of Lynch (1989). The variational split "
-    "already shares it between the rotational and the divergent wind, which alone add up to "
-    "the wind: do not add it to them.")
+    "For reference: the harmonic wind of the partition of Lynch (1989), the wind "
+    "harmonic_energy_share describes. The variational split already carries it in the "
+    "rotational and the divergent wind (on a band periodic in longitude its zonal part, "
+    "u ~ 1/cos(latitude), all in the rotational wind), which alone add up to the wind: do not "
+    "add it to them.")
 REFERENCES = (
     "Li, Chao & McWilliams (2006), Computation of the streamfunction and velocity potential for "
     "limited and irregular domains, Mon. Wea. Rev. 134, 3384-3394; Lynch (1989), Partitioning "
@@ -161,8 +165,9 @@ def _solver(grid: StaggeredGrid, valid: np.ndarray, scheme: str, regularisation:
 
 def _solve_slabs(u: np.ndarray, v: np.ndarray, *, lat: np.ndarray, lon: np.ndarray,
                  periodic: bool, scheme: str, regularisation: float, tolerance: float,
-                 max_iterations: int) -> tuple[np.ndarray, np.ndarray]:
-    """Decompose every latitude-longitude slab of ``u``, ``v`` (shape ``(..., nlat, nlon)``)."""
+                 max_iterations: int, pole: str | None = None) -> tuple[np.ndarray, np.ndarray]:
+    """Decompose every latitude-longitude slab of ``u``, ``v`` (shape ``(..., nlat, nlon)``);
+    ``pole`` names the pole beyond the last row that closes a band (see :func:`_lynch`)."""
     grid = _grid(lat, lon, periodic)
     names = FIELDS[scheme]
     fields = np.full(u.shape[:-2] + (len(names),) + u.shape[-2:], np.nan)
@@ -178,7 +183,7 @@ def _solve_slabs(u: np.ndarray, v: np.ndarray, *, lat: np.ndarray, lon: np.ndarr
         for piece in solvable_pieces(valid, grid)[0]:
             parts, quality = _solve_piece(grid, piece, np.where(piece, us, np.nan),
                                           np.where(piece, vs, np.nan), scheme, regularisation,
-                                          tolerance, max_iterations)
+                                          tolerance, max_iterations, pole)
             for k, name in enumerate(names):
                 fields[index + (k,)] = np.where(piece, parts[name], fields[index + (k,)])
             shares.append(float(energy[piece].sum()))
@@ -190,8 +195,8 @@ def _solve_slabs(u: np.ndarray, v: np.ndarray, *, lat: np.ndarray, lon: np.ndarr
 
 
 def _solve_piece(grid: StaggeredGrid, valid: np.ndarray, us: np.ndarray, vs: np.ndarray,
-                 scheme: str, regularisation: float, tolerance: float, max_iterations: int
-                 ) -> tuple[dict[str, np.ndarray], dict[str, float]]:
+                 scheme: str, regularisation: float, tolerance: float, max_iterations: int,
+                 pole: str | None = None) -> tuple[dict[str, np.ndarray], dict[str, float]]:
     """Decompose the wind of one connected piece (NaN outside it).
 
     References
@@ -199,16 +204,58 @@ def _solve_piece(grid: StaggeredGrid, valid: np.ndarray, us: np.ndarray, vs: np.
     :func:`flowpipe._poisson.dirichlet_partition` and
     :func:`flowpipe._poisson.variational_partition`.
     """
-    solver = _solver(grid, valid, scheme, regularisation, tolerance, max_iterations)
     if scheme == "dirichlet":
-        return dirichlet_partition(grid, us, vs, solver)
+        return _lynch(grid, valid, us, vs, pole)
+    solver = _solver(grid, valid, scheme, regularisation, tolerance, max_iterations)
     parts, quality = variational_partition(grid, us, vs, solver)
-    # The harmonic flow that the least-energy split shares evenly between its two
-    # parts, for reference: Lynch's harmonic wind, one more direct solve.
-    lynch, _ = dirichlet_partition(grid, us, vs, _solver(grid, valid, "dirichlet", 0.0,
-                                                         tolerance, max_iterations))
+    # The harmonic flow, for reference: Lynch's harmonic wind, one more direct solve; the
+    # share describes this wind, the one written (see variational_partition).
+    lynch, figures = _lynch(grid, valid, us, vs, pole)
     parts["u_harmonic"], parts["v_harmonic"] = lynch["u_harmonic"], lynch["v_harmonic"]
+    quality["harmonic_energy_share"] = figures["harmonic_energy_share"]
     return parts, quality
+
+
+def _lynch(grid: StaggeredGrid, valid: np.ndarray, us: np.ndarray, vs: np.ndarray,
+           pole: str | None) -> tuple[dict[str, np.ndarray], dict[str, float]]:
+    """Lynch's partition of one piece; on a band closed by a pole, the pole is a point.
+
+    Without its pole row, a band that has one (0..90, say) would end at an edge half a
+    spacing short of the pole, and the zonal harmonic flow ``u ~ 1/cos(phi)`` of that
+    ring-shaped domain would carry the flow near the pole. With every point valid, the
+    pole row is put back on a row of cells of zero area (``cos 90 = 0``), its wind the
+    one vector the row nearest the pole describes (:func:`flowpipe.spectral.pole_row`;
+    it closes the circulation round the cells next to the pole, whatever the input's
+    pole row holds, which may be missing): no flux crosses the pole, so the corner ring
+    next to it is an inner point of the finite-volume Laplacian with the pole a single
+    point, and the domain's only boundary is its open latitude edge.
+
+    References
+    ----------
+    Lynch (1989), Mon. Wea. Rev. 117, 1492-1500 (the partition); no flux through the
+    pole point of a finite-volume latitude-longitude grid (common practice).
+    """
+    if pole is None or not valid.all():
+        return dirichlet_partition(grid, us, vs, _dirichlet(grid, valid))
+    north = pole == "north"
+    lat = np.degrees(grid.lat)
+    closed = _grid(np.append(lat, 90.0) if north else np.insert(lat, 0, -90.0),
+                   np.degrees(grid.lon), True)
+    ring = -1 if north else 0
+    pu, pv = pole_row(us[ring], vs[ring], np.degrees(grid.lon), 1.0 if north else -1.0)
+    stack = (lambda x, p: np.vstack([x, p])) if north else (lambda x, p: np.vstack([p, x]))
+    inner = slice(0, -1) if north else slice(1, None)
+    with np.errstate(invalid="ignore", divide="ignore"):  # the pole corners: no area
+        fields, _ = dirichlet_partition(closed, stack(us, pu), stack(vs, pv),
+                                        _dirichlet(closed, np.ones(closed.shape, bool)))
+    fields = {name: values[inner] for name, values in fields.items()}
+    return fields, partition_figures(grid, us, vs, fields)
+
+
+def _dirichlet(grid: StaggeredGrid, valid: np.ndarray
+               ) -> SeparableDirichletSolver | SparseDirichletSolver:
+    """The cached Dirichlet solver of a grid and mask (the iteration settings do not apply)."""
+    return _solver(grid, valid, "dirichlet", 0.0, DEFAULT_TOLERANCE, DEFAULT_MAX_ITERATIONS)
 
 
 def _slab_label(da: xr.DataArray, flat_index: int) -> str:
@@ -354,8 +401,8 @@ def decompose_regional(wind: xr.Dataset, scheme: str = "variational", periodic: 
         says what adds up to the wind), on the wind's grid and
         dimensions, NaN where the wind is missing; per-slab quality figures
         ``reconstruction_error``, ``harmonic_energy_share`` (area-weighted,
-        relative; for ``variational`` ``4 <w_rot, w_div> / |w|^2``, the energy
-        of the harmonic flow the fit shared between the parts, see
+        relative, never negative: the energy of the ``u_harmonic``,
+        ``v_harmonic`` written, for both schemes; see
         :func:`flowpipe._poisson.variational_partition`) and
         ``iterations``; attributes ``method`` (``"regional"``), ``scheme``,
         ``regularisation``, ``periodic``, ``solver`` (and ``tolerance``,
@@ -363,8 +410,10 @@ def decompose_regional(wind: xr.Dataset, scheme: str = "variational", periodic: 
         per-slab figure under the same names (a float in memory, a 0-d dask
         array for a lazy result, which :func:`flowpipe.write` computes with
         the data). Rows on a pole, where wind directions are
-        undefined, are returned missing (attribute ``pole_rows``). Lazy when
-        the wind is dask-backed.
+        undefined, are returned missing (attribute ``pole_rows``); on a band
+        with one pole row (given or missing) the pole stays a point of the
+        domain of the harmonic wind, not an edge (:func:`_lynch`; every other
+        point valid). Lazy when the wind is dask-backed.
 
     Raises
     ------
@@ -403,15 +452,13 @@ def decompose_regional(wind: xr.Dataset, scheme: str = "variational", periodic: 
         regularisation = DEFAULT_REGULARISATION
     elif not regularisation > 0:
         raise UsageError(f"regularisation must be positive, got {regularisation}")
-    on_pole = np.abs(wind["latitude"].values) >= 90.0 - POLE_TOLERANCE
+    rows = wind["latitude"]
+    on_pole = np.abs(rows.values) >= 90.0 - POLE_TOLERANCE
+    # The eastward and northward directions are undefined on a pole: solve without those
+    # rows and return them missing; a band's one pole row stays a point of its domain.
+    pole = _closing_pole(rows.values, on_pole, periodic)
     if on_pole.any():
-        # The eastward and northward directions are undefined on a pole; solve without
-        # those rows and return them missing.
-        inner = decompose_regional(wind.isel(latitude=np.flatnonzero(~on_pole)), scheme,
-                                   periodic, regularisation, **options)
-        out = inner.reindex(latitude=wind["latitude"])
-        out.attrs["pole_rows"] = "missing: wind directions are undefined on a pole"
-        return out
+        wind = wind.isel(latitude=np.flatnonzero(~on_pole))
     lat, lon = _check_grid(wind, periodic)
     u, v = wind["u"], wind["v"]
     valid_all = np.asarray((u.notnull() & v.notnull()).values).reshape((-1,) + u.shape[-2:])
@@ -444,7 +491,7 @@ def decompose_regional(wind: xr.Dataset, scheme: str = "variational", periodic: 
                                              "diagnostic": len(DIAGNOSTICS)}},
         kwargs={"lat": lat, "lon": lon, "periodic": periodic, "scheme": scheme,
                 "regularisation": float(regularisation), "tolerance": tolerance,
-                "max_iterations": max_iterations},
+                "max_iterations": max_iterations, "pole": pole},
         keep_attrs=False,
     )
     out = xr.Dataset({name: fields.isel(component=k, drop=True).assign_attrs(variable_attrs(name))
@@ -479,4 +526,21 @@ def decompose_regional(wind: xr.Dataset, scheme: str = "variational", periodic: 
                       "missing (attribute points_left_missing)", FlowpipeWarning, stacklevel=2)
     for k, name in enumerate(DIAGNOSTICS):
         out.attrs[name] = figure(quality.isel(diagnostic=k).max())
+    if on_pole.any():
+        out = out.reindex(latitude=rows)
+        if wind["u"].chunks is not None:  # one chunk per slab again, as the canonical Dataset
+            out = out.chunk({"latitude": -1})
+        out.attrs["pole_rows"] = "missing: wind directions are undefined on a pole" + (
+            f"; the {pole} pole is a point of the domain of the harmonic wind, not an edge"
+            if pole else "")
     return out
+
+
+def _closing_pole(lat: np.ndarray, on_pole: np.ndarray, periodic: bool) -> str | None:
+    """``"north"`` or ``"south"`` when a band periodic in longitude has a row on that pole
+    only (the outer row): the pole closes its domain there."""
+    if not periodic or on_pole.sum() != 1:
+        return None
+    if on_pole[-1] and lat[-1] > 0:
+        return "north"
+    return "south" if on_pole[0] and lat[0] < 0 else None

@@ -154,15 +154,44 @@ def consistent_pole_rows(
     """
     u = np.array(u, dtype=np.float64)
     v = np.array(v, dtype=np.float64)
+    for row, sign in ((0, -1.0), (-1, 1.0)):
+        u[row], v[row] = pole_row(u[row], v[row], longitude, sign)
+    return u, v
+
+
+def pole_row(u: np.ndarray, v: np.ndarray, longitude: np.ndarray,
+             sign: float) -> tuple[np.ndarray, np.ndarray]:
+    """The one horizontal vector that a row of winds around a pole describes, as a pole row.
+
+    Parameters
+    ----------
+    u, v : numpy.ndarray
+        Eastward and northward wind along one row, shape ``(nlon,)``: a pole
+        row, or the row nearest a pole (its fit then differs from the pole's
+        vector by the square of the distance to the pole).
+    longitude : numpy.ndarray
+        Longitudes in degrees, equally spaced over the full circle.
+    sign : float
+        ``+1`` for the north pole, ``-1`` for the south pole.
+
+    Returns
+    -------
+    u, v : numpy.ndarray
+        The least-squares fit ``u = -W_x sin(lambda) + W_y cos(lambda)``,
+        ``v = sign (-W_x cos(lambda) - W_y sin(lambda))`` (module docstring).
+
+    References
+    ----------
+    As :func:`consistent_pole_rows`; the fit takes the longitude-wavenumber-1
+    part of the row, which a smooth field's variation across the row does not
+    reach at first order (common practice).
+    """
     lam = np.radians(longitude)
     s, c = np.sin(lam), np.cos(lam)
-    for row, sign in ((0, -1.0), (-1, 1.0)):
-        vn = sign * v[row]
-        wx = -np.mean(s * u[row] + c * vn)
-        wy = np.mean(c * u[row] - s * vn)
-        u[row] = -wx * s + wy * c
-        v[row] = sign * (-wx * c - wy * s)
-    return u, v
+    vn = sign * np.asarray(v, dtype=np.float64)
+    wx = -np.mean(s * u + c * vn)
+    wy = np.mean(c * u - s * vn)
+    return -wx * s + wy * c, sign * (-wx * c - wy * s)
 
 
 def vector_analysis(

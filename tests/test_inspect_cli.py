@@ -44,7 +44,9 @@ def test_inspect_json_describes_the_sample_files(capsys):
         "u", "v", "global", "equiangular", True)
     assert (glob_["nlat"], glob_["nlon"], glob_["times"]) == (91, 180, 9)
     assert glob_["levels"] == [850.0, 500.0, 250.0]
+    assert glob_["pole_rows"] == ["south", "north"]
     assert (reg["u"], reg["v"], reg["grid"], reg["poles"]) == ("uwind", "vwind", "regional", False)
+    assert reg["pole_rows"] == []
     assert reg["levels"] == [850.0, 500.0]  # stored in Pa, reported in hPa
 
 

@@ -32,6 +32,12 @@ def run(args: argparse.Namespace) -> int:
     return 0
 
 
+def _pole_text(pole_rows: list[str]) -> str:
+    if len(pole_rows) == 2:
+        return " with pole rows"
+    return f" with a {pole_rows[0]} pole row" if pole_rows else ""
+
+
 def format_report(report: dict) -> str:
     """The short human-readable summary of one file."""
     levels = report["levels"]
@@ -49,7 +55,7 @@ def format_report(report: dict) -> str:
         f"{report['file']}",
         f"  wind       u = {report['u']}, v = {report['v']} (vertical velocity: {vertical})",
         f"  grid       {report['grid']}, {report['latitudes']} latitudes"
-        f"{' with pole rows' if report['poles'] else ''}, {report['nlat']} x {report['nlon']}"
+        f"{_pole_text(report['pole_rows'])}, {report['nlat']} x {report['nlon']}"
         f" (lat {report['latitude_range'][0]:g}..{report['latitude_range'][1]:g},"
         f" lon {report['longitude_range'][0]:g}..{report['longitude_range'][1]:g})",
         f"  vertical   {level_text}",

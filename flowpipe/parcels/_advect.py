@@ -6,6 +6,7 @@ import datetime as _dt
 import hashlib
 import math
 import re
+import warnings
 from collections.abc import Sequence
 from dataclasses import dataclass
 
@@ -17,7 +18,7 @@ import xarray as xr
 
 from .. import annotate
 from ..constants import EARTH_RADIUS
-from ..errors import InputError, UsageError
+from ..errors import FlowpipeWarning, InputError, UsageError
 from ..grid import describe_grid
 from . import _kernels as K
 from ._geometry import latitude_longitude, unit_vectors
@@ -199,7 +200,8 @@ def _start_seconds(table: pd.DataFrame, clock: _Clock, default: float) -> np.nda
 
 def _resolve_starts(table: pd.DataFrame, wind: xr.Dataset, clock: _Clock, grid_kind: str,
                     hours: float, sign: float) -> tuple[np.ndarray, ...]:
-    """Latitudes, longitudes, levels and start seconds of every row, each checked."""
+    """Latitudes, longitudes, levels and start seconds of every row, each checked, and which
+    rows lie outside the domain (skipped with a warning unless every row does)."""
     lat = table["latitude"].to_numpy(dtype=np.float64)
     lon = table["longitude"].to_numpy(dtype=np.float64)
     level = table["level"].to_numpy(dtype=np.float64).copy()
@@ -209,21 +211,24 @@ def _resolve_starts(table: pd.DataFrame, wind: xr.Dataset, clock: _Clock, grid_k
     if row is not None:
         raise InputError(f"{origin(table, row)}: ({lat[row]:g}, {lon[row]:g}) is not a position "
                          "(latitude must lie within -90..90, longitude must be finite)")
+    outside = np.zeros(lat.size, dtype=bool)
+    domain = ""
     if grid_kind == "regional":
         shifted = glon[0] + np.mod(lon - glon[0], 360.0)
-        row = _first_bad((lat < glat[0]) | (lat > glat[-1])
-                         | (shifted > glon[-1] + K.EDGE_TOLERANCE))
-        if row is not None:
-            raise InputError(
-                f"{origin(table, row)}: ({lat[row]:g}, {lon[row]:g}) lies outside the "
-                f"limited-area domain (latitude {glat[0]:g}..{glat[-1]:g}, longitude "
-                f"{glon[0]:g}..{glon[-1]:g})")
+        outside = (lat < glat[0]) | (lat > glat[-1]) | (shifted > glon[-1] + K.EDGE_TOLERANCE)
+        domain = (f"the limited-area domain (latitude {glat[0]:g}..{glat[-1]:g}, longitude "
+                  f"{glon[0]:g}..{glon[-1]:g})")
     if grid_kind == "band":
-        row = _first_bad((lat < glat[0]) | (lat > glat[-1]))
-        if row is not None:
-            raise InputError(
-                f"{origin(table, row)}: ({lat[row]:g}, {lon[row]:g}) lies outside the latitude "
-                f"band of the input ({glat[0]:g}..{glat[-1]:g})")
+        outside = (lat < glat[0]) | (lat > glat[-1])
+        domain = f"the latitude band of the input ({glat[0]:g}..{glat[-1]:g})"
+    row = _first_bad(outside)
+    if row is not None:
+        where = f"{origin(table, row)}: ({lat[row]:g}, {lon[row]:g}) lies outside {domain}"
+        if outside.all():
+            raise InputError(where)
+        count = int(outside.sum())
+        warnings.warn(f"{where}; {'it is' if count == 1 else f'it and {count - 1} more are'} "
+                      "skipped (status outside_domain_at_start)", FlowpipeWarning, stacklevel=3)
     given = np.isfinite(level)
     if "level" not in wind.dims:
         row = _first_bad(given)
@@ -253,7 +258,7 @@ def _resolve_starts(table: pd.DataFrame, wind: xr.Dataset, clock: _Clock, grid_k
                     f"outside the input times {clock.text(clock.seconds[0])} .. "
                     f"{clock.text(clock.seconds[-1])}; shorten --hours, move the start time or "
                     "give more input")
-    return lat, lon, level, start
+    return lat, lon, level, start, outside
 
 
 def _courant_step(field: np.ndarray, grid: SliceGrid, raw_levels: np.ndarray | None,
@@ -369,7 +374,10 @@ def advect(
     Raises
     ------
     flowpipe.errors.InputError, flowpipe.errors.UsageError
-        For starts outside the domain, the vertical range or the input
+        For starts outside the domain (when every start is; one of several
+        outside it is skipped with a :class:`flowpipe.errors.FlowpipeWarning`,
+        keeping its start at 0 h and the status ``outside_domain_at_start``),
+        the vertical range or the input
         times (naming the row), ``hours <= 0``, a step longer than the input
         interval, 3-D without a vertical velocity, or a single time without
         ``steady``.
@@ -396,7 +404,7 @@ def advect(
     periodic = kind == "global"
     sign = -1.0 if backward else 1.0
     table = as_start_table(starts)
-    lat, lon, level, start = _resolve_starts(table, wind, clock, kind, hours, sign)
+    lat, lon, level, start, outside = _resolve_starts(table, wind, clock, kind, hours, sign)
 
     grid = slice_grid(wind, periodic, band=kind == "band")
     names = (vertical,) if vertical else ()
@@ -412,7 +420,7 @@ def advect(
         else math.inf
     record = record_minutes * 60.0
     if step_minutes is None:
-        first = clock.bracket(float(start.min()))[0]
+        first = clock.bracket(float(start[~outside].min()))[0]
         step = min([interval, record] + [
             _courant_step(w.field[w.slots_for([first])[0]], grid, raw_levels, vertical_scale,
                           courant) for w in map(window, range(len(ensemble)))])
@@ -439,9 +447,14 @@ def advect(
     for k, member in enumerate(ensemble):
         winds = window(k)
         samples = SliceWindow(member, grid, False, sample) if sample else None
-        for t0 in np.unique(start):
-            group = np.flatnonzero(start == t0)
-            members = group + k * n  # rows of the output
+        # starts outside the domain keep their position at 0 h and go no further
+        rows = np.flatnonzero(outside) + k * n  # rows of the output, member after member
+        status[rows] = K.OUTSIDE_AT_START
+        out_lat[rows, 0], out_lon[rows, 0] = lat[outside], lon[outside]
+        out_level[rows, 0] = level_for[outside]
+        for t0 in np.unique(start[~outside]):
+            group = np.flatnonzero((start == t0) & ~outside)
+            members = group + k * n
             pos = unit_vectors(lat[group], lon[group])
             lev = level_for[group].copy()
             st = status[members]

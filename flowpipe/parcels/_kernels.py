@@ -30,9 +30,10 @@ LEFT_DOMAIN = 1
 REACHED_LOWEST = 2
 REACHED_HIGHEST = 3
 MISSING_WIND = 4
+OUTSIDE_AT_START = 5  # one of several starts lay outside the domain: skipped, only its start kept
 #: Output flag meanings, in the order of the flag values 0, 1, 2, ...
 STATUS_MEANINGS = ("completed", "left_domain", "reached_lowest_level", "reached_highest_level",
-                   "met_missing_wind")
+                   "met_missing_wind", "outside_domain_at_start")
 
 RK4 = 0
 PETTERSSEN = 1

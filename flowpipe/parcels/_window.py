@@ -192,8 +192,9 @@ def slice_grid(wind: xr.Dataset, periodic: bool, band: bool = False) -> SliceGri
 
 
 def _close_poles(out: np.ndarray, grid: SliceGrid, input_lat: np.ndarray) -> None:
-    """Give the pole rows of one prepared slice (existing or added) the ring mean of the row
-    nearest the pole, in place.
+    """Give the pole rows of one prepared slice one value each, in place: the mean of a pole
+    row's valid points, or, for an added row or one missing entirely, the ring mean of the
+    row nearest the pole.
 
     Parameters
     ----------
@@ -205,18 +206,24 @@ def _close_poles(out: np.ndarray, grid: SliceGrid, input_lat: np.ndarray) -> Non
 
     References
     ----------
-    At a pole every longitude names the same point, so its one vector is
-    estimated by the mean of the Cartesian vectors round the nearest ring
+    At a pole every longitude names the same point, so each valid value of a
+    pole row describes it and its one vector is their mean; without any, it
+    is estimated by the mean of the Cartesian vectors round the nearest ring
     (common practice for pole points of latitude-longitude grids).
     """
     if not (grid.periodic or grid.wrap_column):
         return
-    if grid.add_south or abs(input_lat[0] + 90.0) <= 1e-9:
-        ring = 1 if grid.add_south else 0
-        out[:, 0] = out[:, ring].mean(axis=1, keepdims=True)
-    if grid.add_north or abs(input_lat[-1] - 90.0) <= 1e-9:
-        ring = -2 if grid.add_north else -1
-        out[:, -1] = out[:, ring].mean(axis=1, keepdims=True)
+    for pole, ring, added, present in ((0, 1, grid.add_south, abs(input_lat[0] + 90.0) <= 1e-9),
+                                       (-1, -2, grid.add_north, abs(input_lat[-1] - 90.0) <= 1e-9)):
+        if not (added or present):
+            continue
+        nearest = out[:, ring].mean(axis=1)
+        if present:  # a row of the input: the mean of its valid points (values of one point)
+            known = np.isfinite(out[:, pole]).all(axis=-1, keepdims=True)
+            count = known.sum(axis=1)
+            total = np.where(known, out[:, pole], 0.0).sum(axis=1)
+            nearest = np.where(count > 0, total / np.maximum(count, 1), nearest)
+        out[:, pole] = nearest[:, None]
 
 
 def _levels_first(variable: xr.Variable, values: np.ndarray, nlev: int) -> np.ndarray:
