@@ -17,6 +17,7 @@ from ._version import __version__
 from .contours import circulation
 from .decompose import decompose
 from .errors import FlowpipeError, InputError, UsageError
+from .fields import select_fields
 from .ftle import ftle
 from .grid import GridInfo, describe_grid
 from .ingest import open_wind
@@ -42,6 +43,7 @@ __all__ = [
     "open_wind",
     "render",
     "run",
+    "select_fields",
     "starts_box",
     "starts_line",
     "starts_ring",

@@ -22,7 +22,8 @@ import xarray as xr
 from ._version import __version__
 from .constants import EARTH_RADIUS
 
-CONVENTIONS = "CF-1.11, ACDD-1.3"
+CF_VERSION = "CF-1.11"
+CONVENTIONS = f"{CF_VERSION}, ACDD-1.3"
 
 #: The CF standard-name table the names are taken from (version 93, the one
 #: compliance-checker 6.1 ships and checks against).
@@ -66,6 +67,16 @@ VARIABLES: dict[str, tuple[str | None, str, str]] = {
     "v_unresolved": (None, "m s-1",
                      "northward wind at valid points not carried by the band-limited rotational "
                      "and divergent winds"),
+    # wind speed and direction (flowpipe.fields)
+    "wind_speed": ("wind_speed", "m s-1", "wind speed"),
+    "wind_from_direction": ("wind_from_direction", "degree",
+                            "direction the wind blows from, clockwise from north"),
+    "rotational_wind_speed": (None, "m s-1", "speed of the rotational (non-divergent) wind"),
+    "rotational_wind_from_direction": (None, "degree", "direction the rotational wind blows "
+                                       "from, clockwise from north"),
+    "divergent_wind_speed": (None, "m s-1", "speed of the divergent (irrotational) wind"),
+    "divergent_wind_from_direction": (None, "degree", "direction the divergent wind blows "
+                                      "from, clockwise from north"),
     # kinematics
     "absolute_vorticity": ("atmosphere_absolute_vorticity", "s-1", "absolute vorticity"),
     "stretching_deformation": (None, "s-1", "stretching deformation"),
@@ -100,6 +111,8 @@ COORDINATES: dict[str, tuple[str, str]] = {
 CANONICAL_COORDINATES: dict[str, dict[str, str]] = {
     "latitude": {"standard_name": "latitude", "units": "degrees_north"},
     "longitude": {"standard_name": "longitude", "units": "degrees_east"},
+    # ensemble members (CF 1.11 standard-name table: realization, canonical units 1)
+    "realization": {"standard_name": "realization", "units": "1", "long_name": "ensemble member"},
 }
 #: The same for ``level``, by the Dataset's ``level_type``.
 CANONICAL_LEVELS: dict[str, dict[str, str]] = {

@@ -20,10 +20,12 @@ from typing import Any
 
 from .decompose import METHODS, SPECTRAL_VARIABLES
 from .errors import InputError, UsageError
+from .fields import WIND_PRODUCTS
 from .ingest import DEFAULT_MAX_SPEED, IMPLAUSIBLE_CHOICES, parse_iso
 from .parcels._advect import VERTICAL
 from .regional import FIELDS as REGIONAL_FIELDS
 from .regional import SCHEMES as REGIONAL_SCHEMES
+from .store import COMPRESSIONS, DEFAULT_COMPRESSION, PRECISIONS, check_encoding
 
 
 class ConfigError(UsageError):
@@ -45,13 +47,14 @@ SCHEMA: dict[str, dict[str, tuple[tuple[type, ...], Any]]] = {
         "allow_gaps": ((bool,), False),
         "run": ((str,), None),
         "leads": ((list,), None),
+        "members": ((list,), None),
     },
     "decompose": {
         "method": ((str,), "auto"),
         "scheme": ((str,), "variational"),
         "truncation": ((int,), None),
         "levels": ((list,), None),
-        "float32": ((bool,), False),
+        "fields": ((list,), None),
         "output": ((str,), "{stem}_decomposition.nc"),
     },
     "advect": {
@@ -92,6 +95,10 @@ SCHEMA: dict[str, dict[str, tuple[tuple[type, ...], Any]]] = {
     },
     "output": {
         "directory": ((str,), REQUIRED),
+        "precision": ((str,), "input"),
+        "compression": ((str,), DEFAULT_COMPRESSION),
+        "compression_level": ((int,), None),
+        "significant_digits": ((int,), None),
     },
     "run": {
         "workers": ((int,), None),
@@ -166,12 +173,17 @@ VALUES: dict[str, dict[str, Allowed]] = {
                        "\"latest\" or an ISO 8601 time such as \"2026-12-01T00Z\""),
         "leads": Allowed(lambda h: _finite(h) and h >= 0, "a lead time in hours, 0 or more",
                          each=True, empty=False),
+        "members": Allowed(lambda m: isinstance(m, int) and not isinstance(m, bool),
+                           "an ensemble member number (a value of realization)", each=True,
+                           empty=False),
     },
     "decompose": {
         "method": _one_of(METHODS),
         "scheme": _one_of(REGIONAL_SCHEMES),
         "truncation": _AT_LEAST_1,
         "levels": Allowed(_finite, "a finite number", each=True, empty=False),
+        "fields": Allowed(lambda name: isinstance(name, str) and name != "",
+                          "a variable name (a non-empty string)", each=True, empty=False),
     },
     "advect": {
         "starts": Allowed(_start, "[lat, lon] or [lat, lon, level] of finite numbers with lat "
@@ -206,11 +218,17 @@ VALUES: dict[str, dict[str, Allowed]] = {
     "maps": {
         "levels": Allowed(_finite, "a finite number", each=True),
     },
+    "output": {
+        "precision": _one_of(PRECISIONS),
+        "compression": _one_of(COMPRESSIONS),
+    },
     "run": {
         "workers": _AT_LEAST_1,
     },
 }
 STAGES = ("decompose", "advect", "ftle", "circulation", "maps")
+#: Keys of ``[output]`` that say how every output stores its data (see flowpipe.write).
+STORAGE_KEYS = ("precision", "compression", "compression_level", "significant_digits")
 TEMPLATE_FIELDS = {
     "decompose": {"stem", "run", "lead"},
     "advect": {"stem", "run", "lead"},
@@ -374,6 +392,12 @@ def _check_values(config: Config, text: str) -> None:
                               f"{item} matches no file (paths are relative to the config file)")
         inputs.extend(Path(m).resolve() for m in matches)
     config.inputs = list(dict.fromkeys(inputs))
+    storage = config.tables["output"]
+    try:
+        check_encoding(storage["precision"], storage["compression"],
+                       storage["compression_level"], storage["significant_digits"])
+    except UsageError as exc:
+        raise ConfigError(f"{_where(cfg_path, text, 'output', None)}: [output] {exc}") from None
     for stage, fields_allowed in TEMPLATE_FIELDS.items():
         if stage in config.tables:
             check_template(config.tables[stage]["output"], fields_allowed,
@@ -394,12 +418,19 @@ def _check_values(config: Config, text: str) -> None:
             raise ConfigError(f"{_where(cfg_path, text, 'decompose', 'truncation')}: [decompose] "
                               "truncation applies to the spectral method only, not to method "
                               "\"regional\"; drop it or use method \"spectral\" or \"auto\"")
+        written = _decomposition_fields(dec["method"], dec["scheme"]) + tuple(WIND_PRODUCTS)
+        if dec["fields"] is not None:
+            refusal = _refusal("[decompose] fields", dec["fields"], _one_of(written, each=True))
+            if refusal:
+                raise ConfigError(f"{_where(cfg_path, text, 'decompose', 'fields')}: {refusal} "
+                                  f"(the fields of [decompose] method \"{dec['method']}\")")
+            written = tuple(dec["fields"])
         if "maps" in config.tables:
-            fields = _one_of(_decomposition_fields(dec["method"], dec["scheme"]), each=True)
-            refusal = _refusal("[maps] fields", config.tables["maps"]["fields"], fields)
+            refusal = _refusal("[maps] fields", config.tables["maps"]["fields"],
+                               _one_of(written, each=True))
             if refusal:
                 raise ConfigError(f"{_where(cfg_path, text, 'maps', 'fields')}: {refusal} "
-                                  f"(the fields of [decompose] method \"{dec['method']}\")")
+                                  f"(the fields [decompose] writes)")
 
 
 def _check_circulation(config: Config, text: str) -> None:

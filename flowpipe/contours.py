@@ -682,7 +682,7 @@ def circulation(wind: xr.Dataset, contours: Sequence[Contour | MovingCircle], *,
             kwargs={"pressure": pa, "surface": surface_omega,
                     "top": top_omega if obrien else None},
             dask="parallelized", output_dtypes=[float])
-    ds = ds.transpose(*[d for d in ("time", "level", "contour") if d in ds.dims])
+    ds = ds.transpose(..., *[d for d in ("time", "level", "contour") if d in ds.dims])
     _describe(ds, first, grid, pressure, obrien, surface_omega, top_omega)
     if moving:
         _centres(ds, contours, wind.time)

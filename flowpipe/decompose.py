@@ -22,6 +22,7 @@ from .annotate import figure, global_attrs, variable_attrs
 from .constants import EARTH_RADIUS
 from .errors import InputError, UsageError
 from .grid import GridInfo, describe_grid
+from .ingest import with_input_precision
 from .masked import MASKED_POINTS, UNRESOLVED_VARIABLES, masked_helmholtz_slab
 
 METHODS = ("auto", "spectral", "regional")
@@ -130,6 +131,7 @@ def decompose(
             raise UsageError(f"options {', '.join(sorted(regional_options))} apply to the "
                              "regional method only; drop them or use --method regional")
         parts = _decompose_spectral(wind, grid, truncation, 0 if masked else missing, masked)
+    parts = with_input_precision(parts, wind)
     return parts.isel(latitude=slice(None, None, -1)) if descending else parts
 
 

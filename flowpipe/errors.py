@@ -126,6 +126,13 @@ def from_os_error(exc: OSError, path: str | os.PathLike | None = None,
     code = exc.errno
     if code in (errno.EACCES, errno.EPERM) and name and read_only(name):
         code = errno.EROFS  # as some libraries (HDF5) report a read-only file system
-    what, todo = _OS_ADVICE.get(code, (exc.strerror or str(exc), "check the path"))
-    prefix = f"{name}: " if name else ""
+    return os_problem(code, name, exc.strerror or str(exc))
+
+
+def os_problem(code: int | None, path: str | os.PathLike | None,
+               what: str = "") -> EnvironmentProblem:
+    """One line for an operating-system condition by its errno: the path, what is wrong,
+    what to do (``what`` when the errno has no advice of its own)."""
+    what, todo = _OS_ADVICE.get(code, (what or os.strerror(code or 0), "check the path"))
+    prefix = f"{path}: " if path else ""
     return EnvironmentProblem(f"{prefix}{what}; {todo}")

@@ -45,7 +45,7 @@ import cf_xarray  # noqa: F401  (registers the .cf accessor)
 import numpy as np
 import xarray as xr
 
-from .annotate import iso_time
+from .annotate import CANONICAL_COORDINATES, iso_time
 from .errors import FlowpipeWarning, InputError, UsageError
 
 #: Standard names that identify the eastward and northward wind (CF 1.11
@@ -61,7 +61,10 @@ VERTICAL_VELOCITIES = (
     ("w", "upward_air_velocity", "m s-1", ("w", "wa", "W")),
 )
 CANONICAL_DIMS = ("time", "level", "latitude", "longitude")
-DEFAULT_CHUNKS = {"time": 1, "level": 1, "latitude": -1, "longitude": -1}
+DEFAULT_CHUNKS = {"realization": 1, "time": 1, "level": 1, "latitude": -1, "longitude": -1}
+#: Ensemble members: the CF standard name ``realization`` (CF 1.11 standard-name table),
+#: else a dimension of one of these names (*common practice*; ``number`` is GRIB's key).
+MEMBER_NAMES = ("realization", "member", "ensemble_member", "ensemble", "ens", "number")
 
 #: Largest plausible horizontal wind speed, m s-1. The largest speeds ever analysed in the
 #: atmosphere are about 135 m s-1 (Doppler radar in the Bridge Creek-Moore tornado of
@@ -105,13 +108,15 @@ def open_wind(
     allow_gaps: bool = False,
     run: str | None = None,
     leads: Iterable[float] | None = None,
+    members: Iterable[int] | None = None,
 ) -> xr.Dataset:
     """Open one file, several files or a glob as one canonical wind Dataset.
 
     Parameters
     ----------
     paths : str, path or iterable of them
-        NetCDF files or glob patterns. Several files are combined along time.
+        NetCDF or GRIB files (told apart by their first bytes) or glob patterns.
+        Several files are combined along time.
     u, v : str, optional
         Names of the eastward and northward wind variables, when they cannot
         be found by CF standard name or common short name.
@@ -138,6 +143,9 @@ def open_wind(
         runs whose valid times overlap are refused (choose one).
     leads : iterable of float, optional
         Keep only these lead times (``forecast_period``), in hours.
+    members : iterable of int, optional
+        Keep only these ensemble members (values of ``realization``), in this
+        order; the dimension stays, also for one member.
 
     Returns
     -------
@@ -164,6 +172,7 @@ def open_wind(
     ds = _combine([k[0] for k in kept], [k[1] for k in kept],
                   allow_gaps or wanted_leads is not None)
     ds = _single_run(ds)
+    ds = _select_members(ds, members, files)
     wanted = dict(DEFAULT_CHUNKS)
     wanted.update(chunks or {})
     ds = ds.chunk({d: c for d, c in wanted.items() if d in ds.dims})
@@ -231,7 +240,7 @@ def open_netcdf(path: Path, **options) -> xr.Dataset:
             offset = 512 if offset == 0 else 2 * offset
     if not (netcdf3 or hdf5):
         raise InputError(f"{path}: is not a NetCDF file (neither NetCDF-3 nor NetCDF-4/HDF5 "
-                         "by its first bytes); check the path")
+                         "nor GRIB by its first bytes); check the path")
     _check_classic_size(path)
     try:
         return xr.open_dataset(path, decode_times=xr.coders.CFDatetimeCoder(use_cftime=None),
@@ -244,6 +253,81 @@ def open_netcdf(path: Path, **options) -> xr.Dataset:
         ) from exc
 
 
+#: First bytes of a GRIB message (edition 1 or 2): the four letters "GRIB".
+GRIB_SIGNATURE = b"GRIB"
+GRIB_INSTALL = "pip install 'flowpipe[grib]'"
+
+
+def is_grib(path: Path) -> bool:
+    """Whether a file begins with a GRIB message (by its first bytes, not its name).
+
+    References
+    ----------
+    WMO (2019), Manual on Codes, Volume I.2 (WMO-No. 306), FM 92 GRIB edition 2,
+    section 0: octets 1-4 are "GRIB" (CCITT IA5).
+    """
+    try:
+        with open(path, "rb") as handle:
+            return handle.read(4) == GRIB_SIGNATURE
+    except OSError:
+        return False  # open_netcdf names the reason
+
+
+def open_grib(path: Path, u: str | None = None, v: str | None = None) -> xr.Dataset:
+    """A GRIB file as a lazily loaded Dataset, read by cfgrib (on ecCodes).
+
+    cfgrib names the axes by CF standard names: ``forecast_reference_time``
+    (``time``), ``forecast_period`` (``step``), ``time`` (``valid_time``),
+    ``air_pressure`` (``isobaricInhPa``, hPa), ``realization`` (``number``) and
+    ``eastward_wind`` / ``northward_wind`` for u and v, so the file goes through
+    the same ingest as NetCDF. No index file is written beside the input, and a
+    damaged message is an error. When the file holds several hypercubes (say
+    pressure levels and 10 m winds), the one with the most wind values is taken.
+
+    Raises
+    ------
+    flowpipe.errors.InputError
+        When cfgrib or ecCodes is not installed (the message says how to install
+        them) or the file cannot be decoded.
+
+    References
+    ----------
+    cfgrib documentation, "Dataset / Variable API" (the ``cfgrib`` xarray engine,
+    ``indexpath``, ``open_datasets``); ecCodes GRIB decoding.
+    """
+    try:
+        import cfgrib
+    except (ImportError, RuntimeError):  # RuntimeError: cfgrib without the ecCodes library
+        raise InputError(f"{path}: is a GRIB file; reading GRIB needs the optional readers: "
+                         f"{GRIB_INSTALL}") from None
+    # never an index file beside an input; a damaged message is an error, not left out
+    backend = {"indexpath": "", "errors": "raise"}
+    try:
+        try:
+            return xr.open_dataset(path, engine="cfgrib", chunks={}, backend_kwargs=backend)
+        except cfgrib.dataset.DatasetBuildError:
+            with warnings.catch_warnings():  # xarray's notices about cfgrib's own merges
+                warnings.simplefilter("ignore", FutureWarning)
+                cubes = cfgrib.open_datasets(path, backend_kwargs=backend, chunks={})
+    except Exception as exc:  # ecCodes raises many types for undecodable messages
+        reason = str(exc).splitlines()[0] if str(exc) else type(exc).__name__
+        raise InputError(f"{path}: cannot be read as GRIB ({reason}); check that the file "
+                         "is complete") from exc
+    sizes = {}
+    for i, cube in enumerate(cubes):
+        un = _find_variable(cube, u, U_STANDARD_NAMES, U_SHORT_NAMES)
+        if un is not None and _find_variable(cube, v, V_STANDARD_NAMES, V_SHORT_NAMES):
+            sizes[i] = cube[un].size
+    return cubes[max(sizes, key=sizes.get)] if sizes else cubes[0]  # else _canonical says
+
+
+def open_input(path: Path, u: str | None = None, v: str | None = None) -> xr.Dataset:
+    """A NetCDF or GRIB file (told apart by its first bytes) as a lazy Dataset."""
+    if is_grib(path):
+        return open_grib(path, u, v)
+    return open_netcdf(path, chunks={})
+
+
 def _open_parts(files: list[Path], u: str | None, v: str | None
                 ) -> tuple[list[xr.Dataset], list[Path]]:
     """The canonical pieces of every file (one per run of a runs x leads file), and the
@@ -251,7 +335,7 @@ def _open_parts(files: list[Path], u: str | None, v: str | None
     parts: list[xr.Dataset] = []
     owners: list[Path] = []
     for path in files:
-        raw = open_netcdf(path, chunks={})
+        raw = open_input(path, u, v)
         try:
             pieces = [_canonical(piece, path, u, v) for piece in forecast_pieces(raw, path)]
         except InputError:
@@ -357,6 +441,7 @@ def _canonical(raw: xr.Dataset, path: Path, u_name: str | None, v_name: str | No
         if new != old and new in ds.variables and new not in renames:
             ds = ds.drop_vars(new)
     ds = ds.rename(renames)
+    ds = _members(ds, un)
     ds = _forecast_coordinates(ds, path)
     spatial = set(ds[un].dims)
     keep = [name for name in ds.data_vars if set(ds[name].dims) <= spatial and
@@ -375,6 +460,56 @@ def _canonical(raw: xr.Dataset, path: Path, u_name: str | None, v_name: str | No
     if "title" in raw.attrs:
         ds.attrs["input_title"] = str(raw.attrs["title"])
     return ds
+
+
+def _members(ds: xr.Dataset, un: str) -> xr.Dataset:
+    """The ensemble-member dimension of ``un`` (if any) as ``realization``, CF-labelled.
+
+    A scalar ``realization`` coordinate (one member in the file) becomes a dimension of
+    length 1, so members of several files are told apart.
+
+    References
+    ----------
+    CF Conventions 1.11, standard-name table: ``realization``, "used to label a
+    dimension that can be thought of as a statistical sample, e.g., labelling members
+    of a model ensemble".
+    """
+    dims = [str(d) for d in ds[un].dims]
+    labelled = [d for d in dims if d in ds.variables
+                and ds[d].attrs.get("standard_name") == "realization"]
+    member = next(iter(labelled), next((n for n in MEMBER_NAMES if n in dims), None))
+    if member is None:
+        scalar = [n for n in ds.coords if ds[n].ndim == 0
+                  and ds[n].attrs.get("standard_name") == "realization"]
+        if not scalar:
+            return ds
+        ds = ds.expand_dims(scalar[0])
+        member = scalar[0]
+    values = ds[member].values if member in ds.variables else np.arange(ds.sizes[member])
+    ds = ds.drop_vars([member], errors="ignore")
+    if member != "realization":
+        ds = ds.drop_vars(["realization"], errors="ignore").rename({member: "realization"})
+    attrs = dict(CANONICAL_COORDINATES["realization"])
+    return ds.assign_coords(realization=("realization", values, attrs))
+
+
+def _select_members(ds: xr.Dataset, members: Iterable[int] | None,
+                    files: list[Path]) -> xr.Dataset:
+    """The chosen ensemble members (values of ``realization``)."""
+    if members is None:
+        return ds
+    wanted = list(members)
+    where = f"{files[0]}{' ...' if len(files) > 1 else ''}"
+    if "realization" not in ds.dims:
+        raise InputError(f"{where}: has no ensemble members (no realization dimension); leave "
+                         "out --members (config: [input] members)")
+    present = list(ds["realization"].values)
+    missing = [m for m in wanted if m not in present]
+    if missing or not wanted:
+        raise InputError(f"{where}: member(s) {', '.join(map(str, missing)) or 'none'} not in "
+                         f"the input; members present (realization): "
+                         f"{', '.join(map(str, present))}")
+    return ds.isel(realization=[present.index(m) for m in wanted])
 
 
 #: Names of the forecast axes: CF 1.11 standard names first (standard-name table), then
@@ -657,8 +792,36 @@ def _velocity(da: xr.DataArray, path: Path, name: str, target: str) -> xr.DataAr
     out.attrs["units"] = target
     out.attrs["source_name"] = name
     out.attrs["source_units"] = units
-    out.encoding = {}
+    # the precision the file stored the values in: what the outputs follow by default
+    out.encoding = {"dtype": stored_precision(da)}
     return out
+
+
+def stored_precision(da: xr.DataArray) -> np.dtype:
+    """The floating-point type that holds a variable's values as its file stored them.
+
+    Single precision for 32-bit floats and for integers of 16 bits or fewer packed
+    with ``scale_factor``/``add_offset`` (at most 4.8 significant digits, CF 1.11
+    section 8.1); double precision otherwise.
+    """
+    stored = np.dtype(da.encoding.get("dtype", da.dtype))
+    if (stored.kind == "f" and stored.itemsize <= 4) or (stored.kind in "iu" and stored.itemsize <= 2):
+        return np.dtype(np.float32)
+    return np.dtype(np.float64)
+
+
+def with_input_precision(result: xr.Dataset, wind: xr.Dataset) -> xr.Dataset:
+    """``result`` with its floating-point variables to be stored as precisely as ``wind``'s.
+
+    Sets the xarray ``dtype`` encoding, which :func:`flowpipe.write` (precision
+    ``"input"``) and plain ``to_netcdf``/``to_zarr`` both honour; computation stays
+    in double precision, so results are exact to the stored precision's rounding.
+    """
+    dtype = stored_precision(wind["u"])
+    for var in result.data_vars.values():
+        if var.dtype.kind == "f":
+            var.encoding["dtype"] = dtype
+    return result
 
 
 def _to_canonical_variables(ds: xr.Dataset, path: Path, un: str, vn: str) -> xr.Dataset:
@@ -820,18 +983,16 @@ def _probe(ds: xr.Dataset, path: Path) -> None:
 
 
 def _combine(parts: list[xr.Dataset], files: list[Path], allow_gaps: bool = False) -> xr.Dataset:
+    by_members: dict[tuple, list[int]] = {}
+    for i, part in enumerate(parts):
+        if "realization" in part.dims:
+            by_members.setdefault(tuple(part["realization"].values.tolist()), []).append(i)
+    if len(by_members) > 1 and sum(map(len, by_members.values())) == len(parts):
+        return _combine_members([_combine([parts[i] for i in group], [files[i] for i in group],
+                                          allow_gaps) for group in by_members.values()],
+                                [files[group[0]] for group in by_members.values()])
     first = parts[0]
-    for part, path in zip(parts[1:], files[1:], strict=True):
-        for coord in ("latitude", "longitude", "level"):
-            a = first[coord].values if coord in first.coords else None
-            b = part[coord].values if coord in part.coords else None
-            same = (a is None and b is None) or (
-                a is not None and b is not None and a.shape == b.shape and np.allclose(a, b))
-            if not same:
-                raise InputError(f"{path}: its {coord} differs from that of {files[0]}; "
-                                 "files combined in one run must share one grid")
-        if set(part.data_vars) != set(first.data_vars):
-            raise InputError(f"{path}: its variables differ from those of {files[0]}")
+    _same_grid(parts, files, ("latitude", "longitude", "level", "realization"))
     if len(parts) == 1:
         if "time" in first.dims:  # one file: its own times, each once
             values, counts = np.unique(first["time"].values, return_counts=True)
@@ -860,6 +1021,43 @@ def _combine(parts: list[xr.Dataset], files: list[Path], allow_gaps: bool = Fals
     if not np.array_equal(order, np.arange(order.size)):
         ds = ds.isel(time=order)
     return ds
+
+
+def _same_grid(parts: list[xr.Dataset], files: list[Path], coords: tuple[str, ...]) -> None:
+    """Refuse parts whose coordinates ``coords`` or variables differ from the first's."""
+    first = parts[0]
+    for part, path in zip(parts[1:], files[1:], strict=True):
+        for coord in coords:
+            a = first[coord].values if coord in first.coords else None
+            b = part[coord].values if coord in part.coords else None
+            same = (a is None and b is None) or (
+                a is not None and b is not None and a.shape == b.shape and np.allclose(a, b))
+            if not same:
+                raise InputError(f"{path}: its {coord} differs from that of {files[0]}; "
+                                 "files combined in one run must share one grid")
+        if set(part.data_vars) != set(first.data_vars):
+            raise InputError(f"{path}: its variables differ from those of {files[0]}")
+
+
+def _combine_members(ensemble: list[xr.Dataset], files: list[Path]) -> xr.Dataset:
+    """Files of different ensemble members (one file, or series, per member) as one
+    Dataset along ``realization``: the same grid and times in each, no member twice."""
+    _same_grid(ensemble, files, ("latitude", "longitude", "level"))
+    values = np.concatenate([part["realization"].values for part in ensemble])
+    unique, counts = np.unique(values, return_counts=True)
+    if (counts > 1).any():
+        raise InputError(f"{files[0]} ...: member {unique[np.argmax(counts > 1)]} (realization) "
+                         "is given by more than one group of files; give each member once")
+    for part, path in zip(ensemble[1:], files[1:], strict=True):
+        a = ensemble[0]["time"].values if "time" in ensemble[0].dims else None
+        b = part["time"].values if "time" in part.dims else None
+        if not (a is None and b is None) and not (
+                a is not None and b is not None and np.array_equal(a, b)):
+            raise InputError(f"{path}: its times differ from those of {files[0]}, another "
+                             "ensemble member; give every member for the same times")
+    ds = xr.concat(ensemble, dim="realization", data_vars="all", coords="minimal",
+                   compat="override", join="override", combine_attrs="drop_conflicts")
+    return ds.isel(realization=np.argsort(values, kind="stable"))
 
 
 def _overlapping_runs(ds: xr.Dataset, i: int, j: int, path: Path) -> None:

@@ -23,7 +23,8 @@ def describe_wind(wind: xr.Dataset) -> dict:
     The keys are those of the contract's ``inspect --json`` (``u``, ``v``,
     ``grid``, ``latitudes``, ``poles``, ``pole_rows``, ``nlat``, ``nlon``, ``levels``,
     ``times``) and a few more; ``run`` is the forecast run the Dataset holds (ISO
-    8601, ``None`` when it holds no forecast or several runs).
+    8601, ``None`` when it holds no forecast or several runs); ``members`` the number of
+    ensemble members (``realization``), ``None`` without them.
     """
     grid = describe_grid(wind)
     vertical = next((n for n in ("omega", "w") if n in wind), None)
@@ -38,6 +39,10 @@ def describe_wind(wind: xr.Dataset) -> dict:
         "levels": [float(x) for x in wind["level"].values] if "level" in wind.dims else None,
         "level_units": wind["level"].attrs.get("units") if "level" in wind.dims else None,
         "times": int(times.size),
+        "members": int(wind.sizes["realization"]) if "realization" in wind.dims else None,
+        "realizations": ([int(m) if np.issubdtype(wind["realization"].dtype, np.integer)
+                          else str(m) for m in wind["realization"].values]
+                         if "realization" in wind.dims else None),
         "time_range": [_time_text(times[0]), _time_text(times[-1])] if times.size else None,
         "calendar": (wind["time"].encoding.get("calendar", "standard")
                      if "time" in wind.dims else None),

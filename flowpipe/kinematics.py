@@ -26,6 +26,7 @@ from .decompose import (
 )
 from .errors import InputError
 from .grid import describe_grid
+from .ingest import with_input_precision
 
 #: Output variables, in kernel output order (attributes in :data:`flowpipe.annotate.VARIABLES`).
 KINEMATIC_VARIABLES = ("absolute_vorticity", "stretching_deformation", "shearing_deformation",
@@ -154,4 +155,5 @@ def kinematics(
         references=SPECTRAL_REFERENCES)
     out.attrs.update(method="spectral", truncation_N=n, ducc0_geometry=geometry,
                      earth_radius=EARTH_RADIUS, earth_rotation_rate=EARTH_ROTATION_RATE)
+    out = with_input_precision(out, wind)
     return out.isel(latitude=slice(None, None, -1)) if descending else out

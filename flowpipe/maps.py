@@ -57,8 +57,10 @@ from .ingest import (  # noqa: E402
     canonical_levels,
     find_coordinate,
     forecast_variable,
+    is_grib,
     lead_hours,
     open_netcdf,
+    open_wind,
     parse_iso,
     run_text,
 )
@@ -109,8 +111,31 @@ COLOUR_BAR_BOX = (1.03, 0.0, 0.025, 1.0)
 AREA_SPAN = 120.0
 #: A domain round the globe that stays poleward of this latitude is a polar cap.
 CAP_EDGE = 15.0
-#: Arrows across the map's shorter side.
-ARROWS = 20
+#: Arrows on a map, about: evenly spaced on the sphere whatever the domain's shape.
+ARROWS = 400
+
+#: One knot in m s-1: the international nautical mile of 1852 m per hour (exact by
+#: definition; BIPM SI Brochure, 9th ed., 2019, table 8 - from memory).
+KNOT = 1852.0 / 3600.0
+#: Start markers drawn at most (every k-th start beyond).
+MAX_STARTS = 200
+#: Tracks whose time marks are labelled with their hours.
+LABELLED_TRACKS = 3
+#: End markers by trajectory status (flowpipe.parcels status flags): marker, fill from
+#: the colour-blind-safe palette of Okabe & Ito (2008, "Color Universal Design").
+END_MARKERS = {
+    "completed": ("s", "white"),
+    "left_domain": ("X", "#e69f00"),
+    "reached_lowest_level": ("v", "#56b4e9"),
+    "reached_highest_level": ("^", "#56b4e9"),
+    "met_missing_wind": ("D", "#cc79a7"),
+}
+
+#: Relative rounding level of a field, by the bytes of the type it is stored in:
+#: about ten times the unit roundoff of binary32 (6e-8) for single precision; for
+#: double, the accuracy the spectral decomposition holds on analytic winds
+#: (1e-10 of the wind, tests/test_decompose.py). *Common practice.*
+ROUNDING = {4: 1e-6, 8: 1e-10}
 
 
 class MapWarning(FlowpipeWarning):
@@ -127,7 +152,10 @@ def render(
     *,
     run: str | None = None,
     lead: float | None = None,
+    member: int | None = None,
     dpi: int = 100,
+    barbs: bool = False,
+    marks_hours: float = 6.0,
 ) -> Figure:
     """Draw a map of a file or Dataset and return the matplotlib figure.
 
@@ -156,6 +184,17 @@ def render(
         Lead time (``forecast_period``) in hours. With ``run`` and ``time``, the
         first time that matches all that are given is drawn; the title names
         the run and lead of forecasts ("run 2026-12-01T00Z +24 h, valid ...").
+    barbs : bool
+        Draw the wind as barbs in knots instead of arrows (the meteorological
+        convention, *common practice*: a pennant 50 kn, a full barb 10 kn, a
+        half barb 5 kn; matplotlib's ``barbs`` increments).
+    marks_hours : float
+        Track maps: a dot on each track every this many hours of travel,
+        labelled on the first few tracks.
+    member : int, optional
+        Ensemble member (value of the ``realization`` coordinate) to draw: its
+        field (default: the first member), or only its tracks (default: the
+        tracks of every member).
 
     Returns
     -------
@@ -176,19 +215,43 @@ def render(
         if level is not None or time is not None or run is not None or lead is not None:
             raise UsageError(f"{label}: level, time, run and lead do not apply to a trajectory "
                              "file; leave them out")
-        _track_map(fig, ds, label, field, projection)
+        _track_map(fig, ds, label, field, projection, marks_hours, member)
     else:
-        _field_map(fig, ds, label, field, level, (time, run, lead), projection)
+        _field_map(fig, ds, label, field, level, (time, run, lead), projection, barbs, member)
     fig.text(0.005, 0.005, f"{Path(label).name} | flowpipe {__version__} | {CAUTION_SHORT}",
              fontsize=6, color="0.3", ha="left", va="bottom")
     return fig
 
 
 def save(fig: Figure, path: str | os.PathLike, protect: Iterable[str | os.PathLike] = ()) -> Path:
-    """Write a figure to a PNG file atomically, at the figure's own size."""
+    """Write a figure atomically, at the figure's own size, in the format its suffix names.
+
+    Raises
+    ------
+    flowpipe.errors.UsageError
+        For a suffix that is not one of :func:`image_formats`.
+    """
+    fmt = image_format(path)
     with atomic_path(path, protect) as tmp:
-        fig.savefig(tmp, format="png", dpi=fig.dpi)
+        fig.savefig(tmp, format=fmt, dpi=fig.dpi)
     return Path(path)
+
+
+def image_formats() -> dict[str, str]:
+    """The image formats matplotlib writes here, by file suffix (``png``, ``pdf``, ``svg``, ...)."""
+    return Figure().canvas.get_supported_filetypes()
+
+
+def image_format(path: str | os.PathLike) -> str:
+    """The format of an image file name, from its suffix; refused when matplotlib cannot
+    write it (one-line :class:`~flowpipe.errors.UsageError`)."""
+    suffix = Path(path).suffix.lower().lstrip(".")
+    formats = image_formats()
+    if suffix not in formats:
+        raise UsageError(f"{path}: a map is written as {', '.join('.' + f for f in formats)}; "
+                         f"{'.' + suffix if suffix else 'no suffix'} is none of them: end the "
+                         "name in .png, say")
+    return suffix
 
 
 def _open(source: str | os.PathLike | xr.Dataset) -> tuple[xr.Dataset, str]:
@@ -199,6 +262,8 @@ def _open(source: str | os.PathLike | xr.Dataset) -> tuple[xr.Dataset, str]:
     path = Path(source)
     if not path.is_file():
         raise InputError(f"{path}: no such file")
+    if is_grib(path):  # a model's GRIB output: its wind, in the canonical form
+        return open_wind(path), str(path)
     return open_netcdf(path), str(path)
 
 
@@ -488,9 +553,31 @@ def _wind_names(ds: xr.Dataset, field: str) -> tuple[str, str] | None:
     return pair
 
 
+def _members(ds: xr.Dataset, dims: tuple, label: str, member: int | None
+             ) -> tuple[Hashable | None, np.ndarray | None]:
+    """The ensemble-member dimension among ``dims`` (CF standard name ``realization``) and
+    the positions along it of ``member`` (all members when None)."""
+    name = next((d for d in dims if d in ds.variables
+                 and ds[d].attrs.get("standard_name") == "realization"), None)
+    if name is None:
+        if member is not None:
+            raise InputError(f"{label}: has no ensemble members (no realization coordinate); "
+                             "leave out the member")
+        return None, None
+    values = ds[name].values
+    if member is None:
+        return name, np.arange(values.size)
+    hits = np.flatnonzero(values == member)
+    if not hits.size:
+        raise InputError(f"{label}: member {member} is not in the file; members (realization): "
+                         f"{', '.join(map(str, np.unique(values)))}")
+    return name, hits
+
+
 def _field_map(fig: Figure, ds: xr.Dataset, label: str, field: str | None, level: float | None,
                when: tuple[str | None, str | None, float | None],
-               projection: str | ccrs.Projection | None) -> None:
+               projection: str | ccrs.Projection | None, barbs: bool = False,
+               member: int | None = None) -> None:
     mappable = _mappable(ds)
     if not mappable:
         raise InputError(f"{label}: no variable has latitude/longitude coordinates to map "
@@ -505,6 +592,10 @@ def _field_map(fig: Figure, ds: xr.Dataset, label: str, field: str | None, level
     da = ds[field]
     lat_name, lon_name = _horizontal(ds, da)
     indexers, words = _select(ds, da, label, level, when)
+    name, rows = _members(ds, da.dims, label, member)
+    if name is not None:
+        indexers[name] = int(rows[0])
+        words.append(f"member {ds[name].values[rows[0]]}")
     others = {d: 0 for d in da.dims if d not in (lat_name, lon_name, *indexers)}
     words += [f"{d} {ds[d].values[0] if d in ds.coords else 0}" for d in others]
     indexers.update(others)
@@ -522,6 +613,11 @@ def _field_map(fig: Figure, ds: xr.Dataset, label: str, field: str | None, level
     proj, extent = _domain_projection(lat, lon, projection, step)
     ax = _map_axes(fig, proj, extent)
 
+    rounding, companion = _rounding_level(ds, da, field, slab)
+    values = np.where(np.abs(values) <= rounding, 0.0, values)
+    if not np.any(values):  # nothing above rounding: say so rather than colour the noise
+        _zero_map(ax, da, field, words, rounding, companion)
+        return
     low, high = float(np.nanmin(values)), float(np.nanmax(values))
     names = (field, str(da.attrs.get("standard_name", "")))
     from_zero = _from_zero(field, da)
@@ -567,21 +663,62 @@ def _field_map(fig: Figure, ds: xr.Dataset, label: str, field: str | None, level
     if wind is not None:
         kind = wind[0][2:] if wind[0].startswith("u_") else ""
         title += f", with the {kind} wind".replace("  ", " ")
-        _arrows(ax, slab(wind[0]), slab(wind[1]), lat, lon)
+        _arrows(ax, slab(wind[0]), slab(wind[1]), lat, lon, barbs)
     ax.set_title(f"{title}\n{' | '.join(words)}", loc="left", fontsize=10)
+
+
+def _rounding_level(ds: xr.Dataset, da: xr.DataArray, field: str,
+                    slab) -> tuple[float, str]:
+    """Magnitude below which a slab's values are rounding noise, and what it is relative to.
+
+    :data:`ROUNDING` (by the precision the field is stored in) of the largest
+    magnitude among the slab's fields of the same units and dimensions: the
+    velocity potential of a non-divergent wind is measured against the
+    streamfunction, its divergence against the vorticity.
+    """
+    stored = np.dtype(da.encoding.get("dtype", da.dtype))
+    relative = ROUNDING.get(stored.itemsize, ROUNDING[8]) if stored.kind == "f" else 0.0
+    units = da.attrs.get("units")
+    largest, companion = 0.0, field
+    for name in ds.data_vars:
+        other = ds[name]
+        if other.dims != da.dims or other.attrs.get("units") != units:
+            continue
+        magnitude = float(np.nanmax(np.abs(np.asarray(slab(str(name)).values, dtype=float)),
+                                    initial=0.0))
+        if magnitude > largest:
+            largest, companion = magnitude, str(name)
+    return relative * largest, companion
+
+
+def _zero_map(ax, da: xr.DataArray, field: str, words: list[str], rounding: float,
+              companion: str) -> None:
+    """A field that is zero to rounding: an empty map whose title says so."""
+    units = _units_text(str(da.attrs.get("units", "")))
+    name = str(da.attrs.get("long_name") or field)
+    against = "its own" if companion == field else f"the {companion.replace('_', ' ')}'s"
+    ax.set_title(f"{name[:1].upper() + name[1:]}: zero to rounding (every value within "
+                 f"{rounding:.1e} {units} of zero, the rounding level of {against} largest "
+                 f"value)\n{' | '.join(words)}", loc="left", fontsize=10)
+    ax.text(0.5, 0.5, "zero to rounding", transform=ax.transAxes, ha="center", va="center",
+            fontsize=14, color="0.3")
 
 
 def _thinned(lat: np.ndarray, lon: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     """Row and column indices of grid points about evenly spaced on the sphere.
 
-    About :data:`ARROWS` points across the domain's shorter side; along each
-    row the column stride grows as 1/cos(latitude), so that arrows do not
-    crowd towards the poles. Pole rows are left out (no direction there).
+    About :data:`ARROWS` points over the domain, whatever its shape (a square
+    area, a long latitude band): their spacing is the square root of the
+    domain's area (in squared degrees of arc) per arrow. Along each row the
+    column stride grows as 1/cos(latitude), so that arrows do not crowd
+    towards the poles. Pole rows are left out (no direction there).
     """
     dlat = abs(float(np.median(np.diff(lat)))) if lat.size > 1 else 1.0
     dlon = abs(float(np.median(np.diff(lon)))) if lon.size > 1 else 1.0
-    centre = np.radians(np.clip(np.mean(lat), -80.0, 80.0))
-    spacing = max(min(np.ptp(lat), np.ptp(lon) * np.cos(centre)) / ARROWS, dlat, dlon)
+    phi = np.radians(np.clip(lat, -89.999, 89.999))
+    # area in squared degrees: longitude span x the integral of cos(latitude) over the rows
+    area = (np.ptp(lon) + dlon) * np.degrees(abs(np.sin(phi.max()) - np.sin(phi.min())))
+    spacing = max(np.sqrt(area / ARROWS), dlat, dlon)
     rows, cols = [], []
     for i in range(0, lat.size, max(1, round(spacing / dlat))):
         coslat = np.cos(np.radians(lat[i]))
@@ -594,18 +731,31 @@ def _thinned(lat: np.ndarray, lon: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     return np.concatenate(rows), np.concatenate(cols)
 
 
-def _arrows(ax, u: xr.DataArray, v: xr.DataArray, lat: np.ndarray, lon: np.ndarray) -> None:
-    """Thinned wind arrows with a reference arrow labelled with its speed."""
+def _arrows(ax, u: xr.DataArray, v: xr.DataArray, lat: np.ndarray, lon: np.ndarray,
+            barbs: bool = False) -> None:
+    """Thinned wind arrows with a reference arrow labelled with its speed (or barbs)."""
     uu = np.asarray(u.values, dtype=np.float64)
     vv = np.asarray(v.values, dtype=np.float64)
     speed = np.hypot(uu, vv)
     if not np.isfinite(speed).any() or np.nanmax(speed) == 0:
         return
-    reference = _nice(float(np.nanpercentile(speed, 90)))
     rows, cols = _thinned(lat, lon)
+    if barbs:
+        # barbs on the side of lower pressure: flipped in the southern hemisphere
+        ax.barbs(lon[cols], lat[rows], uu[rows, cols] / KNOT, vv[rows, cols] / KNOT,
+                 transform=ccrs.PlateCarree(), length=5, linewidth=0.7, color="white",
+                 zorder=4, barb_increments={"half": 5, "full": 10, "flag": 50},
+                 flip_barb=lat[rows] < 0,
+                 path_effects=[patheffects.withStroke(linewidth=1.8, foreground="black")])
+        ax.text(0.55, 1.03, "wind barbs in kn: pennant 50, barb 10, half barb 5",
+                transform=ax.transAxes, fontsize=8)
+        return
+    reference = _nice(float(np.nanpercentile(speed, 90)))
+    (x0, x1), (y0, y1) = ax.get_xlim(), ax.get_ylim()
+    across = np.sqrt(ARROWS * abs(x1 - x0) / abs(y1 - y0))  # arrows along the map's width
     arrows = ax.quiver(lon[cols], lat[rows], uu[rows, cols], vv[rows, cols],
                        transform=ccrs.PlateCarree(), color="white", edgecolor="black",
-                       linewidth=0.5, zorder=4, scale=float(np.nanpercentile(speed, 99)) * ARROWS * 1.2,
+                       linewidth=0.5, zorder=4, scale=float(np.nanpercentile(speed, 99)) * across * 1.2,
                        scale_units="width", width=0.0022)
     ax.quiverkey(arrows, X=0.8, Y=1.03, U=reference, label=f"{reference:g} m s$^{{-1}}$",
                  labelpos="E", coordinates="axes", fontproperties={"size": 8},
@@ -640,7 +790,11 @@ def _track_variables(ds: xr.Dataset, label: str) -> dict[str, xr.DataArray]:
 
 
 def _track_map(fig: Figure, ds: xr.Dataset, label: str, field: str | None,
-               projection: str | ccrs.Projection | None) -> None:
+               projection: str | ccrs.Projection | None, marks: float = 6.0,
+               member: int | None = None) -> None:
+    name, rows = _members(ds, tuple(ds.coords), label, member)
+    if name is not None:
+        ds = ds.isel({ds[name].dims[0]: rows})
     found = _track_variables(ds, label)
     lat = np.asarray(found["latitude"].values, dtype=np.float64)
     lon = np.asarray(found["longitude"].values, dtype=np.float64)
@@ -688,10 +842,19 @@ def _track_map(fig: Figure, ds: xr.Dataset, label: str, field: str | None,
     lines = LineCollection(segments[keep], array=middle[keep], cmap=TRACKS, norm=norm,
                            linewidths=1.8, zorder=4, transform=proj)
     ax.add_collection(lines)
-    first = np.argmax(np.isfinite(lat) & np.isfinite(lon), axis=1)
+    _domain_outline(ax, ds)
+    if elapsed is not None:
+        _time_marks(ax, lat, lon, elapsed, marks)
+    valid = np.isfinite(lat) & np.isfinite(lon)
+    first = np.argmax(valid, axis=1)
+    last = lat.shape[1] - 1 - np.argmax(valid[:, ::-1], axis=1)
     rows = np.arange(lat.shape[0])
-    ax.scatter(lon[rows, first], lat[rows, first], transform=ccrs.PlateCarree(), marker="o",
-               s=28, facecolor="white", edgecolor="black", linewidth=1.0, zorder=5, label="start")
+    every = max(1, -(-rows.size // MAX_STARTS))
+    shown = rows[::every]
+    ax.scatter(lon[shown, first[shown]], lat[shown, first[shown]], transform=ccrs.PlateCarree(),
+               marker="o", s=28, facecolor="white", edgecolor="black", linewidth=1.0, zorder=5,
+               label="start" if every == 1 else f"start (1 in {every} of {rows.size})")
+    _end_markers(ax, ds, lat[rows, last], lon[rows, last])
     ax.legend(loc="lower left", fontsize=7, framealpha=0.8)
     bar = _colour_bar(fig, ax, lines)
     bar.set_label(colour_label)
@@ -699,8 +862,70 @@ def _track_map(fig: Figure, ds: xr.Dataset, label: str, field: str | None,
         bar.ax.invert_yaxis()  # pressure: higher in the atmosphere at the top
     level = next((ds[n] for n in ds.coords if ds[n].ndim == 0 and ds[n].attrs.get("axis") == "Z"),
                  None)
-    ax.set_title(_track_title(lat.shape[0], times, elapsed, colour_label, level), loc="left",
-                 fontsize=10)
+    title = _track_title(lat.shape[0], times, elapsed, colour_label, level)
+    if name is not None:
+        count = np.unique(ds[name].values).size
+        head, newline, rest = title.partition("\n")
+        title = (f"{head}, member {member}" if member is not None else
+                 f"{head}, {count} member{'s' if count != 1 else ''}") + newline + rest
+    ax.set_title(title, loc="left", fontsize=10)
+
+
+def _domain_outline(ax, ds: xr.Dataset) -> None:
+    """The edges of the input's domain (attributes of flowpipe trajectory files), where
+    it has edges: a limited area's four sides, a latitude band's two circles."""
+    lat_range, lon_range = ds.attrs.get("input_latitude_range"), ds.attrs.get("input_longitude_range")
+    if lat_range is None or lon_range is None:
+        return
+    (south, north), (west, east) = np.ravel(lat_range)[:2], np.ravel(lon_range)[:2]
+    east = east if east > west else east + 360.0
+    round_globe = east - west >= WRAP_SPAN
+    sides = []
+    if not round_globe:
+        lats = np.linspace(south, north, 90)
+        sides += [(np.full_like(lats, west), lats), (np.full_like(lats, east), lats)]
+    lons = np.linspace(west, west + 360.0 if round_globe else east, 361)
+    sides += [(lons, np.full_like(lons, edge)) for edge in (south, north) if abs(edge) < 89.0]
+    for number, (x, y) in enumerate(sides):
+        ax.plot(x, y, transform=ccrs.PlateCarree(), color="0.25", linestyle="--", linewidth=1.0,
+                zorder=3, label="edge of the input's domain" if number == 0 else None)
+
+
+def _time_marks(ax, lat: np.ndarray, lon: np.ndarray, elapsed: np.ndarray,
+                hours: float) -> None:
+    """Dots where each track has travelled a whole multiple of ``hours``; the first
+    track's marks labelled with their hours (a few tracks: every track's)."""
+    if not np.isfinite(elapsed).any() or not hours > 0:
+        return
+    steps = np.abs(elapsed) / hours
+    marked = np.isfinite(steps) & np.isclose(steps, np.round(steps)) & (np.round(steps) > 0)
+    if not marked.any():
+        return
+    ax.scatter(lon[marked], lat[marked], transform=ccrs.PlateCarree(), marker=".", s=30,
+               color="black", zorder=6, label=f"every {hours:g} h")
+    for i in range(min(lat.shape[0], LABELLED_TRACKS)):
+        for j in np.flatnonzero(marked[i]):
+            ax.annotate(f"{elapsed[i, j]:+.0f} h", (lon[i, j], lat[i, j]),
+                        xycoords=ccrs.PlateCarree()._as_mpl_transform(ax),
+                        xytext=(3, 3), textcoords="offset points", fontsize=6, zorder=6)
+
+
+def _end_markers(ax, ds: xr.Dataset, lat: np.ndarray, lon: np.ndarray) -> None:
+    """A marker at each track's end by how it ended (CF flags of ``status``), in the legend
+    with the number of tracks that ended so."""
+    status = ds.get("status")
+    if status is None or "flag_meanings" not in status.attrs:
+        return
+    meanings = str(status.attrs["flag_meanings"]).split()
+    values = np.ravel(status.attrs["flag_values"])
+    codes = np.ravel(status.values)
+    for value, meaning in zip(values, meanings, strict=True):
+        ended = codes == value
+        if ended.any():
+            marker, colour = END_MARKERS.get(meaning, ("P", "0.5"))
+            ax.scatter(lon[ended], lat[ended], transform=ccrs.PlateCarree(), marker=marker, s=36,
+                       facecolor=colour, edgecolor="black", linewidth=0.8, zorder=7,
+                       label=f"end: {meaning.replace('_', ' ')} ({int(ended.sum())})")
 
 
 def _one_level(coordinate: xr.DataArray) -> str:

@@ -32,8 +32,10 @@ import xarray as xr
 from . import bookkeeping
 from ._version import __version__
 from .annotate import iso_time, now_iso
-from .config import Config, load_config, render_template
+from .config import STORAGE_KEYS, Config, load_config, render_template
 from .errors import EnvironmentProblem, FlowpipeError, FlowpipeWarning, from_os_error
+from .planner import why_due
+from .report import output_facts, write_report
 
 log = logging.getLogger("flowpipe.run")
 LOG_NAME = "flowpipe.log"
@@ -80,6 +82,8 @@ class UnitResult:
     written: list[Path] = field(default_factory=list)
     up_to_date: list[Path] = field(default_factory=list)
     timings: dict[str, float] = field(default_factory=dict)
+    #: With a dry run: the outputs that would be made, (path, stage, why).
+    planned: list[tuple[str, str, str]] = field(default_factory=list)
 
 
 def units_of(config: Config) -> list[Unit]:
@@ -128,9 +132,10 @@ class Runner:
     """Runs the stages of a config over its units; see the module docstring."""
 
     def __init__(self, config: Config, force: bool, progress: Progress,
-                 fingerprints: dict[str, dict] | None = None) -> None:
+                 fingerprints: dict[str, dict] | None = None, dry_run: bool = False) -> None:
         self.config = config
         self.force = force
+        self.dry_run = dry_run
         self.progress = progress
         self.out = config.output_dir
         self.previous = bookkeeping.read_manifest(self.out)
@@ -184,22 +189,20 @@ class Runner:
     def _rel(self, path: Path) -> str:
         return os.path.relpath(path, self.out)
 
-    def _current(self, out: Path, depends: list[dict], digest: str) -> bool:
-        if self.force or not out.exists():
-            return False
-        old = self.previous.get("outputs", {}).get(self._rel(out))
-        if not old or old.get("config") != digest or old.get("flowpipe_version") != __version__:
-            return False
-        fields = ("path", "size", "mtime_ns", "sha256")
-        return [{k: d[k] for k in fields} for d in old.get("depends_on", [])] == [
-            {k: d[k] for k in fields} for d in depends]
-
     def _produce(self, stage: str, result: UnitResult, out: Path, depends: list[dict],
-                 digest: str, make: Callable[[Path], None]) -> None:
-        """Make one output unless it is up to date."""
-        if self._current(out, depends, digest):
+                 tables: dict[str, str], make: Callable[[Path], None]) -> None:
+        """Make one output unless it is up to date (:func:`why_due`)."""
+        states = result.record.setdefault("outputs", {})
+        rel = self._rel(out)
+        reason = why_due(self.previous.get("outputs", {}).get(rel), out.exists(), depends,
+                         tables, force=self.force)
+        if reason is None:
             result.up_to_date.append(out)
-            log.info("%s: up to date", self._rel(out))
+            states[rel] = "up to date"
+            log.info("%s: up to date", rel)
+            return
+        if self.dry_run:
+            result.planned.append((rel, stage, reason))
             return
         started = time.perf_counter()
         with warnings.catch_warnings(record=True) as caught:
@@ -218,20 +221,38 @@ class Runner:
             else:
                 warnings.showwarning(warning.message, warning.category, warning.filename,
                                      warning.lineno)
-        result.outputs[self._rel(out)] = {
-            "stage": stage, "unit": result.stem, "depends_on": depends, "config": digest,
-            "flowpipe_version": __version__, "written": now_iso(),
+        result.outputs[rel] = {
+            "stage": stage, "unit": result.stem, "depends_on": depends,
+            "config": bookkeeping.section_hash(tables), "config_tables": tables,
+            "flowpipe_version": __version__, "written": now_iso(), "facts": output_facts(out),
         }
+        states[rel] = "written"
         result.written.append(out)
-        log.info("%s: written in %.2f s", self._rel(out), elapsed)
+        log.info("%s: written in %.2f s (%s)", rel, elapsed, reason)
 
     # -- stages --------------------------------------------------------------
     def _inputs_of(self, unit: Unit) -> list[dict]:
         return [self.fingerprints[str(p)] for p in unit.inputs]
 
-    def _site(self) -> list[dict]:
-        """The ``[metadata]`` table, when the config has one (it changes every output)."""
-        return [self.config.tables["metadata"]] if self.config.tables.get("metadata") else []
+    def _storage(self) -> dict:
+        """How every output stores its data: the encoding keys of ``[output]``."""
+        section = self.config.section("output")
+        return {key: section[key] for key in STORAGE_KEYS}
+
+    def _tables(self, stage: str) -> dict[str, str]:
+        """Hashes of the config tables an output of ``stage`` depends on: its own, and for
+        the data stages ``[input]``, the storage keys of ``[output]`` and ``[metadata]``."""
+        tables = {stage: self.config.section(stage)}
+        if stage != "maps":
+            tables.update(input=self.config.section("input"), output=self._storage())
+            if self.config.tables.get("metadata"):
+                tables["metadata"] = self.config.tables["metadata"]
+        return {name: bookkeeping.section_hash(table) for name, table in sorted(tables.items())}
+
+    def _write(self, ds, path: Path) -> None:
+        from .store import write
+
+        write(ds, path, **self._storage(), attributes=self.config.tables.get("metadata"))
 
     def _wind(self, unit: Unit):
         from .ingest import open_wind
@@ -240,7 +261,7 @@ class Runner:
         return open_wind(unit.inputs, u=section["u"], v=section["v"],
                          max_speed=section["max_speed"], implausible=section["implausible"],
                          allow_gaps=section["allow_gaps"], run=section["run"],
-                         leads=section["leads"])
+                         leads=section["leads"], members=section["members"])
 
     def _fields(self, unit: Unit, template: str) -> dict[str, str]:
         """``{stem}``, and ``{run}`` / ``{lead}`` of the unit's wind when the template names
@@ -250,13 +271,12 @@ class Runner:
         needs = "{run" in template or "{lead" in template
         return {"stem": unit.stem, **(forecast_fields(self._wind(unit)) if needs else {})}
 
-    def decompose(self, unit: Unit, result: UnitResult) -> Path:
+    def decompose(self, unit: Unit, result: UnitResult, sources: dict[str, Path]) -> Path:
         from .decompose import decompose
-        from .store import write
+        from .fields import select_fields
 
         cfg = self.config.section("decompose")
         out = render_template(cfg["output"], self.out, **self._fields(unit, cfg["output"]))
-        digest = bookkeeping.section_hash(self.config.section("input"), cfg, *self._site())
 
         def make(path: Path) -> None:
             from .ingest import input_notes
@@ -264,15 +284,15 @@ class Runner:
             wind = self._wind(unit)
             parts = decompose(wind, method=cfg["method"], truncation=cfg["truncation"],
                               levels=cfg["levels"], scheme=cfg["scheme"])
+            parts = select_fields(parts, wind, cfg["fields"])
             parts.attrs.update(input_notes(wind))
-            write(parts, path, float32=cfg["float32"], attributes=self.config.tables.get("metadata"))
+            self._write(parts, path)
 
-        self._produce("decompose", result, out, self._inputs_of(unit), digest, make)
+        self._produce("decompose", result, out, self._inputs_of(unit), self._tables("decompose"), make)
         return out
 
-    def advect(self, unit: Unit, result: UnitResult) -> Path:
+    def advect(self, unit: Unit, result: UnitResult, sources: dict[str, Path]) -> Path:
         from .parcels import advect
-        from .store import write
 
         cfg = self.config.section("advect")
         out = render_template(cfg["output"], self.out, **self._fields(unit, cfg["output"]))
@@ -281,7 +301,6 @@ class Runner:
             "starts_file"] else None
         if starts_file is not None:
             depends = depends + [bookkeeping.fingerprint(starts_file)]
-        digest = bookkeeping.section_hash(self.config.section("input"), cfg, *self._site())
 
         def make(path: Path) -> None:
             starts = starts_file or [tuple(s) for s in cfg["starts"]]
@@ -292,46 +311,41 @@ class Runner:
                             step_minutes=cfg["step_minutes"], vertical=cfg["vertical"],
                             sample=tuple(cfg["sample"]))
             tracks.attrs.update(input_notes(wind))
-            write(tracks, path, attributes=self.config.tables.get("metadata"))
+            self._write(tracks, path)
 
-        self._produce("advect", result, out, depends, digest, make)
+        self._produce("advect", result, out, depends, self._tables("advect"), make)
         return out
 
-    def ftle(self, unit: Unit, result: UnitResult) -> Path:
+    def ftle(self, unit: Unit, result: UnitResult, sources: dict[str, Path]) -> Path:
         from .ftle import ftle
-        from .store import write
 
         cfg = self.config.section("ftle")
         out = render_template(cfg["output"], self.out, **self._fields(unit, cfg["output"]))
-        digest = bookkeeping.section_hash(self.config.section("input"), cfg, *self._site())
 
         def make(path: Path) -> None:
-            write(ftle(self._wind(unit), hours=cfg["hours"], backward=cfg["backward"],
-                       spacing=cfg["spacing"], region=cfg["region"], levels=cfg["levels"]), path,
-                  attributes=self.config.tables.get("metadata"))
+            self._write(ftle(self._wind(unit), hours=cfg["hours"], backward=cfg["backward"],
+                             spacing=cfg["spacing"], region=cfg["region"], levels=cfg["levels"]),
+                        path)
 
-        self._produce("ftle", result, out, self._inputs_of(unit), digest, make)
+        self._produce("ftle", result, out, self._inputs_of(unit), self._tables("ftle"), make)
         return out
 
-    def circulation(self, unit: Unit, result: UnitResult) -> Path:
+    def circulation(self, unit: Unit, result: UnitResult, sources: dict[str, Path]) -> Path:
         from .contours import circulation, gather
-        from .store import write
 
         cfg = self.config.section("circulation")
         out = render_template(cfg["output"], self.out, **self._fields(unit, cfg["output"]))
         files = [(self.config.path.parent / name).resolve() for name in cfg["polygons"] + cfg["tracks"]]
         depends = self._inputs_of(unit) + [bookkeeping.fingerprint(f) for f in files]
-        digest = bookkeeping.section_hash(self.config.section("input"), cfg, *self._site())
 
         def make(path: Path) -> None:
             polygons, tracks = files[:len(cfg["polygons"])], files[len(cfg["polygons"]):]
             contours = gather(cfg["boxes"], cfg["circles"], polygons, tracks, cfg["track_radius_km"])
-            write(circulation(self._wind(unit), contours, levels=cfg["levels"],
-                              obrien=cfg["obrien"], surface_omega=cfg["surface_omega"],
-                              top_omega=cfg["top_omega"]), path,
-                  attributes=self.config.tables.get("metadata"))
+            self._write(circulation(self._wind(unit), contours, levels=cfg["levels"],
+                                    obrien=cfg["obrien"], surface_omega=cfg["surface_omega"],
+                                    top_omega=cfg["top_omega"]), path)
 
-        self._produce("circulation", result, out, depends, digest, make)
+        self._produce("circulation", result, out, depends, self._tables("circulation"), make)
         return out
 
     def maps(self, unit: Unit, result: UnitResult, sources: dict[str, Path]) -> None:
@@ -341,8 +355,11 @@ class Runner:
         from .maps import render, save
 
         cfg = self.config.section("maps")
-        digest = bookkeeping.section_hash(cfg)
         parts = sources.get("decompose")
+        for name, source in sources.items():
+            if self.dry_run and self._rel(source) in {p for p, _, _ in result.planned}:
+                result.planned.append((f"maps of {self._rel(source)}", "maps",
+                                       f"after the {name} output is made"))
         if parts is not None and parts.exists():
             depends = [bookkeeping.fingerprint(parts)]
             # {lead} in the name: a map of every time (each lead), else of the first time
@@ -360,7 +377,7 @@ class Runner:
                         out = render_template(cfg["output"], self.out, stem=unit.stem, field=name,
                                               level=_level_text(level), time=_time_text(when),
                                               **names)
-                        self._produce("maps", result, out, depends, digest,
+                        self._produce("maps", result, out, depends, self._tables("maps"),
                                       lambda p, n=name, lv=level, t=when: save(render(
                                           parts, field=n, level=lv,
                                           time=None if t is None else iso_time(t)), p))
@@ -369,7 +386,8 @@ class Runner:
             out = render_template(cfg["output"], self.out, **{
                 **self._fields(unit, cfg["output"]), "field": "trajectories", "level": "all",
                 "time": "all", "lead": "all"})
-            self._produce("maps", result, out, [bookkeeping.fingerprint(tracks)], digest,
+            self._produce("maps", result, out, [bookkeeping.fingerprint(tracks)],
+                          self._tables("maps"),
                           lambda p: save(render(tracks), p))
 
     # -- the run -------------------------------------------------------------
@@ -381,10 +399,9 @@ class Runner:
         sources: dict[str, Path] = {}
         for stage in self.config.stages:
             try:
-                if stage == "maps":
-                    self.maps(unit, result, sources)
-                else:
-                    sources[stage] = getattr(self, stage)(unit, result)
+                made = STAGE_TABLE[stage].make(self, unit, result, sources)
+                if made is not None:
+                    sources[stage] = made
             except Exception as exc:  # one bad input must not sink the rest
                 if isinstance(exc, OSError):  # the user's environment, not a bug
                     exc = from_os_error(exc)
@@ -434,6 +451,49 @@ class Runner:
         else:
             self.summary.unrecorded.append(f"the manifest could not be written: {self.unsaved}")
         return self.summary
+
+
+@dataclass(frozen=True)
+class Stage:
+    """One stage of the batch job: how it makes its outputs, and the stages it reads."""
+
+    make: Callable[[Runner, Unit, UnitResult, dict[str, Path]], Path | None]
+    needs: tuple[str, ...] = ()
+    #: What the stage makes, for messages and docs.
+    makes: str = ""
+
+
+#: The stages of a batch config, in the order they run (``[decompose]`` and so on; each
+#: reads the outputs of the stages it needs, when the config has them).
+STAGE_TABLE: dict[str, Stage] = {
+    "decompose": Stage(Runner.decompose, makes="the Helmholtz decomposition"),
+    "advect": Stage(Runner.advect, makes="trajectories"),
+    "ftle": Stage(Runner.ftle, makes="finite-time Lyapunov exponents"),
+    "circulation": Stage(Runner.circulation, makes="circulation and flux around contours"),
+    "maps": Stage(Runner.maps, needs=("decompose", "advect"),
+                  makes="maps of the decomposition and the trajectories"),
+}
+
+
+def plan(config_path: str | os.PathLike, *, force: bool = False) -> list[tuple[str, str, str]]:
+    """What a run of a config would make now, and why; nothing is made or written.
+
+    Returns
+    -------
+    list of (str, str, str)
+        Each output due: its path relative to the output directory, its stage,
+        and the reason (:func:`why_due`); a unit that cannot be planned (its
+        input unreadable, say) appears as ``(unit, "", "cannot plan: ...")``.
+    """
+    config = load_config(config_path)
+    runner = Runner(config, force, Progress(0, quiet=True), dry_run=True)
+    planned: list[tuple[str, str, str]] = []
+    for unit in units_of(config):
+        result = runner.run_unit(unit)
+        planned.extend(result.planned)
+        if result.record.get("status") == "failed":
+            planned.append((unit.stem, "", f"cannot plan: {result.record['error']}"))
+    return planned
 
 
 def _worker_setup(log_path: str, run_pid: int) -> None:
@@ -570,7 +630,6 @@ def run(config_path: str | os.PathLike, *, force: bool = False, workers: int | N
     -------
     RunSummary
     """
-    from .report import write_report
 
     config = load_config(config_path)
     settings = config.tables.get("run", {})

@@ -35,6 +35,7 @@ from .errors import (
     from_os_error,
     megabytes,
     no_space,
+    os_problem,
     read_only,
 )
 
@@ -55,9 +56,43 @@ MIN_CHUNK_BYTES = 64 * 1024
 TIME_UNITS = "seconds since 1970-01-01 00:00:00"
 
 
-#: What a variable stored with ``float32=True`` says about its precision.
+#: What a variable stored in single precision from double says about its precision.
 FLOAT32_NOTE = ("stored in single precision (IEEE 754 binary32): relative rounding error "
                 "up to 6e-8 of each value")
+
+#: Storage precision of floating-point data variables: as the wind was stored
+#: (``input``, the default), or always single or double.
+PRECISIONS = ("input", "single", "double")
+_PRECISION_TYPES = {"single": np.dtype(np.float32), "double": np.dtype(np.float64)}
+
+#: Lossless encodings of data variables (zlib with shuffle; the netCDF4 library
+#: applies shuffle with zlib only). The default is zlib at
+#: level 1: every netCDF-4 reader decodes it, and it writes in about two thirds of
+#: the time of level 4 (benchmarks/bench_throughput.py). zstd needs netCDF-C 4.9 or
+#: later (or the netCDF4/h5py wheels with their filter plugins) to be read back.
+COMPRESSIONS = ("zlib", "zstd", "none")
+DEFAULT_COMPRESSION = "zlib"
+DEFAULT_LEVEL = {"zlib": 1, "zstd": 1}
+#: Levels each library accepts (zlib 1-9; zstd 1-22 in netCDF-C's filter).
+LEVEL_RANGES = {"zlib": (1, 9), "zstd": (1, 22)}
+
+#: The CF section 8.4 quantization container of quantized outputs, and the CF version
+#: that introduced it.
+QUANTIZATION_VARIABLE = "quantization_info"
+QUANTIZATION_CF_VERSION = "CF-1.12"
+#: Digits netCDF-C can keep: single precision holds about 7 (CF 1.11 section 8.4.2).
+MAX_SIGNIFICANT_DIGITS = {4: 7, 8: 15}
+
+
+def quantization_error(digits: int) -> float:
+    """Largest relative error of GranularBitRound quantization to ``digits`` digits.
+
+    Half a unit in the last significant decimal digit kept, relative to the
+    value: ``0.5 * 10**(1 - digits)`` (netCDF-C, "Quantization" in the NetCDF
+    User Guide: the algorithm keeps enough bits to preserve ``digits``
+    significant decimal digits, rounded to nearest).
+    """
+    return 0.5 * 10.0 ** (1 - digits)
 
 
 @contextlib.contextmanager
@@ -161,7 +196,7 @@ def check_space(path: str | os.PathLike, certain: int, upper: int) -> None:
     """
     where = existing_directory(path)
     if read_only(path):
-        raise from_os_error(OSError(errno.EROFS, os.strerror(errno.EROFS)), path)
+        raise os_problem(errno.EROFS, path)
     free = shutil.disk_usage(where).free
     if free < certain:
         raise no_space(path, certain)
@@ -198,9 +233,21 @@ def chunk_sizes(dims: tuple[str, ...], shape: tuple[int, ...], itemsize: int) ->
     return tuple(max(1, s) for s in sizes)
 
 
-def _encoding(ds: xr.Dataset, float32: bool) -> dict[str, dict]:
+def _stored_type(var: xr.Variable, precision: str) -> np.dtype:
+    """The type a floating-point data variable is stored as (see :data:`PRECISIONS`)."""
+    if precision in _PRECISION_TYPES:
+        return _PRECISION_TYPES[precision]
+    wanted = var.encoding.get("dtype")
+    return np.dtype(wanted) if wanted is not None and np.dtype(wanted).kind == "f" else var.dtype
+
+
+def _encoding(ds: xr.Dataset, precision: str, compression: str, level: int | None,
+              digits: int | None) -> dict[str, dict]:
     encoding: dict[str, dict] = {}
     bounds = {var.attrs["bounds"] for var in ds.variables.values() if "bounds" in var.attrs}
+    packed: dict = {} if compression == "none" else {
+        "compression": compression, "shuffle": compression == "zlib",
+        "complevel": DEFAULT_LEVEL[compression] if level is None else level}
     for name, var in ds.variables.items():
         old = var.encoding
         enc: dict = {}
@@ -220,32 +267,98 @@ def _encoding(ds: xr.Dataset, float32: bool) -> dict[str, dict]:
             if var.dtype.kind in "iu" and var.dtype.itemsize == 8:
                 enc["dtype"] = np.dtype(np.int32)  # netCDF-3 readers have no 64-bit integers
         elif np.issubdtype(var.dtype, np.floating):
-            enc.update(zlib=True, complevel=4, shuffle=True, _FillValue=FILL_FLOAT,
-                       dtype=np.dtype(np.float32 if float32 else var.dtype))
+            enc.update(packed, _FillValue=FILL_FLOAT, dtype=_stored_type(var, precision))
+            if digits is not None and var.ndim:
+                if digits > MAX_SIGNIFICANT_DIGITS[enc["dtype"].itemsize]:
+                    raise UsageError(f"{name} is stored in single precision, which holds "
+                                     f"about 7 significant digits, not {digits}: ask for "
+                                     "fewer digits or for double precision")
+                enc.update(significant_digits=digits, quantize_mode="GranularBitRound")
         elif np.issubdtype(var.dtype, np.integer):
-            enc.update(zlib=True, complevel=4, shuffle=True, _FillValue=None)
+            enc.update(packed, _FillValue=None)
             if var.dtype.itemsize == 8:  # netCDF-3 readers have no 64-bit integers
                 enc["dtype"] = np.dtype(np.int32)
-        if enc.get("zlib") and var.ndim:
+        if "complevel" in enc and var.ndim:
             itemsize = np.dtype(enc.get("dtype", var.dtype)).itemsize
             enc["chunksizes"] = chunk_sizes(tuple(map(str, var.dims)), var.shape, itemsize)
         encoding[str(name)] = enc
     return encoding
 
 
+def _quantized(ds: xr.Dataset, encoding: dict[str, dict], digits: int) -> xr.Dataset:
+    """``ds`` with the CF section 8.4 description of its quantized variables.
+
+    A container variable names the algorithm and the library that applied it;
+    each quantized variable points to it (``quantization``), gives the digits
+    kept (``quantization_nsd``) and states the resulting error bound. The
+    container is a CF 1.12 addition (cfdm, the CF reference library, reads it
+    only from files that declare CF-1.12), so such a file declares CF-1.12; it
+    holds to CF 1.11 otherwise.
+    """
+    bound = quantization_error(digits)
+    ds.attrs["Conventions"] = str(ds.attrs["Conventions"]).replace(
+        annotate.CF_VERSION, QUANTIZATION_CF_VERSION)
+    container = xr.DataArray(np.int32(0), attrs={
+        "algorithm": "granular_bitround",
+        "implementation": f"libnetcdf version {netCDF4.__netcdf4libversion__}",
+        "long_name": "lossy compression by quantization"})
+    ds = ds.assign({QUANTIZATION_VARIABLE: container})
+    for name, enc in encoding.items():
+        if "significant_digits" in enc:
+            note = (f"lossy: quantized to {digits} significant decimal digits (GranularBitRound), "
+                    f"relative error at most {bound:.1e} of each value")
+            comment = ds[name].attrs.get("comment")
+            ds[name].attrs.update(quantization=QUANTIZATION_VARIABLE, quantization_nsd=np.int32(digits),
+                                  quantization_maximum_relative_error=bound,
+                                  comment=f"{comment}\n{note}" if comment else note)
+    encoding[QUANTIZATION_VARIABLE] = {"_FillValue": None}
+    return ds
+
+
+def check_encoding(precision: str = "input", compression: str = DEFAULT_COMPRESSION,
+                   compression_level: int | None = None,
+                   significant_digits: int | None = None) -> None:
+    """Refuse an encoding :func:`write` cannot make, in one line naming the option.
+
+    Raises
+    ------
+    flowpipe.errors.UsageError
+        For a precision, compression or level out of range.
+    """
+    if precision not in PRECISIONS:
+        raise UsageError(f"precision {precision!r} is not one of {', '.join(PRECISIONS)}")
+    if compression not in COMPRESSIONS:
+        raise UsageError(f"compression {compression!r} is not one of {', '.join(COMPRESSIONS)}")
+    if compression_level is not None:
+        if compression == "none":
+            raise UsageError("a compression level needs a compression: drop the level or "
+                             "choose zlib or zstd")
+        low, high = LEVEL_RANGES[compression]
+        if not low <= compression_level <= high:
+            raise UsageError(f"{compression} compression level must be {low} to {high}, "
+                             f"not {compression_level}")
+    if significant_digits is not None:
+        most = MAX_SIGNIFICANT_DIGITS[4 if precision == "single" else 8]
+        if not 1 <= significant_digits <= most:
+            raise UsageError(f"significant digits must be 1 to {most} (at most 7 for single "
+                             f"precision), not {significant_digits}")
+
+
 #: netCDF-C chunk cache per variable while writing, in bytes (see _write_chunk_cache).
 WRITE_CHUNK_CACHE = 4 * 2**20
 
 
-def write(ds: xr.Dataset, path: str | os.PathLike, *, float32: bool = False,
+def write(ds: xr.Dataset, path: str | os.PathLike, *, precision: str = "input",
+          compression: str = DEFAULT_COMPRESSION, compression_level: int | None = None,
+          significant_digits: int | None = None,
           attributes: dict[str, str] | None = None) -> Path:
     """Write a Dataset to NetCDF-4 atomically, CF-1.11 and ACDD-1.3 annotated.
 
     Attributes are completed by :func:`flowpipe.annotate.complete`; data
-    variables are compressed (zlib level 4 with shuffle) and chunked one
-    horizontal slab (or one trajectory) at a time; missing values are written
-    as the netCDF default fill value. Encodings the variables carried from the
-    files they were read from are not reused.
+    variables are compressed (by default zlib level 1 with shuffle) and chunked
+    one horizontal slab (or one trajectory) at a time; missing values are
+    written as the netCDF default fill value. Of the encodings variables carry,
+    only the storage type a stage asked for is kept (``precision="input"``).
 
     Parameters
     ----------
@@ -255,15 +368,29 @@ def write(ds: xr.Dataset, path: str | os.PathLike, *, float32: bool = False,
         figure), in the same pass.
     path : path-like
         The final file name; never one of the files ``ds`` was read from.
-    float32 : bool
-        Store floating-point data variables (not coordinates or times) in
-        single precision: a 24-bit significand, about seven significant digits,
-        so a relative rounding error of at most 2**-24 (6.0e-8) per value
-        (IEEE 754 binary32), ample for plotting and most diagnostics at half
-        the size. Magnitudes below 1.2e-38 (subnormal) keep only an absolute
-        accuracy of 7e-46; values beyond about 3.4e38 cannot be stored. Each
-        such variable says so in its ``comment`` (:data:`FLOAT32_NOTE`).
-
+    precision : {"input", "single", "double"}
+        Storage of floating-point data variables (not coordinates or times).
+        ``"input"``: as each variable's ``dtype`` encoding says, which the
+        stages set to the precision the wind was stored in (float32 or packed
+        16-bit integers give single precision), else as computed. ``"single"``:
+        a 24-bit significand, about seven significant digits, a relative
+        rounding error of at most 2**-24 (6.0e-8) per value (IEEE 754 binary32),
+        ample for plotting and most diagnostics at half the size; magnitudes
+        below 1.2e-38 (subnormal) keep only an absolute accuracy of 7e-46, and
+        values beyond about 3.4e38 cannot be stored. Variables rounded from
+        double say so in their ``comment`` (:data:`FLOAT32_NOTE`).
+        ``"double"``: IEEE 754 binary64.
+    compression : {"zlib", "zstd", "none"}
+        Lossless compression of data variables, zlib with shuffle (:data:`COMPRESSIONS`).
+    compression_level : int, optional
+        zlib 1-9 or zstd 1-22; default 1 (:data:`DEFAULT_LEVEL`).
+    significant_digits : int, optional
+        Lossy quantization before compression: netCDF-C's GranularBitRound
+        keeps this many significant decimal digits, so each value's relative
+        error is at most :func:`quantization_error` (``0.5 * 10**(1 - N)``),
+        recorded as CF 1.12 section 8.4 describes (container variable
+        :data:`QUANTIZATION_VARIABLE`, ``quantization_nsd``) and stated in each
+        variable's ``comment`` and ``quantization_maximum_relative_error``.
     attributes : dict, optional
         A site's global attributes (``[metadata]``, ``--attribute``); see
         :func:`flowpipe.annotate.complete`.
@@ -287,8 +414,11 @@ def write(ds: xr.Dataset, path: str | os.PathLike, *, float32: bool = False,
     if lazy:
         ds = ds.copy()
         ds.attrs = {k: v for k, v in ds.attrs.items() if k not in lazy}
+    check_encoding(precision, compression, compression_level, significant_digits)
     out = annotate.complete(ds, attributes)
-    encoding = _encoding(out, float32)
+    encoding = _encoding(out, precision, compression, compression_level, significant_digits)
+    if significant_digits is not None:
+        out = _quantized(out, encoding, significant_digits)
     for name, enc in encoding.items():
         if enc.get("dtype") == np.float32 and out[name].dtype != np.float32:
             comment = out[name].attrs.get("comment")
@@ -296,11 +426,19 @@ def write(ds: xr.Dataset, path: str | os.PathLike, *, float32: bool = False,
     for var in out.variables.values():
         # the only encoding kept: the coordinates a stage names (CF 1.11 section 9 readers need them)
         var.encoding = {"coordinates": var.encoding["coordinates"]} if "coordinates" in var.encoding else {}
+    # the grid mapping and cell bounds describe coordinates: scalar coordinates (the run, a
+    # single level) belong to the fields, not to them (xarray would list them everywhere)
+    for name in (annotate.CRS, *(v.attrs["bounds"] for v in out.variables.values()
+                                 if "bounds" in v.attrs)):
+        if name in out.variables:
+            out[name].encoding["coordinates"] = None
     certain, upper = _stored_bytes(out, encoding)
     check_space(final, certain, upper)
     with atomic_path(final, sources(ds), needed=upper) as tmp, _write_chunk_cache():
         if not lazy:
             out.to_netcdf(tmp, engine="netcdf4", format="NETCDF4", encoding=encoding)
+            if significant_digits is not None:
+                _drop_library_quantization_attrs(tmp)
             return final
         # Attributes known only once the data are computed (a global error figure,
         # say) are computed in the same pass as the data and added before the rename.
@@ -310,7 +448,23 @@ def write(ds: xr.Dataset, path: str | os.PathLike, *, float32: bool = False,
         with netCDF4.Dataset(tmp, "a") as nc:
             for name, value in zip(lazy, values, strict=True):
                 nc.setncattr(name, np.asarray(value).item())
+        if significant_digits is not None:
+            _drop_library_quantization_attrs(tmp)
     return final
+
+
+def _drop_library_quantization_attrs(path: Path) -> None:
+    """Remove netCDF-C's own record of quantization (``_Quantize...`` attributes).
+
+    The CF attributes (``quantization``, ``quantization_nsd``) say the same, and
+    names beginning with an underscore are reserved (NetCDF User Guide; CF 1.11
+    section 2.3), so CF checkers flag them; cfdm's writer removes them likewise.
+    """
+    with netCDF4.Dataset(path, "a") as nc:
+        for var in nc.variables.values():
+            for name in var.ncattrs():
+                if name.startswith("_Quantize"):
+                    var.delncattr(name)
 
 
 def _stored_bytes(ds: xr.Dataset, encoding: dict[str, dict]) -> tuple[int, int]:
@@ -320,7 +474,7 @@ def _stored_bytes(ds: xr.Dataset, encoding: dict[str, dict]) -> tuple[int, int]:
         enc = encoding.get(str(name), {})
         size = var.size * np.dtype(enc.get("dtype", var.dtype)).itemsize
         upper += size
-        if not enc.get("zlib"):
+        if "complevel" not in enc:
             certain += size
     return certain, upper
 

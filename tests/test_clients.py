@@ -40,6 +40,7 @@ def outputs(tmp_path_factory) -> dict[str, Path]:
         "spectral": ["decompose", GLOBAL, "--kinematics"],
         "variational": ["decompose", REGIONAL, "--scheme", "variational"],
         "dirichlet": ["decompose", REGIONAL, "--scheme", "dirichlet"],
+        "quantized": ["decompose", GLOBAL, "--significant-digits", "3"],
         "tracks": ["advect", GLOBAL, "--start", "52,4,700", "--start", "40,-170,500",
                    "--hours", "24", "--backward", "--vertical", "omega", "--sample", "ta"],
         "tracks-regional": ["advect", REGIONAL, "--start", "55,-10,850", "--start", "50,5,850",
@@ -56,7 +57,7 @@ def _fields(path: Path) -> list:
     return list(cf.read(str(path)))
 
 
-@pytest.mark.parametrize("kind", ["spectral", "variational", "dirichlet", "tracks",
+@pytest.mark.parametrize("kind", ["spectral", "variational", "dirichlet", "quantized", "tracks",
                                   "tracks-regional"])
 def test_cfdm_finds_nothing_to_report(outputs, kind):
     # cfdm's dataset_compliance(): the non-conformances it met while reading (empty but
@@ -64,6 +65,19 @@ def test_cfdm_finds_nothing_to_report(outputs, kind):
     for field in cfdm.read(str(outputs[kind])):
         report = field.dataset_compliance()
         assert set(report) <= {"CF version"}, report
+
+
+def test_cfdm_reads_the_quantization(outputs):
+    # cfdm (CF section 8.4): each quantized field has a Quantization naming the algorithm
+    # and the digits kept, from the container variable and the per-variable attribute.
+    fields = [f for f in cfdm.read(str(outputs["quantized"])) if f.get_quantization(None)]
+    assert {f.identity() for f in fields} >= {"atmosphere_horizontal_streamfunction",
+                                              "atmosphere_relative_vorticity"}
+    for field in fields:
+        q = field.get_quantization()
+        assert q.get_parameter("algorithm") == "granular_bitround"
+        assert int(q.get_parameter("quantization_nsd")) == 3
+        assert "libnetcdf" in q.get_parameter("implementation")
 
 
 @pytest.mark.parametrize("kind", ["tracks", "tracks-regional"])
@@ -94,7 +108,7 @@ def test_cf_python_compares_times_of_decomposition_and_trajectories(outputs):
     assert bool(track_time.datetime_array.max() <= grid_time.datetime_array.max())
 
 
-@pytest.mark.parametrize("kind", ["spectral", "variational", "dirichlet"])
+@pytest.mark.parametrize("kind", ["spectral", "variational", "dirichlet", "quantized"])
 def test_pyproj_builds_a_geographic_crs_from_the_grid_mapping(outputs, kind):
     # pyproj.CRS.from_cf (PROJ), from the grid mapping each field names (CF 1.11 section 5.6).
     with xr.open_dataset(outputs[kind]) as ds:
@@ -114,7 +128,7 @@ def test_pyproj_builds_a_geographic_crs_from_the_grid_mapping(outputs, kind):
         assert ds["latitude"].attrs["axis"] == "Y" and ds["longitude"].attrs["axis"] == "X"
 
 
-@pytest.mark.parametrize("kind", ["spectral", "variational", "dirichlet", "tracks",
+@pytest.mark.parametrize("kind", ["spectral", "variational", "dirichlet", "quantized", "tracks",
                                   "tracks-regional"])
 def test_nccopy_classic_round_trip(outputs, kind, tmp_path):
     # netCDF-C nccopy: into the classic (netCDF-3) format and back to netCDF-4.

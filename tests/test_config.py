@@ -13,6 +13,7 @@ import pytest
 from flowpipe.cli import main
 from flowpipe.config import ConfigError, load_config, render_template
 from flowpipe.decompose import METHODS, SPECTRAL_VARIABLES
+from flowpipe.fields import WIND_PRODUCTS
 from flowpipe.parcels._advect import VERTICAL
 from flowpipe.regional import SCHEMES as REGIONAL_SCHEMES
 
@@ -132,8 +133,12 @@ _START = "must be [lat, lon] or [lat, lon, level] of finite numbers with lat wit
         ("[decompose]\n[maps]\nfields = [\"colour\"]\n",
          "line 9: each item of [maps] fields must be one of streamfunction"),
         ("[decompose]\nmethod = \"spectral\"\n[maps]\nfields = [\"u_harmonic\"]\n",
-         f"line 10: each item of [maps] fields must be one of {_choices(SPECTRAL_VARIABLES)}, "
-         "not 'u_harmonic'"),
+         "line 10: each item of [maps] fields must be one of "
+         f"{_choices(SPECTRAL_VARIABLES + tuple(WIND_PRODUCTS))}, not 'u_harmonic'"),
+        ("[decompose]\nfields = [\"streamfunction\"]\n[maps]\nfields = [\"vorticity\"]\n",
+         "line 10: each item of [maps] fields must be one of streamfunction, not 'vorticity'"),
+        ("[decompose]\nfields = [\"speed\"]\n", "line 8: each item of [decompose] fields "
+         "must be one of streamfunction"),
         # workers: configs/README.md ("cores the run may use").
         ("[run]\nworkers = 0\n", "line 8: [run] workers must be at least 1, not 0"),
     ],

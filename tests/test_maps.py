@@ -335,3 +335,92 @@ def test_command_line_warns_without_coastlines(files, monkeypatch, tmp_path, cap
     assert main(["map", str(files["tracks"]), "-o", str(out), "--size", "400x300"]) == 0
     assert "flowpipe: warning: no coastline data" in capsys.readouterr().err
     assert matplotlib.image.imread(out).shape[:2] == (300, 400)
+
+
+# ---------------------------------------------------------------- maps that do not mislead
+
+def test_a_field_zero_to_rounding_is_titled_so_and_not_coloured(files, tmp_path):
+    # A velocity potential a billionth of the streamfunction is zero to single-precision
+    # rounding (IEEE 754 binary32 keeps about 7 digits): no colours, and the title says so.
+    with xr.open_dataset(files["global"]) as ds:
+        ds = ds.load()
+    ds["velocity_potential"] = ds["streamfunction"] * 1e-9
+    path = fp.write(ds, tmp_path / "tiny.nc", precision="single")
+    fig = maps.render(path, field="velocity_potential", size=SIZE)
+    ax = _map_axes(fig)
+    assert "zero to rounding" in ax.get_title(loc="left")
+    assert "streamfunction" in ax.get_title(loc="left")
+    assert not [c for c in ax.collections if getattr(c, "colorbar", None) is not None]
+    # the same values far above rounding (their own field, no larger companion) are drawn
+    ds["streamfunction"] = ds["velocity_potential"]
+    path = fp.write(ds, tmp_path / "small.nc", precision="single")
+    title = _map_axes(maps.render(path, field="velocity_potential", size=SIZE)).get_title(loc="left")
+    assert "zero to rounding" not in title
+
+
+@pytest.mark.parametrize("bounds", [(-60.0, 60.0, 0.0, 360.0), (30.0, 60.0, 0.0, 30.0),
+                                    (-10.0, 10.0, 0.0, 360.0)])
+def test_arrow_count_follows_the_domain_not_its_shape(bounds):
+    # About maps.ARROWS arrows on a square area, a wide band and a thin tropical channel
+    # (evenly spaced on the sphere: the count is the domain's area over the spacing squared).
+    south, north, west, east = bounds
+    lat, lon = np.arange(south, north + 0.1, 0.5), np.arange(west, east, 0.5)
+    rows, _ = maps._thinned(lat, lon)
+    assert 0.5 * maps.ARROWS <= rows.size <= 1.6 * maps.ARROWS
+
+
+def test_barbs_carry_the_wind_in_knots(files):
+    # 1 kn = 1852 m / 3600 s (the international nautical mile per hour; from memory).
+    fig = maps.render(files["real-parts"], field="vorticity", size=SIZE, barbs=True)
+    ax = _map_axes(fig)
+    (barbs,) = [c for c in ax.collections if type(c).__name__ == "Barbs"]
+    with xr.open_dataset(files["real-parts"]) as ds:
+        u = ds["u_rotational"].isel(time=0, level=0).values
+        v = ds["v_rotational"].isel(time=0, level=0).values
+    speeds_kn = np.hypot(barbs.u, barbs.v)
+    assert speeds_kn.max() == pytest.approx(np.nanmax(np.hypot(u, v)) * 3600 / 1852, rel=0.15)
+    assert not [c for c in ax.collections if type(c).__name__ == "Quiver"]
+
+
+def test_track_map_marks_times_ends_by_status_and_the_domain(files, tmp_path):
+    # Legend entries of the matplotlib figure: one end marker per status present (named
+    # as the file's CF flag_meanings say), the time marks, the input domain's edge.
+    path = tmp_path / "tracks.nc"
+    assert main(["advect", str(REGIONAL), "--start", "55,-10,850", "--start", "50,5,850",
+                 "--hours", "24", "-o", str(path)]) == 0
+    fig = maps.render(path, size=SIZE)
+    ax = _map_axes(fig)
+    labels = [text.get_text() for text in ax.get_legend().get_texts()]
+    with xr.open_dataset(path) as ds:
+        meanings = ds["status"].attrs["flag_meanings"].split()
+        ended = [meanings[int(s)] for s in ds["status"].values]
+        times = ds["time"].values
+    hours = (times - times[:, :1]) / np.timedelta64(1, "h")
+    for meaning in set(ended):
+        assert f"end: {meaning.replace('_', ' ')} ({ended.count(meaning)})" in labels
+    assert "left_domain" in ended
+    assert "every 6 h" in labels and "edge of the input's domain" in labels
+    (marks,) = [c for c in ax.collections if c.get_label() == "every 6 h"]
+    expected = np.sum(np.isfinite(hours) & (hours > 0) & np.isclose(hours % 6, 0))
+    assert len(marks.get_offsets()) == expected
+
+
+def test_many_starts_are_thinned(tmp_path):
+    tracks = trajectory_like()
+    many = xr.concat([tracks] * 150, dim="trajectory")
+    count = many.sizes["trajectory"]
+    assert count > maps.MAX_STARTS
+    fig = maps.render(many, size=SIZE)
+    (starts,) = [c for c in _map_axes(fig).collections if c.get_label().startswith("start")]
+    assert maps.MAX_STARTS / 2 < len(starts.get_offsets()) <= maps.MAX_STARTS
+    assert f"of {count})" in starts.get_label()
+
+
+def test_image_format_follows_the_suffix(files, tmp_path, capsys):
+    pdf = tmp_path / "map.pdf"
+    assert main(["map", str(files["global"]), "-o", str(pdf)]) == 0
+    assert pdf.read_bytes()[:5] == b"%PDF-"  # ISO 32000 file header
+    assert "wrote" in capsys.readouterr().out
+    assert main(["map", str(files["global"]), "-o", str(tmp_path / "map.nc4")]) == 2
+    err = capsys.readouterr().err
+    assert err.startswith("flowpipe: error:") and ".png" in err and len(err.splitlines()) == 1

@@ -27,7 +27,9 @@ from windfiles import Encoding, encode, reference_field
 
 from flowpipe.bookkeeping import LOCK_NAME
 from flowpipe.cli import main
-from flowpipe.pipeline import run
+from flowpipe.config import STAGES
+from flowpipe.pipeline import STAGE_TABLE, run
+from flowpipe.planner import why_due
 
 ROOT = Path(__file__).resolve().parents[1]
 LAT, LON, LEVELS = np.linspace(-90, 90, 37), np.arange(0.0, 360.0, 5.0), np.array([850.0, 500.0])
@@ -180,6 +182,81 @@ def test_one_truncated_input_among_four(tmp_path):
     assert manifest["status"] == "failed"
 
 
+class _Text(html.parser.HTMLParser):
+    """The page's text: paragraphs, and table rows as lists of cell texts."""
+
+    def __init__(self) -> None:
+        super().__init__()
+        self.rows: list[list[str]] = []
+        self.paragraphs: list[str] = []
+        self._cell: list[str] | None = None
+        self._para: list[str] | None = None
+
+    def handle_starttag(self, tag, attrs):
+        if tag == "tr":
+            self.rows.append([])
+        elif tag in ("td", "th"):
+            self._cell = []
+        elif tag == "p":
+            self._para = []
+
+    def handle_endtag(self, tag):
+        if tag in ("td", "th") and self._cell is not None:
+            self.rows[-1].append(" ".join("".join(self._cell).split()))
+            self._cell = None
+        elif tag == "p" and self._para is not None:
+            self.paragraphs.append(" ".join("".join(self._para).split()))
+            self._para = None
+
+    def handle_data(self, data):
+        for part in (self._cell, self._para):
+            if part is not None:
+                part.append(data)
+
+
+def _report(out: Path) -> _Text:
+    page = _Text()
+    page.feed((out / "report.html").read_text())
+    return page
+
+
+def test_report_counts_inputs_and_files_and_shows_what_each_file_holds(tmp_path):
+    # The report's facts against the files themselves, read with xarray (netCDF-C).
+    inputs = _inputs(tmp_path, 3)
+    inputs[2].write_bytes(inputs[2].read_bytes()[:2000])  # truncated: that input fails
+    config = _config(tmp_path, inputs, maps=False)
+    assert main(["run", "--quiet", str(config)]) == 1
+    out = tmp_path / "out"
+    page = _report(out)
+    assert "3 inputs: 2 done, 1 failed; 4 files written, 0 up to date" in page.paragraphs
+    rows = {row[0]: row for row in page.rows if row}
+    with xr.open_dataset(inputs[0]) as source:
+        times = source["time"].values
+    start, end = (np.datetime_as_string(t, unit="s") for t in (times.min(), times.max()))
+    assert rows["model_0"][1] == "done" and rows["model_0"][2] == f"{start}Z to {end}Z"
+    assert rows["model_2"][1] == "failed" and "cannot be read as NetCDF" in rows["model_2"][3]
+    with xr.open_dataset(out / "model_1_decomposition.nc") as ds:
+        worst = float(ds["reconstruction_error"].max())
+    decomposition = rows["model_1_decomposition.nc"]
+    assert decomposition[3] == "written"
+    assert f"reconstruction error {worst:.2g}" in decomposition[5]
+    with xr.open_dataset(out / "model_0_trajectories.nc") as ds:
+        meanings = ds["status"].attrs["flag_meanings"].split()
+        counts = np.bincount(ds["status"].values, minlength=len(meanings))
+    expected = "; ".join(f"{m.replace('_', ' ')} {n}" for m, n in zip(meanings, counts, strict=True)
+                         if n)
+    assert rows["model_0_trajectories.nc"][5] == expected
+    assert main(["run", "--quiet", str(config)]) == 1  # again: the good inputs are up to date
+    again = _report(out)
+    line = next(p for p in again.paragraphs if p.startswith("3 inputs"))
+    manifest = json.loads((out / "manifest.json").read_text())
+    last = max(r["written"] for r in manifest["outputs"].values())
+    assert line == (f"3 inputs: 2 done, 1 failed; nothing new: all 4 outputs up to date "
+                    f"(last written {last})")
+    rows = {row[0]: row for row in again.rows if row}
+    assert rows["model_0_decomposition.nc"][3].startswith("up to date, written ")
+
+
 def test_lock_refuses_a_second_run_and_takes_over_a_stale_one(tmp_path, capsys):
     inputs = _inputs(tmp_path, 1)
     config = _config(tmp_path, inputs, maps=False, advect=False)
@@ -281,3 +358,55 @@ def test_warnings_of_a_stage_reach_the_log_and_the_manifest(tmp_path):
     (message,) = unit["stages"]["decompose"]["warnings"]
     assert "left missing" in message and message.startswith("area")
     assert "left missing" in (tmp_path / "out" / "flowpipe.log").read_text()
+
+
+_DEPENDS = [{"path": "/data/a.nc", "size": 10, "mtime_ns": 1, "sha256": "ab" * 32}]
+_TABLES = {"decompose": "d1", "input": "i1", "output": "o1"}
+_RECORD = {"depends_on": _DEPENDS, "config_tables": _TABLES, "flowpipe_version": "1.0"}
+
+
+@pytest.mark.parametrize(("previous", "exists", "depends", "tables", "force", "expected"), [
+    # the rules of configs/README.md ("Reruns"): each case changes one thing
+    (_RECORD, True, _DEPENDS, _TABLES, False, None),
+    (_RECORD, False, _DEPENDS, _TABLES, False, "missing"),
+    (None, True, _DEPENDS, _TABLES, False, "not in the manifest"),
+    (_RECORD, True, _DEPENDS, _TABLES, True, "forced (--force)"),
+    ({**_RECORD, "flowpipe_version": "0.9"}, True, _DEPENDS, _TABLES, False,
+     "made by flowpipe 0.9, this is 1.0"),
+    (_RECORD, True, _DEPENDS, {**_TABLES, "decompose": "d2"}, False,
+     "config changed: [decompose]"),
+    (_RECORD, True, _DEPENDS, {**_TABLES, "metadata": "m1"}, False, "config changed: [metadata]"),
+    (_RECORD, True, [{**_DEPENDS[0], "sha256": "cd" * 32}], _TABLES, False,
+     "input changed: a.nc"),
+    (_RECORD, True, [*_DEPENDS, {**_DEPENDS[0], "path": "/data/b.nc"}], _TABLES, False,
+     "input changed: b.nc"),
+])
+def test_planner_decisions(previous, exists, depends, tables, force, expected):
+    assert why_due(previous, exists, depends, tables, force=force, version="1.0") == expected
+
+
+def test_stage_table_covers_every_config_stage():
+    # configs/README.md documents these tables; each has one entry in the stage table
+    assert tuple(STAGE_TABLE) == STAGES
+    for stage in STAGE_TABLE.values():
+        assert set(stage.needs) <= set(STAGES)
+
+
+def test_dry_run_lists_what_is_due_and_writes_nothing(tmp_path, capsys):
+    inputs = _inputs(tmp_path, 2)
+    config = _config(tmp_path, inputs, maps=True, advect=False)
+    assert main(["run", "--dry-run", str(config)]) == 0
+    lines = capsys.readouterr().out.splitlines()
+    assert "model_0_decomposition.nc: missing (decompose)" in lines
+    assert any(line.startswith("maps of model_1_decomposition.nc: after") for line in lines)
+    assert not (tmp_path / "out").exists()  # nothing made, not even the directory
+    assert main(["run", "--quiet", str(config)]) == 0
+    capsys.readouterr()
+    assert main(["run", "--dry-run", str(config)]) == 0
+    assert capsys.readouterr().out.strip() == "flowpipe: nothing due, every output is up to date"
+    time.sleep(0.01)
+    inputs[1].write_bytes(inputs[1].read_bytes())  # same bytes, new mtime
+    assert main(["run", "--dry-run", str(config)]) == 0
+    lines = capsys.readouterr().out.splitlines()
+    assert lines == ["model_1_decomposition.nc: input changed: model_1.nc (decompose)",
+                     "maps of model_1_decomposition.nc: after the decompose output is made (maps)"]

@@ -43,7 +43,7 @@ def _leftovers(directory) -> list[str]:
 
 @pytest.mark.parametrize("float32", [False, True])
 def test_round_trip_with_plain_xarray(parts, tmp_path, float32):
-    path = fp.write(parts, tmp_path / "parts.nc", float32=float32)
+    path = fp.write(parts, tmp_path / "parts.nc", precision="single" if float32 else "double")
     with xr.open_dataset(path) as back:
         for name in parts.data_vars:
             expected = parts[name].values
@@ -183,3 +183,14 @@ def test_cli_decomposition_carries_the_global_reconstruction_error(tmp_path):
     with xr.open_dataset(tmp_path / "d.nc") as ds:
         per_slab = ds["reconstruction_error"].values
         assert 0 < ds.attrs["reconstruction_error"] <= per_slab.max() * (1 + 1e-12)
+
+
+def test_scalar_coordinates_name_the_fields_not_the_grid_mapping_or_bounds(parts, tmp_path):
+    # CF 1.11 sections 5.6 and 7.1: a grid mapping variable and cell bounds describe the
+    # grid; a scalar coordinate (the run of a forecast) belongs to the fields.
+    run = parts.assign_coords(forecast_reference_time=np.datetime64("2026-01-11T00:00"))
+    path = fp.write(run, tmp_path / "run.nc")
+    with netCDF4.Dataset(path) as nc:
+        assert "forecast_reference_time" in nc["streamfunction"].coordinates.split()
+        for name in ("crs", "latitude_bounds", "longitude_bounds"):
+            assert "coordinates" not in nc[name].ncattrs(), name

@@ -22,6 +22,39 @@ def add_attribute_option(parser: argparse.ArgumentParser) -> None:
                         "(institution, creator_name, license, project, id_prefix, ...); repeatable")
 
 
+def add_encoding_options(parser: argparse.ArgumentParser) -> None:
+    """How the output stores its data: precision, compression, quantization
+    (see :func:`flowpipe.write`)."""
+    from ..store import COMPRESSIONS, DEFAULT_COMPRESSION, PRECISIONS
+
+    parser.add_argument("--precision", choices=PRECISIONS, default="input",
+                        help="floating-point storage: as the input wind was stored (default; "
+                        "float32 or packed 16-bit input gives single precision), single "
+                        "(about 7 significant digits, half the size) or double")
+    parser.add_argument("--compression", choices=COMPRESSIONS, default=DEFAULT_COMPRESSION,
+                        help="lossless compression: zlib with shuffle (default, level 1; every "
+                        "netCDF-4 reader), zstd (faster; readers need netCDF-C 4.9 or later) "
+                        "or none")
+    parser.add_argument("--compression-level", type=int, metavar="N",
+                        help="zlib 1-9 or zstd 1-22 (default 1)")
+    parser.add_argument("--significant-digits", type=int, metavar="N",
+                        help="lossy: keep N significant decimal digits (GranularBitRound "
+                        "quantization, recorded as CF 1.12 section 8.4 describes; relative "
+                        "error at most 0.5*10^(1-N))")
+
+
+def encoding_options(args: argparse.Namespace) -> dict:
+    """The keyword arguments of :func:`flowpipe.write` given by :func:`add_encoding_options`
+    and :func:`add_attribute_option`."""
+    from ..store import check_encoding
+
+    options = {"precision": args.precision, "compression": args.compression,
+               "compression_level": args.compression_level,
+               "significant_digits": args.significant_digits}
+    check_encoding(**options)  # before any work
+    return {**options, "attributes": dict(args.attribute)}
+
+
 def attribute(text: str) -> tuple[str, str]:
     """One ``--attribute KEY=VALUE``."""
     from ..config import ATTRIBUTE_NAME
@@ -47,6 +80,8 @@ def add_input_options(parser: argparse.ArgumentParser) -> None:
                         "the input (default) or treat them as missing")
     parser.add_argument("--allow-gaps", action="store_true",
                         help="accept a time series with missing times (default: refused)")
+    parser.add_argument("--members", type=members, metavar="N[,...]",
+                        help="only these ensemble members (values of realization), e.g. 0,3")
 
 
     add_forecast_options(parser)
@@ -73,6 +108,18 @@ def leads(text: str) -> list[float]:
     return values
 
 
+def members(text: str) -> list[int]:
+    """One ``--members N[,...]``: ensemble member numbers."""
+    try:
+        values = [int(item) for item in text.split(",") if item.strip()]
+    except ValueError:
+        values = []
+    if not values:
+        raise argparse.ArgumentTypeError(f"{text!r}: give ensemble member numbers (values of "
+                                         "realization), comma-separated, e.g. 0,3")
+    return values
+
+
 def forecast_options(args: argparse.Namespace) -> dict:
     """The keyword arguments of ``open_wind`` given by :func:`add_forecast_options`."""
     return {"run": args.run, "leads": args.lead}
@@ -81,4 +128,4 @@ def forecast_options(args: argparse.Namespace) -> dict:
 def input_options(args: argparse.Namespace) -> dict:
     """The keyword arguments of ``open_wind`` given by :func:`add_input_options`."""
     return {"max_speed": args.max_speed, "implausible": args.implausible,
-            "allow_gaps": args.allow_gaps, **forecast_options(args)}
+            "allow_gaps": args.allow_gaps, "members": args.members, **forecast_options(args)}

@@ -8,11 +8,19 @@ import xarray as xr
 
 from ..decompose import METHODS, decompose
 from ..errors import UsageError
+from ..fields import select_fields
 from ..ingest import input_notes, open_wind
 from ..kinematics import kinematics
 from ..regional import SCHEMES
 from ..store import write
-from ._common import add_attribute_option, add_input_options, input_options, output_file
+from ._common import (
+    add_attribute_option,
+    add_encoding_options,
+    add_input_options,
+    encoding_options,
+    input_options,
+    output_file,
+)
 
 
 def register(sub: argparse._SubParsersAction, common: argparse.ArgumentParser) -> argparse.ArgumentParser:
@@ -40,13 +48,24 @@ def register(sub: argparse._SubParsersAction, common: argparse.ArgumentParser) -
     parser.add_argument("--kinematics", action="store_true",
                         help="also write absolute vorticity, deformation and kinetic-energy "
                         "diagnostics with their spectra (spectral method only)")
-    parser.add_argument("--float32", action="store_true",
-                        help="store the fields in single precision (half the size)")
+    parser.add_argument("--fields", type=_names, metavar="NAME,...",
+                        help="write only these variables (quality figures are always kept); "
+                        "besides the decomposition's: wind_speed, wind_from_direction and "
+                        "their rotational_ and divergent_ counterparts")
     parser.add_argument("--u", metavar="NAME", help="name of the eastward wind variable")
     parser.add_argument("--v", metavar="NAME", help="name of the northward wind variable")
+    add_encoding_options(parser)
     add_attribute_option(parser)
     add_input_options(parser)
     return parser
+
+
+def _names(text: str) -> list[str]:
+    names = [item.strip() for item in text.split(",") if item.strip()]
+    if not names:
+        raise argparse.ArgumentTypeError("give at least one variable name, e.g. "
+                                         "streamfunction,velocity_potential")
+    return names
 
 
 def _levels(text: str) -> list[float]:
@@ -61,6 +80,7 @@ def _levels(text: str) -> list[float]:
 
 
 def run(args: argparse.Namespace) -> int:
+    options = encoding_options(args)
     wind = open_wind(args.files, u=args.u, v=args.v, **input_options(args))
     parts = decompose(wind, method=args.method, truncation=args.truncation, levels=args.levels,
                       scheme=args.scheme)
@@ -70,8 +90,9 @@ def run(args: argparse.Namespace) -> int:
                              "without missing values); drop --kinematics")
         extra = kinematics(wind, truncation=args.truncation, levels=args.levels)
         parts = xr.merge([parts, extra], combine_attrs="override")
+    parts = select_fields(parts, wind, args.fields)
     parts.attrs.update(input_notes(wind))
-    path = write(parts, args.output, float32=args.float32, attributes=dict(args.attribute))
+    path = write(parts, args.output, **options)
     print(f"wrote {path}: {len(parts.data_vars)} variables by the "
           f"{parts.attrs.get('method', '')} method")
     return 0

@@ -71,6 +71,11 @@ def format_report(report: dict) -> str:
         lines.insert(-1, f"  forecast   {len(runs)} run{'s' if len(runs) != 1 else ''}"
                      f"{' ' + ', '.join(runs) if runs else ''}; leads "
                      f"{', '.join(f'{h:g}' for h in report['leads'] or [])} h{described}")
+    if report.get("members"):
+        members = report["realizations"]
+        lines.insert(-1, f"  ensemble   {report['members']} member"
+                     f"{'s' if report['members'] != 1 else ''} (realization "
+                     f"{members[0]}{'' if len(members) == 1 else f'..{members[-1]}'})")
     if report["other_variables"]:
         lines.append(f"  also       {', '.join(report['other_variables'])}")
     return "\n".join(lines)

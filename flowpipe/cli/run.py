@@ -5,6 +5,7 @@ from __future__ import annotations
 import argparse
 import sys
 
+from ..pipeline import plan
 from ..pipeline import run as run_pipeline
 
 
@@ -22,6 +23,8 @@ def register(sub: argparse._SubParsersAction, common: argparse.ArgumentParser) -
     parser.add_argument("--scheduler", metavar="ADDRESS",
                         help="a dask.distributed scheduler, tcp://HOST:PORT")
     parser.add_argument("--quiet", action="store_true", help="no progress on the terminal")
+    parser.add_argument("--dry-run", action="store_true",
+                        help="list the outputs that are due and why; make and write nothing")
     return parser
 
 
@@ -29,6 +32,13 @@ def run(args: argparse.Namespace) -> int:
     if args.workers is not None and args.workers < 1:
         print("flowpipe: error: --workers must be at least 1", file=sys.stderr)
         return 2
+    if args.dry_run:
+        due = plan(args.config, force=args.force)
+        for output, stage, reason in due:
+            print(f"{output}: {reason}" + (f" ({stage})" if stage else ""))
+        if not due:
+            print("flowpipe: nothing due, every output is up to date")
+        return 0
     summary = run_pipeline(args.config, force=args.force, workers=args.workers,
                            scheduler=args.scheduler, quiet=args.quiet)
     if not args.quiet and sys.stderr.isatty():  # otherwise the run's log lines said it

@@ -130,13 +130,18 @@ def _name(wind: xr.Dataset) -> str:
     return files.splitlines()[0] if files else "the wind"
 
 
-def _check_wind(wind: xr.Dataset, vertical: str | None, sample: Sequence[str]) -> float:
-    """Validate the request against the wind; return the vertical-velocity scale."""
+def _check_wind(wind: xr.Dataset, vertical: str | None, sample: Sequence[str],
+                members: bool = False) -> float:
+    """Validate the request against the wind; return the vertical-velocity scale.
+
+    ``members``: ensemble members (the dimension ``realization``) are accepted.
+    """
     for name in ("u", "v"):
         if name not in wind:
             raise InputError(f"{_name(wind)}: no {name} variable; open the input with "
                              "flowpipe.open_wind")
-    extra = [d for d in wind["u"].dims if d not in ("time", "level", "latitude", "longitude")]
+    extra = [d for d in wind["u"].dims if d not in ("time", "level", "latitude", "longitude")
+             and not (members and d == "realization")]
     if extra:
         raise UsageError(f"{_name(wind)}: the wind has extra dimensions ({', '.join(extra)}); "
                          "trajectories need one value of each: give an input without them")
@@ -355,7 +360,11 @@ def advect(
     -------
     xarray.Dataset
         A CF discrete-sampling-geometry trajectory Dataset, dimensions
-        ``(trajectory, obs)``: ``time``, ``latitude``, ``longitude``, the
+        ``(trajectory, obs)``. An ensemble wind (dimension ``realization``)
+        gives one trajectory per start and member, member after member, with
+        the member as the coordinate ``realization`` along ``trajectory``; all
+        members share one time step (the shortest the rule gives for any of
+        them). Variables: ``time``, ``latitude``, ``longitude``, the
         level (``air_pressure`` or ``height``) when the input has levels,
         ``trajectory`` (``cf_role = trajectory_id``), ``status`` (flag values
         and meanings) and the sampled variables. Positions after a parcel
@@ -389,7 +398,7 @@ def advect(
     if not courant > 0:
         raise UsageError(f"courant {courant:g}: must be positive")
     sample = tuple(sample)
-    vertical_scale = _check_wind(wind, vertical, sample)
+    vertical_scale = _check_wind(wind, vertical, sample, members=True)
     clock = _clock(wind, steady)
     kind = describe_grid(wind).kind
     periodic = kind == "global"
@@ -399,15 +408,22 @@ def advect(
 
     grid = slice_grid(wind, periodic, band=kind == "band")
     names = (vertical,) if vertical else ()
-    winds = SliceWindow(wind, grid, True, names)
+    ensemble = ([wind.isel(realization=k) for k in range(wind.sizes["realization"])]
+                if "realization" in wind["u"].dims else [wind])
+    first_window = SliceWindow(ensemble[0], grid, True, names)
+
+    def window(k: int) -> SliceWindow:  # one member's slices in memory at a time
+        return first_window if k == 0 else SliceWindow(ensemble[k], grid, True, names)
+
     raw_levels = wind["level"].values.astype(np.float64) if "level" in wind.dims else None
     interval = float(np.min(np.diff(clock.seconds))) if clock.seconds.size > 1 and not steady \
         else math.inf
     record = record_minutes * 60.0
     if step_minutes is None:
-        first_slot = winds.slots_for([clock.bracket(float(start[~outside].min()))[0]])[0]
-        step = min(_courant_step(winds.field[first_slot], grid, raw_levels, vertical_scale,
-                                 courant), interval, record)
+        first = clock.bracket(float(start[~outside].min()))[0]
+        step = min([interval, record] + [
+            _courant_step(w.field[w.slots_for([first])[0]], grid, raw_levels, vertical_scale,
+                          courant) for w in map(window, range(len(ensemble)))])
         step = record / math.ceil(record / step - 1e-9)
     else:
         step = float(step_minutes) * 60.0
@@ -418,34 +434,43 @@ def advect(
                              f"({interval / 60:g} minutes); give at most {interval / 60:g}")
     schedule = _schedule(hours * 3600.0, step, record)
 
-    samples = SliceWindow(wind, grid, False, sample) if sample else None
     n = lat.size
+    rows_all = n * len(ensemble)  # member after member
     nobs = schedule.offsets.size
-    out_lat = np.full((n, nobs), np.nan)
-    out_lon = np.full((n, nobs), np.nan)
-    out_level = np.full((n, nobs), np.nan)
-    out_sample = np.full((n, nobs, len(sample)), np.nan)
-    out_speed = np.full((n, nobs), np.nan)
-    status = np.full(n, K.ACTIVE, dtype=np.int8)
+    out_lat = np.full((rows_all, nobs), np.nan)
+    out_lon = np.full((rows_all, nobs), np.nan)
+    out_level = np.full((rows_all, nobs), np.nan)
+    out_sample = np.full((rows_all, nobs, len(sample)), np.nan)
+    out_speed = np.full((rows_all, nobs), np.nan)
+    status = np.full(rows_all, K.ACTIVE, dtype=np.int8)
     level_for = level if raw_levels is not None else np.zeros(n)
-    # starts outside the domain keep their position at 0 h and go no further
-    status[outside] = K.OUTSIDE_AT_START
-    out_lat[outside, 0], out_lon[outside, 0] = lat[outside], lon[outside]
-    out_level[outside, 0] = level_for[outside]
-    for t0 in np.unique(start[~outside]):
-        members = np.flatnonzero((start == t0) & ~outside)
-        pos = unit_vectors(lat[members], lon[members])
-        lev = level_for[members].copy()
-        st = status[members]
-        _integrate(pos, lev, st, float(t0), sign, schedule, clock, winds, samples, grid,
-                   vertical_scale, SCHEMES[scheme], out_lat, out_lon, out_level, out_sample,
-                   out_speed, members)
-        status[members] = st
+    for k, member in enumerate(ensemble):
+        winds = window(k)
+        samples = SliceWindow(member, grid, False, sample) if sample else None
+        # starts outside the domain keep their position at 0 h and go no further
+        rows = np.flatnonzero(outside) + k * n  # rows of the output, member after member
+        status[rows] = K.OUTSIDE_AT_START
+        out_lat[rows, 0], out_lon[rows, 0] = lat[outside], lon[outside]
+        out_level[rows, 0] = level_for[outside]
+        for t0 in np.unique(start[~outside]):
+            group = np.flatnonzero((start == t0) & ~outside)
+            members = group + k * n
+            pos = unit_vectors(lat[group], lon[group])
+            lev = level_for[group].copy()
+            st = status[members]
+            _integrate(pos, lev, st, float(t0), sign, schedule, clock, winds, samples, grid,
+                       vertical_scale, SCHEMES[scheme], out_lat, out_lon, out_level, out_sample,
+                       out_speed, members)
+            status[members] = st
+        del winds, samples
     status[status == K.ACTIVE] = K.COMPLETED
+    realization = (np.repeat(wind["realization"].values, n)
+                   if "realization" in wind["u"].dims else None)
 
     return _trajectory_dataset(
-        wind, clock, start, sign, schedule.offsets, out_lat, out_lon, out_level, out_sample,
-        out_speed, status, sample, kind, raw_levels is not None, dict(
+        wind, clock, np.tile(start, len(ensemble)), sign, schedule.offsets, out_lat, out_lon,
+        out_level, out_sample, out_speed, status, sample, kind, raw_levels is not None,
+        realization, dict(
             integration_scheme="classical fourth-order Runge-Kutta" if scheme == "rk4"
             else "Petterssen (1940) iterative scheme",
             time_step_seconds=step, direction="backward" if backward else "forward",
@@ -560,9 +585,10 @@ def _steps(pos, lev, status, t0, sign, schedule, clock, winds, grid, vertical_sc
 
 #: What the trajectory identifiers are, for the file's readers.
 ID_COMMENT = ("flowpipe trajectory identifier: 'fp', 12 hexadecimal digits of a BLAKE2b hash of "
-              "the input files, every start (position, level, time), the direction and the length "
-              "of the integration, then the start's number in the list; ids from different "
-              "inputs or starts do not collide when files are combined")
+              "the input files, every start (position, level, time), the ensemble members, the "
+              "direction and the length of the integration, then the start's number in the list "
+              "(in an ensemble, counting on through the members, member after member); ids "
+              "from different inputs or starts do not collide when files are combined")
 
 
 def wrap_longitude(lon: np.ndarray) -> np.ndarray:
@@ -582,13 +608,16 @@ def trajectory_ids(wind: xr.Dataset, start: np.ndarray, lat0: np.ndarray, lon0: 
                             f"{method['trajectory_hours']:.6f}"]).encode())
     for values in (start, lat0, lon0, level0):
         digest.update(np.ascontiguousarray(values, dtype=np.float64).tobytes())
+    if "realization" in wind.dims:  # the members chosen
+        digest.update(("|".join(map(str, wind["realization"].values))).encode())
     width = len(str(max(start.size, 1)))
     numbers = np.char.zfill(np.arange(1, start.size + 1).astype(str), width)
     return np.char.add(f"fp{digest.hexdigest()}-", numbers)
 
 
 def _trajectory_dataset(wind, clock, start, sign, offsets, lat, lon, out_level, out_sample,
-                        out_speed, status, sample, kind, has_levels, method) -> xr.Dataset:
+                        out_speed, status, sample, kind, has_levels, realization,
+                        method) -> xr.Dataset:
     n, nobs = out_level.shape
     lon = wrap_longitude(lon)
     dims = ("trajectory", "obs")
@@ -637,6 +666,13 @@ def _trajectory_dataset(wind, clock, start, sign, offsets, lat, lon, out_level, 
     data["wind_speed"] = (dims, out_speed, {
         "units": "m s-1", "standard_name": "wind_speed",
         "long_name": "horizontal wind speed at the parcel (its horizontal speed along the path)"})
+    parcels = f"{n} air parcels"
+    if realization is not None:  # the member of each trajectory (CF 1.11 section 9.2)
+        coords["realization"] = ("trajectory", realization, dict(
+            annotate.CANONICAL_COORDINATES["realization"], coverage_content_type="coordinate"))
+        members = wind.sizes["realization"]
+        parcels = (f"{n // members} air parcels in each of {members} ensemble members "
+                   f"({n} trajectories)")
     ds = xr.Dataset(data, coords=coords)
     if "forecast_reference_time" in wind.coords and wind["forecast_reference_time"].ndim == 0:
         # one run: its time, a scalar coordinate (CF 1.11 section 5.7); the leads are in time
@@ -650,12 +686,17 @@ def _trajectory_dataset(wind, clock, start, sign, offsets, lat, lon, out_level, 
         ds["time"].encoding["calendar"] = calendar
     attrs = annotate.global_attrs(
         wind, title="flowpipe parcel trajectories",
-        summary=f"{method['direction'].capitalize()} trajectories of {n} air parcels over "
+        summary=f"{method['direction'].capitalize()} trajectories of {parcels} over "
         f"{method['trajectory_hours']:g} h through gridded model winds. {annotate.CAUTION}",
         references="Kutta (1901), Z. Math. Phys. 46, 435-453; Petterssen (1940), Weather "
         "Analysis and Forecasting; CF Conventions 1.11, chapter 9")
     attrs["featureType"] = "trajectory"
     attrs.update(method)
+    # the domain the winds cover (maps outline it): grid edges, longitudes as in the input
+    attrs["input_latitude_range"] = np.array([float(wind["latitude"].min()),
+                                              float(wind["latitude"].max())])
+    attrs["input_longitude_range"] = np.array([float(wind["longitude"].values[0]),
+                                               float(wind["longitude"].values[-1])])
     if clock.steady and "time" not in wind.dims:
         attrs["time_note"] = "the input has no time: times count from an arbitrary 1970-01-01"
     ds.attrs = attrs
