@@ -20,6 +20,7 @@ import pytest
 import xarray as xr
 
 import flowpipe as fp
+from flowpipe.cli import main
 from flowpipe.constants import EARTH_RADIUS
 
 U = 40.0  # m s-1, test case 1's u0 is 2 pi a / 12 days (about 38.6 m s-1); any speed will do
@@ -58,19 +59,17 @@ def _solid(phi, lam):
     (np.arange(-78.0, 78.1, 1.0), "band", [], ","),
     (np.arange(-90.0, 90.1, 1.0), "global", ["south", "north"], " with pole rows,"),
 ])
-def test_inspect_names_the_grid_kind(tmp_path, lat, kind, pole_rows, words):
+def test_inspect_names_the_grid_kind(tmp_path, capsys, lat, kind, pole_rows, words):
     # shared/DESIGN.md: inspect --json "grid" is global, band or regional; "poles" is true
     # with rows on both poles, "pole_rows" names each pole the rows include (a hemisphere's one)
     path = _band_file(tmp_path / "w.nc", lat, _solid, _zero, times=2)
-    run = subprocess.run([sys.executable, "-m", "flowpipe", "inspect", path, "--json"],
-                         capture_output=True, text=True)
-    assert run.returncode == 0, run.stderr
-    report = json.loads(run.stdout)
+    assert main(["inspect", path, "--json"]) == 0
+    report = json.loads(capsys.readouterr().out)
     assert report["grid"] == kind
     assert report["pole_rows"] == pole_rows
     assert report["poles"] == (len(pole_rows) == 2)
-    text = subprocess.run([sys.executable, "-m", "flowpipe", "inspect", path],
-                          capture_output=True, text=True).stdout
+    assert main(["inspect", path]) == 0
+    text = capsys.readouterr().out
     assert f"grid       {kind}, equiangular latitudes{words} " in text
 
 
@@ -189,10 +188,8 @@ def test_harmonic_wind_of_a_band_and_its_share(tmp_path):
                       dlon=2.0)
     for scheme in ("variational", "dirichlet"):
         out = tmp_path / f"{scheme}.nc"
-        run = subprocess.run([sys.executable, "-m", "flowpipe", "decompose", path, "-o", str(out),
-                              "--method", "regional", "--scheme", scheme],
-                             capture_output=True, text=True)
-        assert run.returncode == 0, run.stderr
+        assert main(["decompose", path, "-o", str(out), "--method", "regional",
+                     "--scheme", scheme]) == 0
         with xr.open_dataset(out) as ds:
             lat = np.radians(ds["latitude"].values)
             edge = np.radians(61.0)  # the band's boundary: half a spacing beyond the last row
@@ -300,7 +297,7 @@ def test_ftle_of_solid_body_rotation_on_a_hemisphere_is_zero(tmp_path):
     assert np.abs(values).max() < 1e-3 * U / EARTH_RADIUS
 
 
-def test_a_start_outside_the_band_is_skipped_not_the_run(tmp_path):
+def test_a_start_outside_the_band_is_skipped_not_the_run(tmp_path, capsys):
     # One start of several outside the -30..30 band: a flowpipe warning, that start kept at 0 h
     # with the status outside_domain_at_start (CF 1.11 section 3.5 flag_meanings), the others
     # integrated; with every start outside, the usual one-line error (exit 2).
@@ -309,10 +306,9 @@ def test_a_start_outside_the_band_is_skipped_not_the_run(tmp_path):
     csv = tmp_path / "starts.csv"
     csv.write_text("latitude,longitude\n10,20\n45,20\n-20,200\n")
     out = tmp_path / "tracks.nc"
-    run = subprocess.run([sys.executable, "-m", "flowpipe", "advect", path, "--starts", str(csv),
-                          "--hours", "6", "-o", str(out)], capture_output=True, text=True)
-    assert run.returncode == 0, run.stderr
-    assert "flowpipe: warning:" in run.stderr and "starts.csv line 3" in run.stderr
+    assert main(["advect", path, "--starts", str(csv), "--hours", "6", "-o", str(out)]) == 0
+    err = capsys.readouterr().err
+    assert "flowpipe: warning:" in err and "starts.csv line 3" in err
     with xr.open_dataset(out) as ds:
         meanings = ds["status"].attrs["flag_meanings"].split()
         assert [meanings[s] for s in ds["status"].values] == [
@@ -321,11 +317,10 @@ def test_a_start_outside_the_band_is_skipped_not_the_run(tmp_path):
         assert np.isnan(ds["latitude"].values[1, 1:]).all()
         assert np.isfinite(ds["latitude"].values[[0, 2]]).all()
     csv.write_text("latitude,longitude\n45,20\n")
-    run = subprocess.run([sys.executable, "-m", "flowpipe", "advect", path, "--starts", str(csv),
-                          "--hours", "6", "-o", str(tmp_path / "none.nc")],
-                         capture_output=True, text=True)
-    assert run.returncode == 2 and "outside the latitude band" in run.stderr
-    assert len(run.stderr.strip().splitlines()) == 1
+    assert main(["advect", path, "--starts", str(csv), "--hours", "6",
+                 "-o", str(tmp_path / "none.nc")]) == 2
+    err = capsys.readouterr().err
+    assert "outside the latitude band" in err and len(err.strip().splitlines()) == 1
 
 
 @pytest.mark.parametrize("pole_row", ["present", "all missing"])
