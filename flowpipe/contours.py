@@ -632,8 +632,10 @@ def circulation(wind: xr.Dataset, contours: Sequence[Contour | MovingCircle], *,
     xarray.Dataset
         Lazy; dimensions ``(time, level, contour)``. With a moving circle,
         ``area`` is per ``(time, contour)`` (the grid's sampling of the circle
-        changes as it moves) and ``centre_latitude`` / ``centre_longitude``
-        ``(time, contour)`` give the circles' centres (NaN for boxes and polygons).
+        changes as it moves), ``centre_latitude`` / ``centre_longitude``
+        ``(time, contour)`` give the circles' centres and ``radius`` (contour)
+        their radii (NaN for boxes and polygons); the geometry container shows the
+        circles at the first time.
 
     References
     ----------
@@ -743,16 +745,22 @@ def _describe(ds: xr.Dataset, contours, grid, pressure, obrien, surface, top) ->
 
 
 def _centres(ds: xr.Dataset, contours, time: xr.DataArray) -> None:
-    """``centre_latitude`` / ``centre_longitude`` (time, contour) of circles, fixed or moving."""
+    """``centre_latitude`` / ``centre_longitude`` (time, contour) and ``radius`` (contour) of
+    circles, fixed or moving: with the radius, the centre gives each circle at every time."""
     lat = np.full((time.size, len(contours)), np.nan)
     lon = np.full_like(lat, np.nan)
+    radius = np.full(len(contours), np.nan)
     for k, c in enumerate(contours):
         if isinstance(c, MovingCircle):
             lat[:, k], lon[:, k] = c.centre(time.values)
+            radius[k] = c.radius_km * 1e3
         elif c.kind == "circle":
             lat[:, k], lon[:, k] = c.params[0], (c.params[1] + 180.0) % 360.0 - 180.0
+            radius[k] = c.params[2] * 1e3
     note = ("circles only (NaN for boxes and polygons); the contour geometry shows each "
             "circle at the first time")
+    ds["radius"] = xr.DataArray(radius, dims="contour", attrs={
+        "units": "m", "long_name": "great-circle radius of the circle", "comment": note})
     ds["centre_latitude"] = xr.DataArray(lat, dims=("time", "contour"), attrs={
         "units": "degrees_north", "long_name": "latitude of the circle's centre", "comment": note})
     ds["centre_longitude"] = xr.DataArray(lon, dims=("time", "contour"), attrs={

@@ -336,3 +336,49 @@ def test_circulation_table_errors_name_the_key(tmp_path, capsys, table, needle):
     err = capsys.readouterr().err.strip()
     assert needle in err and len(err.splitlines()) == 1
     assert not (tmp_path / "out").exists()
+
+
+def test_readme_storm_example_stores_centre_and_geometry(tmp_path):
+    # The README's storm-centred example (sample_data/demo_storm_track.csv), read back with
+    # netCDF-C (netCDF4): the moving circle's centre per (time, contour) and its radius, the
+    # geometry (CF-1.11 section 7.5) at the first time. Distances and the great circle by
+    # pyproj.Geod (PROJ's geodesics, on a sphere of flowpipe's radius): every node of the
+    # circle lies R from the first centre; the centres at the track's times are the track's
+    # points, and the one between two of them lies halfway along the great circle.
+    import netCDF4
+    import pyproj
+
+    from flowpipe.cli import main
+
+    out = tmp_path / "storm.nc"
+    assert main(["circulation", "sample_data/demo_regional.nc", "-o", str(out), "--follow",
+                 "sample_data/demo_storm_track.csv", "--radius-km", "500",
+                 "--box", "46,56,-26,-4"]) == 0
+    geod = pyproj.Geod(a=A, b=A)
+    with netCDF4.Dataset(out) as nc:
+        assert nc["centre_latitude"].dimensions == ("time", "contour")
+        assert nc["centre_longitude"].dimensions == ("time", "contour")
+        names = list(nc["contour_name"][:])
+        assert names == ["box 46,56,-26,-4", "demo_storm_track"]  # boxes come first
+        lat = nc["centre_latitude"][:].filled(np.nan)[:, ::-1]  # the track first from here on
+        lon = nc["centre_longitude"][:].filled(np.nan)[:, ::-1]
+        radius = nc["radius"][:].filled(np.nan)
+        assert np.isnan(lat[:, 1]).all() and np.isnan(radius[0])  # the box has none
+        assert radius[1] == 500e3
+        np.testing.assert_allclose(lat[::2, 0], [50.0, 51.2, 52.4], atol=1e-9)
+        np.testing.assert_allclose(lon[::2, 0], [-20.0, -15.2, -10.4], atol=1e-9)
+        _, _, d1 = geod.inv(lon[0, 0], lat[0, 0], lon[1, 0], lat[1, 0])
+        _, _, d2 = geod.inv(lon[1, 0], lat[1, 0], lon[2, 0], lat[2, 0])
+        _, _, d = geod.inv(lon[0, 0], lat[0, 0], lon[2, 0], lat[2, 0])
+        assert d1 == pytest.approx(d / 2, rel=1e-9) and d2 == pytest.approx(d / 2, rel=1e-9)
+        geometry = nc[nc["circulation"].geometry]
+        assert geometry.geometry_type == "polygon"
+        first, count = nc[geometry.node_count][:]  # the box's nodes, then the circle's
+        xname, yname = geometry.node_coordinates.split()
+        node_lon, node_lat = nc[xname][first:first + count], nc[yname][first:first + count]
+        _, _, r = geod.inv(np.full(count, lon[0, 0]), np.full(count, lat[0, 0]),
+                           node_lon, node_lat)
+        np.testing.assert_allclose(r, 500e3, rtol=1e-9)
+        circ = nc["circulation"][:, :, 1]
+    # the README's claim: the following circle keeps the storm's circulation (to 0.3 %)
+    assert np.ptp(circ, axis=0).max() < 3e-3 * np.abs(circ).min()
