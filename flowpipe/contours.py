@@ -630,10 +630,12 @@ def circulation(wind: xr.Dataset, contours: Sequence[Contour | MovingCircle], *,
     Returns
     -------
     xarray.Dataset
-        Lazy; dimensions ``(time, level, contour)``. With a moving circle,
-        ``area`` is per ``(time, contour)`` (the grid's sampling of the circle
+        Lazy; dimensions ``(contour, time, level)`` (CF-1.11 section 2.4: other
+        dimensions left of T and Z, as in its example 7.15 of a time series of
+        geometries). With a moving circle,
+        ``area`` is per ``(contour, time)`` (the grid's sampling of the circle
         changes as it moves), ``centre_latitude`` / ``centre_longitude``
-        ``(time, contour)`` give the circles' centres and ``radius`` (contour)
+        ``(contour, time)`` give the circles' centres and ``radius`` (contour)
         their radii (NaN for boxes and polygons); the geometry container shows the
         circles at the first time.
 
@@ -684,7 +686,7 @@ def circulation(wind: xr.Dataset, contours: Sequence[Contour | MovingCircle], *,
             kwargs={"pressure": pa, "surface": surface_omega,
                     "top": top_omega if obrien else None},
             dask="parallelized", output_dtypes=[float])
-    ds = ds.transpose(*[d for d in ("time", "level", "contour") if d in ds.dims])
+    ds = ds.transpose("contour", ..., *[d for d in ("time", "level") if d in ds.dims])
     _describe(ds, first, grid, pressure, obrien, surface_omega, top_omega)
     if moving:
         _centres(ds, contours, wind.time)
@@ -720,7 +722,8 @@ def _describe(ds: xr.Dataset, contours, grid, pressure, obrien, surface, top) ->
     node_lat = np.concatenate([n[0][:-1] for n in nodes])
     node_lon = np.concatenate([(n[1][:-1] + 180.0) % 360.0 - 180.0 for n in nodes])
     ds["node_count"] = xr.DataArray(np.array([len(n[0]) - 1 for n in nodes], dtype="i4"),
-                                    dims="contour", attrs={"long_name": "count of nodes per contour"})
+                                    dims="contour", attrs={"long_name": "count of nodes per contour",
+                                                           "units": "1"})
     ds["node_latitude"] = xr.DataArray(node_lat, dims="node", attrs={
         "units": "degrees_north", "standard_name": "latitude", "axis": "Y"})
     ds["node_longitude"] = xr.DataArray(node_lon, dims="node", attrs={
@@ -745,7 +748,7 @@ def _describe(ds: xr.Dataset, contours, grid, pressure, obrien, surface, top) ->
 
 
 def _centres(ds: xr.Dataset, contours, time: xr.DataArray) -> None:
-    """``centre_latitude`` / ``centre_longitude`` (time, contour) and ``radius`` (contour) of
+    """``centre_latitude`` / ``centre_longitude`` (contour, time) and ``radius`` (contour) of
     circles, fixed or moving: with the radius, the centre gives each circle at every time."""
     lat = np.full((time.size, len(contours)), np.nan)
     lon = np.full_like(lat, np.nan)
@@ -761,7 +764,7 @@ def _centres(ds: xr.Dataset, contours, time: xr.DataArray) -> None:
             "circle at the first time")
     ds["radius"] = xr.DataArray(radius, dims="contour", attrs={
         "units": "m", "long_name": "great-circle radius of the circle", "comment": note})
-    ds["centre_latitude"] = xr.DataArray(lat, dims=("time", "contour"), attrs={
+    ds["centre_latitude"] = xr.DataArray(lat.T, dims=("contour", "time"), attrs={
         "units": "degrees_north", "long_name": "latitude of the circle's centre", "comment": note})
-    ds["centre_longitude"] = xr.DataArray(lon, dims=("time", "contour"), attrs={
+    ds["centre_longitude"] = xr.DataArray(lon.T, dims=("contour", "time"), attrs={
         "units": "degrees_east", "long_name": "longitude of the circle's centre", "comment": note})

@@ -260,10 +260,10 @@ def test_moving_circle_follows_translating_vortex(tmp_path):
     radius = 600.0
     out = C.circulation(ds, [C.read_track(track, radius), C.circle(c_lat[0], c_lon[0], radius)]
                         ).compute()
-    np.testing.assert_allclose(out.centre_latitude.values[:, 0], c_lat, atol=1e-9)
-    np.testing.assert_allclose(out.centre_longitude.values[:, 0], c_lon, atol=1e-9)
+    np.testing.assert_allclose(out.centre_latitude.isel(contour=0), c_lat, atol=1e-9)
+    np.testing.assert_allclose(out.centre_longitude.isel(contour=0), c_lon, atol=1e-9)
     expect = 2 * np.pi * A * np.sin(radius * 1e3 / A) * _vortex_speed(radius * 1e3)
-    moving, fixed = out.circulation.values[:, 0, 0], out.circulation.values[:, 0, 1]
+    moving, fixed = out.circulation.isel(level=0).values  # (contour, time)
     np.testing.assert_allclose(moving, expect, rtol=1e-3)
     assert abs(fixed[-1] / expect - 1) > 0.5  # the circle left behind loses the vortex
     assert str(out.contour_name.values[0]) == "storm"
@@ -340,7 +340,7 @@ def test_circulation_table_errors_name_the_key(tmp_path, capsys, table, needle):
 
 def test_readme_storm_example_stores_centre_and_geometry(tmp_path):
     # The README's storm-centred example (sample_data/demo_storm_track.csv), read back with
-    # netCDF-C (netCDF4): the moving circle's centre per (time, contour) and its radius, the
+    # netCDF-C (netCDF4): the moving circle's centre per (contour, time) and its radius, the
     # geometry (CF-1.11 section 7.5) at the first time. Distances and the great circle by
     # pyproj.Geod (PROJ's geodesics, on a sphere of flowpipe's radius): every node of the
     # circle lies R from the first centre; the centres at the track's times are the track's
@@ -356,12 +356,12 @@ def test_readme_storm_example_stores_centre_and_geometry(tmp_path):
                  "--box", "46,56,-26,-4"]) == 0
     geod = pyproj.Geod(a=A, b=A)
     with netCDF4.Dataset(out) as nc:
-        assert nc["centre_latitude"].dimensions == ("time", "contour")
-        assert nc["centre_longitude"].dimensions == ("time", "contour")
+        assert nc["centre_latitude"].dimensions == ("contour", "time")  # CF-1.11 section 2.4
+        assert nc["centre_longitude"].dimensions == ("contour", "time")
         names = list(nc["contour_name"][:])
         assert names == ["box 46,56,-26,-4", "demo_storm_track"]  # boxes come first
-        lat = nc["centre_latitude"][:].filled(np.nan)[:, ::-1]  # the track first from here on
-        lon = nc["centre_longitude"][:].filled(np.nan)[:, ::-1]
+        lat = nc["centre_latitude"][:].filled(np.nan)[::-1].T  # (time, contour), track first
+        lon = nc["centre_longitude"][:].filled(np.nan)[::-1].T
         radius = nc["radius"][:].filled(np.nan)
         assert np.isnan(lat[:, 1]).all() and np.isnan(radius[0])  # the box has none
         assert radius[1] == 500e3
@@ -379,6 +379,7 @@ def test_readme_storm_example_stores_centre_and_geometry(tmp_path):
         _, _, r = geod.inv(np.full(count, lon[0, 0]), np.full(count, lat[0, 0]),
                            node_lon, node_lat)
         np.testing.assert_allclose(r, 500e3, rtol=1e-9)
-        circ = nc["circulation"][:, :, 1]
+        assert nc["circulation"].dimensions == ("contour", "time", "level")
+        circ = nc["circulation"][1]
     # the README's claim: the following circle keeps the storm's circulation (to 0.3 %)
     assert np.ptp(circ, axis=0).max() < 3e-3 * np.abs(circ).min()
