@@ -552,24 +552,33 @@ def kinematic_omega(pressure: np.ndarray, divergence: np.ndarray, *, surface: fl
 
 
 def _slab_integrals(u, v, zeta, delta, step, *, lines, areas):
-    """Line and area integrals of slabs; ``step`` picks each slab's matrices (moving circles)."""
+    """Line and area integrals of slabs; ``step`` picks each slab's matrices (moving circles).
+
+    ``lines[k]`` is the pair of column blocks (u, v) of :func:`line_matrices`, so each slab
+    costs four sparse mat-vecs on its own fields and nothing is copied into a stacked vector.
+    """
     shape = u.shape[:-2]
     n = areas[0].shape[0]
-    flat = lambda a: a.reshape(-1, a.shape[-2] * a.shape[-1]).T  # noqa: E731
+    flat = lambda a: a.reshape(-1, a.shape[-2] * a.shape[-1])  # noqa: E731  (slab, cell)
     fu, fv, fz, fd = flat(u), flat(v), flat(zeta), flat(delta)
     step = np.broadcast_to(step, shape).ravel()
-    res = np.empty((4, fu.shape[1], n))
-    for k in np.unique(step):
-        sel = step == k
-        m = int(sel.sum())
-        ring = lines[k] @ np.concatenate([fu[:, sel], fv[:, sel]], axis=0)
-        ints = areas[k] @ np.concatenate([fz[:, sel], fd[:, sel]], axis=1)
-        res[:, sel] = [ring[:n].T, ring[n:].T, ints[:, :m].T, ints[:, m:].T]
+    res = np.empty((4, fu.shape[0], n))
+    for i, k in enumerate(step):
+        (lu, lv), area = lines[k], areas[k]
+        ring = lu @ fu[i] + lv @ fv[i]
+        res[:, i] = ring[:n], ring[n:], area @ fz[i], area @ fd[i]
     return tuple(r.reshape(shape + (n,)) for r in res)
 
 
+def _column_blocks(line: sp.csr_array) -> tuple[sp.csr_array, sp.csr_array]:
+    """The u and v column blocks of a line matrix (``M @ [u; v] = Mu @ u + Mv @ v``)."""
+    half = line.shape[1] // 2
+    return sp.csr_array(line[:, :half]), sp.csr_array(line[:, half:])
+
+
 def _matrices(grid: _Grid, contours: Sequence[Contour | MovingCircle], times: np.ndarray | None):
-    """Line and area matrices, one pair per time when a circle moves (else one pair).
+    """Line matrices (as u and v column blocks) and area matrices, one of each per time when
+    a circle moves (else one), and the contours as they are at the first time.
 
     The rows of fixed contours are built once and reused at every time.
     """
@@ -604,7 +613,7 @@ def _matrices(grid: _Grid, contours: Sequence[Contour | MovingCircle], times: np
         if (sums <= 0).any():
             bad = contours[int(np.argmin(sums))].name
             raise InputError(f"contour {bad!r} encloses no grid cell of the data; enlarge it")
-        lines.append(line)
+        lines.append(_column_blocks(line))
         areas.append(area)
     return lines, areas, [snapshots[0][j] for j in order]
 
