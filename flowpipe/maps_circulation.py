@@ -75,7 +75,8 @@ def circulation_figure(fig: Figure, ds: xr.Dataset, label: str, field: str | Non
         colour = _cmap()(norm(value)) if np.isfinite(value) else "none"
         ax.add_patch(Polygon(xyz, closed=True, facecolor=colour, edgecolor="black",
                              linewidth=1.0, zorder=2, label=name))
-        ax.text(*xyz.mean(axis=0), name, fontsize=7, ha="center", va="center", zorder=4,
+        top = xyz[np.argmax(xyz[:, 1])]  # the name just inside the contour's top
+        ax.text(xyz[:, 0].mean(), top[1], name, fontsize=7, ha="center", va="top", zorder=4,
                 path_effects=[patheffects.withStroke(linewidth=2.0, foreground="white")])
     if "centre_latitude" in ds:
         _tracks(ax, ds, proj)
