@@ -394,3 +394,16 @@ def test_readme_storm_example_stores_centre_and_geometry(tmp_path):
         circ = nc["circulation"][1]
     # the README's claim: the following circle keeps the storm's circulation (to 0.3 %)
     assert np.ptp(circ, axis=0).max() < 3e-3 * np.abs(circ).min()
+
+
+def test_sample_track_is_the_one_make_sample_data_writes(tmp_path, monkeypatch):
+    # sample_data/make_sample_data.py writes demo_storm_track.csv from the storm's centre
+    # formula; what it writes is byte for byte the committed file (regenerated files equal
+    # the committed ones: common practice), and that is the storm's centre in the data.
+    monkeypatch.syspath_prepend(str(ROOT / "sample_data"))
+    import make_sample_data
+
+    make_sample_data.make_track(tmp_path / "track.csv")
+    committed = ROOT / "sample_data" / "demo_storm_track.csv"
+    assert (tmp_path / "track.csv").read_bytes() == committed.read_bytes()
+    assert make_sample_data.storm_centre(12.0) == pytest.approx((51.2, -15.2))
