@@ -2,7 +2,8 @@
 
 Makes a global file (u, v, vorticity, divergence) in a temporary directory, then
 alternately (a) reads every slab of the four fields and (b) reads them and applies the
-precomputed sparse line and area matrices of all circles (one mat-vec each per slab).
+precomputed sparse line and area matrices of all circles with the function the
+circulation stage runs on each slab (``contours._slab_integrals``: four sparse mat-vecs).
 Prints both medians and their ratio. Usage: bench_circulation.py [RES_DEG LEVELS CIRCLES]
 """
 
@@ -40,18 +41,18 @@ def main() -> None:
         circles = [C.circle(float(a), float(b), 300.0) for a, b in
                    zip(rng.uniform(-80, 80, ncirc), rng.uniform(0, 360, ncirc), strict=True)]
         t0 = time.perf_counter()
-        line, area = C.line_matrices(grid, circles), C.area_matrix(grid, circles)
+        lines, areas, _ = C._matrices(grid, circles, None)
         build = time.perf_counter() - t0
 
         def read(apply: bool) -> float:
             t = time.perf_counter()
             with netCDF4.Dataset(path) as nc:
+                nc.set_auto_mask(False)  # plain arrays, as the stage gets them through xarray
                 for k in range(nlev):
-                    u, v, z, d = (nc[n][k].astype(np.float64).ravel()
+                    u, v, z, d = (nc[n][k].astype(np.float64)
                                   for n in ("u", "v", "vorticity", "divergence"))
                     if apply:
-                        line @ np.concatenate([u, v])
-                        area @ np.stack([z, d], axis=1)
+                        C._slab_integrals(u, v, z, d, 0, lines=lines, areas=areas)
             return time.perf_counter() - t
 
         only, both = [], []

@@ -552,24 +552,33 @@ def kinematic_omega(pressure: np.ndarray, divergence: np.ndarray, *, surface: fl
 
 
 def _slab_integrals(u, v, zeta, delta, step, *, lines, areas):
-    """Line and area integrals of slabs; ``step`` picks each slab's matrices (moving circles)."""
+    """Line and area integrals of slabs; ``step`` picks each slab's matrices (moving circles).
+
+    ``lines[k]`` is the pair of column blocks (u, v) of :func:`line_matrices`, so each slab
+    costs four sparse mat-vecs on its own fields and nothing is copied into a stacked vector.
+    """
     shape = u.shape[:-2]
     n = areas[0].shape[0]
-    flat = lambda a: a.reshape(-1, a.shape[-2] * a.shape[-1]).T  # noqa: E731
+    flat = lambda a: a.reshape(-1, a.shape[-2] * a.shape[-1])  # noqa: E731  (slab, cell)
     fu, fv, fz, fd = flat(u), flat(v), flat(zeta), flat(delta)
     step = np.broadcast_to(step, shape).ravel()
-    res = np.empty((4, fu.shape[1], n))
-    for k in np.unique(step):
-        sel = step == k
-        m = int(sel.sum())
-        ring = lines[k] @ np.concatenate([fu[:, sel], fv[:, sel]], axis=0)
-        ints = areas[k] @ np.concatenate([fz[:, sel], fd[:, sel]], axis=1)
-        res[:, sel] = [ring[:n].T, ring[n:].T, ints[:, :m].T, ints[:, m:].T]
+    res = np.empty((4, fu.shape[0], n))
+    for i, k in enumerate(step):
+        (lu, lv), area = lines[k], areas[k]
+        ring = lu @ fu[i] + lv @ fv[i]
+        res[:, i] = ring[:n], ring[n:], area @ fz[i], area @ fd[i]
     return tuple(r.reshape(shape + (n,)) for r in res)
 
 
+def _column_blocks(line: sp.csr_array) -> tuple[sp.csr_array, sp.csr_array]:
+    """The u and v column blocks of a line matrix (``M @ [u; v] = Mu @ u + Mv @ v``)."""
+    half = line.shape[1] // 2
+    return sp.csr_array(line[:, :half]), sp.csr_array(line[:, half:])
+
+
 def _matrices(grid: _Grid, contours: Sequence[Contour | MovingCircle], times: np.ndarray | None):
-    """Line and area matrices, one pair per time when a circle moves (else one pair).
+    """Line matrices (as u and v column blocks) and area matrices, one of each per time when
+    a circle moves (else one), and the contours as they are at the first time.
 
     The rows of fixed contours are built once and reused at every time.
     """
@@ -604,7 +613,7 @@ def _matrices(grid: _Grid, contours: Sequence[Contour | MovingCircle], times: np
         if (sums <= 0).any():
             bad = contours[int(np.argmin(sums))].name
             raise InputError(f"contour {bad!r} encloses no grid cell of the data; enlarge it")
-        lines.append(line)
+        lines.append(_column_blocks(line))
         areas.append(area)
     return lines, areas, [snapshots[0][j] for j in order]
 
@@ -630,10 +639,14 @@ def circulation(wind: xr.Dataset, contours: Sequence[Contour | MovingCircle], *,
     Returns
     -------
     xarray.Dataset
-        Lazy; dimensions ``(time, level, contour)``. With a moving circle,
-        ``area`` is per ``(time, contour)`` (the grid's sampling of the circle
-        changes as it moves) and ``centre_latitude`` / ``centre_longitude``
-        ``(time, contour)`` give the circles' centres (NaN for boxes and polygons).
+        Lazy; dimensions ``(contour, time, level)`` (CF-1.11 section 2.4: other
+        dimensions left of T and Z, as in its example 7.15 of a time series of
+        geometries). With a moving circle,
+        ``area`` is per ``(contour, time)`` (the grid's sampling of the circle
+        changes as it moves), ``centre_latitude`` / ``centre_longitude``
+        ``(contour, time)`` give the circles' centres and ``radius`` (contour)
+        their radii (NaN for boxes and polygons); the geometry container shows the
+        circles at the first time.
 
     References
     ----------
@@ -682,7 +695,7 @@ def circulation(wind: xr.Dataset, contours: Sequence[Contour | MovingCircle], *,
             kwargs={"pressure": pa, "surface": surface_omega,
                     "top": top_omega if obrien else None},
             dask="parallelized", output_dtypes=[float])
-    ds = ds.transpose(..., *[d for d in ("time", "level", "contour") if d in ds.dims])
+    ds = ds.transpose("contour", ..., *[d for d in ("time", "level") if d in ds.dims])
     _describe(ds, first, grid, pressure, obrien, surface_omega, top_omega)
     if moving:
         _centres(ds, contours, wind.time)
@@ -718,7 +731,8 @@ def _describe(ds: xr.Dataset, contours, grid, pressure, obrien, surface, top) ->
     node_lat = np.concatenate([n[0][:-1] for n in nodes])
     node_lon = np.concatenate([(n[1][:-1] + 180.0) % 360.0 - 180.0 for n in nodes])
     ds["node_count"] = xr.DataArray(np.array([len(n[0]) - 1 for n in nodes], dtype="i4"),
-                                    dims="contour", attrs={"long_name": "count of nodes per contour"})
+                                    dims="contour", attrs={"long_name": "count of nodes per contour",
+                                                           "units": "1"})
     ds["node_latitude"] = xr.DataArray(node_lat, dims="node", attrs={
         "units": "degrees_north", "standard_name": "latitude", "axis": "Y"})
     ds["node_longitude"] = xr.DataArray(node_lon, dims="node", attrs={
@@ -743,17 +757,23 @@ def _describe(ds: xr.Dataset, contours, grid, pressure, obrien, surface, top) ->
 
 
 def _centres(ds: xr.Dataset, contours, time: xr.DataArray) -> None:
-    """``centre_latitude`` / ``centre_longitude`` (time, contour) of circles, fixed or moving."""
+    """``centre_latitude`` / ``centre_longitude`` (contour, time) and ``radius`` (contour) of
+    circles, fixed or moving: with the radius, the centre gives each circle at every time."""
     lat = np.full((time.size, len(contours)), np.nan)
     lon = np.full_like(lat, np.nan)
+    radius = np.full(len(contours), np.nan)
     for k, c in enumerate(contours):
         if isinstance(c, MovingCircle):
             lat[:, k], lon[:, k] = c.centre(time.values)
+            radius[k] = c.radius_km * 1e3
         elif c.kind == "circle":
             lat[:, k], lon[:, k] = c.params[0], (c.params[1] + 180.0) % 360.0 - 180.0
+            radius[k] = c.params[2] * 1e3
     note = ("circles only (NaN for boxes and polygons); the contour geometry shows each "
             "circle at the first time")
-    ds["centre_latitude"] = xr.DataArray(lat, dims=("time", "contour"), attrs={
+    ds["radius"] = xr.DataArray(radius, dims="contour", attrs={
+        "units": "m", "long_name": "great-circle radius of the circle", "comment": note})
+    ds["centre_latitude"] = xr.DataArray(lat.T, dims=("contour", "time"), attrs={
         "units": "degrees_north", "long_name": "latitude of the circle's centre", "comment": note})
-    ds["centre_longitude"] = xr.DataArray(lon, dims=("time", "contour"), attrs={
+    ds["centre_longitude"] = xr.DataArray(lon.T, dims=("contour", "time"), attrs={
         "units": "degrees_east", "long_name": "longitude of the circle's centre", "comment": note})

@@ -211,13 +211,22 @@ def render(
     ds, label = _open(source)
     width, height = size
     fig = Figure(figsize=(width / dpi, height / dpi), dpi=dpi)
-    if str(ds.attrs.get("featureType", "")).lower() == "trajectory":
-        if level is not None or time is not None or run is not None or lead is not None:
-            raise UsageError(f"{label}: level, time, run and lead do not apply to a trajectory "
-                             "file; leave them out")
-        _track_map(fig, ds, label, field, projection, marks_hours, member)
-    else:
-        _field_map(fig, ds, label, field, level, (time, run, lead), projection, barbs, member)
+    try:
+        if str(ds.attrs.get("featureType", "")).lower() == "trajectory":
+            if level is not None or time is not None or run is not None or lead is not None:
+                raise UsageError(f"{label}: level, time, run and lead do not apply to a "
+                                 "trajectory file; leave them out")
+            _track_map(fig, ds, label, field, projection, marks_hours, member)
+        elif "contour" in ds.dims and "node_count" in ds:  # a circulation output
+            from .maps_circulation import circulation_figure
+
+            circulation_figure(fig, ds, label, field, level, (time, run, lead), projection)
+        else:
+            _field_map(fig, ds, label, field, level, (time, run, lead), projection, barbs,
+                       member)
+    finally:  # the figure holds plain arrays: close the file opened here (HDF5 handles
+        if not isinstance(source, xr.Dataset):  # left to the garbage collector can make
+            ds.close()  # a later open of the same file fail with "HDF error")
     fig.text(0.005, 0.005, f"{Path(label).name} | flowpipe {__version__} | {CAUTION_SHORT}",
              fontsize=6, color="0.3", ha="left", va="bottom")
     return fig
@@ -435,8 +444,9 @@ def _domain_projection(lat: np.ndarray, lon: np.ndarray, name: str | ccrs.Projec
                                           central_latitude=centre_lat), extent
 
 
-def _map_axes(fig: Figure, proj: ccrs.Projection, extent: list[float] | None):
-    ax = fig.add_axes(MAP_BOX, projection=proj)
+def _map_axes(fig: Figure, proj: ccrs.Projection, extent: list[float] | None,
+              box: tuple[float, float, float, float] = MAP_BOX):
+    ax = fig.add_axes(box, projection=proj)
     if extent is None:
         ax.set_global()
     elif isinstance(proj, ccrs.Stereographic):

@@ -20,8 +20,8 @@ decomposition of the demo winds is known exactly.
     write them; a moving cyclone with low-level inflow and upper-level
     outflow in a uniform westerly.
 ``demo_storm_track.csv``
-    the storm's centre of ``demo_regional.nc`` every 12 hours (written by hand from
-    the centre formula in :func:`make_regional`), for ``flowpipe circulation --follow``.
+    the storm's centre of ``demo_regional.nc`` every 12 hours (:func:`storm_centre`,
+    the formula :func:`make_regional` uses), for ``flowpipe circulation --follow``.
 
 Values are packed as 16-bit integers with ``scale_factor`` and
 ``add_offset`` (CF 1.11, section 8.1), which keeps both files small.
@@ -133,6 +133,11 @@ def make_global(path: Path) -> None:
     _write(ds, enc, path)
 
 
+def storm_centre(hours: float) -> tuple[float, float]:
+    """Latitude and longitude (degrees) of the regional demo storm's centre."""
+    return 50.0 + 0.1 * hours, -20.0 + 0.4 * hours
+
+
 def make_regional(path: Path) -> None:
     lat = np.arange(65.0, 34.99, -0.25)  # north to south
     lon = np.arange(-30.0, 10.001, 0.25)
@@ -144,7 +149,7 @@ def make_regional(path: Path) -> None:
     u, v, ta = np.empty(shape), np.empty(shape), np.empty(shape)
     radius = 400e3  # m, radius of maximum wind
     for it, h in enumerate(hours):
-        lat_c, lon_c = np.radians(50.0 + 0.1 * h), np.radians(-20.0 + 0.4 * h)
+        lat_c, lon_c = np.radians(storm_centre(h))
         x = A * np.cos(lat_c) * (lam - lon_c) * np.ones_like(phi)
         y = A * (phi - lat_c) * np.ones_like(lam)
         rr = np.hypot(x, y) / radius
@@ -181,8 +186,20 @@ def make_regional(path: Path) -> None:
     _write(ds, enc, path)
 
 
+def make_track(path: Path) -> None:
+    """The storm's centre every 12 hours: CSV ``time,latitude,longitude`` (ISO 8601)."""
+    rows = ["time,latitude,longitude"]
+    for h in (0.0, 12.0, 24.0):
+        lat, lon = storm_centre(h)
+        rows.append(f"{str(_times(np.array([h]))[0])[:16]},{lat:.1f},{lon:.1f}")
+    tmp = path.with_suffix(".tmp")
+    tmp.write_text("\n".join(rows) + "\n", encoding="utf-8")
+    tmp.replace(path)
+
+
 if __name__ == "__main__":
     make_global(HERE / "demo_global.nc")
     make_regional(HERE / "demo_regional.nc")
+    make_track(HERE / "demo_storm_track.csv")
     for name in ("demo_global.nc", "demo_regional.nc"):
         print(f"{name}: {(HERE / name).stat().st_size / 1e6:.2f} MB")

@@ -28,7 +28,7 @@ import xarray as xr
 from compliance_checker.runner import CheckSuite, ComplianceChecker
 
 import flowpipe as fp
-from flowpipe import annotate
+from flowpipe import annotate, contours
 from flowpipe.fields import WIND_PRODUCTS
 
 ROOT = Path(__file__).resolve().parents[1]
@@ -175,6 +175,10 @@ def outputs(tmp_path_factory) -> dict[str, Path]:
         "decompose-quantized-zstd": (fp.decompose(wind.isel(time=slice(0, 1))), "quantized"),
         "decompose-wind-products": (fp.select_fields(fp.decompose(wind.isel(time=slice(0, 1))),
                                                      wind, list(WIND_PRODUCTS)), False),
+        "circulation": (fp.circulation(fp.open_wind(REGIONAL).isel(time=slice(0, 2)), [
+            contours.box(46, 56, -26, -4), contours.circle(50, -20, 300),
+            contours.read_track(ROOT / "sample_data" / "demo_storm_track.csv", 500)],
+            obrien=True), False),
     }
     options = {False: {"precision": "double"}, True: {"precision": "single"},
                "quantized": {"significant_digits": 3, "compression": "zstd"}}
@@ -190,7 +194,7 @@ def reports(outputs) -> dict[str, dict]:
 KINDS = ("global-decomposition", "regional-decomposition", "kinematics-float32",
          "trajectories-3d", "trajectories-2d", "decompose-spectral", "decompose-regional",
          "decompose-masked", "kinematics", "advect", "ftle", "decompose-quantized-zstd",
-         "decompose-wind-products")
+         "decompose-wind-products", "circulation")
 
 
 @pytest.mark.parametrize("kind", KINDS)
@@ -201,18 +205,42 @@ def test_cf_1_11_no_errors(reports, kind):
     assert result["high_count"] == 0
 
 
+#: compliance-checker's section 7.5 check wants the node dimension among the dimensions of
+#: every variable with a geometry; CF 1.11 section 7.5 puts the instance dimension there
+#: (the node coordinates alone have the node dimension), and the checker says the same of
+#: its own reference polygon file (test below).
+NODE_DIMENSION = re.compile(r"§7.5 Geometries: Parent variable '\w+' does not include "
+                            r"geometry dimension '\w+' used in geometry variable '\w+'")
+
+
 @pytest.mark.parametrize("kind", KINDS)
 def test_cf_1_11_recommendations(reports, kind):
-    # compliance-checker cf:1.11 warnings (CF recommendations). The one allowed:
-    # CF 1.11 section 2.4 recommends dimensions other than T, Z, Y, X left of them;
-    # spectra keep (time, level, total_wavenumber), the order readers index them by.
+    # compliance-checker cf:1.11 warnings (CF recommendations). Allowed: CF 1.11 section
+    # 2.4 recommends dimensions other than T, Z, Y, X left of them; spectra keep (time,
+    # level, total_wavenumber), the order readers index them by. And NODE_DIMENSION.
     # A quantized file declares CF-1.12 (its quantization container is a CF 1.12 feature,
     # and compliance-checker has no 1.12 suite): the 1.11 suite notes the declaration.
     warnings = [msg for msg in _failures(reports[kind]["cf:1.11"], "medium")
                 if not (msg.startswith("§2.4") and "total_wavenumber (U)" in msg)
+                and not NODE_DIMENSION.fullmatch(msg)
                 and not ("quantized" in kind and msg.startswith("§2.6")
                          and 'does not contain "CF-1.11"' in msg)]
     assert warnings == []
+
+
+def test_node_dimension_message_is_given_on_the_checkers_own_polygon_file(tmp_path):
+    # compliance-checker ships tests/data/polygon_geometry.cdl, a polygon time series laid
+    # out as in CF 1.11 section 7.5 (data variable someData(instance, time), node
+    # coordinates x(node), y(node)); written with netCDF-C's ncgen, the checker reports
+    # NODE_DIMENSION on it too. Should a checker release stop doing so, this fails and the
+    # allowance above goes.
+    import subprocess
+
+    cdl = Path(compliance_checker.__file__).parent / "tests" / "data" / "polygon_geometry.cdl"
+    path = tmp_path / "polygon_geometry.nc"
+    subprocess.run(["ncgen", "-4", "-o", str(path), str(cdl)], check=True)
+    messages = _failures(check(path, ("cf:1.11",))["cf:1.11"], "medium")
+    assert any(NODE_DIMENSION.fullmatch(m) for m in messages), messages
 
 
 #: How compliance-checker's acdd:1.3 reports a variable without a standard_name.

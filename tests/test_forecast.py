@@ -293,3 +293,30 @@ def test_latest_run_and_a_rerun_after_a_new_run(tmp_path):
     assert written == {"parts_2026-12-02T12Z.nc"} | {
         f"streamfunction_2026-12-02T12Z_{h:03d}.png" for h in LEAD_HOURS}
     assert all((out / name).stat().st_mtime_ns == mtime for name, mtime in before.items())
+
+
+def test_circulation_run_and_lead(files, tmp_path):
+    # flowpipe circulation --run/--lead on the runs x leads archive: the leads asked for,
+    # valid = reference + period (CF standard-name table), and at lead 12 h the values of
+    # the same slab in a plain file with no forecast coordinates (the reference).
+    out = tmp_path / "circ.nc"
+    contour = ["--box", "20,60,30,120", "--circle", "45,200,2500"]
+    done = _flowpipe("circulation", str(files["archive"]), "--run", "2026-12-01T12Z",
+                     "--lead", "12,24", "-o", str(out), *contour)
+    assert done.returncode == 0, done.stderr
+    plain = tmp_path / "plain.nc"
+    assert _flowpipe("circulation", str(files["plain"]), "-o", str(plain), *contour
+                     ).returncode == 0
+    with xr.open_dataset(out) as back, xr.open_dataset(plain) as ref:
+        np.testing.assert_array_equal(back["time"].values, RUNS[1] + LEADS[[2, 4]])
+        assert back["forecast_reference_time"].values == RUNS[1]
+        np.testing.assert_array_equal(back["forecast_period"].values / np.timedelta64(1, "h"),
+                                      [12.0, 24.0])
+        for name in ("circulation", "outward_flux", "mean_vorticity_gridded"):
+            np.testing.assert_allclose(back[name].isel(time=0).values,
+                                       ref[name].isel(time=0).values, rtol=1e-12)
+        assert not np.allclose(back.circulation.isel(time=1), back.circulation.isel(time=0))
+    bad = _flowpipe("circulation", str(files["archive"]), "--run", "2026-12-05T00Z", "-o",
+                    str(tmp_path / "x.nc"), *contour)
+    assert bad.returncode == 2 and "runs present" in bad.stderr
+    assert not (tmp_path / "x.nc").exists()

@@ -8,7 +8,7 @@ from ..contours import circulation, gather
 from ..errors import UsageError
 from ..ingest import open_wind
 from ..store import write
-from ._common import add_attribute_option, output_file
+from ._common import add_attribute_option, add_forecast_options, forecast_options, output_file
 from .decompose import _levels
 
 
@@ -56,6 +56,7 @@ def register(sub: argparse._SubParsersAction, common: argparse.ArgumentParser) -
     parser.add_argument("--u", metavar="NAME", help="name of the eastward wind variable")
     parser.add_argument("--v", metavar="NAME", help="name of the northward wind variable")
     add_attribute_option(parser)
+    add_forecast_options(parser)
     return parser
 
 
@@ -65,7 +66,7 @@ def run(args: argparse.Namespace) -> int:
     contours = gather(args.box, args.circle, args.polygon, args.follow, args.radius_km)
     if not contours:
         raise UsageError("give at least one contour: --box, --circle, --polygon or --follow")
-    wind = open_wind(args.files, u=args.u, v=args.v)
+    wind = open_wind(args.files, u=args.u, v=args.v, **forecast_options(args))
     result = circulation(wind, contours, levels=args.levels, obrien=args.obrien,
                          surface_omega=args.surface_omega, top_omega=args.top_omega)
     path = write(result, args.output, attributes=dict(args.attribute))

@@ -1,0 +1,181 @@
+"""The picture of a circulation output (``flowpipe circulation``), for :func:`maps.render`.
+
+Left, a map of the contours, each filled with its area mean (mean vorticity by
+default, or mean divergence, or any other variable per contour) at one time and
+level, on a diverging scale centred on zero; a moving circle is drawn where it is
+at that time, with the track of its centre. Right, one time-pressure section per
+contour (the first :data:`SECTIONS`): mean divergence filled, kinematic omega
+contoured (dashed where negative, rising air), time along x, pressure decreasing
+upward.
+"""
+
+from __future__ import annotations
+
+import cartopy.crs as ccrs
+import matplotlib
+import matplotlib.dates as mdates
+import numpy as np
+import xarray as xr
+from matplotlib import patheffects
+from matplotlib.cm import ScalarMappable
+from matplotlib.colors import BoundaryNorm, Colormap
+from matplotlib.figure import Figure
+from matplotlib.patches import Polygon
+
+from .contours import circle, contour_nodes
+from .errors import InputError
+from .maps import (
+    DIVERGING,
+    _colour_bar,
+    _contour_levels,
+    _domain_projection,
+    _map_axes,
+    _select,
+    _units_text,
+)
+
+#: Sections drawn at most (the first contours of the file).
+SECTIONS = 6
+#: Where the map goes (figure fraction), leaving the right for the sections.
+MAP_BOX = (0.05, 0.08, 0.5, 0.8)
+#: Left edge, width, bottom and top of the column of sections (figure fraction).
+SECTION_COLUMN = (0.67, 0.23, 0.08, 0.88)
+#: Default variable of the map, and the variables of the sections.
+DEFAULT_FIELD = "mean_vorticity"
+FILLED, LINES = "mean_divergence", "omega"
+#: Node spacing (degrees) of a moving circle redrawn at the chosen time.
+NODE_STEP = 0.25
+
+
+def circulation_figure(fig: Figure, ds: xr.Dataset, label: str, field: str | None,
+                       level: float | None, when: tuple[str | None, str | None, float | None],
+                       projection) -> None:
+    """Draw the map of the contours and their time-pressure sections into ``fig``."""
+    choices = [str(n) for n in ds.data_vars if "contour" in ds[n].dims
+               and ds[n].dtype.kind == "f" and set(ds[n].dims) <= {"contour", "time", "level"}]
+    field = field or DEFAULT_FIELD
+    if field not in choices:
+        raise InputError(f"{label}: no variable {field!r} per contour; choose one of "
+                         f"{', '.join(choices)}")
+    da = ds[field]
+    indexers, words = _select(ds, da, label, level, when)
+    values = np.asarray(da.isel(indexers).transpose("contour", ...).values, float).reshape(-1)
+    names = [str(n) for n in ds["contour_name"].values]
+    rings = _rings(ds, indexers.get("time"))
+    lat = np.concatenate([r[0] for r in rings])
+    lon = np.concatenate([r[1] for r in rings])
+    proj, extent = _domain_projection(lat, lon, projection)
+    ax = _map_axes(fig, proj, extent, box=MAP_BOX)
+    finite = values[np.isfinite(values)]
+    top = float(np.abs(finite).max()) if finite.size else 1.0
+    levels = _contour_levels(-top, top, signed=True)
+    norm = BoundaryNorm(levels, 256)
+    for (ring_lat, ring_lon), value, name in zip(rings, values, names, strict=True):
+        xyz = proj.transform_points(ccrs.Geodetic(), ring_lon, ring_lat)[:, :2]
+        colour = _cmap()(norm(value)) if np.isfinite(value) else "none"
+        ax.add_patch(Polygon(xyz, closed=True, facecolor=colour, edgecolor="black",
+                             linewidth=1.0, zorder=2, label=name))
+        top = xyz[np.argmax(xyz[:, 1])]  # the name just inside the contour's top
+        ax.text(xyz[:, 0].mean(), top[1], name, fontsize=7, ha="center", va="top", zorder=4,
+                path_effects=[patheffects.withStroke(linewidth=2.0, foreground="white")])
+    if "centre_latitude" in ds:
+        _tracks(ax, ds, proj)
+    bar = _colour_bar(fig, ax, ScalarMappable(norm=norm, cmap=_cmap()))
+    units = str(da.attrs.get("units", ""))
+    described = str(da.attrs.get("long_name") or field)
+    bar.set_label(described + (f" ({_units_text(units)})" if units else ""), fontsize=8)
+    bar.formatter.set_powerlimits((-3, 4))
+    bar.update_ticks()
+    ax.set_title(f"{described[:1].upper() + described[1:]}\n{' | '.join(words)}", loc="left",
+                 fontsize=10)
+    if {"time", "level"} <= set(ds.dims) and FILLED in ds:
+        _sections(fig, ds)
+
+
+def _cmap() -> Colormap:
+    """The diverging colour map of :mod:`flowpipe.maps`."""
+    return matplotlib.colormaps[DIVERGING]
+
+
+def _rings(ds: xr.Dataset, time: int | None) -> list[tuple[np.ndarray, np.ndarray]]:
+    """Latitude and longitude of each contour's nodes; moving circles at ``time``."""
+    counts = np.asarray(ds["node_count"].values, int)
+    starts = np.concatenate([[0], np.cumsum(counts)[:-1]])
+    node_lat = np.asarray(ds["node_latitude"].values, float)
+    node_lon = np.asarray(ds["node_longitude"].values, float)
+    rings = [(node_lat[s:s + n], node_lon[s:s + n]) for s, n in zip(starts, counts, strict=True)]
+    if "radius" in ds and "centre_latitude" in ds and time is not None:
+        lat = ds["centre_latitude"].isel(time=time).values
+        lon = ds["centre_longitude"].isel(time=time).values
+        for k, (la, lo, r) in enumerate(zip(lat, lon, ds["radius"].values, strict=True)):
+            if np.isfinite(r):
+                ring = contour_nodes(circle(float(la), float(lo), float(r) / 1e3), NODE_STEP)
+                rings[k] = (ring[0][:-1], ring[1][:-1])
+    return rings
+
+
+def _tracks(ax, ds: xr.Dataset, proj) -> None:
+    """The track of each moving circle's centre (dashed, a dot at every time)."""
+    for k in range(ds.sizes["contour"]):
+        lat = ds["centre_latitude"].isel(contour=k).values
+        lon = ds["centre_longitude"].isel(contour=k).values
+        if np.isfinite(lat).all() and np.ptp(lat) + np.ptp(lon) > 0:
+            xy = proj.transform_points(ccrs.Geodetic(), lon, lat)[:, :2]
+            ax.plot(xy[:, 0], xy[:, 1], "--", color="black", linewidth=0.8, marker=".",
+                    markersize=4, zorder=3, label=f"track {ds['contour_name'].values[k]}")
+
+
+def _sections(fig: Figure, ds: xr.Dataset) -> None:
+    """Time-pressure sections: mean divergence filled, omega contoured, pressure upward."""
+    count = min(ds.sizes["contour"], SECTIONS)
+    left, width, bottom, top = SECTION_COLUMN
+    gap = 0.035
+    height = (top - bottom - gap * (count - 1)) / count
+    order = np.argsort(ds["level"].values)[::-1]  # high pressure first: at the bottom
+    pressure = ds["level"].values[order]
+    times = mdates.date2num(ds["time"].values)
+    div = ds[FILLED].isel(contour=slice(0, count)).transpose("contour", "level", "time")
+    div = np.asarray(div.values, float)[:, order]
+    top_value = float(np.nanmax(np.abs(div))) if np.isfinite(div).any() else 1.0
+    levels = _contour_levels(-top_value, top_value, signed=True)
+    norm = BoundaryNorm(levels, 256)
+    omega = (np.asarray(ds[LINES].isel(contour=slice(0, count)).transpose(
+        "contour", "level", "time").values, float)[:, order] if LINES in ds else None)
+    names = [str(n) for n in ds["contour_name"].values[:count]]
+    mappable = None
+    for k in range(count):
+        ax = fig.add_axes((left, top - (k + 1) * height - k * gap, width, height))
+        ax.set_label(f"section {names[k]}")
+        if len(times) > 1 and len(pressure) > 1:
+            mappable = ax.contourf(times, pressure, div[k], levels=levels, norm=norm,
+                                   cmap=_cmap())
+        else:  # one time or one level: cells, not contours
+            mappable = ax.pcolormesh(times, pressure, div[k], norm=norm, cmap=_cmap(),
+                                     shading="nearest")
+        if omega is not None and len(times) > 1 and len(pressure) > 1 and \
+                np.isfinite(omega[k]).any() and np.nanmax(omega[k]) > np.nanmin(omega[k]):
+            lines = ax.contour(times, pressure, omega[k], colors="black", linewidths=0.8,
+                               levels=_contour_levels(float(np.nanmin(omega[k])),
+                                                      float(np.nanmax(omega[k])), signed=True))
+            lines.set_label("omega")
+            ax.clabel(lines, fontsize=6, fmt="%.3g")
+        ax.set_ylim(pressure.max(), pressure.min())  # pressure decreases upward
+        ax.set_title(names[k], fontsize=8, loc="left")
+        ax.tick_params(labelsize=6)
+        ax.set_ylabel("hPa", fontsize=7)
+        locator = mdates.AutoDateLocator(maxticks=5)
+        ax.xaxis.set_major_locator(locator)
+        ax.xaxis.set_major_formatter(mdates.ConciseDateFormatter(locator))
+        ax.xaxis.get_offset_text().set_fontsize(6)
+        if k < count - 1:
+            ax.tick_params(labelbottom=False)
+    bar = fig.colorbar(mappable, cax=fig.add_axes((left + width + 0.015, bottom, 0.012,
+                                                   top - bottom)))
+    bar.set_label(f"mean divergence ({_units_text('s-1')}); contours: omega "
+                  f"({_units_text('Pa s-1')}), dashed < 0", fontsize=7)
+    bar.ax.tick_params(labelsize=6)
+    bar.formatter.set_powerlimits((-3, 4))
+    bar.update_ticks()
+    if ds.sizes["contour"] > count:
+        fig.text(left, 0.02, f"sections of the first {count} of {ds.sizes['contour']} contours",
+                 fontsize=7)

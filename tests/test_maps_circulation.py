@@ -1,0 +1,138 @@
+"""The picture of a circulation output: contours on a map, time-pressure sections.
+
+External references used here:
+* matplotlib's colour-map documentation (``BoundaryNorm``: each value gets the colour
+  of the band it falls in; "Choosing Colormaps in Matplotlib": berlin is diverging);
+* pyproj.Geod (PROJ's geodesics, on a sphere of flowpipe's radius): a circle drawn at a
+  time lies its radius from the centre the file gives for that time;
+* the PNG image size is read back with matplotlib.image (PNG specification, IHDR);
+* meteorological sections put pressure decreasing upward (*common practice*).
+"""
+
+from __future__ import annotations
+
+import cartopy.crs as ccrs
+import matplotlib.dates as mdates
+import matplotlib.image
+import numpy as np
+import pyproj
+import pytest
+import xarray as xr
+from matplotlib.patches import Polygon
+from test_compliance import GLOBAL, REGIONAL, ROOT
+
+import flowpipe as fp
+from flowpipe import contours, maps
+from flowpipe.cli import main
+from flowpipe.constants import EARTH_RADIUS
+from flowpipe.errors import InputError
+
+SIZE = (900, 600)
+TRACK = ROOT / "sample_data" / "demo_storm_track.csv"
+
+
+@pytest.fixture(scope="module")
+def files(tmp_path_factory):
+    directory = tmp_path_factory.mktemp("circulation_maps")
+    storm = fp.circulation(fp.open_wind(REGIONAL), [
+        contours.box(46, 56, -26, -4), contours.read_track(TRACK, 500)])
+    shapes = [contours.box(30, 60, -40, 0), contours.circle(45, 160, 1500),
+              contours.box(-20, 20, 60, 120)]
+    world = fp.circulation(fp.open_wind(GLOBAL), shapes)
+    return {"storm": fp.write(storm, directory / "storm.nc"),
+            "world": fp.write(world, directory / "world.nc"), "directory": directory}
+
+
+def _map_axes(fig):
+    return next(ax for ax in fig.axes if hasattr(ax, "projection"))
+
+
+def _sections(fig):
+    return [ax for ax in fig.axes if ax.get_label().startswith("section ")]
+
+
+def _patches(fig):
+    return {p.get_label(): p for p in _map_axes(fig).patches if isinstance(p, Polygon)}
+
+
+@pytest.mark.parametrize("key,options", [
+    ("storm", {}), ("storm", {"field": "mean_divergence", "level": 500.0,
+                              "time": "2026-01-12T18:00"}),
+    ("world", {"level": 250.0})])
+def test_contours_coloured_by_their_value(files, key, options):
+    fig = maps.render(files[key], size=SIZE, **options)
+    field = options.get("field", "mean_vorticity")
+    with xr.open_dataset(files[key]) as ds:  # the slab, selected with plain xarray
+        da = ds[field].sel(level=options.get("level", ds.level.values[0]))
+        da = da.sel(time=np.datetime64(options["time"])) if "time" in options else da.isel(time=0)
+        values, names = da.values, [str(n) for n in ds.contour_name.values]
+    (bar,) = _map_axes(fig).child_axes  # the colour bar beside the map: its solids
+    (solids,) = [c for c in bar.collections if type(c).__name__ == "QuadMesh"]
+    cmap, norm = solids.cmap, solids.norm
+    assert cmap.name == "berlin"  # diverging, centred on zero
+    assert norm.vmin == pytest.approx(-norm.vmax) and norm.vmax >= np.abs(values).max()
+    patches = _patches(fig)
+    assert sorted(patches) == sorted(names)
+    for name, value in zip(names, values, strict=True):
+        expect = cmap(norm(value))  # BoundaryNorm: the colour of the value's band
+        np.testing.assert_allclose(patches[name].get_facecolor(), expect)
+    assert ("divergence" if field == "mean_divergence" else "vorticity") in _map_axes(
+        fig).get_title(loc="left")
+
+
+def test_moving_circle_drawn_where_it_is_at_that_time(files):
+    geod = pyproj.Geod(a=EARTH_RADIUS, b=EARTH_RADIUS)
+    for time in ("2026-01-12T00:00", "2026-01-12T18:00"):
+        fig = maps.render(files["storm"], size=SIZE, time=time)
+        ax = _map_axes(fig)
+        xy = _patches(fig)["demo_storm_track"].get_xy()
+        lonlat = ccrs.Geodetic().transform_points(ax.projection, xy[:, 0], xy[:, 1])
+        with xr.open_dataset(files["storm"]) as ds:
+            centre = ds.sel(time=np.datetime64(time)).isel(contour=1)
+            lat, lon = float(centre.centre_latitude), float(centre.centre_longitude)
+        _, _, r = geod.inv(np.full(len(xy), lon), np.full(len(xy), lat), lonlat[:, 0],
+                           lonlat[:, 1])
+        np.testing.assert_allclose(r, 500e3, rtol=1e-6)
+        tracks = [line for line in ax.lines if line.get_label() == "track demo_storm_track"]
+        assert len(tracks) == 1 and len(tracks[0].get_xdata()) == 5  # a dot per time
+
+
+def test_time_pressure_sections(files):
+    fig = maps.render(files["world"], size=SIZE)
+    sections = _sections(fig)
+    with xr.open_dataset(files["world"]) as ds:
+        assert len(sections) == ds.sizes["contour"]
+        times = mdates.date2num(ds.time.values)
+        for k, ax in enumerate(sections):
+            assert ax.get_title(loc="left") == str(ds.contour_name.values[k])
+            low, high = ax.get_ylim()
+            assert low > high  # pressure decreases upward
+            assert (low, high) == (ds.level.values.max(), ds.level.values.min())
+            assert ax.get_xlim() == pytest.approx((times[0], times[-1]))
+            filled, lines = (c for c in ax.collections if hasattr(c, "levels"))
+            div = ds.mean_divergence.isel(contour=k).values
+            omega = ds.omega.isel(contour=k).values
+            assert filled.levels[0] <= div.min() and filled.levels[-1] >= div.max()
+            assert filled.levels[0] == -filled.levels[-1] and filled.cmap.name == "berlin"
+            assert lines.get_label() == "omega"
+            inside = (lines.levels >= omega.min()) & (lines.levels <= omega.max())
+            assert inside.sum() >= 2  # omega drawn as contour lines within its range
+
+
+def test_png_and_command_line(files, capsys):
+    out = files["directory"] / "storm.png"
+    assert main(["map", str(files["storm"]), "-o", str(out), "--size", "900x600",
+                 "--field", "mean_divergence"]) == 0
+    image = matplotlib.image.imread(out)  # PNG: height x width x channels
+    assert image.shape[:2] == (600, 900)
+    assert image[..., :3].mean(axis=-1).std() > 0.05  # not blank (common practice)
+    assert main(["map", str(files["storm"]), "-o", str(out), "--field", "nope"]) == 2
+    err = capsys.readouterr().err
+    assert "mean_vorticity" in err and "mean_divergence" in err and "omega" in err
+
+
+def test_bad_level_and_time_name_what_is_available(files):
+    with pytest.raises(InputError, match="850, 500"):
+        maps.render(files["storm"], level=300.0)
+    with pytest.raises(InputError, match="2026-01-12T00:00Z"):
+        maps.render(files["storm"], time="2026-02-01T00:00")
