@@ -695,7 +695,9 @@ def circulation(wind: xr.Dataset, contours: Sequence[Contour | MovingCircle], *,
             kwargs={"pressure": pa, "surface": surface_omega,
                     "top": top_omega if obrien else None},
             dask="parallelized", output_dtypes=[float])
-    ds = ds.transpose("contour", ..., *[d for d in ("time", "level") if d in ds.dims])
+    # members lead every flowpipe output; then the instance dimension (CF 1.11 section 2.4)
+    ds = ds.transpose(*[d for d in ("realization", "contour") if d in ds.dims], ...,
+                      *[d for d in ("time", "level") if d in ds.dims])
     _describe(ds, first, grid, pressure, obrien, surface_omega, top_omega)
     if moving:
         _centres(ds, contours, wind.time)

@@ -140,7 +140,7 @@ def test_circulation_per_member_equals_the_single_member_run(files):
 
     contour = [box(10.0, 40.0, 0.0, 40.0)]
     ensemble = fp.circulation(fp.open_wind(files["wave"]), contour).compute()
-    assert ensemble["circulation"].dims == ("realization", "time", "contour")
+    assert ensemble["circulation"].dims == ("realization", "contour", "time")
     for member in MEMBERS:
         alone = fp.circulation(fp.open_wind(files[("wave", int(member))]), contour).compute()
         np.testing.assert_allclose(ensemble["circulation"].sel(realization=member).values,
