@@ -86,16 +86,71 @@ def _solid_body(la, lo, t):
     return u, v
 
 
-def test_solid_body_rotation_stretches_nothing(tmp_path):
-    # Williamson et al. (1992), J. Comput. Phys. 102, 211-224, test case 1:
-    # a rotation is an isometry, so the exponent vanishes.
+@pytest.fixture(scope="module")
+def rotation_file(tmp_path_factory):
     lat = np.linspace(-90, 90, 91)
     lon = np.arange(0, 360, 2.0)
-    wind = fp.open_wind(_write(tmp_path / "rot.nc", lat, lon, _solid_body, 48))
-    out = ftle(wind, hours=48, spacing=4.0, region=(-80, 80, 0, 356))
+    return _write(tmp_path_factory.mktemp("ftle") / "rot.nc", lat, lon, _solid_body, 48)
+
+
+def test_solid_body_rotation_stretches_nothing(rotation_file):
+    # Williamson et al. (1992), J. Comput. Phys. 102, 211-224, test case 1:
+    # a rotation is an isometry, so the exponent vanishes.
+    out = ftle(fp.open_wind(rotation_file), hours=48, spacing=4.0, region=(-80, 80, 0, 356))
     value = out["ftle"].values
     assert np.all(np.isfinite(value))
     assert np.max(np.abs(value)) <= 1e-3 * OMEGA
+
+
+def _zonal_rotation(la, lo, t):
+    # Williamson et al. (1992) test case 1 with alpha = 0: rotation about the polar axis.
+    return OMEGA * A * np.cos(np.radians(la)), 0.0 * la
+
+
+@pytest.mark.parametrize("case", ["global", "band"])
+def test_no_seam_at_the_longitude_wrap(rotation_file, tmp_path, case):
+    # Williamson et al. (1992) test case 1 again: the exponent vanishes at every seed,
+    # the columns next to 0/360 degrees included, on a ring of seeds that closes
+    # (360 / 7 is no whole number: the ring's spacing is adjusted) on a global grid
+    # seeded -180..180, and on a band (all longitudes, latitudes -60..60) by default.
+    if case == "global":
+        wind = fp.open_wind(rotation_file)
+        out = ftle(wind, hours=48, spacing=7.0, region=(-80, 80, -180, 180))
+    else:
+        lat, lon = np.linspace(-60, 60, 61), np.arange(1.0, 360, 2.0)
+        wind = fp.open_wind(_write(tmp_path / "band.nc", lat, lon, _zonal_rotation, 48))
+        out = ftle(wind, hours=48, spacing=4.0, region=(-50, 50, 0, 360))
+    lon = out["longitude"].values
+    steps = np.diff(np.append(lon, lon[0] + 360.0))
+    assert np.all(steps > 0) and 0 <= lon[0] and lon[-1] < 360
+    np.testing.assert_allclose(steps, steps[0], rtol=1e-12)  # the ring closes evenly
+    value = out["ftle"].isel(time=0).values
+    assert np.all(np.isfinite(value))
+    seam = value[:, [0, 1, -2, -1]]
+    assert np.max(np.abs(seam)) <= 1e-3 * OMEGA
+    assert np.max(np.abs(value)) <= 1e-3 * OMEGA
+
+
+def test_region_across_the_prime_meridian(rotation_file, tmp_path):
+    # --region W=-20, E=20 on a 0..358 grid: ascending longitudes, continuous across 0
+    # (CF 1.11 section 4.2: longitude coordinates in degrees_east; compliance-checker,
+    # suite cf:1.11, finds no high or medium problem), the same seeds as W=340, E=20,
+    # and a vanishing exponent of Williamson et al. (1992) case 1 on both sides of 0.
+    from test_compliance import check
+
+    path = tmp_path / "across.nc"
+    proc = subprocess.run([sys.executable, "-m", "flowpipe", "ftle", str(rotation_file), "-o",
+                           str(path), "--hours", "12", "--spacing", "4", "--region",
+                           "-30,30,-20,20"], capture_output=True, text=True)
+    assert proc.returncode == 0, proc.stderr
+    with xr.open_dataset(path) as ds:
+        lon = ds["longitude"].values
+        np.testing.assert_allclose(lon, np.arange(-20.0, 20.1, 4.0), atol=1e-9)
+        assert np.max(np.abs(ds["ftle"].values)) <= 1e-3 * OMEGA
+    other = ftle(fp.open_wind(rotation_file), hours=12, spacing=4.0, region=(-30, 30, 340, 20))
+    np.testing.assert_allclose(other["longitude"].values, lon, atol=1e-9)
+    result = check(path, ("cf:1.11",))["cf:1.11"]
+    assert result["high_count"] == 0 and result["medium_count"] == 0
 
 
 @pytest.mark.parametrize("args", [
