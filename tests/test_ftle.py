@@ -204,24 +204,75 @@ def test_double_gyre_ridge_oscillates_with_the_forcing(tmp_path):
     np.testing.assert_allclose(ridge[per], ridge[0], atol=0.021)
 
 
-def test_map_of_ftle_is_sequential_from_zero(tmp_path):
-    # An FTLE is a growth rate, >= 0 where the flow does not converge: a perceptually
-    # uniform sequential matplotlib colour map (matplotlib documentation, "Choosing
-    # Colormaps": viridis family) whose colour-bar lower limit is zero.
-    from pathlib import Path
+def _bar_and_title(fig):
+    from test_maps import _colour_bar
 
-    from test_maps import SEQUENTIAL, _colour_bar
+    fig.canvas.draw()
+    bar = _colour_bar(fig)
+    title = "".join(ax.get_title(loc="left") for ax in fig.axes)
+    return bar, title
+
+
+def test_map_of_ftle_is_sequential_from_zero(strain_file, tmp_path):
+    # An area-preserving flow has det F = 1, so lambda_max >= 1 and FTLE >= 0 (Shadden,
+    # Lekien & Marsden 2005, section 2); a growth rate >= 0 gets a perceptually uniform
+    # sequential matplotlib colour map (matplotlib documentation, "Choosing Colormaps":
+    # viridis family) whose colour-bar lower limit is zero. The title names the
+    # direction and the hours; the multiplier of the values sits in the label as
+    # "(10^-5 s-1)" (common practice for rates of order 1e-5 s-1), with the tick labels
+    # the values divided by it (matplotlib ScalarFormatter, fixed order of magnitude).
+    from test_maps import SEQUENTIAL
 
     from flowpipe import maps
 
-    demo = Path(__file__).resolve().parents[1] / "sample_data" / "demo_global.nc"
-    out = ftle(fp.open_wind(demo), hours=6, spacing=6.0)
+    out = ftle(fp.open_wind(strain_file), hours=6, spacing=0.1, region=(-0.3, 0.3, -0.3, 0.3))
+    assert float(out["ftle"].min()) > 0
     path = fp.write(out, tmp_path / "ftle.nc")
-    fig = maps.render(path, field="ftle", size=(640, 360))
-    bar = _colour_bar(fig)
+    bar, title = _bar_and_title(maps.render(path, field="ftle", size=(640, 360)))
     assert bar.cmap.name in SEQUENTIAL
     assert bar.vmin == 0.0
     assert bar.vmax >= float(out["ftle"].max())
+    assert title.startswith("Forward finite-time Lyapunov exponent over 6 h")
+    power = int(np.floor(np.log10(bar.vmax)))
+    assert power < -3 and f"(10$^{{{power}}}$ s$^{{-1}}$)" in bar.ax.get_ylabel()
+    assert not bar.ax.yaxis.offsetText.get_visible()
+    for tick in bar.ax.get_yticklabels():
+        if tick.get_text() and bar.vmin <= tick.get_position()[1] <= bar.vmax:
+            shown = float(tick.get_text().replace("\u2212", "-"))
+            assert shown * 10.0**power == pytest.approx(tick.get_position()[1], rel=1e-6,
+                                                         abs=1e-12)
+
+
+C = 1e-5  # convergence rate (s-1)
+
+
+def _convergence(la, lo, t):
+    return -C * A * np.radians(lo), -C * A * np.radians(la)
+
+
+def test_map_of_negative_ftle_is_diverging(tmp_path):
+    # Uniform convergence u = -c x, v = -c y compresses in every direction: the forward
+    # exponent is -c (the linear-flow case of Shadden, Lekien & Marsden 2005, section 2).
+    # Negative values need a diverging colour map centred on zero (matplotlib
+    # documentation, "Choosing Colormaps": diverging for data about a critical value).
+    from test_maps import DIVERGING
+
+    from flowpipe import maps
+
+    lat = lon = np.linspace(-2.0, 2.0, 41)
+    wind = fp.open_wind(_write(tmp_path / "conv.nc", lat, lon, _convergence, 6))
+    out = ftle(wind, hours=6, spacing=0.1, region=(-0.5, 0.5, -0.5, 0.5))
+    np.testing.assert_allclose(out["ftle"].values, -C, rtol=0.01)
+    path = fp.write(out, tmp_path / "ftle.nc")
+    bar, title = _bar_and_title(maps.render(path, field="ftle", size=(640, 360)))
+    assert bar.cmap.name in DIVERGING
+    assert bar.vmin == pytest.approx(-bar.vmax) and bar.vmin <= float(out["ftle"].min())
+    assert title.startswith("Forward finite-time Lyapunov exponent over 6 h")
+    back = ftle(wind, hours=3, backward=True, spacing=0.1, region=(-0.5, 0.5, -0.5, 0.5),
+                start="2031-05-01T06:00")
+    bar, title = _bar_and_title(maps.render(fp.write(back, tmp_path / "back.nc"), field="ftle"))
+    assert title.startswith("Backward finite-time Lyapunov exponent over 3 h")
+    assert bar.vmin == 0.0  # backward, the same flow stretches: +c
 
 
 def test_batch_config_ftle_table(tmp_path):
