@@ -335,35 +335,14 @@ class Runner:
         return out
 
     def maps(self, unit: Unit, result: UnitResult, sources: dict[str, Path]) -> None:
-        import xarray as xr
-
-        from .ingest import forecast_fields
         from .maps import render, save
 
         cfg = self.config.section("maps")
         digest = bookkeeping.section_hash(cfg)
-        parts = sources.get("decompose")
-        if parts is not None and parts.exists():
-            depends = [bookkeeping.fingerprint(parts)]
-            # {lead} in the name: a map of every time (each lead), else of the first time
-            each = "{lead" in cfg["output"]
-            with xr.open_dataset(parts) as ds:
-                levels = ([float(x) for x in ds["level"].values] if "level" in ds.dims else [None])
-                times = list(ds["time"].values) if "time" in ds.dims else [None]
-                times = times if each else times[:1]
-                forecast = ([forecast_fields(ds, i) for i in range(len(times))]
-                            if each or "{run" in cfg["output"] else [{}] * len(times))
-            wanted = cfg["levels"] if cfg["levels"] is not None else levels
-            for name in cfg["fields"]:
-                for level in wanted:
-                    for when, names in zip(times, forecast, strict=True):
-                        out = render_template(cfg["output"], self.out, stem=unit.stem, field=name,
-                                              level=_level_text(level), time=_time_text(when),
-                                              **names)
-                        self._produce("maps", result, out, depends, digest,
-                                      lambda p, n=name, lv=level, t=when: save(render(
-                                          parts, field=n, level=lv,
-                                          time=None if t is None else iso_time(t)), p))
+        self._field_maps(unit, result, sources.get("decompose"), cfg["fields"], cfg["levels"],
+                         digest)
+        if cfg["ftle"]:  # every level the [ftle] table seeded
+            self._field_maps(unit, result, sources.get("ftle"), ["ftle"], None, digest)
         tracks = sources.get("advect")
         if cfg["trajectories"] and tracks is not None and tracks.exists():
             out = render_template(cfg["output"], self.out, **{
@@ -371,6 +350,38 @@ class Runner:
                 "time": "all", "lead": "all"})
             self._produce("maps", result, out, [bookkeeping.fingerprint(tracks)], digest,
                           lambda p: save(render(tracks), p))
+
+    def _field_maps(self, unit: Unit, result: UnitResult, source: Path | None,
+                    names: list[str], levels: list[float] | None, digest: str) -> None:
+        """Maps of the fields ``names`` of one stage's output, at ``levels`` (default:
+        every level of the file); one per time with ``{lead}`` in the name, else of the
+        first time."""
+        import xarray as xr
+
+        from .ingest import forecast_fields
+        from .maps import render, save
+
+        cfg = self.config.section("maps")
+        if source is None or not source.exists():
+            return
+        depends = [bookkeeping.fingerprint(source)]
+        each = "{lead" in cfg["output"]
+        with xr.open_dataset(source) as ds:
+            present = ([float(x) for x in ds["level"].values] if "level" in ds.dims else [None])
+            times = list(ds["time"].values) if "time" in ds.dims else [None]
+            times = times if each else times[:1]
+            forecast = ([forecast_fields(ds, i) for i in range(len(times))]
+                        if each or "{run" in cfg["output"] else [{}] * len(times))
+        for name in names:
+            for level in levels if levels is not None else present:
+                for when, words in zip(times, forecast, strict=True):
+                    out = render_template(cfg["output"], self.out, stem=unit.stem, field=name,
+                                          level=_level_text(level), time=_time_text(when),
+                                          **words)
+                    self._produce("maps", result, out, depends, digest,
+                                  lambda p, n=name, lv=level, t=when: save(render(
+                                      source, field=n, level=lv,
+                                      time=None if t is None else iso_time(t)), p))
 
     # -- the run -------------------------------------------------------------
     def run_unit(self, unit: Unit) -> UnitResult:

@@ -277,10 +277,14 @@ def test_map_of_negative_ftle_is_diverging(tmp_path):
 
 def test_batch_config_ftle_table(tmp_path):
     # A [ftle] table in a batch config writes {stem}_ftle.nc with the same field as
-    # the library call (netCDF-C, through xarray, reads it back); bad values are a
-    # config error naming the key.
+    # the library call (netCDF-C, through xarray, reads it back) and, with a [maps]
+    # table, a map of it per seeded level ({stem}_ftle_{level}.png: a PNG of the
+    # requested size, read back by matplotlib's image reader, not blank); bad values
+    # are a config error naming the key.
     import shutil
     from pathlib import Path
+
+    import matplotlib.image
 
     from flowpipe.config import ConfigError
     from flowpipe.pipeline import run
@@ -289,12 +293,20 @@ def test_batch_config_ftle_table(tmp_path):
     shutil.copy(demo, tmp_path / "demo.nc")
     config = tmp_path / "night.toml"
     config.write_text('[input]\npaths = ["demo.nc"]\n\n[ftle]\nhours = 6\nspacing = 6.0\n'
-                      'region = [-30.0, 30.0, 0.0, 90.0]\n\n[output]\ndirectory = "out"\n')
-    run(config, quiet=True)
+                      'region = [-30.0, 30.0, 0.0, 90.0]\nlevels = [850.0, 500.0]\n\n'
+                      '[maps]\n\n[output]\ndirectory = "out"\n')
+    summary = run(config, quiet=True)
+    assert summary.exit_code == 0, summary.failures
     written = tmp_path / "out" / "demo_ftle.nc"
-    expected = ftle(fp.open_wind(demo), hours=6, spacing=6.0, region=(-30.0, 30.0, 0.0, 90.0))
+    expected = ftle(fp.open_wind(demo), hours=6, spacing=6.0, region=(-30.0, 30.0, 0.0, 90.0),
+                    levels=[850.0, 500.0])
     with xr.open_dataset(written) as ds:
         np.testing.assert_allclose(ds["ftle"].values, expected["ftle"].values, rtol=1e-12)
+    for level in ("850", "500"):
+        picture = tmp_path / "out" / f"demo_ftle_{level}.png"
+        assert picture in summary.written
+        image = matplotlib.image.imread(picture)
+        assert image.shape[:2] == (800, 1200) and image[..., :3].std() > 0.05
     config.write_text(config.read_text().replace("spacing = 6.0", "spacing = -1"))
     with pytest.raises(ConfigError, match="spacing"):
         run(config, quiet=True)
