@@ -25,6 +25,7 @@ import xarray as xr
 from . import annotate
 from .errors import InputError, UsageError
 from .grid import describe_grid
+from .ingest import PERIOD_ATTRS, REFERENCE_ATTRS
 from .parcels import _kernels as K
 from .parcels._advect import (
     COURANT,
@@ -404,6 +405,16 @@ def _dataset(wind, clock, starts, chosen, has_levels, lat, lon, fields, used, di
     ds = xr.Dataset(data, coords=coords)
     if not has_levels:
         ds = ds.squeeze("level", drop=True)
+    if "forecast_reference_time" in wind.coords:
+        # a forecast: the run of each start time and the lead at the start (the canonical
+        # Dataset's forecast coordinates; CF standard names forecast_reference_time and
+        # forecast_period, valid time = run + period)
+        run = wind["forecast_reference_time"]
+        values = (run.values if run.ndim == 0 else
+                  run.sel(time=ds["time"].values, method="pad").values)
+        ds = ds.assign_coords(forecast_reference_time=(run.dims, values, dict(REFERENCE_ATTRS)),
+                              forecast_period=("time", ds["time"].values - values,
+                                               dict(PERIOD_ATTRS)))
     epoch = _iso(clock.reference).rstrip("Z").replace("T", " ")
     ds["time"].encoding = {"units": f"seconds since {epoch}"}
     if not isinstance(clock.reference, np.datetime64):

@@ -334,3 +334,37 @@ def test_batch_config_ftle_table(tmp_path):
     config.write_text(config.read_text().replace("spacing = 6.0", "spacing = -1"))
     with pytest.raises(ConfigError, match="spacing"):
         run(config, quiet=True)
+
+
+def test_run_and_lead_of_a_forecast(tmp_path):
+    # --run/--lead on a runs x leads archive (the layouts of tests/test_forecast.py):
+    # the field equals the one from a plain file holding only the selected valid times,
+    # and the output carries the run and the lead at the start time (CF standard-name
+    # table: forecast_period = validity time - forecast_reference_time), read back by
+    # netCDF-C through xarray.
+    from test_forecast import LEADS, RUNS, archive_layout, valid_time_layout
+
+    archive = tmp_path / "archive.nc"
+    archive_layout([0, 1, 2]).to_netcdf(archive)
+    plain = tmp_path / "plain.nc"
+    valid_time_layout(1).isel(time=[1, 2, 3]).drop_vars(
+        ["forecast_reference_time", "forecast_period"]).to_netcdf(plain)
+    from flowpipe.cli import main
+
+    out = tmp_path / "ftle.nc"
+    assert main(["ftle", str(archive), "-o", str(out), "--hours", "12", "--spacing", "7.5",
+                 "--run", "2026-12-01T12Z", "--lead", "6,12,18"]) == 0
+    expected = ftle(fp.open_wind(plain), hours=12, spacing=7.5)
+    with xr.open_dataset(out) as ds:
+        np.testing.assert_allclose(ds["ftle"].values, expected["ftle"].values, rtol=1e-12)
+        assert ds["time"].values[0] == RUNS[1] + LEADS[1]
+        assert ds["forecast_reference_time"].values == RUNS[1]
+        assert ds["forecast_reference_time"].attrs["standard_name"] == "forecast_reference_time"
+        assert ds["forecast_period"].attrs["standard_name"] == "forecast_period"
+        np.testing.assert_array_equal(ds["time"].values,
+                                      ds["forecast_reference_time"].values
+                                      + ds["forecast_period"].values)
+        assert "forecast_reference_time" in ds.coords and "forecast_period" in ds.coords
+    assert main(["ftle", str(archive), "-o", str(tmp_path / "x.nc"), "--hours", "12",
+                 "--run", "2026-12-05T00Z"]) == 2
+    assert not (tmp_path / "x.nc").exists()
