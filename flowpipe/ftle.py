@@ -249,7 +249,10 @@ def ftle(
         ``ftle`` (s-1) on ``(time, level, latitude, longitude)`` (``level``
         only when the input has levels), ``integration_time`` (s) and
         ``stretching_east``/``stretching_north`` (dominant stretching
-        direction); lazy nothing: the field is computed here.
+        direction); lazy nothing: the field is computed here. Longitudes as
+        :func:`seed_grid` gives them. A forecast wind adds the run
+        (``forecast_reference_time``) and the lead at each start time
+        (``forecast_period``).
 
     References
     ----------
