@@ -91,6 +91,7 @@ SCHEMA: dict[str, dict[str, tuple[tuple[type, ...], Any]]] = {
         "fields": ((list,), ["streamfunction", "velocity_potential"]),
         "levels": ((list,), None),
         "trajectories": ((bool,), True),
+        "ftle": ((bool,), True),
         "output": ((str,), "{stem}_{field}_{level}.png"),
     },
     "output": {

@@ -25,6 +25,7 @@ import xarray as xr
 from . import annotate
 from .errors import InputError, UsageError
 from .grid import describe_grid
+from .ingest import PERIOD_ATTRS, REFERENCE_ATTRS
 from .parcels import _kernels as K
 from .parcels._advect import (
     COURANT,
@@ -51,6 +52,16 @@ def seed_grid(wind: xr.Dataset, spacing: float | None,
 
     Default spacing: a quarter of the wind grid's finest spacing. Pole rows
     are left out (the tangent plane has no east there).
+
+    On a grid periodic in longitude (global or band), a region that goes
+    round the whole circle (the default, or one whose east edge comes within
+    one spacing of its west edge 360 degrees on) is seeded on a closed ring:
+    ``n = round(360 / spacing)`` equally spaced longitudes in [0, 360), the
+    spacing along the ring adjusted to ``360 / n`` so that the last seed's
+    east neighbour is the first seed, and a seed column at the region's west
+    edge (modulo the spacing). Any other region has ascending longitudes
+    continuous across the date line and the prime meridian, centred as the
+    canonical Dataset centres limited areas (within -180..180 on average).
     """
     glat = wind["latitude"].values.astype(float)
     glon = wind["longitude"].values.astype(float)
@@ -58,14 +69,11 @@ def seed_grid(wind: xr.Dataset, spacing: float | None,
         spacing = 0.25 * float(min(np.min(np.abs(np.diff(glat))), np.min(np.diff(glon))))
     if not (spacing > 0 and math.isfinite(spacing)):
         raise UsageError(f"--spacing {spacing:g}: give a positive spacing in degrees")
-    kind = describe_grid(wind).kind
+    regional = describe_grid(wind).kind == "regional"
     lat_lo, lat_hi = float(glat.min()), float(glat.max())
     if region is None:
         south, north = lat_lo, lat_hi
-        if kind == "regional":
-            west, east = float(glon[0]), float(glon[-1])
-        else:
-            west, east = 0.0, 360.0 - spacing
+        west, east = (float(glon[0]), float(glon[-1])) if regional else (0.0, 360.0)
     else:
         if len(region) != 4:
             raise UsageError("--region: give S,N,W,E in degrees")
@@ -75,7 +83,7 @@ def seed_grid(wind: xr.Dataset, spacing: float | None,
         if north < lat_lo or south > lat_hi:
             raise InputError(f"--region {south:g},{north:g},{west:g},{east:g} lies outside the "
                              f"data (latitude {lat_lo:g}..{lat_hi:g}); give a region inside it")
-        if kind == "regional":
+        if regional:
             w = glon[0] + np.mod(west - glon[0], 360.0)
             e = w + np.mod(east - west, 360.0)
             if w > glon[-1] + 1e-9 or e < glon[0] - 1e-9 or e > glon[0] + 360:
@@ -83,13 +91,20 @@ def seed_grid(wind: xr.Dataset, spacing: float | None,
                                  f"the data (longitude {glon[0]:g}..{glon[-1]:g}); give a region "
                                  "inside it")
             west, east = max(w, glon[0]), min(e, glon[-1])
+        elif east - west < 360.0 - 1e-9:
+            east = west + np.mod(east - west, 360.0)  # eastward from west, across 0 or 180
         south, north = max(south, lat_lo), min(north, lat_hi)
-        if east < west:
-            east += 360.0
     lat = south + spacing * np.arange(int(math.floor((north - south) / spacing + 1e-9)) + 1)
     lat = lat[np.abs(lat) < 90.0 - 1e-9]
-    lon = west + spacing * np.arange(int(math.floor((east - west) / spacing + 1e-9)) + 1)
-    wraps = region is None and kind != "regional" and abs(lon[-1] + spacing - west - 360) < 1e-6
+    wraps = not regional and east - west + spacing >= 360.0 - 1e-6
+    if wraps:
+        count = max(int(round(360.0 / spacing)), 2)
+        step = 360.0 / count
+        lon = np.mod(west, step) + step * np.arange(count)
+    else:
+        lon = west + spacing * np.arange(int(math.floor((east - west) / spacing + 1e-9)) + 1)
+        if not regional:
+            lon = lon - 360.0 * np.round(lon.mean() / 360.0)
     if lat.size < 2 or lon.size < 2:
         raise UsageError(f"--spacing {spacing:g}: fewer than two seeds along a side of the "
                          "region; give a smaller spacing or a larger region")
@@ -234,7 +249,10 @@ def ftle(
         ``ftle`` (s-1) on ``(time, level, latitude, longitude)`` (``level``
         only when the input has levels), ``integration_time`` (s) and
         ``stretching_east``/``stretching_north`` (dominant stretching
-        direction); lazy nothing: the field is computed here.
+        direction); lazy nothing: the field is computed here. Longitudes as
+        :func:`seed_grid` gives them. A forecast wind adds the run
+        (``forecast_reference_time``) and the lead at each start time
+        (``forecast_period``).
 
     References
     ----------
@@ -360,13 +378,12 @@ def _dataset(wind, clock, starts, chosen, has_levels, lat, lon, fields, used, di
     nt, nlev, nlat, nlon = len(starts), chosen.size, lat.size, lon.size
     shape = (nt, nlev, nlat, nlon)
     dims = ("time", "level", "latitude", "longitude")
-    lon_out = np.mod(lon, 360.0) if describe_grid(wind).kind != "regional" else lon
     coords = {
         "time": ("time", clock.times(np.asarray(starts, float)),
                  {"standard_name": "time", "long_name": "start time of the integration"}),
         "latitude": ("latitude", lat, {"standard_name": "latitude", "units": "degrees_north",
                                        "long_name": "seed latitude", "axis": "Y"}),
-        "longitude": ("longitude", lon_out, {"standard_name": "longitude",
+        "longitude": ("longitude", lon, {"standard_name": "longitude",
                                              "units": "degrees_east",
                                              "long_name": "seed longitude", "axis": "X"}),
     }
@@ -391,6 +408,16 @@ def _dataset(wind, clock, starts, chosen, has_levels, lat, lon, fields, used, di
     ds = xr.Dataset(data, coords=coords)
     if not has_levels:
         ds = ds.squeeze("level", drop=True)
+    if "forecast_reference_time" in wind.coords:
+        # a forecast: the run of each start time and the lead at the start (the canonical
+        # Dataset's forecast coordinates; CF standard names forecast_reference_time and
+        # forecast_period, valid time = run + period)
+        run = wind["forecast_reference_time"]
+        values = (run.values if run.ndim == 0 else
+                  run.sel(time=ds["time"].values, method="pad").values)
+        ds = ds.assign_coords(forecast_reference_time=(run.dims, values, dict(REFERENCE_ATTRS)),
+                              forecast_period=("time", ds["time"].values - values,
+                                               dict(PERIOD_ATTRS)))
     epoch = _iso(clock.reference).rstrip("Z").replace("T", " ")
     ds["time"].encoding = {"units": f"seconds since {epoch}"}
     if not isinstance(clock.reference, np.datetime64):

@@ -632,11 +632,15 @@ def _field_map(fig: Figure, ds: xr.Dataset, label: str, field: str | None, level
     names = (field, str(da.attrs.get("standard_name", "")))
     from_zero = _from_zero(field, da)
     if from_zero:
-        # growth rates: a sequential scale from zero (a rare negative exponent of a
-        # converging flow is drawn in the lowest band)
-        values = np.maximum(values, 0.0)
-        low = 0.0
-    signed = not from_zero and (any(n in SIGNED for n in names) or low < 0 < high)
+        # growth rates: a sequential scale from zero, unless some exponents are negative
+        # (air compressed in every direction) by more than one band of that scale: then a
+        # diverging scale centred on zero; rounding-size negatives go in the lowest band
+        bands = _contour_levels(0.0, max(high, -low), False)
+        signed = low < -(bands[1] - bands[0])
+        if not signed:
+            values, low = np.maximum(values, 0.0), 0.0
+    else:
+        signed = any(n in SIGNED for n in names) or low < 0 < high
     levels = _contour_levels(low, high, signed)
     filled, lon_c = values, lon
     if _lon_span(lon)[1] + step >= WRAP_SPAN:
@@ -664,11 +668,22 @@ def _field_map(fig: Figure, ds: xr.Dataset, label: str, field: str | None, level
     bar = _colour_bar(fig, ax, contours)
     described = da.attrs.get("long_name") or str(da.attrs.get("standard_name", "")).replace("_", " ")
     long_name = str(described or field)
-    bar.set_label(long_name + (f" ({_units_text(units)})" if units else ""))
-    bar.formatter.set_powerlimits((-3, 4))
+    power = int(np.floor(np.log10(max(abs(levels[0]), abs(levels[-1])))))
+    if power < -3 or power >= 4:
+        # the multiplier goes into the label ("(10^-5 s-1)", common practice), not a
+        # loose "1e-5" above the bar that reads like a tick
+        bar.formatter.set_powerlimits((power, power))
+        bar.ax.yaxis.offsetText.set_visible(False)
+        units = f"10$^{{{power}}}$ {_units_text(units)}".strip()
+    else:
+        units = _units_text(units)
+    bar.set_label(long_name + (f" ({units})" if units else ""))
     bar.update_ticks()
 
     title = long_name[:1].upper() + long_name[1:] if described else field
+    direction, hours = da.attrs.get("integration_direction"), da.attrs.get("integration_hours")
+    if from_zero and direction and hours is not None:  # "Forward ... exponent over 24 h"
+        title = f"{str(direction).capitalize()} {long_name} over {float(hours):g} h"
     wind = _wind_names(ds, field)
     if wind is not None:
         kind = wind[0][2:] if wind[0].startswith("u_") else ""

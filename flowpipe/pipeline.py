@@ -349,38 +349,20 @@ class Runner:
         return out
 
     def maps(self, unit: Unit, result: UnitResult, sources: dict[str, Path]) -> None:
-        import xarray as xr
-
-        from .ingest import forecast_fields
         from .maps import render, save
 
         cfg = self.config.section("maps")
-        parts = sources.get("decompose")
+        mapped = {"decompose", "advect"} | ({"ftle"} if cfg["ftle"] else set())
         for name, source in sources.items():
-            if self.dry_run and self._rel(source) in {p for p, _, _ in result.planned}:
+            if (self.dry_run and name in mapped
+                    and self._rel(source) in {p for p, _, _ in result.planned}):
                 result.planned.append((f"maps of {self._rel(source)}", "maps",
                                        f"after the {name} output is made"))
-        if parts is not None and parts.exists():
-            depends = [bookkeeping.fingerprint(parts)]
-            # {lead} in the name: a map of every time (each lead), else of the first time
-            each = "{lead" in cfg["output"]
-            with xr.open_dataset(parts) as ds:
-                levels = ([float(x) for x in ds["level"].values] if "level" in ds.dims else [None])
-                times = list(ds["time"].values) if "time" in ds.dims else [None]
-                times = times if each else times[:1]
-                forecast = ([forecast_fields(ds, i) for i in range(len(times))]
-                            if each or "{run" in cfg["output"] else [{}] * len(times))
-            wanted = cfg["levels"] if cfg["levels"] is not None else levels
-            for name in cfg["fields"]:
-                for level in wanted:
-                    for when, names in zip(times, forecast, strict=True):
-                        out = render_template(cfg["output"], self.out, stem=unit.stem, field=name,
-                                              level=_level_text(level), time=_time_text(when),
-                                              **names)
-                        self._produce("maps", result, out, depends, self._tables("maps"),
-                                      lambda p, n=name, lv=level, t=when: save(render(
-                                          parts, field=n, level=lv,
-                                          time=None if t is None else iso_time(t)), p))
+        tables = self._tables("maps")
+        self._field_maps(unit, result, sources.get("decompose"), cfg["fields"], cfg["levels"],
+                         tables)
+        if cfg["ftle"]:  # every level the [ftle] table seeded
+            self._field_maps(unit, result, sources.get("ftle"), ["ftle"], None, tables)
         tracks = sources.get("advect")
         if cfg["trajectories"] and tracks is not None and tracks.exists():
             out = render_template(cfg["output"], self.out, **{
@@ -389,6 +371,39 @@ class Runner:
             self._produce("maps", result, out, [bookkeeping.fingerprint(tracks)],
                           self._tables("maps"),
                           lambda p: save(render(tracks), p))
+
+    def _field_maps(self, unit: Unit, result: UnitResult, source: Path | None,
+                    names: list[str], levels: list[float] | None,
+                    tables: dict[str, str]) -> None:
+        """Maps of the fields ``names`` of one stage's output, at ``levels`` (default:
+        every level of the file); one per time with ``{lead}`` in the name, else of the
+        first time."""
+        import xarray as xr
+
+        from .ingest import forecast_fields
+        from .maps import render, save
+
+        cfg = self.config.section("maps")
+        if source is None or not source.exists():
+            return
+        depends = [bookkeeping.fingerprint(source)]
+        each = "{lead" in cfg["output"]
+        with xr.open_dataset(source) as ds:
+            present = ([float(x) for x in ds["level"].values] if "level" in ds.dims else [None])
+            times = list(ds["time"].values) if "time" in ds.dims else [None]
+            times = times if each else times[:1]
+            forecast = ([forecast_fields(ds, i) for i in range(len(times))]
+                        if each or "{run" in cfg["output"] else [{}] * len(times))
+        for name in names:
+            for level in levels if levels is not None else present:
+                for when, words in zip(times, forecast, strict=True):
+                    out = render_template(cfg["output"], self.out, stem=unit.stem, field=name,
+                                          level=_level_text(level), time=_time_text(when),
+                                          **words)
+                    self._produce("maps", result, out, depends, tables,
+                                  lambda p, n=name, lv=level, t=when: save(render(
+                                      source, field=n, level=lv,
+                                      time=None if t is None else iso_time(t)), p))
 
     # -- the run -------------------------------------------------------------
     def run_unit(self, unit: Unit) -> UnitResult:
@@ -470,8 +485,8 @@ STAGE_TABLE: dict[str, Stage] = {
     "advect": Stage(Runner.advect, makes="trajectories"),
     "ftle": Stage(Runner.ftle, makes="finite-time Lyapunov exponents"),
     "circulation": Stage(Runner.circulation, makes="circulation and flux around contours"),
-    "maps": Stage(Runner.maps, needs=("decompose", "advect"),
-                  makes="maps of the decomposition and the trajectories"),
+    "maps": Stage(Runner.maps, needs=("decompose", "advect", "ftle"),
+                  makes="maps of the decomposition, the trajectories and the FTLE"),
 }
 
 
