@@ -18,12 +18,10 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
-from .decompose import METHODS, SPECTRAL_VARIABLES
+from .choices import METHODS, REGIONAL_VARIABLES, SPECTRAL_VARIABLES, VERTICAL
+from .choices import SCHEMES as REGIONAL_SCHEMES
 from .errors import InputError, UsageError
 from .ingest import DEFAULT_MAX_SPEED, IMPLAUSIBLE_CHOICES, parse_iso
-from .parcels._advect import VERTICAL
-from .regional import FIELDS as REGIONAL_FIELDS
-from .regional import SCHEMES as REGIONAL_SCHEMES
 
 
 class ConfigError(UsageError):
@@ -283,10 +281,10 @@ def _refusal(what: str, value: Any, allowed: Allowed) -> str | None:
     return None
 
 
-def _decomposition_fields(method: str, scheme: str) -> tuple[str, ...]:
+def _decomposition_fields(method: str) -> tuple[str, ...]:
     """The mappable fields a decomposition writes (``"auto"``: either method's)."""
     spectral = SPECTRAL_VARIABLES if method != "regional" else ()
-    regional = REGIONAL_FIELDS[scheme] if method != "spectral" else ()
+    regional = REGIONAL_VARIABLES if method != "spectral" else ()
     return tuple(dict.fromkeys(spectral + regional))
 
 
@@ -395,7 +393,7 @@ def _check_values(config: Config, text: str) -> None:
                               "truncation applies to the spectral method only, not to method "
                               "\"regional\"; drop it or use method \"spectral\" or \"auto\"")
         if "maps" in config.tables:
-            fields = _one_of(_decomposition_fields(dec["method"], dec["scheme"]), each=True)
+            fields = _one_of(_decomposition_fields(dec["method"]), each=True)
             refusal = _refusal("[maps] fields", config.tables["maps"]["fields"], fields)
             if refusal:
                 raise ConfigError(f"{_where(cfg_path, text, 'maps', 'fields')}: {refusal} "

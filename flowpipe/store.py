@@ -26,6 +26,7 @@ import numpy as np
 import xarray as xr
 
 from . import annotate
+from .choices import QUALITY_FIGURES
 from .errors import (
     NO_SPACE_ERRNOS,
     FlowpipeError,
@@ -251,8 +252,10 @@ def write(ds: xr.Dataset, path: str | os.PathLike, *, float32: bool = False,
     ----------
     ds : xarray.Dataset
         What to write; dask-backed data are computed while writing, and so
-        are attributes whose values are dask arrays (0-d; a stage's global
-        figure), in the same pass.
+        are attributes whose values are dask arrays (0-d), in the same pass.
+        The global quality figures of a lazy result
+        (:func:`flowpipe.annotate.quality_summary`) are summed up from its
+        per-slab figures as written.
     path : path-like
         The final file name; never one of the files ``ds`` was read from.
     float32 : bool
@@ -283,11 +286,9 @@ def write(ds: xr.Dataset, path: str | os.PathLike, *, float32: bool = False,
         operating system refuses the write (see :func:`atomic_path`).
     """
     final = Path(path)
-    lazy = {k: v for k, v in ds.attrs.items() if dask.is_dask_collection(v)}
-    if lazy:
-        ds = ds.copy()
-        ds.attrs = {k: v for k, v in ds.attrs.items() if k not in lazy}
     out = annotate.complete(ds, attributes)
+    lazy = {k: v for k, v in out.attrs.items() if dask.is_dask_collection(v)}
+    out.attrs = {k: v for k, v in out.attrs.items() if k not in lazy}
     encoding = _encoding(out, float32)
     for name, enc in encoding.items():
         if enc.get("dtype") == np.float32 and out[name].dtype != np.float32:
@@ -301,15 +302,26 @@ def write(ds: xr.Dataset, path: str | os.PathLike, *, float32: bool = False,
     with atomic_path(final, sources(ds), needed=upper) as tmp, _write_chunk_cache():
         if not lazy:
             out.to_netcdf(tmp, engine="netcdf4", format="NETCDF4", encoding=encoding)
-            return final
-        # Attributes known only once the data are computed (a global error figure,
-        # say) are computed in the same pass as the data and added before the rename.
-        pending = out.to_netcdf(tmp, engine="netcdf4", format="NETCDF4", encoding=encoding,
-                                compute=False)
-        _, *values = dask.compute(pending, *lazy.values())
-        with netCDF4.Dataset(tmp, "a") as nc:
-            for name, value in zip(lazy, values, strict=True):
-                nc.setncattr(name, np.asarray(value).item())
+            values = []
+        else:
+            # A caller's attributes known only once the data are computed, computed with
+            # the data (tasks they share with it may run twice: dask optimises the write
+            # and the attributes as two graphs).
+            pending = out.to_netcdf(tmp, engine="netcdf4", format="NETCDF4",
+                                    encoding=encoding, compute=False)
+            _, *values = dask.compute(pending, *lazy.values())
+        found = dict(zip(lazy, values, strict=True))
+        # The global quality figures of a lazy result: summed up from the per-slab figures
+        # just written (a few numbers read back), so the data are computed once.
+        unknown = [name for name in QUALITY_FIGURES
+                   if name in out.data_vars and name not in out.attrs]
+        if unknown:
+            with xr.open_dataset(tmp, engine="netcdf4") as written:
+                found.update(annotate.quality_summary(written[unknown].load()))
+        if found:
+            with netCDF4.Dataset(tmp, "a") as nc:
+                for name, value in found.items():
+                    nc.setncattr(name, annotate.netcdf3_value(np.asarray(value)[()]))
     return final
 
 

@@ -10,11 +10,10 @@ from pathlib import Path
 
 import pytest
 
+from flowpipe.choices import METHODS, SPECTRAL_VARIABLES, VERTICAL
+from flowpipe.choices import SCHEMES as REGIONAL_SCHEMES
 from flowpipe.cli import main
 from flowpipe.config import ConfigError, load_config, render_template
-from flowpipe.decompose import METHODS, SPECTRAL_VARIABLES
-from flowpipe.parcels._advect import VERTICAL
-from flowpipe.regional import SCHEMES as REGIONAL_SCHEMES
 
 ROOT = Path(__file__).resolve().parents[1]
 SAMPLE = ROOT / "sample_data" / "demo_regional.nc"
@@ -113,7 +112,7 @@ _START = "must be [lat, lon] or [lat, lon, level] of finite numbers with lat wit
          "line 10: [advect] step_minutes must be a finite number above 0, not 0"),
         (_HOURS.format(6) + "step_minutes = -5.0\n",
          "line 10: [advect] step_minutes must be a finite number above 0, not -5.0"),
-        # vertical: the keys of flowpipe.parcels._advect.VERTICAL.
+        # vertical: the keys of flowpipe.choices.VERTICAL.
         (_HOURS.format(6) + "vertical = \"x\"\n",
          f"line 10: [advect] vertical must be one of {_choices(VERTICAL)}, not 'x'"),
         # Starts: a latitude lies within -90..90 and positions are finite (common practice,
@@ -127,8 +126,8 @@ _START = "must be [lat, lon] or [lat, lon, level] of finite numbers with lat wit
         (_HOURS.format(6) + "sample = [1]\n",
          "line 10: each item of [advect] sample must be a variable name (a non-empty string), "
          "not 1"),
-        # Map fields: the fields the configured decomposition writes (flowpipe.decompose.
-        # SPECTRAL_VARIABLES, flowpipe.regional.FIELDS).
+        # Map fields: the fields the configured decomposition writes (flowpipe.choices.
+        # SPECTRAL_VARIABLES, REGIONAL_VARIABLES).
         ("[decompose]\n[maps]\nfields = [\"colour\"]\n",
          "line 9: each item of [maps] fields must be one of streamfunction"),
         ("[decompose]\nmethod = \"spectral\"\n[maps]\nfields = [\"u_harmonic\"]\n",

@@ -18,7 +18,7 @@ from _williamson import (
 import flowpipe as fp
 from flowpipe.annotate import VARIABLES
 from flowpipe.cli import main
-from flowpipe.decompose import transform_threads
+from flowpipe.slabs import transform_threads
 
 GRIDS = [("CC", 33, 64), ("F1", 32, 64), ("GL", 32, 64)]
 CASES = {

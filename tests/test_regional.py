@@ -11,6 +11,7 @@ import pytest
 import xarray as xr
 
 from flowpipe import regional
+from flowpipe.choices import REGIONAL_VARIABLES
 from flowpipe.constants import EARTH_RADIUS
 from flowpipe.errors import InputError, UsageError
 from flowpipe.regional import decompose_regional
@@ -248,7 +249,7 @@ def test_box_parts_reproduce_the_wind(scheme):
     assert reconstruction_error(out, u, v) <= 1e-6
     assert out.attrs["reconstruction_error"] <= 1e-6
     assert out.attrs["scheme"] == scheme
-    assert set(out.data_vars) >= set(regional.FIELDS[scheme])
+    assert set(out.data_vars) >= set(REGIONAL_VARIABLES)
 
 
 def test_dirichlet_harmonic_part_vanishes_without_boundary_flow():
@@ -351,7 +352,7 @@ def test_coastline_mask_reconstructs_valid_points_and_keeps_missing(scheme):
     u_m, v_m = np.where(valid, u, np.nan), np.where(valid, v, np.nan)
     out = decompose_regional(as_wind(lat, lon, u_m, v_m), scheme=scheme)
     assert reconstruction_error(out, u_m, v_m) <= 1e-6
-    for name in regional.FIELDS[scheme]:
+    for name in REGIONAL_VARIABLES:
         assert np.all(np.isnan(out[name].values[~valid])), name
         assert np.all(np.isfinite(out[name].values[valid])), name
     # The vorticity matches the analytic one three points from the coast, and so does that of
@@ -409,7 +410,7 @@ def test_global_level_with_a_block_below_ground_is_periodic():
     u_m, v_m = np.where(ground, np.nan, u), np.where(ground, np.nan, v)
     out = decompose_regional(as_wind(lat, lon, u_m, v_m), periodic=True)
     assert reconstruction_error(out, u_m, v_m) <= 1e-6
-    for name in regional.FIELDS["variational"]:
+    for name in REGIONAL_VARIABLES:
         assert np.all(np.isnan(out[name].values[ground])), name
     near = np.zeros_like(ground)
     near[2:-2] = True

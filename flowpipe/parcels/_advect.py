@@ -16,6 +16,7 @@ import pandas as pd
 import xarray as xr
 
 from .. import annotate
+from ..choices import STATUS_MEANINGS, VERTICAL
 from ..constants import EARTH_RADIUS
 from ..errors import InputError, UsageError
 from ..grid import describe_grid
@@ -32,8 +33,6 @@ RECORD_MINUTES = 60.0
 #: threshold (radians on the unit sphere, level units; about 6 mm on Earth).
 PETTERSSEN_ITERATIONS = 10
 PETTERSSEN_TOLERANCE = 1e-9
-#: Vertical velocities: name, level type they need, factor to level units per second.
-VERTICAL = {"omega": ("pressure", 0.01), "w": ("height", 1.0)}
 SCHEMES = {"rk4": K.RK4, "petterssen": K.PETTERSSEN}
 #: Fewer parcels than this run on one thread: waking threads for every step
 #: costs more than it saves for small groups, most of all on a busy machine.
@@ -615,8 +614,8 @@ def _trajectory_dataset(wind, clock, start, sign, offsets, lat, lon, out_level, 
     data = {"status": ("trajectory", status, {
         "long_name": "how the trajectory ended",
         "standard_name": "status_flag",
-        "flag_values": np.arange(len(K.STATUS_MEANINGS), dtype=np.int8),
-        "flag_meanings": " ".join(K.STATUS_MEANINGS)})}
+        "flag_values": np.arange(len(STATUS_MEANINGS), dtype=np.int8),
+        "flag_meanings": " ".join(STATUS_MEANINGS)})}
     for i, name in enumerate(sample):
         attrs = {k: v for k, v in wind[name].attrs.items()
                  if k in ("units", "standard_name", "long_name")}

@@ -8,7 +8,8 @@ bracket the current step in those slots and tells the kernels which slot
 pair and time weight belong to each stage time.
 
 Status codes: ``ACTIVE`` (-1) marks a parcel still being integrated; the
-others are the flag values written to the output (see ``STATUS_MEANINGS``).
+others are the flag values written to the output (see
+``flowpipe.choices.STATUS_MEANINGS``).
 """
 
 from __future__ import annotations
@@ -30,9 +31,6 @@ LEFT_DOMAIN = 1
 REACHED_LOWEST = 2
 REACHED_HIGHEST = 3
 MISSING_WIND = 4
-#: Output flag meanings, in the order of the flag values 0, 1, 2, ...
-STATUS_MEANINGS = ("completed", "left_domain", "reached_lowest_level", "reached_highest_level",
-                   "met_missing_wind")
 
 RK4 = 0
 PETTERSSEN = 1

@@ -1,0 +1,85 @@
+"""The one table of flowpipe's names and choices.
+
+Methods, schemes and options that a user can choose, and every output variable
+with its CF attributes. This module imports nothing (not even the rest of
+flowpipe), so that the config, the command line, the stages and the annotation
+take their names from one place, and validating a config loads no numerical
+library.
+"""
+
+from __future__ import annotations
+
+#: Decomposition methods (:func:`flowpipe.decompose.decompose`).
+METHODS = ("auto", "spectral", "regional")
+#: Limited-area schemes (:mod:`flowpipe.regional`).
+SCHEMES = ("variational", "dirichlet")
+#: Vertical velocities of 3-D trajectories: name, level type they need, factor to level
+#: units per second (Pa s-1 to hPa s-1, m s-1 to m s-1).
+VERTICAL = {"omega": ("pressure", 0.01), "w": ("height", 1.0)}
+#: Trajectory status flag meanings, in the order of the flag values 0, 1, 2, ...
+STATUS_MEANINGS = ("completed", "left_domain", "reached_lowest_level", "reached_highest_level",
+                   "met_missing_wind")
+
+#: Output variables: standard_name (or None), units, long_name.
+VARIABLES: dict[str, tuple[str | None, str, str]] = {
+    "streamfunction": ("atmosphere_horizontal_streamfunction", "m2 s-1", "streamfunction"),
+    "velocity_potential": ("atmosphere_horizontal_velocity_potential", "m2 s-1",
+                           "velocity potential"),
+    "vorticity": ("atmosphere_relative_vorticity", "s-1", "relative vorticity"),
+    "divergence": ("divergence_of_wind", "s-1", "horizontal divergence"),
+    "u_rotational": (None, "m s-1", "eastward component of the rotational (non-divergent) wind"),
+    "v_rotational": (None, "m s-1", "northward component of the rotational (non-divergent) wind"),
+    "u_divergent": (None, "m s-1", "eastward component of the divergent (irrotational) wind"),
+    "v_divergent": (None, "m s-1", "northward component of the divergent (irrotational) wind"),
+    "u_harmonic": (None, "m s-1",
+                   "eastward component of the harmonic (non-divergent and irrotational) wind"),
+    "v_harmonic": (None, "m s-1",
+                   "northward component of the harmonic (non-divergent and irrotational) wind"),
+    "u_unresolved": (None, "m s-1",
+                     "eastward wind at valid points not carried by the band-limited rotational "
+                     "and divergent winds"),
+    "v_unresolved": (None, "m s-1",
+                     "northward wind at valid points not carried by the band-limited rotational "
+                     "and divergent winds"),
+    # kinematics
+    "absolute_vorticity": ("atmosphere_absolute_vorticity", "s-1", "absolute vorticity"),
+    "stretching_deformation": (None, "s-1", "stretching deformation"),
+    "shearing_deformation": (None, "s-1", "shearing deformation"),
+    "total_deformation": (None, "s-1", "total deformation"),
+    "kinetic_energy_rotational": (None, "m2 s-2",
+                                  "kinetic energy per unit mass of the rotational wind"),
+    "kinetic_energy_divergent": (None, "m2 s-2",
+                                 "kinetic energy per unit mass of the divergent wind"),
+    "kinetic_energy_spectrum_rotational": (
+        None, "m2 s-2", "global-mean kinetic energy per unit mass of the rotational wind "
+        "per total wavenumber"),
+    "kinetic_energy_spectrum_divergent": (
+        None, "m2 s-2", "global-mean kinetic energy per unit mass of the divergent wind "
+        "per total wavenumber"),
+}
+
+#: The spectral decomposition's fields, in kernel output order.
+SPECTRAL_VARIABLES = ("streamfunction", "velocity_potential", "vorticity", "divergence",
+                      "u_rotational", "v_rotational", "u_divergent", "v_divergent")
+#: What the masked spectral route adds to them (:mod:`flowpipe.masked`).
+UNRESOLVED_VARIABLES = ("u_unresolved", "v_unresolved")
+#: The regional decomposition's fields (both schemes), in kernel output order.
+REGIONAL_VARIABLES = SPECTRAL_VARIABLES + ("u_harmonic", "v_harmonic")
+#: Spectra by total wavenumber among the kinematics.
+SPECTRA = ("kinetic_energy_spectrum_rotational", "kinetic_energy_spectrum_divergent")
+#: The kinematics, in kernel output order (the spectra last).
+KINEMATIC_VARIABLES = ("absolute_vorticity", "stretching_deformation", "shearing_deformation",
+                       "total_deformation", "kinetic_energy_rotational",
+                       "kinetic_energy_divergent") + SPECTRA
+
+#: Quality figures: data variables per latitude-longitude slab, and how the global
+#: figure of the same name (an attribute, set when the figures are known) sums them up:
+#: the largest slab, or the total.
+QUALITY_FIGURES = {
+    "reconstruction_error": "max",
+    "unresolved_fraction": "max",
+    "harmonic_energy_share": "max",
+    "harmonic_rotation": "max",
+    "iterations": "max",
+    "points_left_missing": "sum",
+}
