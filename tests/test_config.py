@@ -92,7 +92,7 @@ _START = "must be [lat, lon] or [lat, lon, level] of finite numbers with lat wit
          f"line 8: [decompose] method must be one of {_choices(METHODS)}, not 'foo'"),
         ("[decompose]\nscheme = \"foo\"\n",
          f"line 8: [decompose] scheme must be one of {_choices(REGIONAL_SCHEMES)}, not 'foo'"),
-        # A triangular truncation N is at least 1: flowpipe.decompose.spectral_plan.
+        # A triangular truncation N is at least 1: flowpipe.slabs.spectral_plan.
         ("[decompose]\ntruncation = 0\n", "line 8: [decompose] truncation must be at least 1, not 0"),
         # Truncation is spectral only: flowpipe.decompose.decompose refuses it with "regional".
         ("[decompose]\nmethod = \"regional\"\ntruncation = 10\n",

@@ -348,7 +348,13 @@ def advect(
     Returns
     -------
     xarray.Dataset
-        A CF discrete-sampling-geometry trajectory Dataset, dimensions
+        In memory, not lazy: the integration is a chain in time (each step
+        starts where the last ended, and which time slices it needs depends on
+        where the parcels are), so there is no graph to build ahead of it.
+        Instead the input streams: only the time slices bracketing the current
+        step are read and held (:mod:`flowpipe.parcels._window`), each once,
+        and the memory is that window and the tracks. A CF
+        discrete-sampling-geometry trajectory Dataset, dimensions
         ``(trajectory, obs)``: ``time``, ``latitude``, ``longitude``, the
         level (``air_pressure`` or ``height``) when the input has levels,
         ``trajectory`` (``cf_role = trajectory_id``), ``status`` (flag values
