@@ -16,6 +16,15 @@ SCHEMES = ("variational", "dirichlet")
 #: Vertical velocities of 3-D trajectories: name, level type they need, factor to level
 #: units per second (Pa s-1 to hPa s-1, m s-1 to m s-1).
 VERTICAL = {"omega": ("pressure", 0.01), "w": ("height", 1.0)}
+#: Largest plausible horizontal wind speed, m s-1. The largest speeds ever analysed in the
+#: atmosphere are about 135 m s-1 (Doppler radar in the Bridge Creek-Moore tornado of
+#: 3 May 1999) and about 120 m s-1 in the strongest jet streams and polar-night jets
+#: (*from memory*; no source at hand). 250 m s-1 leaves room for the upper stratosphere and
+#: mesosphere of deep reanalyses while catching fill values and unit mistakes (1e30, knots
+#: as cm s-1, ...).
+DEFAULT_MAX_SPEED = 250.0
+#: What to do with values that are not finite or faster than the limit.
+IMPLAUSIBLE_CHOICES = ("refuse", "missing")
 #: Trajectory status flag meanings, in the order of the flag values 0, 1, 2, ...
 STATUS_MEANINGS = ("completed", "left_domain", "reached_lowest_level", "reached_highest_level",
                    "met_missing_wind")

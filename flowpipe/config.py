@@ -18,10 +18,16 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
-from .choices import METHODS, REGIONAL_VARIABLES, SPECTRAL_VARIABLES, VERTICAL
+from .choices import (
+    DEFAULT_MAX_SPEED,
+    IMPLAUSIBLE_CHOICES,
+    METHODS,
+    REGIONAL_VARIABLES,
+    SPECTRAL_VARIABLES,
+    VERTICAL,
+)
 from .choices import SCHEMES as REGIONAL_SCHEMES
 from .errors import InputError, UsageError
-from .ingest import DEFAULT_MAX_SPEED, IMPLAUSIBLE_CHOICES, parse_iso
 
 
 class ConfigError(UsageError):
@@ -139,6 +145,8 @@ def _finite(value: Any) -> bool:
 
 def _iso_time(text: str) -> bool:
     """An ISO 8601 time (as ``--run`` takes it)."""
+    from .ingest import parse_iso
+
     try:
         parse_iso(text, "run")
     except InputError:

@@ -37,7 +37,7 @@ def attribute(text: str) -> tuple[str, str]:
 def add_input_options(parser: argparse.ArgumentParser) -> None:
     """Options of the plausibility check and the time series, shared by the commands
     that read winds (see :func:`flowpipe.ingest.open_wind`)."""
-    from ..ingest import DEFAULT_MAX_SPEED, IMPLAUSIBLE_CHOICES
+    from ..choices import DEFAULT_MAX_SPEED, IMPLAUSIBLE_CHOICES
 
     parser.add_argument("--max-speed", type=float, default=DEFAULT_MAX_SPEED, metavar="M_S",
                         help="largest plausible wind speed in m s-1 (default: "

@@ -15,15 +15,9 @@ others are the flag values written to the output (see
 from __future__ import annotations
 
 import math
-import os
 
 import numba
 import numpy as np
-
-# Idle worker threads sleep between steps instead of spinning: on a shared
-# machine spinning takes the processor from other work and then waits for it.
-# Read when the OpenMP threading layer starts; a setting of the user's wins.
-os.environ.setdefault("OMP_WAIT_POLICY", "PASSIVE")
 
 ACTIVE = -1
 COMPLETED = 0
