@@ -90,8 +90,8 @@ POLE_TOLERANCE = 1e-6
 #: Factorisations kept in memory (each grid and mask is one entry).
 CACHE_SIZE = 8
 
-DIAGNOSTICS = ("reconstruction_error", "harmonic_energy_share", "iterations",
-               "points_left_missing", "solver")
+DIAGNOSTICS = ("reconstruction_error", "harmonic_energy_share", "harmonic_rotation",
+               "iterations", "points_left_missing", "solver")
 DIAGNOSTIC_ATTRS = {
     "reconstruction_error": {
         "long_name": "relative area-weighted RMS misfit of the reconstructed wind at valid points",
@@ -99,6 +99,11 @@ DIAGNOSTIC_ATTRS = {
     "harmonic_energy_share": {
         "long_name": "share of the wind's kinetic energy in the harmonic (non-divergent and "
                      "irrotational) part, which the boundary, not the data, decides",
+        "units": "1"},
+    "harmonic_rotation": {
+        "long_name": "vorticity and divergence of the harmonic wind relative to those of the "
+                     "wind, area-weighted RMS over the interior cell corners (zero for an "
+                     "exactly harmonic wind)",
         "units": "1"},
     "iterations": {"long_name": "solver iterations (0 for direct solves)", "units": "1"},
     "points_left_missing": {
@@ -207,12 +212,12 @@ def _solve_slabs(u: np.ndarray, v: np.ndarray, slab: np.ndarray, *, lat: np.ndar
             for k, field in enumerate(names):
                 fields[index + (k,)] = np.where(piece, parts[field], fields[index + (k,)])
             shares.append(float(energy[piece].sum()))
-            figures.append([quality[figure] for figure in DIAGNOSTICS[:3]])
+            figures.append([quality[figure] for figure in DIAGNOSTICS[:4]])
             solvers |= 1 << list(SOLVERS).index(name)
         w = np.asarray(shares) / max(sum(shares), np.finfo(float).tiny)
-        error, harmonic, iterations = np.asarray(figures).T
-        diagnostics[index] = [np.sqrt(w @ error**2), w @ harmonic, iterations.max(), small,
-                              solvers]
+        error, harmonic, rotation, iterations = np.asarray(figures).T
+        diagnostics[index] = [np.sqrt(w @ error**2), w @ harmonic, np.sqrt(w @ rotation**2),
+                              iterations.max(), small, solvers]
     return fields, diagnostics
 
 
@@ -232,9 +237,10 @@ def _solve_piece(grid: StaggeredGrid, valid: np.ndarray, us: np.ndarray, vs: np.
     parts, quality = variational_partition(grid, us, vs, solver)
     # The harmonic flow that the least-energy split shares evenly between its two
     # parts, for reference: Lynch's harmonic wind, one more direct solve.
-    lynch, _ = dirichlet_partition(grid, us, vs, _solver(grid, valid, "dirichlet", 0.0,
-                                                         tolerance, max_iterations))
+    lynch, figures = dirichlet_partition(grid, us, vs, _solver(grid, valid, "dirichlet", 0.0,
+                                                               tolerance, max_iterations))
     parts["u_harmonic"], parts["v_harmonic"] = lynch["u_harmonic"], lynch["v_harmonic"]
+    quality["harmonic_rotation"] = figures["harmonic_rotation"]
     return parts, quality, solver.name
 
 
