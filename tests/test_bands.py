@@ -58,7 +58,7 @@ def _solid(phi, lam):
     (np.arange(-90.0, 90.1, 1.0), "global"),
 ])
 def test_inspect_names_the_grid_kind(tmp_path, lat, kind):
-    # shared/DESIGN.md: inspect --json "grid" is global, band or regional
+    # README.md ("Commands"): inspect --json "grid" is global, band or regional
     path = _band_file(tmp_path / "w.nc", lat, _solid, _zero, times=2)
     run = subprocess.run([sys.executable, "-m", "flowpipe", "inspect", path, "--json"],
                          capture_output=True, text=True)

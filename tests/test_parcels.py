@@ -115,8 +115,8 @@ def deformational_wind(period: float, interval: float, spacing: float = 1.0) -> 
 def test_deformational_flow_returns_at_period():
     # Nair & Lauritzen (2010), "A class of deformational flow test cases for linear
     # transport problems on the sphere", J. Comput. Phys. 229, 8868-8887: the flow
-    # reverses so that every parcel is back at its start at t = T. Bound from the
-    # issue: return error <= 0.5 % of the mean path length at 1 degree, hourly input.
+    # reverses so that every parcel is back at its start at t = T. Bound (our choice):
+    # return error <= 0.5 % of the mean path length at 1 degree, hourly input.
     period = 12 * DAY
     wind = deformational_wind(period, 3600.0)
     plat, plon = fibonacci_points(1000)
@@ -281,7 +281,7 @@ def test_sampled_variable_follows_the_parcel():
 
 
 def test_only_bracketing_time_slices_are_read():
-    # Streaming (the issue's requirement; common practice for long series): a 12-hour
+    # Streaming (README.md, "Methods"; common practice for long series): a 12-hour
     # run in a 10-day hourly series reads just the 13 slices it spans, each once.
     lat, lon = analytic.global_grid(5.0)
     read = []
@@ -319,7 +319,7 @@ def test_start_generators():
     (dict(hours=30.0), InputError, "outside the input times"),
 ])
 def test_bad_requests_are_clear_errors(case, error, words):
-    # Bad input is rejected with a message naming what to fix (the contract, DESIGN.md).
+    # Bad input is rejected with a message naming what to fix (README.md, "Exit codes").
     args = dict(starts=[(45.0, 0.0)], hours=12.0) | case
     with pytest.raises(error, match=words):
         advect(regional_wind(), args.pop("starts"), args.pop("hours"), **args)
@@ -355,7 +355,7 @@ def test_non_standard_calendar_start_times():
 
 
 def test_missing_wind_stops_the_parcel():
-    # The contract (DESIGN.md, status flags): a parcel that needs a missing wind value
+    # README.md ("Output files", status flags): a parcel that needs a missing wind value
     # stops with status met_missing_wind; nothing is invented after that (common
     # practice: missing data are not filled in).
     wind = regional_wind()

@@ -243,7 +243,7 @@ def test_box_parts_do_not_contaminate_each_other(box_convergence, quantity):
 def test_box_parts_reproduce_the_wind(scheme):
     # Rotational + divergent (+ harmonic) = the wind (Lynch 1989, eq. 2.6 for the harmonic
     # remainder; Li, Chao & McWilliams 2006, Mon. Wea. Rev. 134, section 2, for the fit); the
-    # 1e-6 bound is the project's acceptance figure.
+    # 1e-6 bound is our choice.
     lat, lon, u, v, _, _ = box_case(0.5)
     out = decompose_regional(as_wind(lat, lon, u, v), scheme=scheme)
     assert reconstruction_error(out, u, v) <= 1e-6
@@ -473,7 +473,7 @@ def small_box(n=12):
 
 
 def test_too_small_domain_is_refused():
-    # The limit (5 x 5 valid points), from memory of common practice for stencils
+    # The 5 x 5 limit (README.md, "Methods"), from memory of common practice for stencils
     # that need an interior.
     lat, lon, u, v = small_box(4)
     with pytest.raises(InputError, match="at least 5x5"):
@@ -485,7 +485,7 @@ def test_too_small_domain_is_refused():
 
 
 def test_all_missing_is_refused():
-    # Nothing to decompose: a one-line InputError (the project's error contract, DESIGN.md).
+    # Nothing to decompose: a one-line InputError (README.md, "Exit codes").
     lat, lon, u, v = small_box()
     with pytest.raises(InputError, match="every point .* is missing"):
         decompose_regional(as_wind(lat, lon, u * np.nan, v * np.nan))
@@ -535,7 +535,7 @@ def test_pieces_too_small_to_decompose_are_left_missing_and_counted():
 
 
 def test_bad_options_are_usage_errors():
-    # Options outside the documented ones are usage errors (DESIGN.md error contract).
+    # Options outside the documented ones are usage errors (README.md, "Exit codes").
     lat, lon, u, v = small_box()
     wind = as_wind(lat, lon, u, v)
     with pytest.raises(UsageError, match="unknown regional scheme"):
@@ -552,8 +552,8 @@ def test_bad_options_are_usage_errors():
 
 @pytest.mark.parametrize("masked", [False, True])
 def test_levels_are_lazy_and_share_one_factorisation(monkeypatch, masked):
-    # dask: nothing computed until asked, one task per latitude-longitude slab (DESIGN.md,
-    # common practice); the factorisation depends on the grid and mask only, so three levels
+    # dask: nothing computed until asked, one task per latitude-longitude slab (README.md,
+    # "Python API"; common practice); the factorisation depends on the grid and mask only, so three levels
     # build it once, and the threads that share it get the eager result.
     lat, lon, u, v, _, _ = box_case(0.5)
     if masked:
@@ -597,7 +597,7 @@ def test_variational_split_reports_the_harmonic_wind_it_shares():
 
 def test_command_line_on_the_limited_area_sample_writes_every_part_and_its_quality(tmp_path):
     # The command line reads lazily; the quality figures must still reach the file's attributes.
-    # The 1e-6 reconstruction bound is the project's acceptance figure, as above.
+    # The 1e-6 reconstruction bound is our choice, as above.
     from pathlib import Path
 
     import xarray as xr
