@@ -5,7 +5,7 @@ from __future__ import annotations
 import numpy as np
 import pytest
 import xarray as xr
-from _williamson import (
+from reference_winds import (
     case2,
     case6,
     latitudes,

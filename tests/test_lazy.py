@@ -12,8 +12,8 @@ from __future__ import annotations
 import numpy as np
 import pytest
 import xarray as xr
-from _williamson import case6, latitudes, mesh, wind_dataset
 from dask.callbacks import Callback
+from reference_winds import case6, latitudes, mesh, wind_dataset
 
 import flowpipe as fp
 from flowpipe.contours import box

@@ -2,14 +2,14 @@
 unresolved remainder.
 
 Analytic wind: the Rossby-Haurwitz wave of Williamson et al. (1992, J. Comput. Phys.
-102, 211-224, test case 6; tests/_williamson.py) plus a divergent part built of
+102, 211-224, test case 6; tests/reference_winds.py) plus a divergent part built of
 spherical harmonics from scipy.special.sph_harm_y (the reference library).
 """
 
 from __future__ import annotations
 
 import numpy as np
-from _williamson import case6, latitudes, mesh, potential_flow, wind_dataset
+from reference_winds import case6, latitudes, mesh, potential_flow, wind_dataset
 from scipy.spatial import cKDTree
 
 import flowpipe as fp

@@ -9,6 +9,7 @@ from __future__ import annotations
 import numpy as np
 import pytest
 import xarray as xr
+from reference_winds import case6
 
 from flowpipe import regional
 from flowpipe.choices import REGIONAL_VARIABLES
@@ -74,28 +75,22 @@ def box_case(step):
 
 
 def rossby_haurwitz_case(lat, lon):
-    """Williamson et al. (1992) test case 6 (R = 4) plus a divergent Y_4^3 part.
+    """Williamson et al. (1992) test case 6 (R = 4; tests/reference_winds.py) plus a divergent
+    Y_4^3 part.
 
-    TC6: psi = -a^2 w sin(phi) + a^2 K cos^R(phi) sin(phi) cos(R lambda), w = K = 7.848e-6 s-1
-    (Williamson et al. 1992, J. Comput. Phys. 102, 211-224, section 3.6, eqs. 142-145); its
-    vorticity 2 w sin(phi) - K (R^2 + 3R + 2) sin(phi) cos^R(phi) cos(R lambda). The divergent
-    part chi = C cos^3(phi) sin(phi) cos(3 lambda) is the spherical harmonic of degree 4,
-    order 3, so delta = -20 chi / a^2 (common practice).
+    The divergent part chi = C cos^3(phi) sin(phi) cos(3 lambda) is the spherical harmonic of
+    degree 4, order 3, so delta = -20 chi / a^2 (common practice).
     """
-    w = k = 7.848e-6
-    r = 4
     c = 1.0e8
-    phi, lam = np.radians(lat)[:, None], np.radians(lon)[None, :]
+    phi, lam = np.meshgrid(np.radians(lat), np.radians(lon), indexing="ij")
+    wave = case6(phi, lam)
     cos, sin = np.cos(phi), np.sin(phi)
-    u_rot = A * w * cos + A * k * cos ** (r - 1) * (r * sin**2 - cos**2) * np.cos(r * lam)
-    v_rot = -A * k * r * cos ** (r - 1) * sin * np.sin(r * lam)
-    zeta = 2 * w * sin - k * (r**2 + 3 * r + 2) * sin * cos**r * np.cos(r * lam)
     chi = c * cos**3 * sin * np.cos(3 * lam)
     chi_lam = -3 * c * cos**3 * sin * np.sin(3 * lam)
     chi_phi = c * np.cos(3 * lam) * (cos**4 - 3 * cos**2 * sin**2)
     u_div, v_div = helmholtz_wind(lat, 0 * chi, 0 * chi, chi_phi, chi_lam)
     delta = -20 * chi / A**2
-    return u_rot, v_rot, u_div, v_div, zeta, delta
+    return wave["u"], wave["v"], u_div, v_div, wave["zeta"], delta
 
 
 # --- an independent operator ------------------------------------------------------------------
