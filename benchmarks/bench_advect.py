@@ -24,13 +24,23 @@ Run: ``.venv/bin/python benchmarks/bench_advect.py [--quick]``.
 from __future__ import annotations
 
 import argparse
+import sys
 import time
 import tracemalloc
+from pathlib import Path
 
 import numpy as np
 
-from flowpipe.constants import EARTH_RADIUS
-from flowpipe.parcels import advect, analytic
+sys.path.insert(0, str(Path(__file__).resolve().parents[1] / "tests"))
+from reference_winds import (  # noqa: E402
+    deformational_flow,
+    global_grid,
+    series_dataset,
+    solid_body_rotation,
+)
+
+from flowpipe.constants import EARTH_RADIUS  # noqa: E402
+from flowpipe.parcels import advect  # noqa: E402
 from flowpipe.parcels._geometry import cartesian_wind, great_circle_distance, unit_vectors
 
 PERIOD = 12 * 86400.0  # the deformational flow's T and test case 1's revolution
@@ -95,10 +105,10 @@ class Baseline:
 
 
 def deformational(ntimes: int):
-    lat, lon = analytic.global_grid(1.0)
+    lat, lon = global_grid(1.0)
     seconds = np.arange(ntimes) * 3600.0
-    return analytic.wind_dataset(lat, lon, seconds,
-                                 lambda a, b, t: analytic.deformational_flow(a, b, t, PERIOD))
+    return series_dataset(lat, lon, seconds,
+                                 lambda a, b, t: deformational_flow(a, b, t, PERIOD))
 
 
 def throughput(sizes, hours: float, repeats: int) -> None:
@@ -124,10 +134,10 @@ def throughput(sizes, hours: float, repeats: int) -> None:
 
 
 def return_errors(n: int) -> None:
-    lat, lon = analytic.global_grid(1.0)
+    lat, lon = global_grid(1.0)
     alpha = np.pi / 2 - 0.05
-    u, v = analytic.solid_body_rotation(lat, lon, alpha)
-    wind = analytic.wind_dataset(lat, lon, np.zeros(1), lambda a, b, t: (u, v))
+    u, v = solid_body_rotation(lat, lon, alpha)
+    wind = series_dataset(lat, lon, np.zeros(1), lambda a, b, t: (u, v))
     plat, plon = fibonacci_points(n)
     hours = PERIOD / 3600
     tracks = advect(wind, {"latitude": plat, "longitude": plon}, hours, steady=True,

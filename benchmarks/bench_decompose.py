@@ -37,7 +37,7 @@ import scipy.sparse.linalg
 
 sys.path.insert(0, str(Path(__file__).resolve().parents[1] / "tests"))
 from _transforms import floor_transforms  # noqa: E402
-from _williamson import A, case6, mesh, relative_max_error, wind_dataset  # noqa: E402
+from reference_winds import A, case6, mesh, relative_max_error, wind_dataset  # noqa: E402
 
 import flowpipe as fp  # noqa: E402
 

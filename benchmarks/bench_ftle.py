@@ -18,13 +18,18 @@ from __future__ import annotations
 
 import argparse
 import statistics
+import sys
 import time
 import tracemalloc
+from pathlib import Path
 
 import numpy as np
 
-from flowpipe.ftle import ftle, seed_grid
-from flowpipe.parcels import advect, analytic
+sys.path.insert(0, str(Path(__file__).resolve().parents[1] / "tests"))
+from reference_winds import deformational_flow, global_grid, series_dataset  # noqa: E402
+
+from flowpipe.ftle import ftle, seed_grid  # noqa: E402
+from flowpipe.parcels import advect  # noqa: E402
 
 PERIOD = 12 * 86400.0  # the deformational flow's T
 STEP_MINUTES = 7.5
@@ -32,10 +37,10 @@ GRID = 0.5
 
 
 def deformational(ntimes: int):
-    lat, lon = analytic.global_grid(GRID)
+    lat, lon = global_grid(GRID)
     seconds = np.arange(ntimes) * 3600.0
-    return analytic.wind_dataset(lat, lon, seconds,
-                                 lambda a, b, t: analytic.deformational_flow(a, b, t, PERIOD))
+    return series_dataset(lat, lon, seconds,
+                                 lambda a, b, t: deformational_flow(a, b, t, PERIOD))
 
 
 def spacing_for(seeds: int) -> float:

@@ -31,7 +31,7 @@ import numpy as np
 
 sys.path.insert(0, str(Path(__file__).resolve().parents[1] / "tests"))
 from _transforms import floor_transforms  # noqa: E402
-from _williamson import A, mesh, wind_dataset  # noqa: E402
+from reference_winds import A, mesh, wind_dataset  # noqa: E402
 
 import flowpipe as fp  # noqa: E402
 from flowpipe import spectral  # noqa: E402

@@ -260,8 +260,10 @@ def dirichlet_partition(grid: StaggeredGrid, u: np.ndarray, v: np.ndarray,
         ``divergence``, ``u_rotational``, ``v_rotational``, ``u_divergent``,
         ``v_divergent``, ``u_harmonic``, ``v_harmonic`` on the centres.
     diagnostics : dict of float
-        ``reconstruction_error`` (relative, area-weighted, valid points),
-        ``harmonic_energy_share`` and ``iterations`` (0: direct solves).
+        ``reconstruction_error`` (relative, area-weighted, valid points; zero
+        by construction, as the harmonic part is the rest),
+        ``harmonic_energy_share``, ``harmonic_rotation`` (the figure that can
+        fail: :func:`harmonic_rotation`) and ``iterations`` (0: direct solves).
 
     References
     ----------
@@ -298,13 +300,16 @@ def partition_figures(grid: StaggeredGrid, u: np.ndarray, v: np.ndarray,
         ``reconstruction_error``: the relative area-weighted RMS of what the
         three parts leave of the wind; ``harmonic_energy_share``: the area-
         weighted energy of the harmonic wind over that of the wind (never
-        negative); ``iterations`` 0 (direct solves).
+        negative); ``harmonic_rotation`` (:func:`harmonic_rotation`, the figure
+        that can fail); ``iterations`` 0 (direct solves).
 
     References
     ----------
     Lynch (1989), "Partitioning the wind in a limited domain", Mon. Wea.
     Rev. 117, 1492-1500, eq. 2.6 (the three parts add up to the wind).
     """
+    interior = interior_corners(grid, np.isfinite(u) & np.isfinite(v))
+    zeta, delta = curl_and_divergence(grid, u, v, interior)
     total = _weighted_energy(grid, u, v)
     rest_u = u - fields["u_rotational"] - fields["u_divergent"] - fields["u_harmonic"]
     rest_v = v - fields["v_rotational"] - fields["v_divergent"] - fields["v_harmonic"]
@@ -312,8 +317,45 @@ def partition_figures(grid: StaggeredGrid, u: np.ndarray, v: np.ndarray,
         "reconstruction_error": np.sqrt(_weighted_energy(grid, rest_u, rest_v) / total),
         "harmonic_energy_share": _weighted_energy(grid, fields["u_harmonic"],
                                                   fields["v_harmonic"]) / total,
+        "harmonic_rotation": harmonic_rotation(grid, interior, zeta, delta,
+                                               fields["u_harmonic"], fields["v_harmonic"]),
         "iterations": 0,
     }
+
+
+def harmonic_rotation(grid: StaggeredGrid, interior: np.ndarray, zeta: np.ndarray,
+                      delta: np.ndarray, u_harmonic: np.ndarray, v_harmonic: np.ndarray
+                      ) -> float:
+    """How far a harmonic wind is from harmonic: its vorticity and divergence against the wind's.
+
+    Parameters
+    ----------
+    grid : StaggeredGrid
+    interior : numpy.ndarray
+        Interior corners (:func:`flowpipe._staggered.interior_corners`).
+    zeta, delta : numpy.ndarray
+        Vorticity and divergence of the wind at the corners.
+    u_harmonic, v_harmonic : numpy.ndarray
+        The harmonic wind at the centres.
+
+    Returns
+    -------
+    float
+        ``sqrt(sum A (zeta_h**2 + delta_h**2) / sum A (zeta**2 + delta**2))`` over
+        the interior corners (``A`` their areas): zero, to the solver's accuracy,
+        when the Poisson problems were solved (the harmonic wind is both
+        non-divergent and irrotational); of order one when they were not.
+
+    References
+    ----------
+    Lynch (1989), "Partitioning the wind in a limited domain", Mon. Wea. Rev.
+    117, 1492-1500 (the harmonic part is irrotational and non-divergent).
+    """
+    zeta_h, delta_h = curl_and_divergence(grid, u_harmonic, v_harmonic, interior)
+    area = np.broadcast_to(grid.corner_area, grid.corner_shape)[interior]
+    wind = area @ (zeta[interior] ** 2 + delta[interior] ** 2)
+    rest = area @ (zeta_h[interior] ** 2 + delta_h[interior] ** 2)
+    return float(np.sqrt(rest / max(wind, np.finfo(float).tiny)))
 
 
 def _dot(a: np.ndarray, b: np.ndarray) -> float:

@@ -20,6 +20,7 @@ import numpy as np
 import xarray as xr
 
 from ._version import __version__
+from .choices import QUALITY_FIGURES, VARIABLES
 from .constants import EARTH_RADIUS
 
 CF_VERSION = "CF-1.11"
@@ -45,54 +46,6 @@ DEFAULT_REFERENCES = (
     "Attribute Convention for Data Discovery 1.3 (Earth Science Information Partners), "
     "https://wiki.esipfed.org/Attribute_Convention_for_Data_Discovery_1-3"
 )
-
-#: Output variables (the contract's, then the kinematics): standard_name (or None), units, long_name.
-VARIABLES: dict[str, tuple[str | None, str, str]] = {
-    "streamfunction": ("atmosphere_horizontal_streamfunction", "m2 s-1", "streamfunction"),
-    "velocity_potential": ("atmosphere_horizontal_velocity_potential", "m2 s-1",
-                           "velocity potential"),
-    "vorticity": ("atmosphere_relative_vorticity", "s-1", "relative vorticity"),
-    "divergence": ("divergence_of_wind", "s-1", "horizontal divergence"),
-    "u_rotational": (None, "m s-1", "eastward component of the rotational (non-divergent) wind"),
-    "v_rotational": (None, "m s-1", "northward component of the rotational (non-divergent) wind"),
-    "u_divergent": (None, "m s-1", "eastward component of the divergent (irrotational) wind"),
-    "v_divergent": (None, "m s-1", "northward component of the divergent (irrotational) wind"),
-    "u_harmonic": (None, "m s-1",
-                   "eastward component of the harmonic (non-divergent and irrotational) wind"),
-    "v_harmonic": (None, "m s-1",
-                   "northward component of the harmonic (non-divergent and irrotational) wind"),
-    "u_unresolved": (None, "m s-1",
-                     "eastward wind at valid points not carried by the band-limited rotational "
-                     "and divergent winds"),
-    "v_unresolved": (None, "m s-1",
-                     "northward wind at valid points not carried by the band-limited rotational "
-                     "and divergent winds"),
-    # wind speed and direction (flowpipe.fields)
-    "wind_speed": ("wind_speed", "m s-1", "wind speed"),
-    "wind_from_direction": ("wind_from_direction", "degree",
-                            "direction the wind blows from, clockwise from north"),
-    "rotational_wind_speed": (None, "m s-1", "speed of the rotational (non-divergent) wind"),
-    "rotational_wind_from_direction": (None, "degree", "direction the rotational wind blows "
-                                       "from, clockwise from north"),
-    "divergent_wind_speed": (None, "m s-1", "speed of the divergent (irrotational) wind"),
-    "divergent_wind_from_direction": (None, "degree", "direction the divergent wind blows "
-                                      "from, clockwise from north"),
-    # kinematics
-    "absolute_vorticity": ("atmosphere_absolute_vorticity", "s-1", "absolute vorticity"),
-    "stretching_deformation": (None, "s-1", "stretching deformation"),
-    "shearing_deformation": (None, "s-1", "shearing deformation"),
-    "total_deformation": (None, "s-1", "total deformation"),
-    "kinetic_energy_rotational": (None, "m2 s-2",
-                                  "kinetic energy per unit mass of the rotational wind"),
-    "kinetic_energy_divergent": (None, "m2 s-2",
-                                 "kinetic energy per unit mass of the divergent wind"),
-    "kinetic_energy_spectrum_rotational": (
-        None, "m2 s-2", "global-mean kinetic energy per unit mass of the rotational wind "
-        "per total wavenumber"),
-    "kinetic_energy_spectrum_divergent": (
-        None, "m2 s-2", "global-mean kinetic energy per unit mass of the divergent wind "
-        "per total wavenumber"),
-}
 
 #: Attributes of dimension coordinates, by standard name: long_name, axis (CF 1.11 section 4).
 COORDINATES: dict[str, tuple[str, str]] = {
@@ -149,13 +102,16 @@ def now_iso() -> str:
     return _dt.datetime.now(_dt.UTC).replace(microsecond=0).isoformat().replace("+00:00", "Z")
 
 
-def figure(value: xr.DataArray) -> float | object:
-    """A 0-d result as an attribute value: a float, or a 0-d dask array when lazy.
+def quality_summary(ds: xr.Dataset) -> dict[str, float | int]:
+    """The global quality figures of a result, from its per-slab figures in memory.
 
-    :func:`flowpipe.store.write` computes dask-array attributes in the same
-    pass as the data, so a lazy stage can still carry its global figures.
+    Each data variable of :data:`flowpipe.choices.QUALITY_FIGURES` is summed up
+    as that table says (the largest slab, or the total), under its own name.
+    Figures of a lazy result are not known yet and left out:
+    :func:`flowpipe.store.write` sums them up from what it wrote.
     """
-    return value.data if value.chunks is not None else float(value)
+    return {name: getattr(ds[name], how)().item() for name, how in QUALITY_FIGURES.items()
+            if name in ds.data_vars and ds[name].chunks is None}
 
 
 def global_attrs(ds: xr.Dataset, *, title: str, summary: str, references: str) -> dict[str, str]:
@@ -192,7 +148,8 @@ def complete(ds: xr.Dataset, site: dict[str, str] | None = None) -> xr.Dataset:
     coordinates; ``units_metadata`` of times; ``coverage_content_type`` of
     data variables; for CF trajectories, the coordinates attribute (by making
     time, latitude, longitude and the vertical position coordinates); and
-    the global ACDD set, including geospatial and time coverage and keywords.
+    the global ACDD set, including geospatial and time coverage and keywords;
+    the global quality figures (:func:`quality_summary`).
     ``Conventions`` is always flowpipe's, and ``comment`` always includes
     :data:`CAUTION`. Gridded outputs get a grid mapping variable (:data:`CRS`)
     and latitude-longitude cell bounds. Attribute values are only of types a
@@ -234,6 +191,8 @@ def complete(ds: xr.Dataset, site: dict[str, str] | None = None) -> xr.Dataset:
     if CAUTION not in comment:
         attrs["comment"] = f"{comment}\n{CAUTION}" if comment else CAUTION
     for key, value in _discovery(out).items():
+        attrs.setdefault(key, value)
+    for key, value in quality_summary(out).items():
         attrs.setdefault(key, value)
     attrs.update(_site_attributes(site or {}, attrs))
     out.attrs = {key: netcdf3_value(value) for key, value in attrs.items()}
@@ -354,7 +313,7 @@ def _complete_variable(ds: xr.Dataset, name: Hashable) -> None:
         attrs["flag_values"] = np.asarray(attrs["flag_values"]).astype(var.dtype)
     if standard_name in COORDINATES or (is_coordinate and name in ds.dims):
         content = "coordinate"
-    elif "flag_values" in attrs or "flag_masks" in attrs:
+    elif "flag_values" in attrs or "flag_masks" in attrs or name in QUALITY_FIGURES:
         content = "qualityInformation"
     elif "cf_role" in attrs:
         content = "referenceInformation"

@@ -18,14 +18,21 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
-from .decompose import METHODS, SPECTRAL_VARIABLES
+from .choices import (
+    COMPRESSIONS,
+    DEFAULT_COMPRESSION,
+    DEFAULT_MAX_SPEED,
+    IMPLAUSIBLE_CHOICES,
+    METHODS,
+    PRECISIONS,
+    REGIONAL_VARIABLES,
+    SPECTRAL_VARIABLES,
+    VERTICAL,
+    WIND_PRODUCTS,
+    encoding_refusal,
+)
+from .choices import SCHEMES as REGIONAL_SCHEMES
 from .errors import InputError, UsageError
-from .fields import WIND_PRODUCTS
-from .ingest import DEFAULT_MAX_SPEED, IMPLAUSIBLE_CHOICES, parse_iso
-from .parcels._advect import VERTICAL
-from .regional import FIELDS as REGIONAL_FIELDS
-from .regional import SCHEMES as REGIONAL_SCHEMES
-from .store import COMPRESSIONS, DEFAULT_COMPRESSION, PRECISIONS, check_encoding
 
 
 class ConfigError(UsageError):
@@ -149,6 +156,8 @@ def _finite(value: Any) -> bool:
 
 def _iso_time(text: str) -> bool:
     """An ISO 8601 time (as ``--run`` takes it)."""
+    from .ingest import parse_iso
+
     try:
         parse_iso(text, "run")
     except InputError:
@@ -302,10 +311,10 @@ def _refusal(what: str, value: Any, allowed: Allowed) -> str | None:
     return None
 
 
-def _decomposition_fields(method: str, scheme: str) -> tuple[str, ...]:
+def _decomposition_fields(method: str) -> tuple[str, ...]:
     """The mappable fields a decomposition writes (``"auto"``: either method's)."""
     spectral = SPECTRAL_VARIABLES if method != "regional" else ()
-    regional = REGIONAL_FIELDS[scheme] if method != "spectral" else ()
+    regional = REGIONAL_VARIABLES if method != "spectral" else ()
     return tuple(dict.fromkeys(spectral + regional))
 
 
@@ -394,11 +403,10 @@ def _check_values(config: Config, text: str) -> None:
         inputs.extend(Path(m).resolve() for m in matches)
     config.inputs = list(dict.fromkeys(inputs))
     storage = config.tables["output"]
-    try:
-        check_encoding(storage["precision"], storage["compression"],
-                       storage["compression_level"], storage["significant_digits"])
-    except UsageError as exc:
-        raise ConfigError(f"{_where(cfg_path, text, 'output', None)}: [output] {exc}") from None
+    refusal = encoding_refusal(storage["precision"], storage["compression"],
+                               storage["compression_level"], storage["significant_digits"])
+    if refusal:
+        raise ConfigError(f"{_where(cfg_path, text, 'output', None)}: [output] {refusal}")
     for stage, fields_allowed in TEMPLATE_FIELDS.items():
         if stage in config.tables:
             check_template(config.tables[stage]["output"], fields_allowed,
@@ -419,7 +427,7 @@ def _check_values(config: Config, text: str) -> None:
             raise ConfigError(f"{_where(cfg_path, text, 'decompose', 'truncation')}: [decompose] "
                               "truncation applies to the spectral method only, not to method "
                               "\"regional\"; drop it or use method \"spectral\" or \"auto\"")
-        written = _decomposition_fields(dec["method"], dec["scheme"]) + tuple(WIND_PRODUCTS)
+        written = _decomposition_fields(dec["method"]) + tuple(WIND_PRODUCTS)
         if dec["fields"] is not None:
             refusal = _refusal("[decompose] fields", dec["fields"], _one_of(written, each=True))
             if refusal:

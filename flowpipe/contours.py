@@ -652,7 +652,8 @@ def circulation(wind: xr.Dataset, contours: Sequence[Contour | MovingCircle], *,
     ----------
     See :data:`REFERENCES`.
     """
-    from .decompose import decompose, select_levels
+    from .decompose import decompose
+    from .slabs import select_levels
 
     if not contours:
         raise UsageError("give at least one contour (--box, --circle, --polygon or --follow)")

@@ -16,21 +16,8 @@ import numpy as np
 import xarray as xr
 
 from .annotate import variable_attrs
+from .choices import KEPT_WITH_FIELDS, WIND_PRODUCTS
 from .errors import UsageError
-
-#: Derived outputs: name -> (its wind's u and v, the quantity). The full wind is the input's.
-WIND_PRODUCTS: dict[str, tuple[str, str, str]] = {
-    "wind_speed": ("u", "v", "speed"),
-    "wind_from_direction": ("u", "v", "direction"),
-    "rotational_wind_speed": ("u_rotational", "v_rotational", "speed"),
-    "rotational_wind_from_direction": ("u_rotational", "v_rotational", "direction"),
-    "divergent_wind_speed": ("u_divergent", "v_divergent", "speed"),
-    "divergent_wind_from_direction": ("u_divergent", "v_divergent", "direction"),
-}
-
-#: Variables kept whatever the selection: the figures that say how good the fields are.
-QUALITY_VARIABLES = ("reconstruction_error", "harmonic_energy_share", "unresolved_fraction",
-                     "iterations", "vorticity_disagreement", "divergence_disagreement")
 
 
 def speed_and_direction(u: np.ndarray, v: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
@@ -88,7 +75,7 @@ def select_fields(parts: xr.Dataset, wind: xr.Dataset, names: Sequence[str] | No
     Returns
     -------
     xarray.Dataset
-        The named variables with the quality figures of :data:`QUALITY_VARIABLES`.
+        The named variables with the quality figures of :data:`KEPT_WITH_FIELDS`.
 
     Raises
     ------
@@ -98,7 +85,7 @@ def select_fields(parts: xr.Dataset, wind: xr.Dataset, names: Sequence[str] | No
     """
     if names is None:
         return parts
-    available = [str(n) for n in parts.data_vars if n not in QUALITY_VARIABLES]
+    available = [str(n) for n in parts.data_vars if n not in KEPT_WITH_FIELDS]
     products = [n for n, (un, vn, _) in WIND_PRODUCTS.items()
                 if {un, vn} <= set(parts.data_vars) | ({"u", "v"} if un == "u" else set())]
     unknown = [n for n in names if n not in available and n not in products]
@@ -111,7 +98,7 @@ def select_fields(parts: xr.Dataset, wind: xr.Dataset, names: Sequence[str] | No
         full = full.sel(level=parts["level"])
     source = parts.assign(u=full["u"], v=full["v"])
     out = parts[[n for n in names if n in available] +
-                [n for n in QUALITY_VARIABLES if n in parts.data_vars]]
+                [n for n in KEPT_WITH_FIELDS if n in parts.data_vars]]
     for name in names:
         if name in WIND_PRODUCTS:
             un, vn, quantity = WIND_PRODUCTS[name]

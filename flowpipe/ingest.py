@@ -46,6 +46,7 @@ import numpy as np
 import xarray as xr
 
 from .annotate import CANONICAL_COORDINATES, iso_time
+from .choices import DEFAULT_MAX_SPEED, IMPLAUSIBLE_CHOICES
 from .errors import FlowpipeWarning, InputError, UsageError
 
 #: Standard names that identify the eastward and northward wind (CF 1.11
@@ -66,15 +67,6 @@ DEFAULT_CHUNKS = {"realization": 1, "time": 1, "level": 1, "latitude": -1, "long
 #: else a dimension of one of these names (*common practice*; ``number`` is GRIB's key).
 MEMBER_NAMES = ("realization", "member", "ensemble_member", "ensemble", "ens", "number")
 
-#: Largest plausible horizontal wind speed, m s-1. The largest speeds ever analysed in the
-#: atmosphere are about 135 m s-1 (Doppler radar in the Bridge Creek-Moore tornado of
-#: 3 May 1999) and about 120 m s-1 in the strongest jet streams and polar-night jets
-#: (*from memory*; no source at hand). 250 m s-1 leaves room for the upper stratosphere and
-#: mesosphere of deep reanalyses while catching fill values and unit mistakes (1e30, knots
-#: as cm s-1, ...).
-DEFAULT_MAX_SPEED = 250.0
-#: What to do with values that are not finite or faster than the limit.
-IMPLAUSIBLE_CHOICES = ("refuse", "missing")
 
 
 def expand_paths(paths: str | os.PathLike | Iterable[str | os.PathLike]) -> list[Path]:

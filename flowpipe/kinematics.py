@@ -14,25 +14,21 @@ import xarray as xr
 
 from . import spectral
 from .annotate import global_attrs, variable_attrs
+from .choices import KINEMATIC_VARIABLES, SPECTRA
 from .constants import EARTH_RADIUS, EARTH_ROTATION_RATE
-from .decompose import (
+from .errors import InputError
+from .grid import describe_grid
+from .ingest import with_input_precision
+from .slabs import (
     HORIZONTAL,
     SPECTRAL_REFERENCES,
     apply_slab_kernel,
     canonical_order,
     label_coordinates,
+    refuse_missing,
     select_levels,
     spectral_plan,
 )
-from .errors import InputError
-from .grid import describe_grid
-from .ingest import with_input_precision
-
-#: Output variables, in kernel output order (attributes in :data:`flowpipe.annotate.VARIABLES`).
-KINEMATIC_VARIABLES = ("absolute_vorticity", "stretching_deformation", "shearing_deformation",
-                       "total_deformation", "kinetic_energy_rotational", "kinetic_energy_divergent",
-                       "kinetic_energy_spectrum_rotational", "kinetic_energy_spectrum_divergent")
-SPECTRA = ("kinetic_energy_spectrum_rotational", "kinetic_energy_spectrum_divergent")
 
 
 def kinematics_slab(
@@ -116,12 +112,13 @@ def kinematics(
     xarray.Dataset
         The variables of :data:`KINEMATIC_VARIABLES`; the spectra have the
         dimension ``total_wavenumber`` (``0..N``) in place of latitude and
-        longitude. Lazy when the input is.
+        longitude. Lazy when the input is; building it reads no data.
 
     Raises
     ------
     flowpipe.errors.InputError
-        When the grid is not a complete global grid or has missing values.
+        When the grid is not a complete global grid; when u or v has missing
+        values (for a lazy wind, when the result is computed).
 
     References
     ----------
@@ -134,10 +131,12 @@ def kinematics(
             f"kinematics need a complete global equiangular or Gaussian grid; the "
             f"{grid.nlat} x {grid.nlon} grid is {grid.kind} with {grid.latitudes} latitudes: "
             "compute vorticity and divergence with flowpipe.decompose(method='regional')")
-    geometry, n = spectral_plan(wind, grid, truncation)
+    geometry, n = spectral_plan(grid, truncation)
     core = [HORIZONTAL] * (len(KINEMATIC_VARIABLES) - len(SPECTRA)) + [["total_wavenumber"]] * 2
+    # missing points are refused inside each slab task: building reads no data
     outputs = apply_slab_kernel(
-        kinematics_slab, wind, core, sizes={"total_wavenumber": n + 1},
+        refuse_missing, wind, core, sizes={"total_wavenumber": n + 1},
+        kernel=kinematics_slab, what="kinematics", longitude=grid.longitude,
         geometry=geometry, truncation=n, radius=EARTH_RADIUS,
         rotation_rate=EARTH_ROTATION_RATE, latitude=grid.latitude,
     )

@@ -28,31 +28,27 @@ import warnings
 from collections.abc import Hashable, Iterable
 from pathlib import Path
 
-import matplotlib
+import cartopy
+import cartopy.crs as ccrs
+import cartopy.feature as cfeature
+import cf_xarray  # noqa: F401  (registers the .cf accessor)
+import matplotlib.axes
+import numpy as np
+import shapefile  # (pyshp, cartopy's shapefile reader)
+import xarray as xr
+from cartopy.util import add_cyclic_point
+from matplotlib import patheffects
+from matplotlib.collections import LineCollection
+from matplotlib.colors import Normalize
+from matplotlib.figure import Figure
+from matplotlib.path import Path as MplPath
+from matplotlib.ticker import MaxNLocator
+from shapely.geometry import LineString
 
-matplotlib.use("Agg")  # no screen: render to files only
-
-import cartopy  # noqa: E402
-import cartopy.crs as ccrs  # noqa: E402
-import cartopy.feature as cfeature  # noqa: E402
-import cf_xarray  # noqa: E402, F401  (registers the .cf accessor)
-import matplotlib.axes  # noqa: E402
-import numpy as np  # noqa: E402
-import shapefile  # noqa: E402  (pyshp, cartopy's shapefile reader)
-import xarray as xr  # noqa: E402
-from cartopy.util import add_cyclic_point  # noqa: E402
-from matplotlib import patheffects  # noqa: E402
-from matplotlib.collections import LineCollection  # noqa: E402
-from matplotlib.colors import Normalize  # noqa: E402
-from matplotlib.figure import Figure  # noqa: E402
-from matplotlib.path import Path as MplPath  # noqa: E402
-from matplotlib.ticker import MaxNLocator  # noqa: E402
-from shapely.geometry import LineString  # noqa: E402
-
-from ._version import __version__  # noqa: E402
-from .annotate import CAUTION_SHORT, iso_time  # noqa: E402
-from .errors import FlowpipeWarning, InputError, UsageError  # noqa: E402
-from .ingest import (  # noqa: E402
+from ._version import __version__
+from .annotate import CAUTION_SHORT, iso_time
+from .errors import FlowpipeWarning, InputError, UsageError
+from .ingest import (
     as_timedelta,
     canonical_levels,
     find_coordinate,
@@ -64,7 +60,7 @@ from .ingest import (  # noqa: E402
     parse_iso,
     run_text,
 )
-from .store import atomic_path  # noqa: E402
+from .store import atomic_path
 
 #: Where Debian's python-cartopy-data puts Natural Earth and GSHHS files.
 COASTLINE_DIRS: tuple[str, ...] = ("/usr/share/cartopy/data",)

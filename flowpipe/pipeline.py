@@ -213,8 +213,12 @@ class Runner:
         stages = result.record["stages"]
         stages.setdefault(stage, {"seconds": 0.0, "status": "ok"})
         stages[stage]["seconds"] = round(stages[stage]["seconds"] + elapsed, 3)
+        told = set()  # (a warning of every slab alike is told once)
         for warning in caught:  # into the log and the manifest; others as Python shows them
             if issubclass(warning.category, FlowpipeWarning):
+                if str(warning.message) in told:
+                    continue
+                told.add(str(warning.message))
                 log.warning("%s: %s", self._rel(out), warning.message)
                 stages[stage].setdefault("warnings", []).append(f"{self._rel(out)}: "
                                                                 f"{warning.message}")

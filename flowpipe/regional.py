@@ -72,13 +72,13 @@ from ._poisson import (
     variational_partition,
 )
 from ._staggered import StaggeredGrid, interior_corners
-from .annotate import figure, global_attrs, variable_attrs
+from .annotate import global_attrs, quality_summary, variable_attrs
+from .choices import REGIONAL_VARIABLES, SCHEMES
 from .constants import EARTH_RADIUS
 from .errors import FlowpipeWarning, InputError, UsageError
 from .grid import describe_grid
 from .spectral import pole_row
 
-SCHEMES = ("variational", "dirichlet")
 #: Default dimensionless Tikhonov weight of the variational scheme (the weight of
 #: the parts' gradient energy against the wind misfit): the misfit it leaves,
 #: about this much relative, is far below the iteration tolerance.
@@ -92,15 +92,8 @@ POLE_TOLERANCE = 1e-6
 #: Factorisations kept in memory (each grid and mask is one entry).
 CACHE_SIZE = 8
 
-FIELDS = {
-    "variational": ("streamfunction", "velocity_potential", "vorticity", "divergence",
-                    "u_rotational", "v_rotational", "u_divergent", "v_divergent",
-                    "u_harmonic", "v_harmonic"),
-    "dirichlet": ("streamfunction", "velocity_potential", "vorticity", "divergence",
-                  "u_rotational", "v_rotational", "u_divergent", "v_divergent",
-                  "u_harmonic", "v_harmonic"),
-}
-DIAGNOSTICS = ("reconstruction_error", "harmonic_energy_share", "iterations")
+DIAGNOSTICS = ("reconstruction_error", "harmonic_energy_share", "harmonic_rotation",
+               "iterations", "points_left_missing", "solver")
 DIAGNOSTIC_ATTRS = {
     "reconstruction_error": {
         "long_name": "relative area-weighted RMS misfit of the reconstructed wind at valid points",
@@ -109,8 +102,33 @@ DIAGNOSTIC_ATTRS = {
         "long_name": "share of the wind's kinetic energy in the harmonic (non-divergent and "
                      "irrotational) part, which the boundary, not the data, decides",
         "units": "1"},
+    "harmonic_rotation": {
+        "long_name": "vorticity and divergence of the harmonic wind relative to those of the "
+                     "wind, area-weighted RMS over the interior cell corners (zero for an "
+                     "exactly harmonic wind)",
+        "units": "1"},
     "iterations": {"long_name": "solver iterations (0 for direct solves)", "units": "1"},
+    "points_left_missing": {
+        "long_name": f"valid points in pieces of the domain smaller than {MINIMUM_SIZE}x"
+                     f"{MINIMUM_SIZE} or without a 2x2 block: too small to decompose, left "
+                     "missing (every larger piece is decomposed on its own)",
+        "units": "1"},
 }
+#: The solvers a slab may use (its ``solver`` flags, CF 1.11 section 3.5): description, flag.
+SOLVERS = {
+    SeparableDirichletSolver.name: "separable_fast_poisson_solver",
+    SparseDirichletSolver.name: "sparse_lu_poisson_solver",
+    VariationalSolver.names["complete"]: "cg_with_separable_preconditioner",
+    VariationalSolver.names["coupled"]: "cg_with_coupled_sparse_lu_preconditioner",
+    VariationalSolver.names["uncoupled"]: "cg_with_uncoupled_sparse_lu_preconditioner",
+}
+SOLVER_ATTRS = {
+    "long_name": "solvers used on the slab (one flag for each)",
+    "flag_masks": np.array([1 << k for k in range(len(SOLVERS))], dtype=np.int32),
+    "flag_meanings": " ".join(SOLVERS.values()),
+    "comment": "; ".join(f"{flag}: {name}" for name, flag in SOLVERS.items()),
+}
+DIAGNOSTIC_ATTRS["solver"] = SOLVER_ATTRS
 
 #: What the parts of each scheme add up to.
 RECONSTRUCTION = {
@@ -163,57 +181,72 @@ def _solver(grid: StaggeredGrid, valid: np.ndarray, scheme: str, regularisation:
                                              max_iterations))
 
 
-def _solve_slabs(u: np.ndarray, v: np.ndarray, *, lat: np.ndarray, lon: np.ndarray,
-                 periodic: bool, scheme: str, regularisation: float, tolerance: float,
-                 max_iterations: int, pole: str | None = None) -> tuple[np.ndarray, np.ndarray]:
-    """Decompose every latitude-longitude slab of ``u``, ``v`` (shape ``(..., nlat, nlon)``);
-    ``pole`` names the pole beyond the last row that closes a band (see :func:`_lynch`)."""
+def _solve_slabs(u: np.ndarray, v: np.ndarray, slab: np.ndarray, *, lat: np.ndarray,
+                 lon: np.ndarray, periodic: bool, scheme: str, regularisation: float,
+                 tolerance: float, max_iterations: int, lead: dict[str, np.ndarray | None],
+                 pole: str | None = None) -> tuple[np.ndarray, np.ndarray]:
+    """Decompose every latitude-longitude slab of ``u``, ``v`` (shape ``(..., nlat, nlon)``).
+
+    ``slab`` holds the flat index of each slab in the whole wind and ``lead`` the
+    coordinates of its leading dimensions, to name a slab whose mask is refused.
+    The masks are looked at here, inside the task, so that building a lazy result
+    reads no data. ``pole`` names the pole beyond the last row that closes a band
+    (see :func:`_lynch`).
+    """
     grid = _grid(lat, lon, periodic)
-    names = FIELDS[scheme]
+    names = REGIONAL_VARIABLES
     fields = np.full(u.shape[:-2] + (len(names),) + u.shape[-2:], np.nan)
     diagnostics = np.full(u.shape[:-2] + (len(DIAGNOSTICS),), np.nan)
     for index in np.ndindex(u.shape[:-2]):
         us = np.asarray(u[index], dtype=np.float64)
         vs = np.asarray(v[index], dtype=np.float64)
         valid = np.isfinite(us) & np.isfinite(vs)
+        pieces, small = _check_mask(valid, _slab_label(lead, int(slab[index])), grid)
+        if small:
+            warnings.warn(f"{small} valid points of a latitude-longitude slab lie in pieces too "
+                          "small to decompose and are left missing (variable "
+                          "points_left_missing)", FlowpipeWarning, stacklevel=2)
         # Each connected piece on its own; the relative quality figures of the pieces
         # combined with weights of their wind energy, the iterations as the most.
         energy = np.where(valid, grid.centre_area * (us**2 + vs**2), 0.0)
-        shares, figures = [], []
-        for piece in solvable_pieces(valid, grid)[0]:
-            parts, quality = _solve_piece(grid, piece, np.where(piece, us, np.nan),
-                                          np.where(piece, vs, np.nan), scheme, regularisation,
-                                          tolerance, max_iterations, pole)
-            for k, name in enumerate(names):
-                fields[index + (k,)] = np.where(piece, parts[name], fields[index + (k,)])
+        shares, figures, solvers = [], [], 0
+        for piece in pieces:
+            parts, quality, name = _solve_piece(grid, piece, np.where(piece, us, np.nan),
+                                                np.where(piece, vs, np.nan), scheme,
+                                                regularisation, tolerance, max_iterations, pole)
+            for k, field in enumerate(names):
+                fields[index + (k,)] = np.where(piece, parts[field], fields[index + (k,)])
             shares.append(float(energy[piece].sum()))
-            figures.append([quality[name] for name in DIAGNOSTICS])
+            figures.append([quality[figure] for figure in DIAGNOSTICS[:4]])
+            solvers |= 1 << list(SOLVERS).index(name)
         w = np.asarray(shares) / max(sum(shares), np.finfo(float).tiny)
-        error, harmonic, iterations = np.asarray(figures).T
-        diagnostics[index] = [np.sqrt(w @ error**2), w @ harmonic, iterations.max()]
+        error, harmonic, rotation, iterations = np.asarray(figures).T
+        diagnostics[index] = [np.sqrt(w @ error**2), w @ harmonic, np.sqrt(w @ rotation**2),
+                              iterations.max(), small, solvers]
     return fields, diagnostics
 
 
 def _solve_piece(grid: StaggeredGrid, valid: np.ndarray, us: np.ndarray, vs: np.ndarray,
                  scheme: str, regularisation: float, tolerance: float, max_iterations: int,
-                 pole: str | None = None) -> tuple[dict[str, np.ndarray], dict[str, float]]:
-    """Decompose the wind of one connected piece (NaN outside it).
+                 pole: str | None = None) -> tuple[dict[str, np.ndarray], dict[str, float], str]:
+    """Decompose the wind of one connected piece (NaN outside it); the solver's name.
 
     References
     ----------
     :func:`flowpipe._poisson.dirichlet_partition` and
     :func:`flowpipe._poisson.variational_partition`.
     """
-    if scheme == "dirichlet":
-        return _lynch(grid, valid, us, vs, pole)
     solver = _solver(grid, valid, scheme, regularisation, tolerance, max_iterations)
+    if scheme == "dirichlet":
+        return *_lynch(grid, valid, us, vs, pole), solver.name
     parts, quality = variational_partition(grid, us, vs, solver)
     # The harmonic flow, for reference: Lynch's harmonic wind, one more direct solve; the
-    # share describes this wind, the one written (see variational_partition).
+    # share and the rotation describe this wind, the one written (see variational_partition).
     lynch, figures = _lynch(grid, valid, us, vs, pole)
     parts["u_harmonic"], parts["v_harmonic"] = lynch["u_harmonic"], lynch["v_harmonic"]
     quality["harmonic_energy_share"] = figures["harmonic_energy_share"]
-    return parts, quality
+    quality["harmonic_rotation"] = figures["harmonic_rotation"]
+    return parts, quality, solver.name
 
 
 def _lynch(grid: StaggeredGrid, valid: np.ndarray, us: np.ndarray, vs: np.ndarray,
@@ -258,15 +291,16 @@ def _dirichlet(grid: StaggeredGrid, valid: np.ndarray
     return _solver(grid, valid, "dirichlet", 0.0, DEFAULT_TOLERANCE, DEFAULT_MAX_ITERATIONS)
 
 
-def _slab_label(da: xr.DataArray, flat_index: int) -> str:
-    lead = da.dims[:-2]
+def _slab_label(lead: dict[str, np.ndarray | None], flat_index: int) -> str:
+    """``the slab at time=..., level=...`` (or ``the level``), from the leading coordinates."""
     if not lead:
         return "the level"
-    index = np.unravel_index(flat_index, da.shape[:-2])
+    shape = tuple(int(np.size(values)) if np.ndim(values) else int(values)
+                  for values in lead.values())
+    index = np.unravel_index(flat_index, shape)
     parts = []
-    for dim, i in zip(lead, index, strict=True):
-        value = da[dim].values[i] if dim in da.coords else i
-        parts.append(f"{dim}={value}")
+    for (dim, values), i in zip(lead.items(), index, strict=True):
+        parts.append(f"{dim}={values[i] if np.ndim(values) else i}")
     return "the slab at " + ", ".join(parts)
 
 
@@ -461,29 +495,18 @@ def decompose_regional(wind: xr.Dataset, scheme: str = "variational", periodic: 
         wind = wind.isel(latitude=np.flatnonzero(~on_pole))
     lat, lon = _check_grid(wind, periodic)
     u, v = wind["u"], wind["v"]
-    valid_all = np.asarray((u.notnull() & v.notnull()).values).reshape((-1,) + u.shape[-2:])
-    solver_names = set()
-    grid = _grid(lat, lon, periodic)
-    seen: dict[bytes, int] = {}  # mask -> its valid points left missing
-    left_missing = 0
-    for flat_index, valid in enumerate(valid_all):
-        key = np.packbits(valid).tobytes()
-        if key not in seen:
-            pieces, seen[key] = _check_mask(valid, _slab_label(u, flat_index), grid)
-            for piece in pieces:
-                if scheme == "variational":
-                    solver_names.add(VariationalSolver.names[VariationalSolver.kind(grid, piece)])
-                else:
-                    solver_names.add(SeparableDirichletSolver.name if piece.all()
-                                     else SparseDirichletSolver.name)
-        left_missing += seen[key]
+    lead = {str(dim): (wind[dim].values if dim in wind.coords else u.sizes[dim])
+            for dim in u.dims[:-2]}
+    slab = xr.DataArray(np.arange(int(np.prod(u.shape[:-2]))).reshape(u.shape[:-2]),
+                        dims=u.dims[:-2])
     if u.chunks is not None:
         u = u.chunk({"latitude": -1, "longitude": -1})
         v = v.chunk({"latitude": -1, "longitude": -1})
-    names = FIELDS[scheme]
+        slab = slab.chunk(dict(zip(u.dims[:-2], u.chunks[:-2], strict=True)))
+    names = REGIONAL_VARIABLES
     fields, quality = xr.apply_ufunc(
-        _solve_slabs, u, v,
-        input_core_dims=[["latitude", "longitude"]] * 2,
+        _solve_slabs, u, v, slab,
+        input_core_dims=[["latitude", "longitude"]] * 2 + [[]],
         output_core_dims=[["component", "latitude", "longitude"], ["diagnostic"]],
         dask="parallelized",
         output_dtypes=[np.float64, np.float64],
@@ -491,13 +514,16 @@ def decompose_regional(wind: xr.Dataset, scheme: str = "variational", periodic: 
                                              "diagnostic": len(DIAGNOSTICS)}},
         kwargs={"lat": lat, "lon": lon, "periodic": periodic, "scheme": scheme,
                 "regularisation": float(regularisation), "tolerance": tolerance,
-                "max_iterations": max_iterations, "pole": pole},
+                "max_iterations": max_iterations, "lead": lead, "pole": pole},
         keep_attrs=False,
     )
     out = xr.Dataset({name: fields.isel(component=k, drop=True).assign_attrs(variable_attrs(name))
                       for k, name in enumerate(names)})
     for k, name in enumerate(DIAGNOSTICS):
-        out[name] = quality.isel(diagnostic=k, drop=True).assign_attrs(DIAGNOSTIC_ATTRS[name])
+        figure = quality.isel(diagnostic=k, drop=True)
+        if name in ("points_left_missing", "solver"):
+            figure = figure.astype(np.int32)
+        out[name] = figure.assign_attrs(DIAGNOSTIC_ATTRS[name])
     if scheme == "variational":
         for name in ("u_harmonic", "v_harmonic"):
             out[name].attrs["comment"] = VARIATIONAL_HARMONIC
@@ -511,21 +537,10 @@ def decompose_regional(wind: xr.Dataset, scheme: str = "variational", periodic: 
         scheme=scheme,
         regularisation=float(regularisation),
         periodic=int(periodic),
-        solver="; ".join(sorted(solver_names)),
         wind_reconstruction=RECONSTRUCTION[scheme],
     )
     if scheme == "variational":
         out.attrs.update(tolerance=tolerance, max_iterations=max_iterations)
-    if left_missing:
-        out.attrs["points_left_missing"] = left_missing
-        out.attrs["points_left_missing_comment"] = (
-            f"valid points in pieces of the domain smaller than {MINIMUM_SIZE}x{MINIMUM_SIZE} "
-            "or without a 2x2 block, over all slabs: too small to decompose, left missing; "
-            "every larger piece is decomposed on its own")
-        warnings.warn(f"{left_missing} valid points in pieces too small to decompose are left "
-                      "missing (attribute points_left_missing)", FlowpipeWarning, stacklevel=2)
-    for k, name in enumerate(DIAGNOSTICS):
-        out.attrs[name] = figure(quality.isel(diagnostic=k).max())
     if on_pole.any():
         out = out.reindex(latitude=rows)
         if wind["u"].chunks is not None:  # one chunk per slab again, as the canonical Dataset
@@ -533,7 +548,27 @@ def decompose_regional(wind: xr.Dataset, scheme: str = "variational", periodic: 
         out.attrs["pole_rows"] = "missing: wind directions are undefined on a pole" + (
             f"; the {pole} pole is a point of the domain of the harmonic wind, not an edge"
             if pole else "")
+    if out["solver"].chunks is None:  # known already: the global figures
+        _summarise(out)
     return out
+
+
+def _summarise(out: xr.Dataset) -> None:
+    """Add the global figures of a result in memory (those of a lazy one are added as it is
+    written, :func:`flowpipe.annotate.quality_summary`): the solvers used, the largest of each
+    per-slab figure, and the points left missing over all slabs (when there are any)."""
+    used = np.bitwise_or.reduce(out["solver"].values, axis=None)
+    out.attrs["solver"] = "; ".join(sorted(name for k, name in enumerate(SOLVERS)
+                                           if used & (1 << k)))
+    figures = quality_summary(out)
+    if not figures["points_left_missing"]:
+        del figures["points_left_missing"]
+    else:
+        figures["points_left_missing_comment"] = (
+            f"valid points in pieces of the domain smaller than {MINIMUM_SIZE}x{MINIMUM_SIZE} "
+            "or without a 2x2 block, over all slabs: too small to decompose, left missing; "
+            "every larger piece is decomposed on its own")
+    out.attrs.update(figures)
 
 
 def _closing_pole(lat: np.ndarray, on_pole: np.ndarray, periodic: bool) -> str | None:

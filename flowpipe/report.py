@@ -17,7 +17,7 @@ import netCDF4
 import numpy as np
 
 from .annotate import CAUTION
-from .fields import QUALITY_VARIABLES
+from .choices import REPORTED_FIGURES
 from .store import atomic_path
 
 REPORT_NAME = "report.html"
@@ -36,7 +36,9 @@ QUALITY_LABELS = {
     "reconstruction_error": "reconstruction error",
     "harmonic_energy_share": "harmonic energy share",
     "unresolved_fraction": "unresolved fraction",
+    "harmonic_rotation": "harmonic wind's rotation and divergence",
     "iterations": "solver iterations",
+    "points_left_missing": "points left missing",
     "vorticity_disagreement": "vorticity line/area disagreement",
     "divergence_disagreement": "divergence line/area disagreement",
 }
@@ -54,7 +56,7 @@ def output_facts(path: Path) -> dict[str, Any]:
     -------
     dict
         ``time_coverage_start`` / ``time_coverage_end`` (ACDD-1.3) when present;
-        ``quality``: each quality figure of :data:`flowpipe.fields.QUALITY_VARIABLES`
+        ``quality``: each quality figure of :data:`flowpipe.choices.REPORTED_FIGURES`
         the file has, as its largest value over the slabs (a data variable) or
         as the global attribute; ``status``: for trajectory files, the number
         of trajectories by status (CF 1.11 section 3.5 flags of ``status``).
@@ -68,7 +70,7 @@ def output_facts(path: Path) -> dict[str, Any]:
             if key in attrs:
                 facts[key] = str(nc.getncattr(key))
         quality = {}
-        for name in QUALITY_VARIABLES:
+        for name in REPORTED_FIGURES:
             if name in nc.variables:
                 values = np.ma.filled(np.ma.asarray(nc[name][:], dtype=float), np.nan)
                 if np.isfinite(values).any():

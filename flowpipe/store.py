@@ -26,6 +26,13 @@ import numpy as np
 import xarray as xr
 
 from . import annotate
+from .choices import (
+    DEFAULT_COMPRESSION,
+    DEFAULT_LEVEL,
+    MAX_SIGNIFICANT_DIGITS,
+    QUALITY_FIGURES,
+    encoding_refusal,
+)
 from .errors import (
     NO_SPACE_ERRNOS,
     FlowpipeError,
@@ -60,28 +67,12 @@ TIME_UNITS = "seconds since 1970-01-01 00:00:00"
 FLOAT32_NOTE = ("stored in single precision (IEEE 754 binary32): relative rounding error "
                 "up to 6e-8 of each value")
 
-#: Storage precision of floating-point data variables: as the wind was stored
-#: (``input``, the default), or always single or double.
-PRECISIONS = ("input", "single", "double")
 _PRECISION_TYPES = {"single": np.dtype(np.float32), "double": np.dtype(np.float64)}
-
-#: Lossless encodings of data variables (zlib with shuffle; the netCDF4 library
-#: applies shuffle with zlib only). The default is zlib at
-#: level 1: every netCDF-4 reader decodes it, and it writes in about two thirds of
-#: the time of level 4 (benchmarks/bench_throughput.py). zstd needs netCDF-C 4.9 or
-#: later (or the netCDF4/h5py wheels with their filter plugins) to be read back.
-COMPRESSIONS = ("zlib", "zstd", "none")
-DEFAULT_COMPRESSION = "zlib"
-DEFAULT_LEVEL = {"zlib": 1, "zstd": 1}
-#: Levels each library accepts (zlib 1-9; zstd 1-22 in netCDF-C's filter).
-LEVEL_RANGES = {"zlib": (1, 9), "zstd": (1, 22)}
 
 #: The CF section 8.4 quantization container of quantized outputs, and the CF version
 #: that introduced it.
 QUANTIZATION_VARIABLE = "quantization_info"
 QUANTIZATION_CF_VERSION = "CF-1.12"
-#: Digits netCDF-C can keep: single precision holds about 7 (CF 1.11 section 8.4.2).
-MAX_SIGNIFICANT_DIGITS = {4: 7, 8: 15}
 
 
 def quantization_error(digits: int) -> float:
@@ -318,30 +309,17 @@ def _quantized(ds: xr.Dataset, encoding: dict[str, dict], digits: int) -> xr.Dat
 def check_encoding(precision: str = "input", compression: str = DEFAULT_COMPRESSION,
                    compression_level: int | None = None,
                    significant_digits: int | None = None) -> None:
-    """Refuse an encoding :func:`write` cannot make, in one line naming the option.
+    """Refuse an encoding :func:`write` cannot make, in one line naming the option
+    (:func:`flowpipe.choices.encoding_refusal`).
 
     Raises
     ------
     flowpipe.errors.UsageError
         For a precision, compression or level out of range.
     """
-    if precision not in PRECISIONS:
-        raise UsageError(f"precision {precision!r} is not one of {', '.join(PRECISIONS)}")
-    if compression not in COMPRESSIONS:
-        raise UsageError(f"compression {compression!r} is not one of {', '.join(COMPRESSIONS)}")
-    if compression_level is not None:
-        if compression == "none":
-            raise UsageError("a compression level needs a compression: drop the level or "
-                             "choose zlib or zstd")
-        low, high = LEVEL_RANGES[compression]
-        if not low <= compression_level <= high:
-            raise UsageError(f"{compression} compression level must be {low} to {high}, "
-                             f"not {compression_level}")
-    if significant_digits is not None:
-        most = MAX_SIGNIFICANT_DIGITS[4 if precision == "single" else 8]
-        if not 1 <= significant_digits <= most:
-            raise UsageError(f"significant digits must be 1 to {most} (at most 7 for single "
-                             f"precision), not {significant_digits}")
+    refusal = encoding_refusal(precision, compression, compression_level, significant_digits)
+    if refusal:
+        raise UsageError(refusal)
 
 
 #: netCDF-C chunk cache per variable while writing, in bytes (see _write_chunk_cache).
@@ -364,8 +342,10 @@ def write(ds: xr.Dataset, path: str | os.PathLike, *, precision: str = "input",
     ----------
     ds : xarray.Dataset
         What to write; dask-backed data are computed while writing, and so
-        are attributes whose values are dask arrays (0-d; a stage's global
-        figure), in the same pass.
+        are attributes whose values are dask arrays (0-d), in the same pass.
+        The global quality figures of a lazy result
+        (:func:`flowpipe.annotate.quality_summary`) are summed up from its
+        per-slab figures as written.
     path : path-like
         The final file name; never one of the files ``ds`` was read from.
     precision : {"input", "single", "double"}
@@ -410,12 +390,10 @@ def write(ds: xr.Dataset, path: str | os.PathLike, *, precision: str = "input",
         operating system refuses the write (see :func:`atomic_path`).
     """
     final = Path(path)
-    lazy = {k: v for k, v in ds.attrs.items() if dask.is_dask_collection(v)}
-    if lazy:
-        ds = ds.copy()
-        ds.attrs = {k: v for k, v in ds.attrs.items() if k not in lazy}
     check_encoding(precision, compression, compression_level, significant_digits)
     out = annotate.complete(ds, attributes)
+    lazy = {k: v for k, v in out.attrs.items() if dask.is_dask_collection(v)}
+    out.attrs = {k: v for k, v in out.attrs.items() if k not in lazy}
     encoding = _encoding(out, precision, compression, compression_level, significant_digits)
     if significant_digits is not None:
         out = _quantized(out, encoding, significant_digits)
@@ -437,17 +415,26 @@ def write(ds: xr.Dataset, path: str | os.PathLike, *, precision: str = "input",
     with atomic_path(final, sources(ds), needed=upper) as tmp, _write_chunk_cache():
         if not lazy:
             out.to_netcdf(tmp, engine="netcdf4", format="NETCDF4", encoding=encoding)
-            if significant_digits is not None:
-                _drop_library_quantization_attrs(tmp)
-            return final
-        # Attributes known only once the data are computed (a global error figure,
-        # say) are computed in the same pass as the data and added before the rename.
-        pending = out.to_netcdf(tmp, engine="netcdf4", format="NETCDF4", encoding=encoding,
-                                compute=False)
-        _, *values = dask.compute(pending, *lazy.values())
-        with netCDF4.Dataset(tmp, "a") as nc:
-            for name, value in zip(lazy, values, strict=True):
-                nc.setncattr(name, np.asarray(value).item())
+            values = []
+        else:
+            # A caller's attributes known only once the data are computed, computed with
+            # the data (tasks they share with it may run twice: dask optimises the write
+            # and the attributes as two graphs).
+            pending = out.to_netcdf(tmp, engine="netcdf4", format="NETCDF4",
+                                    encoding=encoding, compute=False)
+            _, *values = dask.compute(pending, *lazy.values())
+        found = dict(zip(lazy, values, strict=True))
+        # The global quality figures of a lazy result: summed up from the per-slab figures
+        # just written (a few numbers read back), so the data are computed once.
+        unknown = [name for name in QUALITY_FIGURES
+                   if name in out.data_vars and name not in out.attrs]
+        if unknown:
+            with xr.open_dataset(tmp, engine="netcdf4") as written:
+                found.update(annotate.quality_summary(written[unknown].load()))
+        if found:
+            with netCDF4.Dataset(tmp, "a") as nc:
+                for name, value in found.items():
+                    nc.setncattr(name, annotate.netcdf3_value(np.asarray(value)[()]))
         if significant_digits is not None:
             _drop_library_quantization_attrs(tmp)
     return final

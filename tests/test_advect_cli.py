@@ -29,7 +29,7 @@ def compliance(path: Path) -> dict:
 
 
 def test_backward_run_on_the_sample_file_writes_a_cf_trajectory_file(tmp_path, capsys):
-    # The contract (DESIGN.md, trajectory output) and CF 1.11 chapter 9 (discrete
+    # The trajectory file of README.md ("Output files") and CF 1.11 chapter 9 (discrete
     # sampling geometries, featureType trajectory), checked by the compliance checker.
     out = tmp_path / "back.nc"
     code = main(["advect", GLOBAL, "-o", str(out), "--start", "52,4,700", "--start",
@@ -98,7 +98,7 @@ def test_single_time_with_steady(tmp_path):
     (["ONE_TIME"], ["--start", "52,4,500"], "--steady"),
 ])
 def test_bad_input_exits_2_and_writes_nothing(tmp_path, capsys, files, options, words):
-    # The contract (DESIGN.md): exit code 2, a one-line "flowpipe: error:" message naming
+    # README.md ("Exit codes"): exit code 2, a one-line "flowpipe: error:" message naming
     # what is at fault, and no output file.
     # (line 3 is at fault: a level outside the input's; one start of several outside the
     # domain is skipped with a warning instead, tests/test_bands.py)

@@ -60,8 +60,8 @@ def _solid(phi, lam):
     (np.arange(-90.0, 90.1, 1.0), "global", ["south", "north"], " with pole rows,"),
 ])
 def test_inspect_names_the_grid_kind(tmp_path, capsys, lat, kind, pole_rows, words):
-    # shared/DESIGN.md: inspect --json "grid" is global, band or regional; "poles" is true
-    # with rows on both poles, "pole_rows" names each pole the rows include (a hemisphere's one)
+    # README.md ("Commands"): inspect --json "grid" is global, band or regional; "poles" is
+    # true with rows on both poles, "pole_rows" names each pole the rows include
     path = _band_file(tmp_path / "w.nc", lat, _solid, _zero, times=2)
     assert main(["inspect", path, "--json"]) == 0
     report = json.loads(capsys.readouterr().out)

@@ -178,10 +178,10 @@ def test_dateline_box_and_off_centre_polar_circle_match_area_integrals():
 
 
 def test_line_vs_area_on_rossby_haurwitz_second_order():
-    # Williamson et al. (1992) test case 6 (tests/_williamson.py): the disagreement of line and
+    # Williamson et al. (1992) test case 6 (tests/reference_winds.py): the disagreement of line and
     # gridded-area mean vorticity falls at second order with refinement (measured order
-    # 2 +- 0.3, as the issue asks), for a box, a circle and a polygon.
-    from _williamson import case6
+    # 2 +- 0.3, our bound), for a box, a circle and a polygon.
+    from reference_winds import case6
 
     shapes = [C.box(20 + 2 / 3, 50 + 2 / 3, 10.0, 60.0), C.circle(40.3, 35.1, 1500.0),
               C.polygon([20.3, 30.1, 52.7, 44.2], [10.2, 55.3, 48.9, 3.7])]

@@ -1,6 +1,6 @@
 """Mistakes at the command line: the contract's one-line errors, exit 2, nothing written.
 
-The contract (DESIGN.md, "Exit codes"): a usage error or unusable input exits 2 with
+README.md ("Exit codes"): a usage error or unusable input exits 2 with
 one line beginning ``flowpipe: error:`` that names what is wrong and what to do, and
 no Python traceback unless ``--debug`` is given; outputs are written to a temporary
 name and renamed, so nothing half-written is ever left behind.

@@ -29,7 +29,7 @@ from compliance_checker.runner import CheckSuite, ComplianceChecker
 
 import flowpipe as fp
 from flowpipe import annotate, contours
-from flowpipe.fields import WIND_PRODUCTS
+from flowpipe.choices import WIND_PRODUCTS
 
 ROOT = Path(__file__).resolve().parents[1]
 GLOBAL = ROOT / "sample_data" / "demo_global.nc"

@@ -10,12 +10,10 @@ from pathlib import Path
 
 import pytest
 
+from flowpipe.choices import METHODS, SPECTRAL_VARIABLES, VERTICAL, WIND_PRODUCTS
+from flowpipe.choices import SCHEMES as REGIONAL_SCHEMES
 from flowpipe.cli import main
 from flowpipe.config import ConfigError, load_config, render_template
-from flowpipe.decompose import METHODS, SPECTRAL_VARIABLES
-from flowpipe.fields import WIND_PRODUCTS
-from flowpipe.parcels._advect import VERTICAL
-from flowpipe.regional import SCHEMES as REGIONAL_SCHEMES
 
 ROOT = Path(__file__).resolve().parents[1]
 SAMPLE = ROOT / "sample_data" / "demo_regional.nc"
@@ -94,7 +92,7 @@ _START = "must be [lat, lon] or [lat, lon, level] of finite numbers with lat wit
          f"line 8: [decompose] method must be one of {_choices(METHODS)}, not 'foo'"),
         ("[decompose]\nscheme = \"foo\"\n",
          f"line 8: [decompose] scheme must be one of {_choices(REGIONAL_SCHEMES)}, not 'foo'"),
-        # A triangular truncation N is at least 1: flowpipe.decompose.spectral_plan.
+        # A triangular truncation N is at least 1: flowpipe.slabs.spectral_plan.
         ("[decompose]\ntruncation = 0\n", "line 8: [decompose] truncation must be at least 1, not 0"),
         # Truncation is spectral only: flowpipe.decompose.decompose refuses it with "regional".
         ("[decompose]\nmethod = \"regional\"\ntruncation = 10\n",
@@ -114,7 +112,7 @@ _START = "must be [lat, lon] or [lat, lon, level] of finite numbers with lat wit
          "line 10: [advect] step_minutes must be a finite number above 0, not 0"),
         (_HOURS.format(6) + "step_minutes = -5.0\n",
          "line 10: [advect] step_minutes must be a finite number above 0, not -5.0"),
-        # vertical: the keys of flowpipe.parcels._advect.VERTICAL.
+        # vertical: the keys of flowpipe.choices.VERTICAL.
         (_HOURS.format(6) + "vertical = \"x\"\n",
          f"line 10: [advect] vertical must be one of {_choices(VERTICAL)}, not 'x'"),
         # Starts: a latitude lies within -90..90 and positions are finite (common practice,
@@ -128,8 +126,8 @@ _START = "must be [lat, lon] or [lat, lon, level] of finite numbers with lat wit
         (_HOURS.format(6) + "sample = [1]\n",
          "line 10: each item of [advect] sample must be a variable name (a non-empty string), "
          "not 1"),
-        # Map fields: the fields the configured decomposition writes (flowpipe.decompose.
-        # SPECTRAL_VARIABLES, flowpipe.regional.FIELDS).
+        # Map fields: the fields the configured decomposition writes (flowpipe.choices.
+        # SPECTRAL_VARIABLES, REGIONAL_VARIABLES).
         ("[decompose]\n[maps]\nfields = [\"colour\"]\n",
          "line 9: each item of [maps] fields must be one of streamfunction"),
         ("[decompose]\nmethod = \"spectral\"\n[maps]\nfields = [\"u_harmonic\"]\n",

@@ -5,7 +5,7 @@ from __future__ import annotations
 import numpy as np
 import pytest
 import xarray as xr
-from _williamson import (
+from reference_winds import (
     case2,
     case6,
     latitudes,
@@ -18,7 +18,7 @@ from _williamson import (
 import flowpipe as fp
 from flowpipe.annotate import VARIABLES
 from flowpipe.cli import main
-from flowpipe.decompose import transform_threads
+from flowpipe.slabs import transform_threads
 
 GRIDS = [("CC", 33, 64), ("F1", 32, 64), ("GL", 32, 64)]
 CASES = {
@@ -156,7 +156,7 @@ def _write_case6_file(path, descending):
 
 
 def test_cli_writes_every_contract_variable(tmp_path):
-    # Output per the contract of shared/DESIGN.md (CF-1.11 standard names and units),
+    # Output as README.md ("Output files") lists it (CF-1.11 standard names and units),
     # values against Williamson et al. (1992) test case 6.
     source = tmp_path / "rh.nc"
     ref = _write_case6_file(source, descending=True)
@@ -185,7 +185,7 @@ def test_cli_writes_every_contract_variable(tmp_path):
     (["--method", "regional", "--truncation", "5"], "spectral method only"),
 ])
 def test_cli_bad_options_exit_2_with_one_line(tmp_path, capsys, extra, needle):
-    # Exit codes and message form of the contract (shared/DESIGN.md, command line).
+    # Exit codes and message form of README.md ("Exit codes").
     source = tmp_path / "rh.nc"
     _write_case6_file(source, descending=False)
     code = main(["decompose", str(source), "-o", str(tmp_path / "x.nc"), *extra])
@@ -197,7 +197,7 @@ def test_cli_bad_options_exit_2_with_one_line(tmp_path, capsys, extra, needle):
 
 
 def test_auto_dispatches_limited_area_grids_to_the_regional_method(monkeypatch):
-    # The contract (shared/DESIGN.md, decomposition): spherical harmonics on complete global
+    # README.md ("Methods"): spherical harmonics on complete global
     # grids, the limited-area solver otherwise; the solver is told whether the grid wraps.
     import flowpipe.regional
 
@@ -211,7 +211,7 @@ def test_auto_dispatches_limited_area_grids_to_the_regional_method(monkeypatch):
     wind, _ = _grid_wind("GL", 32, 64, "case6")
     gappy = wind.copy(deep=True)
     gappy["v"][3, 4] = np.nan
-    # a gappy complete global grid stays spectral under auto (issue 15; tests/test_masked.py)
+    # a gappy complete global grid stays spectral under auto (README.md, "Methods"; tests/test_masked.py)
     assert fp.decompose(gappy, method="regional", scheme="dirichlet").attrs["method"] == "regional"
     assert fp.decompose(wind.isel(longitude=slice(0, 30)), tolerance=1e-3).attrs["method"] == "regional"
     assert fp.decompose(wind, method="regional").attrs["method"] == "regional"

@@ -1,6 +1,6 @@
 """A hostile environment: permissions, read-only and full disks, closed pipes.
 
-The contract (DESIGN.md, "Exit codes"): what the user's machine refuses is a usage error,
+README.md ("Exit codes"): what the user's machine refuses is a usage error,
 exit 2, one line beginning ``flowpipe: error:`` that names the path and what to do, no
 traceback; exit 3 is for bugs only. Outputs are written under a temporary name and
 renamed (POSIX ``rename``, atomic), so a refused write leaves nothing behind. The errors

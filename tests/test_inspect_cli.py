@@ -1,4 +1,4 @@
-"""``flowpipe inspect`` and the bad-input contract of shared/DESIGN.md.
+"""``flowpipe inspect`` and the bad-input rules of README.md ("Exit codes").
 
 Each bad input must give exit code 2, one line starting ``flowpipe: error:``
 naming the file and the problem, no traceback, and leave the input untouched.

@@ -5,7 +5,7 @@ from __future__ import annotations
 import ducc0
 import numpy as np
 import pytest
-from _williamson import U0, A, case2, case6, latitudes, mesh, potential_flow, wind_dataset
+from reference_winds import U0, A, case2, case6, latitudes, mesh, potential_flow, wind_dataset
 
 import flowpipe as fp
 from flowpipe.constants import EARTH_ROTATION_RATE

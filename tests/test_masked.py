@@ -2,14 +2,14 @@
 unresolved remainder.
 
 Analytic wind: the Rossby-Haurwitz wave of Williamson et al. (1992, J. Comput. Phys.
-102, 211-224, test case 6; tests/_williamson.py) plus a divergent part built of
+102, 211-224, test case 6; tests/reference_winds.py) plus a divergent part built of
 spherical harmonics from scipy.special.sph_harm_y (the reference library).
 """
 
 from __future__ import annotations
 
 import numpy as np
-from _williamson import case6, latitudes, mesh, potential_flow, wind_dataset
+from reference_winds import case6, latitudes, mesh, potential_flow, wind_dataset
 from scipy.spatial import cKDTree
 
 import flowpipe as fp
@@ -59,7 +59,7 @@ def test_masked_level_is_reconstructed_at_valid_points_and_missing_in_every_outp
         assert np.isfinite(values[~mask]).all(), name
     scale = np.max(np.hypot(u, v))
     # rotational + divergent + unresolved = wind at every valid point, to 1e-6 relative
-    # (the issue's bound), against the analytic wind itself.
+    # (our choice), against the analytic wind itself.
     du = parts["u_rotational"].values + parts["u_divergent"].values \
         + parts["u_unresolved"].values - u
     dv = parts["v_rotational"].values + parts["v_divergent"].values \
@@ -81,7 +81,7 @@ def test_masked_level_is_reconstructed_at_valid_points_and_missing_in_every_outp
 
 def test_auto_takes_the_masked_spectral_route_only_for_gappy_complete_global_grids(
         monkeypatch):
-    # The method choice of flowpipe.decompose (issue 15): spherical harmonics on every complete
+    # The method choice of flowpipe.decompose (README.md, "Methods"): spherical harmonics on every complete
     # global grid, masked or not; the regional solver is not called for them.
     import flowpipe.regional
 
@@ -100,7 +100,7 @@ def test_auto_takes_the_masked_spectral_route_only_for_gappy_complete_global_gri
 def test_divergence_of_the_rotational_and_vorticity_of_the_divergent_wind_vanish():
     # Independent centred differences in spherical coordinates (second order, common
     # practice): div(V) = (du/dlam + d(v cos phi)/dphi) / (a cos phi), curl likewise. At
-    # valid points whose stencil is valid, within 1 % of the largest vorticity (issue 15).
+    # valid points whose stencil is valid, within 1 % of the largest vorticity (our choice).
     lat, lon, phi, lam, u, v, exact, mask = _case()
     parts = fp.decompose(wind_dataset(np.where(mask, np.nan, u), np.where(mask, np.nan, v),
                                       lat, lon))

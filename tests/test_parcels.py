@@ -6,12 +6,19 @@ import numpy as np
 import pandas as pd
 import pytest
 import xarray as xr
+from reference_winds import (
+    REVOLUTION_SECONDS,
+    deformational_flow,
+    global_grid,
+    series_dataset,
+    solid_body_rotation,
+)
 
 from flowpipe.constants import EARTH_RADIUS
 from flowpipe.errors import InputError, UsageError
 from flowpipe.grid import gaussian_latitudes
 from flowpipe.parcels import _kernels as K
-from flowpipe.parcels import advect, analytic, starts_box, starts_line, starts_ring
+from flowpipe.parcels import advect, starts_box, starts_line, starts_ring
 from flowpipe.parcels._geometry import unit_vectors
 from flowpipe.parcels._window import cell_tables
 
@@ -46,7 +53,7 @@ def rotate(lat, lon, axis, angle) -> tuple[np.ndarray, np.ndarray]:
 
 
 def steady_wind(u: np.ndarray, v: np.ndarray, lat: np.ndarray, lon: np.ndarray) -> xr.Dataset:
-    return analytic.wind_dataset(lat, lon, np.zeros(1), lambda a, b, t: (u, v))
+    return series_dataset(lat, lon, np.zeros(1), lambda a, b, t: (u, v))
 
 
 # Williamson, Drake, Hack, Jakob & Swarztrauber (1992), "A standard test set for
@@ -57,10 +64,10 @@ def steady_wind(u: np.ndarray, v: np.ndarray, lat: np.ndarray, lon: np.ndarray) 
 @pytest.mark.parametrize("alpha", [0.0, np.pi / 2 - 0.05, np.pi / 2])
 @pytest.mark.parametrize("backward", [False, True])
 def test_solid_body_rotation_returns_after_one_revolution(alpha, backward):
-    lat, lon = analytic.global_grid(1.0)
-    wind = steady_wind(*analytic.solid_body_rotation(lat, lon, alpha), lat, lon)
+    lat, lon = global_grid(1.0)
+    wind = steady_wind(*solid_body_rotation(lat, lon, alpha), lat, lon)
     plat, plon = fibonacci_points(1000)
-    hours = analytic.REVOLUTION_SECONDS / 3600
+    hours = REVOLUTION_SECONDS / 3600
     tracks = advect(wind, {"latitude": plat, "longitude": plon}, hours, backward=backward,
                     steady=True)
     assert (tracks["status"].values == 0).all()
@@ -78,11 +85,11 @@ def test_solid_body_rotation_returns_after_one_revolution(alpha, backward):
 def test_petterssen_scheme_solid_body_rotation_over_the_poles():
     # Williamson et al. (1992) test case 1 with alpha = pi/2; the scheme: Petterssen
     # (1940), Weather Analysis and Forecasting, pp. 221-223 (from memory).
-    lat, lon = analytic.global_grid(1.0)
-    wind = steady_wind(*analytic.solid_body_rotation(lat, lon, np.pi / 2), lat, lon)
+    lat, lon = global_grid(1.0)
+    wind = steady_wind(*solid_body_rotation(lat, lon, np.pi / 2), lat, lon)
     plat, plon = fibonacci_points(1000)
     tracks = advect(wind, {"latitude": plat, "longitude": plon},
-                    analytic.REVOLUTION_SECONDS / 3600, steady=True, scheme="petterssen")
+                    REVOLUTION_SECONDS / 3600, steady=True, scheme="petterssen")
     end = haversine(plat, plon, tracks["latitude"].values[:, -1],
                     tracks["longitude"].values[:, -1])
     assert end.max() <= 5 * KM
@@ -95,10 +102,10 @@ def test_solid_body_rotation_over_the_poles_of_a_grid_without_pole_rows():
     # where the wind comes from the pole vector closing the grid, and still return.
     lat = np.arange(-89.5, 90.0, 1.0)
     lon = np.arange(0.5, 360.0, 1.0)
-    wind = steady_wind(*analytic.solid_body_rotation(lat, lon, np.pi / 2), lat, lon)
+    wind = steady_wind(*solid_body_rotation(lat, lon, np.pi / 2), lat, lon)
     plat, plon = fibonacci_points(1000)
     tracks = advect(wind, {"latitude": plat, "longitude": plon},
-                    analytic.REVOLUTION_SECONDS / 3600, steady=True)
+                    REVOLUTION_SECONDS / 3600, steady=True)
     end = haversine(plat, plon, tracks["latitude"].values[:, -1],
                     tracks["longitude"].values[:, -1])
     assert end.max() <= 5 * KM
@@ -106,17 +113,17 @@ def test_solid_body_rotation_over_the_poles_of_a_grid_without_pole_rows():
 
 
 def deformational_wind(period: float, interval: float, spacing: float = 1.0) -> xr.Dataset:
-    lat, lon = analytic.global_grid(spacing)
+    lat, lon = global_grid(spacing)
     seconds = np.arange(0.0, period + interval / 2, interval)
-    return analytic.wind_dataset(lat, lon, seconds,
-                                 lambda a, b, t: analytic.deformational_flow(a, b, t, period))
+    return series_dataset(lat, lon, seconds,
+                                 lambda a, b, t: deformational_flow(a, b, t, period))
 
 
 def test_deformational_flow_returns_at_period():
     # Nair & Lauritzen (2010), "A class of deformational flow test cases for linear
     # transport problems on the sphere", J. Comput. Phys. 229, 8868-8887: the flow
-    # reverses so that every parcel is back at its start at t = T. Bound from the
-    # issue: return error <= 0.5 % of the mean path length at 1 degree, hourly input.
+    # reverses so that every parcel is back at its start at t = T. Bound (our choice):
+    # return error <= 0.5 % of the mean path length at 1 degree, hourly input.
     period = 12 * DAY
     wind = deformational_wind(period, 3600.0)
     plat, plon = fibonacci_points(1000)
@@ -165,7 +172,7 @@ def test_backward_then_forward_returns_to_start():
 
 def layered_wind(levels, level_type, u, vertical=None, value=0.0, hours=48.0) -> xr.Dataset:
     """A 2-degree global wind on levels: u(level) eastward, constant vertical velocity."""
-    lat, lon = analytic.global_grid(2.0)
+    lat, lon = global_grid(2.0)
     levels = np.asarray(levels, dtype=float)
     time = np.datetime64("2000-01-01", "ns") + np.array([0, int(hours)]) * np.timedelta64(1, "h")
     shape = (2, levels.size, lat.size, lon.size)
@@ -269,8 +276,8 @@ def test_sampled_variable_follows_the_parcel():
     # Bilinear interpolation reproduces functions linear in the grid indices exactly
     # (Press et al. 2007, Numerical Recipes 3rd ed., section 3.6): a variable equal to the
     # latitude, sampled along parcels crossing the pole, equals the parcels' latitudes.
-    lat, lon = analytic.global_grid(2.0)
-    wind = steady_wind(*analytic.solid_body_rotation(lat, lon, np.pi / 2), lat, lon)
+    lat, lon = global_grid(2.0)
+    wind = steady_wind(*solid_body_rotation(lat, lon, np.pi / 2), lat, lon)
     wind["marker"] = xr.DataArray(np.broadcast_to(lat[:, None], (lat.size, lon.size)).copy()[None],
                                   dims=("time", "latitude", "longitude"), attrs={"units": "1"})
     plat, plon = fibonacci_points(50)
@@ -281,16 +288,16 @@ def test_sampled_variable_follows_the_parcel():
 
 
 def test_only_bracketing_time_slices_are_read():
-    # Streaming (the issue's requirement; common practice for long series): a 12-hour
+    # Streaming (README.md, "Methods"; common practice for long series): a 12-hour
     # run in a 10-day hourly series reads just the 13 slices it spans, each once.
-    lat, lon = analytic.global_grid(5.0)
+    lat, lon = global_grid(5.0)
     read = []
 
     def winds(a, b, t):
         read.append(t)
-        return analytic.deformational_flow(a, b, t, 12 * DAY)
+        return deformational_flow(a, b, t, 12 * DAY)
 
-    wind = analytic.wind_dataset(lat, lon, np.arange(241) * 3600.0, winds)
+    wind = series_dataset(lat, lon, np.arange(241) * 3600.0, winds)
     advect(wind, pd.DataFrame({"latitude": [10.0, -20.0], "longitude": [0.0, 50.0],
                                "time": ["2000-01-02T00:00"] * 2}), 12.0)
     assert sorted(read) == [3600.0 * h for h in range(24, 37)]
@@ -319,7 +326,7 @@ def test_start_generators():
     (dict(hours=30.0), InputError, "outside the input times"),
 ])
 def test_bad_requests_are_clear_errors(case, error, words):
-    # Bad input is rejected with a message naming what to fix (the contract, DESIGN.md).
+    # Bad input is rejected with a message naming what to fix (README.md, "Exit codes").
     args = dict(starts=[(45.0, 0.0)], hours=12.0) | case
     with pytest.raises(error, match=words):
         advect(regional_wind(), args.pop("starts"), args.pop("hours"), **args)
@@ -355,7 +362,7 @@ def test_non_standard_calendar_start_times():
 
 
 def test_missing_wind_stops_the_parcel():
-    # The contract (DESIGN.md, status flags): a parcel that needs a missing wind value
+    # README.md ("Output files", status flags): a parcel that needs a missing wind value
     # stops with status met_missing_wind; nothing is invented after that (common
     # practice: missing data are not filled in).
     wind = regional_wind()

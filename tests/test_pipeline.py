@@ -285,27 +285,39 @@ def test_kill_at_any_moment_leaves_only_complete_files(tmp_path):
     ref_config = _config(reference_dir, inputs, maps=False, prefix="../")
     ref_command = [sys.executable, "-m", "flowpipe", "run", "--quiet", str(ref_config)]
     assert subprocess.run(ref_command, check=False).returncode == 0  # also warms compiled caches
-    started = time.perf_counter()
-    assert subprocess.run([*ref_command, "--force"], check=False).returncode == 0
-    duration = time.perf_counter() - started  # of an uninterrupted run, start-up included
     out = tmp_path / "out"
     command = [sys.executable, "-m", "flowpipe", "run", "--quiet", str(config)]
-    for fraction in (0.15, 0.35, 0.55, 0.75, 0.9):
-        if fraction < 0.9 and out.exists():  # each kill but the last hits a fresh run
-            shutil.rmtree(out)
-        proc = subprocess.Popen(command, stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
-        try:
-            proc.wait(timeout=fraction * duration)
-        except subprocess.TimeoutExpired:
-            children = psutil.Process(proc.pid).children(recursive=True)
-            proc.send_signal(signal.SIGKILL)
+    # Each kill lands while an output file is being written: the run is watched for the
+    # temporary file of its k-th output (store.py's `.NAME.tmp-PID-HEX.nc`) and killed while
+    # one is there; a kill that came too late (the file renamed meanwhile) is tried again.
+    for target in (1, 2, 3, 5, 1):
+        last = target == 1 and out.exists()  # the last kill hits a run resuming the work
+        landed = False
+        for _ in range(5):
+            if not last and out.exists():  # the other kills hit a fresh run
+                shutil.rmtree(out)
+            proc = subprocess.Popen(command, stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
+            seen: set[str] = set()
+            while proc.poll() is None and not landed:
+                writing = {p.name for p in out.glob(".*.tmp-*.nc")} if out.exists() else set()
+                seen |= writing
+                if writing and len(seen) >= target:
+                    children = psutil.Process(proc.pid).children(recursive=True)
+                    proc.send_signal(signal.SIGKILL)
+                    proc.wait()
+                    # The run's pool processes end with it: none goes on writing unsupervised.
+                    _, alive = psutil.wait_procs(children, timeout=10)
+                    assert not alive
+                    landed = bool(writing & {p.name for p in out.glob(".*.tmp-*.nc")})
+                    break
+                time.sleep(0.002)
             proc.wait()
-            # The run's pool processes end with it: none goes on writing unsupervised.
-            _, alive = psutil.wait_procs(children, timeout=10)
-            assert not alive
-        if out.exists():
-            for path in _final_files(out):
-                _check_complete(path)
+            if out.exists():
+                for path in _final_files(out):
+                    _check_complete(path)
+            if landed:
+                break
+        assert landed, f"no kill landed while output {target} of a run was being written"
     # The next run finishes the work, and the result is that of an uninterrupted run.
     assert subprocess.run(command, check=False).returncode == 0
     for name in ("model_0", "model_1", "model_2"):

@@ -9,8 +9,10 @@ from __future__ import annotations
 import numpy as np
 import pytest
 import xarray as xr
+from reference_winds import case6
 
 from flowpipe import regional
+from flowpipe.choices import REGIONAL_VARIABLES
 from flowpipe.constants import EARTH_RADIUS
 from flowpipe.errors import InputError, UsageError
 from flowpipe.regional import decompose_regional
@@ -73,28 +75,22 @@ def box_case(step):
 
 
 def rossby_haurwitz_case(lat, lon):
-    """Williamson et al. (1992) test case 6 (R = 4) plus a divergent Y_4^3 part.
+    """Williamson et al. (1992) test case 6 (R = 4; tests/reference_winds.py) plus a divergent
+    Y_4^3 part.
 
-    TC6: psi = -a^2 w sin(phi) + a^2 K cos^R(phi) sin(phi) cos(R lambda), w = K = 7.848e-6 s-1
-    (Williamson et al. 1992, J. Comput. Phys. 102, 211-224, section 3.6, eqs. 142-145); its
-    vorticity 2 w sin(phi) - K (R^2 + 3R + 2) sin(phi) cos^R(phi) cos(R lambda). The divergent
-    part chi = C cos^3(phi) sin(phi) cos(3 lambda) is the spherical harmonic of degree 4,
-    order 3, so delta = -20 chi / a^2 (common practice).
+    The divergent part chi = C cos^3(phi) sin(phi) cos(3 lambda) is the spherical harmonic of
+    degree 4, order 3, so delta = -20 chi / a^2 (common practice).
     """
-    w = k = 7.848e-6
-    r = 4
     c = 1.0e8
-    phi, lam = np.radians(lat)[:, None], np.radians(lon)[None, :]
+    phi, lam = np.meshgrid(np.radians(lat), np.radians(lon), indexing="ij")
+    wave = case6(phi, lam)
     cos, sin = np.cos(phi), np.sin(phi)
-    u_rot = A * w * cos + A * k * cos ** (r - 1) * (r * sin**2 - cos**2) * np.cos(r * lam)
-    v_rot = -A * k * r * cos ** (r - 1) * sin * np.sin(r * lam)
-    zeta = 2 * w * sin - k * (r**2 + 3 * r + 2) * sin * cos**r * np.cos(r * lam)
     chi = c * cos**3 * sin * np.cos(3 * lam)
     chi_lam = -3 * c * cos**3 * sin * np.sin(3 * lam)
     chi_phi = c * np.cos(3 * lam) * (cos**4 - 3 * cos**2 * sin**2)
     u_div, v_div = helmholtz_wind(lat, 0 * chi, 0 * chi, chi_phi, chi_lam)
     delta = -20 * chi / A**2
-    return u_rot, v_rot, u_div, v_div, zeta, delta
+    return wave["u"], wave["v"], u_div, v_div, wave["zeta"], delta
 
 
 # --- an independent operator ------------------------------------------------------------------
@@ -242,13 +238,13 @@ def test_box_parts_do_not_contaminate_each_other(box_convergence, quantity):
 def test_box_parts_reproduce_the_wind(scheme):
     # Rotational + divergent (+ harmonic) = the wind (Lynch 1989, eq. 2.6 for the harmonic
     # remainder; Li, Chao & McWilliams 2006, Mon. Wea. Rev. 134, section 2, for the fit); the
-    # 1e-6 bound is the project's acceptance figure.
+    # 1e-6 bound is our choice.
     lat, lon, u, v, _, _ = box_case(0.5)
     out = decompose_regional(as_wind(lat, lon, u, v), scheme=scheme)
     assert reconstruction_error(out, u, v) <= 1e-6
     assert out.attrs["reconstruction_error"] <= 1e-6
     assert out.attrs["scheme"] == scheme
-    assert set(out.data_vars) >= set(regional.FIELDS[scheme])
+    assert set(out.data_vars) >= set(REGIONAL_VARIABLES)
 
 
 def test_dirichlet_harmonic_part_vanishes_without_boundary_flow():
@@ -357,7 +353,7 @@ def test_coastline_mask_reconstructs_valid_points_and_keeps_missing(scheme):
     u_m, v_m = np.where(valid, u, np.nan), np.where(valid, v, np.nan)
     out = decompose_regional(as_wind(lat, lon, u_m, v_m), scheme=scheme)
     assert reconstruction_error(out, u_m, v_m) <= 1e-6
-    for name in regional.FIELDS[scheme]:
+    for name in REGIONAL_VARIABLES:
         assert np.all(np.isnan(out[name].values[~valid])), name
         assert np.all(np.isfinite(out[name].values[valid])), name
     # The vorticity matches the analytic one three points from the coast, and so does that of
@@ -415,7 +411,7 @@ def test_global_level_with_a_block_below_ground_is_periodic():
     u_m, v_m = np.where(ground, np.nan, u), np.where(ground, np.nan, v)
     out = decompose_regional(as_wind(lat, lon, u_m, v_m), periodic=True)
     assert reconstruction_error(out, u_m, v_m) <= 1e-6
-    for name in regional.FIELDS["variational"]:
+    for name in REGIONAL_VARIABLES:
         assert np.all(np.isnan(out[name].values[ground])), name
     near = np.zeros_like(ground)
     near[2:-2] = True
@@ -478,7 +474,7 @@ def small_box(n=12):
 
 
 def test_too_small_domain_is_refused():
-    # The issue's limit (5 x 5 valid points), from memory of common practice for stencils
+    # The 5 x 5 limit (README.md, "Methods"), from memory of common practice for stencils
     # that need an interior.
     lat, lon, u, v = small_box(4)
     with pytest.raises(InputError, match="at least 5x5"):
@@ -490,7 +486,7 @@ def test_too_small_domain_is_refused():
 
 
 def test_all_missing_is_refused():
-    # Nothing to decompose: a one-line InputError (the project's error contract, DESIGN.md).
+    # Nothing to decompose: a one-line InputError (README.md, "Exit codes").
     lat, lon, u, v = small_box()
     with pytest.raises(InputError, match="every point .* is missing"):
         decompose_regional(as_wind(lat, lon, u * np.nan, v * np.nan))
@@ -540,7 +536,7 @@ def test_pieces_too_small_to_decompose_are_left_missing_and_counted():
 
 
 def test_bad_options_are_usage_errors():
-    # Options outside the documented ones are usage errors (DESIGN.md error contract).
+    # Options outside the documented ones are usage errors (README.md, "Exit codes").
     lat, lon, u, v = small_box()
     wind = as_wind(lat, lon, u, v)
     with pytest.raises(UsageError, match="unknown regional scheme"):
@@ -557,8 +553,8 @@ def test_bad_options_are_usage_errors():
 
 @pytest.mark.parametrize("masked", [False, True])
 def test_levels_are_lazy_and_share_one_factorisation(monkeypatch, masked):
-    # dask: nothing computed until asked, one task per latitude-longitude slab (DESIGN.md,
-    # common practice); the factorisation depends on the grid and mask only, so three levels
+    # dask: nothing computed until asked, one task per latitude-longitude slab (README.md,
+    # "Python API"; common practice); the factorisation depends on the grid and mask only, so three levels
     # build it once, and the threads that share it get the eager result.
     lat, lon, u, v, _, _ = box_case(0.5)
     if masked:
@@ -602,7 +598,7 @@ def test_variational_split_reports_the_harmonic_wind_it_shares():
 
 def test_command_line_on_the_limited_area_sample_writes_every_part_and_its_quality(tmp_path):
     # The command line reads lazily; the quality figures must still reach the file's attributes.
-    # The 1e-6 reconstruction bound is the project's acceptance figure, as above.
+    # The 1e-6 reconstruction bound is our choice, as above.
     from pathlib import Path
 
     import xarray as xr
@@ -622,3 +618,46 @@ def test_command_line_on_the_limited_area_sample_writes_every_part_and_its_quali
             float(ds["reconstruction_error"].max()), rel=1e-12)
         assert 0 <= ds.attrs["harmonic_energy_share"] <= 1
         assert ds.attrs["iterations"] >= 1
+
+
+# --- the harmonic wind is harmonic (a figure that can fail) ------------------------------------
+
+@pytest.mark.parametrize("scheme", SCHEMES)
+def test_harmonic_wind_has_no_vorticity_or_divergence_to_second_order(scheme):
+    # Lynch (1989), Mon. Wea. Rev. 117, 1492-1500: the harmonic part is irrotational and
+    # non-divergent. On the discrete grid its vorticity and divergence (the model's own
+    # curl and divergence at the corners) are those of the second-order difference between
+    # the compact Laplacian and curl(grad); so the figure falls about fourfold when the grid
+    # step halves (second-order convergence, common practice). Measured on this box:
+    # 2.5e-2 (1 deg), 6.3e-3 (0.5 deg), 1.6e-3 (0.25 deg).
+    figures = []
+    for step in (0.5, 0.25):
+        lat, lon, u, v, _, _ = box_case(step)
+        out = decompose_regional(as_wind(lat, lon, u, v), scheme=scheme)
+        figures.append(out.attrs["harmonic_rotation"])
+        assert float(out["harmonic_rotation"]) == figures[-1]
+    assert figures[0] <= 1e-2
+    assert figures[0] / figures[1] >= 3.5
+
+
+def test_harmonic_rotation_reports_a_poisson_solve_gone_wrong(monkeypatch):
+    # A solver that returns half the solution leaves half the vorticity and divergence in
+    # the "harmonic" wind, which the figure must report (and which the reconstruction
+    # error, zero by construction for this scheme, cannot).
+    from flowpipe import _poisson
+
+    class Halved:
+        def __init__(self, solver):
+            self.solver, self.name = solver, solver.name
+
+        def solve(self, rhs):
+            return 0.5 * self.solver.solve(rhs)
+
+    lat, lon, u, v, _, _ = box_case(0.5)
+    regional._cache.clear()
+    monkeypatch.setattr(regional, "dirichlet_solver",
+                        lambda grid, valid: Halved(_poisson.dirichlet_solver(grid, valid)))
+    broken = decompose_regional(as_wind(lat, lon, u, v), scheme="dirichlet")
+    regional._cache.clear()
+    assert broken.attrs["reconstruction_error"] == 0.0
+    assert broken.attrs["harmonic_rotation"] >= 0.3

@@ -5,7 +5,7 @@ from __future__ import annotations
 import ducc0
 import numpy as np
 import pytest
-from _williamson import A, case2, latitudes, mesh, potential_flow, relative_max_error
+from reference_winds import A, case2, latitudes, mesh, potential_flow, relative_max_error
 
 from flowpipe import spectral
 

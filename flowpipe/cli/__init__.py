@@ -78,6 +78,11 @@ def main(argv: Sequence[str] | None = None) -> int:
     args = parser.parse_args(argv)
     args.debug = getattr(args, "debug", False)  # (absent when given nowhere)
     warnings.showwarning = _show_warning
+    # Idle worker threads of the compiled kernels sleep between steps instead of spinning:
+    # on a shared machine spinning takes the processor from other work and then waits for
+    # it. Read when the OpenMP threading layer starts; a setting of the user's wins. Set
+    # here, in the command's own process, not when flowpipe is imported into someone's.
+    os.environ.setdefault("OMP_WAIT_POLICY", "PASSIVE")
     # A terminated command unwinds like an interrupted one, so that its temporary
     # output file is removed (the atomic writer cleans up on the way out).
     signal.signal(signal.SIGTERM, _terminate)

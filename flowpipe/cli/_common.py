@@ -25,7 +25,7 @@ def add_attribute_option(parser: argparse.ArgumentParser) -> None:
 def add_encoding_options(parser: argparse.ArgumentParser) -> None:
     """How the output stores its data: precision, compression, quantization
     (see :func:`flowpipe.write`)."""
-    from ..store import COMPRESSIONS, DEFAULT_COMPRESSION, PRECISIONS
+    from ..choices import COMPRESSIONS, DEFAULT_COMPRESSION, PRECISIONS
 
     parser.add_argument("--precision", choices=PRECISIONS, default="input",
                         help="floating-point storage: as the input wind was stored (default; "
@@ -70,7 +70,7 @@ def attribute(text: str) -> tuple[str, str]:
 def add_input_options(parser: argparse.ArgumentParser) -> None:
     """Options of the plausibility check and the time series, shared by the commands
     that read winds (see :func:`flowpipe.ingest.open_wind`)."""
-    from ..ingest import DEFAULT_MAX_SPEED, IMPLAUSIBLE_CHOICES
+    from ..choices import DEFAULT_MAX_SPEED, IMPLAUSIBLE_CHOICES
 
     parser.add_argument("--max-speed", type=float, default=DEFAULT_MAX_SPEED, metavar="M_S",
                         help="largest plausible wind speed in m s-1 (default: "

@@ -8,9 +8,9 @@ import re
 import numpy as np
 import pandas as pd
 
+from ..choices import STATUS_MEANINGS
 from ..ingest import input_notes, open_wind
 from ..parcels import advect, read_starts
-from ..parcels._kernels import STATUS_MEANINGS
 from ..parcels.starts import parse_start
 from ..store import write
 from ._common import add_attribute_option, add_input_options, input_options, output_file

@@ -6,12 +6,12 @@ import argparse
 
 import xarray as xr
 
-from ..decompose import METHODS, decompose
+from ..choices import METHODS, SCHEMES
+from ..decompose import decompose
 from ..errors import UsageError
 from ..fields import select_fields
 from ..ingest import input_notes, open_wind
 from ..kinematics import kinematics
-from ..regional import SCHEMES
 from ..store import write
 from ._common import (
     add_attribute_option,

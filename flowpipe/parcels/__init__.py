@@ -5,8 +5,6 @@
   read);
 * :mod:`.starts` - start tables from ``--start`` options, CSV files and the
   generators :func:`starts_line`, :func:`starts_box`, :func:`starts_ring`;
-* :mod:`.analytic` - winds of published test cases (solid-body rotation,
-  deformational flow) on any grid, for checks and benchmarks;
 * ``_kernels`` - the compiled sampling and integration kernels;
   ``_window`` - the streaming of time slices; ``_geometry`` - the sphere.
 """

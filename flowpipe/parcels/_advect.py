@@ -17,6 +17,7 @@ import pandas as pd
 import xarray as xr
 
 from .. import annotate
+from ..choices import STATUS_MEANINGS, VERTICAL
 from ..constants import EARTH_RADIUS
 from ..errors import FlowpipeWarning, InputError, UsageError
 from ..grid import describe_grid
@@ -33,8 +34,6 @@ RECORD_MINUTES = 60.0
 #: threshold (radians on the unit sphere, level units; about 6 mm on Earth).
 PETTERSSEN_ITERATIONS = 10
 PETTERSSEN_TOLERANCE = 1e-9
-#: Vertical velocities: name, level type they need, factor to level units per second.
-VERTICAL = {"omega": ("pressure", 0.01), "w": ("height", 1.0)}
 SCHEMES = {"rk4": K.RK4, "petterssen": K.PETTERSSEN}
 #: Fewer parcels than this run on one thread: waking threads for every step
 #: costs more than it saves for small groups, most of all on a busy machine.
@@ -359,7 +358,13 @@ def advect(
     Returns
     -------
     xarray.Dataset
-        A CF discrete-sampling-geometry trajectory Dataset, dimensions
+        In memory, not lazy: the integration is a chain in time (each step
+        starts where the last ended, and which time slices it needs depends on
+        where the parcels are), so there is no graph to build ahead of it.
+        Instead the input streams: only the time slices bracketing the current
+        step are read and held (:mod:`flowpipe.parcels._window`), each once,
+        and the memory is that window and the tracks. A CF
+        discrete-sampling-geometry trajectory Dataset, dimensions
         ``(trajectory, obs)``. An ensemble wind (dimension ``realization``)
         gives one trajectory per start and member, member after member, with
         the member as the coordinate ``realization`` along ``trajectory``; all
@@ -656,8 +661,8 @@ def _trajectory_dataset(wind, clock, start, sign, offsets, lat, lon, out_level, 
     data = {"status": ("trajectory", status, {
         "long_name": "how the trajectory ended",
         "standard_name": "status_flag",
-        "flag_values": np.arange(len(K.STATUS_MEANINGS), dtype=np.int8),
-        "flag_meanings": " ".join(K.STATUS_MEANINGS)})}
+        "flag_values": np.arange(len(STATUS_MEANINGS), dtype=np.int8),
+        "flag_meanings": " ".join(STATUS_MEANINGS)})}
     for i, name in enumerate(sample):
         attrs = {k: v for k, v in wind[name].attrs.items()
                  if k in ("units", "standard_name", "long_name")}

@@ -8,21 +8,16 @@ bracket the current step in those slots and tells the kernels which slot
 pair and time weight belong to each stage time.
 
 Status codes: ``ACTIVE`` (-1) marks a parcel still being integrated; the
-others are the flag values written to the output (see ``STATUS_MEANINGS``).
+others are the flag values written to the output (see
+``flowpipe.choices.STATUS_MEANINGS``).
 """
 
 from __future__ import annotations
 
 import math
-import os
 
 import numba
 import numpy as np
-
-# Idle worker threads sleep between steps instead of spinning: on a shared
-# machine spinning takes the processor from other work and then waits for it.
-# Read when the OpenMP threading layer starts; a setting of the user's wins.
-os.environ.setdefault("OMP_WAIT_POLICY", "PASSIVE")
 
 ACTIVE = -1
 COMPLETED = 0
@@ -31,9 +26,6 @@ REACHED_LOWEST = 2
 REACHED_HIGHEST = 3
 MISSING_WIND = 4
 OUTSIDE_AT_START = 5  # one of several starts lay outside the domain: skipped, only its start kept
-#: Output flag meanings, in the order of the flag values 0, 1, 2, ...
-STATUS_MEANINGS = ("completed", "left_domain", "reached_lowest_level", "reached_highest_level",
-                   "met_missing_wind", "outside_domain_at_start")
 
 RK4 = 0
 PETTERSSEN = 1

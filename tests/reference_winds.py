@@ -1,20 +1,30 @@
-"""Analytic wind fields on global grids, for the checks of the spectral stage.
+"""The published reference winds the tests check flowpipe against, coded once, here.
 
 Williamson, Drake, Hack, Jakob & Swarztrauber (1992), "A standard test set for
 numerical approximations to the shallow water equations in spherical
-geometry", J. Comput. Phys. 102, 211-224: test case 2 (steady zonal flow,
-section 3.2) and test case 6 (Rossby-Haurwitz wave, section 3.6).
+geometry", J. Comput. Phys. 102, 211-224: test case 1 (solid-body rotation,
+the advecting wind of section 3.1), test case 2 (steady zonal flow, section
+3.2, the same wind with its streamfunction and vorticity) and test case 6
+(Rossby-Haurwitz wave, section 3.6). Nair & Lauritzen (2010), "A class of
+deformational flow test cases for linear transport problems on the sphere",
+J. Comput. Phys. 229, 8868-8887: the time-reversing deformational flow.
+Spherical harmonics from scipy.special (the reference library).
+
+Not part of the package: tests and benchmarks import it (``tests`` on the path).
 """
 
 from __future__ import annotations
 
+import dask.array as dsa
 import numpy as np
 import xarray as xr
 
 #: Radius of the Earth in the test set, Williamson et al. (1992), section 2.
 A = 6.37122e6
-#: Test case 2: u0 = 2 pi a / (12 days), Williamson et al. (1992), section 3.2.
-U0 = 2.0 * np.pi * A / (12.0 * 86400.0)
+#: Period of one revolution of test cases 1 and 2, 12 days (Williamson et al. 1992, eq. 93 ff).
+REVOLUTION_SECONDS = 12 * 86400.0
+#: Test cases 1 and 2: u0 = 2 pi a / (12 days), Williamson et al. (1992), sections 3.1, 3.2.
+U0 = 2.0 * np.pi * A / REVOLUTION_SECONDS
 #: Test case 6: omega = K = 7.848e-6 s-1 and R = 4, Williamson et al. (1992), section 3.6.
 RH_OMEGA = RH_K = 7.848e-6
 RH_R = 4
@@ -42,12 +52,21 @@ def mesh(lat_deg: np.ndarray, nlon: int) -> tuple[np.ndarray, np.ndarray, np.nda
     return lon, phi, lam
 
 
+def case1(phi: np.ndarray, lam: np.ndarray, alpha: float) -> tuple[np.ndarray, np.ndarray]:
+    """Test case 1 (and 2) wind: solid-body rotation about an axis tilted by ``alpha``.
+
+    Williamson et al. (1992), eqs. (75)-(76): ``u = u0 (cos phi cos alpha + sin phi
+    cos lambda sin alpha)``, ``v = -u0 sin lambda sin alpha``.
+    """
+    u = U0 * (np.cos(phi) * np.cos(alpha) + np.cos(lam) * np.sin(phi) * np.sin(alpha))
+    v = -U0 * np.sin(lam) * np.sin(alpha) * np.ones_like(phi)
+    return u, v
+
+
 def case2(phi: np.ndarray, lam: np.ndarray, alpha: float) -> dict[str, np.ndarray]:
-    """Test case 2 wind, streamfunction and relative vorticity (section 3.2)."""
-    c, s, cl, sl = np.cos(phi), np.sin(phi), np.cos(lam), np.sin(lam)
-    u = U0 * (c * np.cos(alpha) + cl * s * np.sin(alpha))
-    v = -U0 * sl * np.sin(alpha)
-    shape = s * np.cos(alpha) - cl * c * np.sin(alpha)
+    """Test case 2 wind (that of case 1), streamfunction and relative vorticity (section 3.2)."""
+    u, v = case1(phi, lam, alpha)
+    shape = np.sin(phi) * np.cos(alpha) - np.cos(lam) * np.cos(phi) * np.sin(alpha)
     return {"u": u, "v": v, "psi": -A * U0 * shape, "zeta": 2.0 * U0 / A * shape}
 
 
@@ -136,3 +155,72 @@ def potential_flow(phi: np.ndarray, lam: np.ndarray, chi_terms=CHI_TERMS,
     out["u"] = out["u_rot"] + out["u_div"]
     out["v"] = out["v_rot"] + out["v_div"]
     return out
+
+
+def global_grid(spacing: float) -> tuple[np.ndarray, np.ndarray]:
+    """Latitudes (both poles included) and longitudes of an equiangular global grid.
+
+    ``spacing`` in degrees; 180 must be a whole multiple of it (common practice).
+    """
+    nlat = round(180.0 / spacing) + 1
+    nlon = round(360.0 / spacing)
+    return np.linspace(-90.0, 90.0, nlat), np.arange(nlon) * spacing
+
+
+def solid_body_rotation(latitude: np.ndarray, longitude: np.ndarray, alpha: float
+                        ) -> tuple[np.ndarray, np.ndarray]:
+    """Test case 1 wind on a latitude-longitude grid (1-D coordinates in degrees)."""
+    phi = np.radians(latitude)[:, None]
+    lam = np.radians(longitude)[None, :]
+    return case1(phi, lam, alpha)
+
+
+def deformational_flow(latitude: np.ndarray, longitude: np.ndarray, t: float, period: float
+                       ) -> tuple[np.ndarray, np.ndarray]:
+    """The non-divergent deformational flow with solid-body translation at time ``t``.
+
+    Nair & Lauritzen (2010), section 2, the non-divergent case with translation
+    (their case 4; coefficients from memory): in the paper's units (``a = 1``,
+    ``T = 5``) ``u = k sin^2(lambda') sin(2 theta) cos(pi t/T) + 2 pi cos(theta)/T``
+    and ``v = k sin(2 lambda') cos(theta) cos(pi t/T)`` with ``lambda' = lambda -
+    2 pi t/T`` and ``k = 2.4``; speeds scale by ``5 a / T``. The flow reverses at
+    ``T/2`` and every parcel is back at its start at ``t = T`` (= ``period``, s).
+    """
+    scale = 5.0 * A / period  # one paper time unit is period / 5
+    k = 2.4
+    theta = np.radians(latitude)[:, None]
+    lam = np.radians(longitude)[None, :] - 2 * np.pi * t / period
+    reverse = np.cos(np.pi * t / period)
+    u = k * np.sin(lam) ** 2 * np.sin(2 * theta) * reverse + 2 * np.pi * np.cos(theta) / 5.0
+    v = k * np.sin(2 * lam) * np.cos(theta) * reverse
+    return scale * u, scale * v
+
+
+def series_dataset(latitude: np.ndarray, longitude: np.ndarray, seconds: np.ndarray, winds,
+                   start: str = "2000-01-01T00:00:00") -> xr.Dataset:
+    """A canonical 2-D wind time series whose slices are computed lazily, one per time.
+
+    ``winds(latitude, longitude, t) -> (u, v)`` gives one time (``t`` in seconds from
+    ``start``), so that long hourly series cost no memory until they are read.
+    """
+    shape = (latitude.size, longitude.size)
+
+    def block(block_id=None):
+        t = float(seconds[block_id[1]])
+        return np.stack(winds(latitude, longitude, t))[:, None]
+
+    data = dsa.map_blocks(block, dtype=np.float64,
+                          chunks=((2,), (1,) * seconds.size, (shape[0],), (shape[1],)))
+    times = np.datetime64(start, "ns") + np.round(seconds * 1e9).astype("timedelta64[ns]")
+    coords = {
+        "time": ("time", times),
+        "latitude": ("latitude", latitude, {"units": "degrees_north",
+                                            "standard_name": "latitude"}),
+        "longitude": ("longitude", longitude, {"units": "degrees_east",
+                                               "standard_name": "longitude"}),
+    }
+    dims = ("time", "latitude", "longitude")
+    return xr.Dataset({
+        "u": (dims, data[0], {"units": "m s-1", "standard_name": "eastward_wind"}),
+        "v": (dims, data[1], {"units": "m s-1", "standard_name": "northward_wind"}),
+    }, coords=coords, attrs={"level_type": "none"})
