@@ -65,7 +65,7 @@ def test_linear_strain_exponent_is_strain_rate(strain_file, backward):
 
 
 def _rossby_haurwitz(la, lo, t):
-    from _williamson import case6
+    from reference_winds import case6
 
     wind = case6(np.radians(la), np.radians(lo))
     return wind["u"], wind["v"]
