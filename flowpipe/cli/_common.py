@@ -15,16 +15,10 @@ def output_file(text: str) -> str:
     return text
 
 
-def add_attribute_option(parser: argparse.ArgumentParser) -> None:
-    """``--attribute KEY=VALUE`` (repeatable): a global attribute stamped on the output."""
-    parser.add_argument("--attribute", action="append", type=attribute, default=[],
-                        metavar="KEY=VALUE", help="a global attribute to stamp on the output "
-                        "(institution, creator_name, license, project, id_prefix, ...); repeatable")
-
-
-def add_encoding_options(parser: argparse.ArgumentParser) -> None:
-    """How the output stores its data: precision, compression, quantization
-    (see :func:`flowpipe.write`)."""
+def add_output_options(parser: argparse.ArgumentParser) -> None:
+    """How the output stores its data (precision, compression, quantization; see
+    :func:`flowpipe.write`) and ``--attribute KEY=VALUE`` (repeatable): a global
+    attribute stamped on it."""
     from ..choices import COMPRESSIONS, DEFAULT_COMPRESSION, PRECISIONS
 
     parser.add_argument("--precision", choices=PRECISIONS, default="input",
@@ -41,11 +35,14 @@ def add_encoding_options(parser: argparse.ArgumentParser) -> None:
                         help="lossy: keep N significant decimal digits (GranularBitRound "
                         "quantization, recorded as CF 1.12 section 8.4 describes; relative "
                         "error at most 0.5*10^(1-N))")
+    parser.add_argument("--attribute", action="append", type=attribute, default=[],
+                        metavar="KEY=VALUE", help="a global attribute to stamp on the output "
+                        "(institution, creator_name, license, project, id_prefix, ...); repeatable")
 
 
-def encoding_options(args: argparse.Namespace) -> dict:
-    """The keyword arguments of :func:`flowpipe.write` given by :func:`add_encoding_options`
-    and :func:`add_attribute_option`."""
+def output_options(args: argparse.Namespace) -> dict:
+    """The keyword arguments of :func:`flowpipe.write` given by :func:`add_output_options`
+    (checked before any work)."""
     from ..store import check_encoding
 
     options = {"precision": args.precision, "compression": args.compression,

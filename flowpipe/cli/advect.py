@@ -13,7 +13,13 @@ from ..ingest import input_notes, open_wind
 from ..parcels import advect, read_starts
 from ..parcels.starts import parse_start
 from ..store import write
-from ._common import add_attribute_option, add_input_options, input_options, output_file
+from ._common import (
+    add_input_options,
+    add_output_options,
+    input_options,
+    output_file,
+    output_options,
+)
 
 
 def register(sub: argparse._SubParsersAction, common: argparse.ArgumentParser) -> argparse.ArgumentParser:
@@ -51,12 +57,13 @@ def register(sub: argparse._SubParsersAction, common: argparse.ArgumentParser) -
                         help="integration scheme (default: fourth-order Runge-Kutta)")
     parser.add_argument("--u", metavar="NAME", help="name of the eastward wind variable")
     parser.add_argument("--v", metavar="NAME", help="name of the northward wind variable")
-    add_attribute_option(parser)
+    add_output_options(parser)
     add_input_options(parser)
     return parser
 
 
 def run(args: argparse.Namespace) -> int:
+    options = output_options(args)
     if args.starts:
         starts = read_starts(args.starts)
     else:
@@ -68,7 +75,7 @@ def run(args: argparse.Namespace) -> int:
                     step_minutes=args.step_minutes, vertical=args.vertical, sample=sample,
                     steady=args.steady, scheme=args.scheme)
     tracks.attrs.update(input_notes(wind))
-    path = write(tracks, args.output, attributes=dict(args.attribute))
+    path = write(tracks, args.output, **options)
     counts = np.bincount(tracks["status"].values, minlength=len(STATUS_MEANINGS))
     summary = ", ".join(f"{meaning.replace('_', ' ')} {count}"
                         for meaning, count in zip(STATUS_MEANINGS, counts, strict=True) if count)

@@ -8,7 +8,13 @@ from ..contours import circulation, gather
 from ..errors import UsageError
 from ..ingest import open_wind
 from ..store import write
-from ._common import add_attribute_option, add_forecast_options, forecast_options, output_file
+from ._common import (
+    add_forecast_options,
+    add_output_options,
+    forecast_options,
+    output_file,
+    output_options,
+)
 from .decompose import _levels
 
 
@@ -55,12 +61,13 @@ def register(sub: argparse._SubParsersAction, common: argparse.ArgumentParser) -
                         help="omega at the top level with --obrien (default 0)")
     parser.add_argument("--u", metavar="NAME", help="name of the eastward wind variable")
     parser.add_argument("--v", metavar="NAME", help="name of the northward wind variable")
-    add_attribute_option(parser)
+    add_output_options(parser)
     add_forecast_options(parser)
     return parser
 
 
 def run(args: argparse.Namespace) -> int:
+    options = output_options(args)
     if args.radius_km is not None and not args.follow:
         raise UsageError("--radius-km is the radius of --follow circles; give --follow TRACK.csv")
     contours = gather(args.box, args.circle, args.polygon, args.follow, args.radius_km)
@@ -69,7 +76,7 @@ def run(args: argparse.Namespace) -> int:
     wind = open_wind(args.files, u=args.u, v=args.v, **forecast_options(args))
     result = circulation(wind, contours, levels=args.levels, obrien=args.obrien,
                          surface_omega=args.surface_omega, top_omega=args.top_omega)
-    path = write(result, args.output, attributes=dict(args.attribute))
+    path = write(result, args.output, **options)
     count = len(contours)
     print(f"wrote {path}: {count} contour{'' if count == 1 else 's'}")
     return 0

@@ -14,12 +14,11 @@ from ..ingest import input_notes, open_wind
 from ..kinematics import kinematics
 from ..store import write
 from ._common import (
-    add_attribute_option,
-    add_encoding_options,
     add_input_options,
-    encoding_options,
+    add_output_options,
     input_options,
     output_file,
+    output_options,
 )
 
 
@@ -54,8 +53,7 @@ def register(sub: argparse._SubParsersAction, common: argparse.ArgumentParser) -
                         "their rotational_ and divergent_ counterparts")
     parser.add_argument("--u", metavar="NAME", help="name of the eastward wind variable")
     parser.add_argument("--v", metavar="NAME", help="name of the northward wind variable")
-    add_encoding_options(parser)
-    add_attribute_option(parser)
+    add_output_options(parser)
     add_input_options(parser)
     return parser
 
@@ -80,7 +78,7 @@ def _levels(text: str) -> list[float]:
 
 
 def run(args: argparse.Namespace) -> int:
-    options = encoding_options(args)
+    options = output_options(args)
     wind = open_wind(args.files, u=args.u, v=args.v, **input_options(args))
     parts = decompose(wind, method=args.method, truncation=args.truncation, levels=args.levels,
                       scheme=args.scheme)

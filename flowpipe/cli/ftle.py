@@ -9,7 +9,13 @@ from ..errors import UsageError
 from ..ftle import ftle
 from ..ingest import open_wind
 from ..store import write
-from ._common import add_attribute_option, add_forecast_options, forecast_options, output_file
+from ._common import (
+    add_forecast_options,
+    add_output_options,
+    forecast_options,
+    output_file,
+    output_options,
+)
 
 
 def register(sub: argparse._SubParsersAction, common: argparse.ArgumentParser) -> argparse.ArgumentParser:
@@ -37,7 +43,7 @@ def register(sub: argparse._SubParsersAction, common: argparse.ArgumentParser) -
                         help="leave seeds whose parcels stopped early missing")
     parser.add_argument("--u", metavar="NAME")
     parser.add_argument("--v", metavar="NAME")
-    add_attribute_option(parser)
+    add_output_options(parser)
     add_forecast_options(parser)
     return parser
 
@@ -52,12 +58,13 @@ def _numbers(text: str | None, option: str) -> list[float] | None:
 
 
 def run(args: argparse.Namespace) -> int:
+    options = output_options(args)
     wind = open_wind(args.files, u=args.u, v=args.v, **forecast_options(args))
     out = ftle(wind, hours=args.hours, backward=args.backward, spacing=args.spacing,
                region=_numbers(args.region, "--region"), levels=_numbers(args.level, "--level"),
                start=args.start, every=args.every, steady=args.steady,
                complete_only=args.complete_only)
-    path = write(out, args.output, attributes=dict(args.attribute))
+    path = write(out, args.output, **options)
     print(f"wrote {path}: ftle on {out.sizes['latitude']} x {out.sizes['longitude']} seeds, "
           f"{out.sizes['time']} start time(s)")
     return 0
