@@ -22,6 +22,12 @@ def add_attribute_option(parser: argparse.ArgumentParser) -> None:
                         "(institution, creator_name, license, project, id_prefix, ...); repeatable")
 
 
+def add_quiet_option(parser: argparse.ArgumentParser) -> None:
+    """``--quiet``: no progress bar on the terminal (there is none off a terminal)."""
+    parser.add_argument("--quiet", action="store_true",
+                        help="no progress bar (shown only when standard error is a terminal)")
+
+
 def add_encoding_options(parser: argparse.ArgumentParser) -> None:
     """How the output stores its data: precision, compression, quantization
     (see :func:`flowpipe.write`)."""
@@ -51,7 +57,7 @@ def encoding_options(args: argparse.Namespace) -> dict:
     options = {"precision": args.precision, "compression": args.compression,
                "compression_level": args.compression_level,
                "significant_digits": args.significant_digits}
-    check_encoding(**options)  # before any work
+    check_encoding(**options, output=getattr(args, "output", None))  # before any work
     return {**options, "attributes": dict(args.attribute)}
 
 

@@ -3,17 +3,26 @@
 from __future__ import annotations
 
 import argparse
+import math
 import re
 
 import numpy as np
 import pandas as pd
+import xarray as xr
 
 from ..ingest import input_notes, open_wind
 from ..parcels import advect, read_starts
 from ..parcels._kernels import STATUS_MEANINGS
 from ..parcels.starts import parse_start
+from ..progress import TaskBar, bar, key_name
 from ..store import write
-from ._common import add_attribute_option, add_input_options, input_options, output_file
+from ._common import (
+    add_attribute_option,
+    add_input_options,
+    add_quiet_option,
+    input_options,
+    output_file,
+)
 
 
 def register(sub: argparse._SubParsersAction, common: argparse.ArgumentParser) -> argparse.ArgumentParser:
@@ -53,7 +62,28 @@ def register(sub: argparse._SubParsersAction, common: argparse.ArgumentParser) -
     parser.add_argument("--v", metavar="NAME", help="name of the northward wind variable")
     add_attribute_option(parser)
     add_input_options(parser)
+    add_quiet_option(parser)
     return parser
+
+
+def slice_progress(wind: xr.Dataset, starts: pd.DataFrame, hours: float, backward: bool,
+                   quiet: bool) -> TaskBar:
+    """Input time slices read (the integration walks through them in time), rate and time
+    left. Out of those the trajectories span from the default start (the first time, or
+    the last one backward); out of all when the starts give their own times."""
+    times = wind["time"].values if "time" in wind.dims else np.zeros(1, "datetime64[s]")
+    total = times.size
+    if "time" not in starts or starts["time"].isna().all():
+        span = np.timedelta64(int(hours * 3600), "s")
+        if backward:
+            total = int(np.sum(times >= times[-1] - span)) + 1
+        else:
+            total = int(np.sum(times <= times[0] + span)) + 1
+    u = wind["u"].data
+    per_slice = math.prod(len(c) for c in u.chunks[1:]) if hasattr(u, "chunks") else 1
+    name = getattr(u, "name", None)
+    return TaskBar(bar(min(total, times.size), "time slice", quiet, desc="advect"),
+                   lambda key: key_name(key) == name, per_unit=per_slice)
 
 
 def run(args: argparse.Namespace) -> int:
@@ -64,9 +94,10 @@ def run(args: argparse.Namespace) -> int:
     wind = open_wind(args.files, u=args.u, v=args.v, **input_options(args))
     sample = [name.strip() for name in args.sample.split(",") if name.strip()] \
         if args.sample else []
-    tracks = advect(wind, starts, hours=args.hours, backward=args.backward,
-                    step_minutes=args.step_minutes, vertical=args.vertical, sample=sample,
-                    steady=args.steady, scheme=args.scheme)
+    with slice_progress(wind, starts, args.hours, args.backward, args.quiet):
+        tracks = advect(wind, starts, hours=args.hours, backward=args.backward,
+                        step_minutes=args.step_minutes, vertical=args.vertical, sample=sample,
+                        steady=args.steady, scheme=args.scheme)
     tracks.attrs.update(input_notes(wind))
     path = write(tracks, args.output, attributes=dict(args.attribute))
     counts = np.bincount(tracks["status"].values, minlength=len(STATUS_MEANINGS))
