@@ -41,7 +41,8 @@ sys.path.insert(0, str(Path(__file__).resolve().parent))
 from _transforms import floor_transforms  # noqa: E402
 
 NLAT, NLON = 721, 1440
-LMAX = NLAT - 1
+#: The largest degree a CC grid of NLAT rings analyses exactly (ducc0 needs NLAT >= LMAX + 2).
+LMAX = NLAT - 2
 #: Root-mean-square wind speed of the synthetic fields, m s-1 (a typical
 #: mid-tropospheric value; *common practice*).
 RMS_SPEED = 15.0
