@@ -83,8 +83,10 @@ def test_zarr_store_is_format_3_consolidated_chunked_as_the_netcdf_file(written)
             assert array.chunks == tuple(nc[name].chunking())
             if array.ndim == 4:
                 assert array.chunks[-2:] == (LAT.size, LON.size)  # whole slabs
-            assert [type(c).__name__ for c in array.compressors] == ["GzipCodec"]
-            assert array.compressors[0].level == 1  # the default level, as for NetCDF
+            (codec,) = array.compressors
+            # blosc with zlib at the default level and byte shuffle, as the NetCDF file
+            assert type(codec).__name__ == "BloscCodec"
+            assert (codec.cname.value, codec.clevel, codec.shuffle.value) == ("zlib", 1, "shuffle")
 
 
 def test_zarr_attributes_pass_the_cf_1_11_check(written, tmp_path):
