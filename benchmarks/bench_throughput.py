@@ -19,7 +19,7 @@ bytes per field <= 1.3x; peak memory ratio <= 1.2.
 
 Run: ``.venv/bin/python benchmarks/bench_throughput.py [--times 4 --levels 6]
 [--repeats 3] [--memory-factor 4]``. The full setting takes tens of minutes on 2
-cores; ``--repeats 1 --memory-factor 2`` is the documented smaller one.
+cores; ``--repeats 1`` (one round, about 13 minutes here) is the documented smaller one.
 """
 
 from __future__ import annotations
