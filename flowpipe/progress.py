@@ -39,25 +39,31 @@ class TaskBar(Callback):
     ----------
     progress : tqdm.tqdm
         The bar; its ``total`` is in the units shown (slabs, time slices).
-    counts : callable
-        Whether a task (by its key) is one of those counted.
+    counts : callable, optional
+        Whether a task (by its key) is one of those counted; without it, each
+        computation counts as one unit (one time slice read, say).
     per_unit : int, optional
         Counted tasks per unit of the bar; by default the counted tasks of each
         computation spread evenly over the bar's total (the tasks of writing
         ``N`` variables of ``S`` slabs advance it by one slab every ``N``).
     """
 
-    def __init__(self, progress: tqdm, counts: Callable[[Hashable], bool],
+    def __init__(self, progress: tqdm, counts: Callable[[Hashable], bool] | None = None,
                  per_unit: int | None = None) -> None:
         super().__init__()
         self.progress, self.counts, self.per_unit = progress, counts, per_unit
         self.done = self.tasks = 0
 
     def _start(self, dsk) -> None:
-        self.tasks += sum(1 for key in dsk if self.counts(key))
+        if self.counts is not None:
+            self.tasks += sum(1 for key in dsk if self.counts(key))
+
+    def _finish(self, dsk, state, errored) -> None:
+        if self.counts is None and not errored and self.progress.n < (self.progress.total or 0):
+            self.progress.update(1)
 
     def _posttask(self, key, result, dsk, state, id) -> None:  # noqa: A002 (dask's name)
-        if not self.counts(key):
+        if self.counts is None or not self.counts(key):
             return
         self.done += 1
         per_unit = self.per_unit or max(self.tasks, 1) / max(self.progress.total or 1, 1)

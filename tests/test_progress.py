@@ -80,9 +80,10 @@ def test_quiet_shows_nothing_on_a_terminal(wind_file, tmp_path):
 
 def test_advect_shows_time_slices_on_a_terminal(wind_file, tmp_path):
     code, shown = _on_terminal(["advect", str(wind_file), "-o", str(tmp_path / "tracks.nc"),
-                                "--start", "40,10,850", "--hours", "1"])
+                                "--start", "40,10,850", "--hours", "12"])
     assert code == 0
     assert "advect" in shown and "time slice" in shown
+    assert "3/3" in shown  # the 6-hourly wind's times 0, 6 and 12 h read, all of them
 
 
 def test_batch_run_shows_steps_on_a_terminal(wind_file, tmp_path):

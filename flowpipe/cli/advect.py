@@ -3,7 +3,6 @@
 from __future__ import annotations
 
 import argparse
-import math
 import re
 
 import numpy as np
@@ -14,7 +13,7 @@ from ..ingest import input_notes, open_wind
 from ..parcels import advect, read_starts
 from ..parcels._kernels import STATUS_MEANINGS
 from ..parcels.starts import parse_start
-from ..progress import TaskBar, bar, key_name
+from ..progress import TaskBar, bar
 from ..store import write
 from ._common import (
     add_attribute_option,
@@ -68,22 +67,19 @@ def register(sub: argparse._SubParsersAction, common: argparse.ArgumentParser) -
 
 def slice_progress(wind: xr.Dataset, starts: pd.DataFrame, hours: float, backward: bool,
                    quiet: bool) -> TaskBar:
-    """Input time slices read (the integration walks through them in time), rate and time
-    left. Out of those the trajectories span from the default start (the first time, or
-    the last one backward); out of all when the starts give their own times."""
+    """Input time slices read (the integration walks through them in time, one dask
+    computation each), rate and time left. Out of those the trajectories span from the
+    default start (the first time, or the last one backward); out of all when the starts
+    give their own times."""
     times = wind["time"].values if "time" in wind.dims else np.zeros(1, "datetime64[s]")
     total = times.size
     if "time" not in starts or starts["time"].isna().all():
-        span = np.timedelta64(int(hours * 3600), "s")
+        span = np.timedelta64(int(round(hours * 3600)), "s")
         if backward:
-            total = int(np.sum(times >= times[-1] - span)) + 1
+            total = times.size - int(np.searchsorted(times, times[-1] - span, side="right")) + 1
         else:
-            total = int(np.sum(times <= times[0] + span)) + 1
-    u = wind["u"].data
-    per_slice = math.prod(len(c) for c in u.chunks[1:]) if hasattr(u, "chunks") else 1
-    name = getattr(u, "name", None)
-    return TaskBar(bar(min(total, times.size), "time slice", quiet, desc="advect"),
-                   lambda key: key_name(key) == name, per_unit=per_slice)
+            total = int(np.searchsorted(times, times[0] + span, side="left")) + 1
+    return TaskBar(bar(min(total, times.size), "time slice", quiet, desc="advect"))
 
 
 def run(args: argparse.Namespace) -> int:
