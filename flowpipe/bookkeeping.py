@@ -7,6 +7,7 @@ import hashlib
 import json
 import logging
 import os
+import shutil
 import socket
 from pathlib import Path
 from typing import Any
@@ -28,17 +29,32 @@ def sha256(path: Path, block: int = 1 << 20) -> str:
     return digest.hexdigest()
 
 
-def fingerprint(path: Path, known: dict[str, Any] | None = None) -> dict[str, Any]:
-    """Path, size, modification time and SHA-256 of a file.
+def _files(path: Path) -> list[Path]:
+    """The files of a directory (a Zarr store), in a stable order; a file itself."""
+    if not path.is_dir():
+        return [path]
+    return sorted(p for p in path.rglob("*") if p.is_file())
 
-    The hash is reused from ``known`` when size and modification time are the
-    same (the check every build tool makes; *common practice*), so an
-    unchanged nightly input is not read twice.
+
+def fingerprint(path: Path, known: dict[str, Any] | None = None) -> dict[str, Any]:
+    """Path, size, modification time and SHA-256 of a file or a directory store.
+
+    A directory (a Zarr store) counts as the sum of its files' sizes, the
+    latest of their modification times, and the SHA-256 of their relative
+    names and hashes. The hash is reused from ``known`` when size and
+    modification time are the same (the check every build tool makes;
+    *common practice*), so an unchanged nightly input is not read twice.
     """
-    stat = path.stat()
-    record = {"path": str(path), "size": stat.st_size, "mtime_ns": stat.st_mtime_ns}
-    if known and known.get("size") == stat.st_size and known.get("mtime_ns") == stat.st_mtime_ns:
+    files = _files(path)
+    stats = [p.stat() for p in files]
+    size = sum(st.st_size for st in stats)
+    mtime = max((st.st_mtime_ns for st in stats), default=path.stat().st_mtime_ns)
+    record = {"path": str(path), "size": size, "mtime_ns": mtime}
+    if known and known.get("size") == size and known.get("mtime_ns") == mtime:
         record["sha256"] = known["sha256"]
+    elif path.is_dir():
+        listing = "".join(f"{p.relative_to(path).as_posix()}\t{sha256(p)}\n" for p in files)
+        record["sha256"] = hashlib.sha256(listing.encode()).hexdigest()
     else:
         record["sha256"] = sha256(path)
     return record
@@ -72,12 +88,18 @@ def sweep_temporaries(directory: Path) -> list[Path]:
     """Remove the temporary files an interrupted run left in ``directory``.
 
     Call it only while holding the :class:`RunLock`: then no other run is
-    writing there, and every hidden ``.NAME.tmp-*`` file is a leftover.
+    writing there, and every hidden ``.NAME.tmp-*`` file is a leftover, and so
+    is every such directory (a Zarr store being written), removed whole.
     """
-    removed = []
-    for path in directory.rglob(".*.tmp-*"):
+    removed: list[Path] = []
+    for path in sorted(directory.rglob(".*.tmp-*")):
+        if any(path.is_relative_to(done) for done in removed):
+            continue  # inside a temporary store already removed
         with contextlib.suppress(FileNotFoundError):
-            path.unlink()
+            if path.is_dir() and not path.is_symlink():
+                shutil.rmtree(path)
+            else:
+                path.unlink()
             removed.append(path)
             log.warning("removed %s, left by an interrupted run", path.name)
     return removed

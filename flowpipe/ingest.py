@@ -80,7 +80,7 @@ def expand_paths(paths: str | os.PathLike | Iterable[str | os.PathLike]) -> list
             if not matches:
                 raise InputError(f"{text}: no file matches this pattern")
             found.extend(Path(m) for m in matches)
-        elif Path(text).is_file():
+        elif Path(text).is_file() or is_zarr_store(Path(text)):
             found.append(Path(text))
         else:
             raise InputError(f"{text}: no such file")
@@ -200,6 +200,35 @@ NETCDF3_SIGNATURES = (b"CDF\x01", b"CDF\x02", b"CDF\x05")
 HDF5_SIGNATURE = b"\x89HDF\r\n\x1a\n"
 
 
+#: Files at the top of a Zarr store: its metadata (format 3, and format 2's group,
+#: array and consolidated metadata; Zarr specifications v2 and v3).
+ZARR_METADATA = ("zarr.json", ".zgroup", ".zarray", ".zmetadata")
+
+
+def is_zarr_store(path: Path) -> bool:
+    """Whether ``path`` is a directory holding Zarr metadata."""
+    return path.is_dir() and any((path / name).is_file() for name in ZARR_METADATA)
+
+
+def open_store(path: Path, **options) -> xr.Dataset:
+    """``xarray.open_dataset`` of a NetCDF file (:func:`open_netcdf`) or a Zarr store.
+
+    Raises
+    ------
+    flowpipe.errors.InputError
+        For what is neither, or cannot be read.
+    """
+    if not is_zarr_store(path):
+        return open_netcdf(path, **options)
+    try:
+        return xr.open_zarr(path, decode_times=xr.coders.CFDatetimeCoder(use_cftime=None),
+                            **options)
+    except Exception as exc:  # zarr raises many types for unreadable stores
+        reason = str(exc).splitlines()[0] if str(exc) else type(exc).__name__
+        raise InputError(f"{path}: cannot be read as a Zarr store ({reason}); check that it "
+                         "is complete") from exc
+
+
 def open_netcdf(path: Path, **options) -> xr.Dataset:
     """``xarray.open_dataset`` of a file that must be NetCDF, with one-line errors.
 
@@ -314,10 +343,11 @@ def open_grib(path: Path, u: str | None = None, v: str | None = None) -> xr.Data
 
 
 def open_input(path: Path, u: str | None = None, v: str | None = None) -> xr.Dataset:
-    """A NetCDF or GRIB file (told apart by its first bytes) as a lazy Dataset."""
+    """A NetCDF or GRIB file (told apart by its first bytes) or a Zarr store as a lazy
+    Dataset."""
     if is_grib(path):
         return open_grib(path, u, v)
-    return open_netcdf(path, chunks={})
+    return open_store(path, chunks={})
 
 
 def _open_parts(files: list[Path], u: str | None, v: str | None

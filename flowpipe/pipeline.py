@@ -106,26 +106,20 @@ def units_of(config: Config) -> list[Unit]:
 
 
 class Progress:
-    """A progress bar on an interactive terminal, plain log lines otherwise (cron)."""
+    """A progress bar (tqdm) on an interactive terminal; nothing otherwise (cron gets the
+    log lines instead)."""
 
     def __init__(self, total: int, quiet: bool) -> None:
-        self.total, self.done, self.quiet = total, 0, quiet
-        self.bar = not quiet and sys.stderr.isatty()
+        from .progress import bar
+
+        self.bar = bar(total, "step", quiet)
 
     def advance(self, steps: int, text: str) -> None:
-        self.done += steps
-        if self.bar:
-            width = 30
-            filled = int(width * self.done / max(self.total, 1))
-            sys.stderr.write(f"\r[{'#' * filled}{'.' * (width - filled)}] {self.done}/{self.total} "
-                             f"steps, last: {text[:50]:<50}")
-            if self.done == self.total:
-                sys.stderr.write("\n")
-            sys.stderr.flush()
+        self.bar.set_postfix_str(f"last: {text[:50]}", refresh=False)
+        self.bar.update(steps)
 
     def close(self) -> None:
-        if self.bar and self.done < self.total:
-            sys.stderr.write("\n")
+        self.bar.close()
 
 
 class Runner:

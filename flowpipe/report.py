@@ -50,7 +50,8 @@ def output_facts(path: Path) -> dict[str, Any]:
     Parameters
     ----------
     path : pathlib.Path
-        A file flowpipe wrote; only NetCDF files have facts.
+        A file flowpipe wrote; only NetCDF files (read with netCDF4) and Zarr
+        stores (read with xarray) have facts.
 
     Returns
     -------
@@ -61,31 +62,44 @@ def output_facts(path: Path) -> dict[str, Any]:
         as the global attribute; ``status``: for trajectory files, the number
         of trajectories by status (CF 1.11 section 3.5 flags of ``status``).
     """
-    if path.suffix != ".nc":
-        return {}
+    if path.suffix == ".nc":
+        with netCDF4.Dataset(path) as nc:
+            return _facts({k: nc.getncattr(k) for k in nc.ncattrs()}, {
+                name: (lambda var=var: np.ma.filled(np.ma.asarray(var[:], dtype=float), np.nan),
+                       {k: var.getncattr(k) for k in var.ncattrs()})
+                for name, var in nc.variables.items()})
+    if path.suffix == ".zarr":
+        import xarray as xr
+
+        with xr.open_zarr(path, decode_times=False) as ds:
+            return _facts(ds.attrs, {name: (lambda var=var: np.asarray(var.values, dtype=float),
+                                            var.attrs) for name, var in ds.variables.items()})
+    return {}
+
+
+def _facts(attrs: dict[str, Any], variables: dict[str, tuple]) -> dict[str, Any]:
+    """:func:`output_facts` from global attributes and, by name, each variable's
+    values (a function giving floats, NaN where missing) and attributes."""
     facts: dict[str, Any] = {}
-    with netCDF4.Dataset(path) as nc:
-        attrs = set(nc.ncattrs())
-        for key in ("time_coverage_start", "time_coverage_end"):
-            if key in attrs:
-                facts[key] = str(nc.getncattr(key))
-        quality = {}
-        for name in REPORTED_FIGURES:
-            if name in nc.variables:
-                values = np.ma.filled(np.ma.asarray(nc[name][:], dtype=float), np.nan)
-                if np.isfinite(values).any():
-                    quality[name] = float(np.nanmax(values))
-            elif name in attrs:
-                quality[name] = float(nc.getncattr(name))
-        if quality:
-            facts["quality"] = quality
-        status = nc.variables.get("status")
-        if status is not None and "flag_meanings" in status.ncattrs():
-            meanings = str(status.flag_meanings).split()
-            values = [int(v) for v in np.ravel(status.flag_values)]
-            counts = np.ravel(np.ma.filled(status[:], -1))
-            facts["status"] = {m: int(np.sum(counts == v)) for m, v in zip(meanings, values,
-                                                                            strict=True)}
+    for key in ("time_coverage_start", "time_coverage_end"):
+        if key in attrs:
+            facts[key] = str(attrs[key])
+    quality = {}
+    for name in REPORTED_FIGURES:
+        if name in variables:
+            values = variables[name][0]()
+            if np.isfinite(values).any():
+                quality[name] = float(np.nanmax(values))
+        elif name in attrs:
+            quality[name] = float(attrs[name])
+    if quality:
+        facts["quality"] = quality
+    if "status" in variables and "flag_meanings" in variables["status"][1]:
+        values, var_attrs = variables["status"]
+        meanings = str(var_attrs["flag_meanings"]).split()
+        flags = [int(v) for v in np.ravel(var_attrs["flag_values"])]
+        counts = np.ravel(values())
+        facts["status"] = {m: int(np.sum(counts == v)) for m, v in zip(meanings, flags, strict=True)}
     return facts
 
 

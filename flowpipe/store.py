@@ -69,6 +69,11 @@ FLOAT32_NOTE = ("stored in single precision (IEEE 754 binary32): relative roundi
 
 _PRECISION_TYPES = {"single": np.dtype(np.float32), "double": np.dtype(np.float64)}
 
+#: The suffix of outputs written as a Zarr store (a directory) instead of NetCDF-4.
+ZARR_SUFFIX = ".zarr"
+#: Highest level of the blosc codec Zarr stores are compressed with (blosc's clevel 0-9).
+ZARR_MAX_LEVEL = 9
+
 #: The CF section 8.4 quantization container of quantized outputs, and the CF version
 #: that introduced it.
 QUANTIZATION_VARIABLE = "quantization_info"
@@ -122,17 +127,16 @@ def atomic_path(path: str | os.PathLike, protect: Iterable[str | os.PathLike] = 
         final.parent.mkdir(parents=True, exist_ok=True)
     except OSError as exc:
         raise from_os_error(exc) from None
-    tmp = final.parent / f".{final.name}.tmp-{os.getpid()}-{uuid.uuid4().hex[:8]}{final.suffix}"
+    tmp = temporary_name(final)
     try:
         yield tmp
-        with open(tmp, "rb+") as handle:
-            os.fsync(handle.fileno())
-        os.replace(tmp, final)
-        dir_fd = os.open(final.parent, os.O_RDONLY)
-        try:
-            os.fsync(dir_fd)
-        finally:
-            os.close(dir_fd)
+        if tmp.is_dir():  # a store of many files (Zarr)
+            _publish_directory(tmp, final)
+        else:
+            with open(tmp, "rb+") as handle:
+                os.fsync(handle.fileno())
+            os.replace(tmp, final)
+        _fsync_directory(final.parent)
     except FlowpipeError:
         raise
     except OSError as exc:
@@ -149,11 +153,50 @@ def atomic_path(path: str | os.PathLike, protect: Iterable[str | os.PathLike] = 
     finally:
         # (a read-only file system refuses even to remove what is not there)
         with contextlib.suppress(FileNotFoundError):
-            if os.path.lexists(tmp):
+            if tmp.is_dir() and not tmp.is_symlink():
+                shutil.rmtree(tmp)
+            elif os.path.lexists(tmp):
                 # emptied first: a writer that failed may keep it open (netCDF-C cannot
                 # close a file it could not flush), and its blocks would stay taken
                 os.truncate(tmp, 0)
                 tmp.unlink()
+
+
+def temporary_name(final: Path, tag: str = "") -> Path:
+    """The hidden temporary name of ``final`` in its directory: ``.NAME.tmp-PID-HEX[TAG].SUFFIX``
+    (what :func:`flowpipe.bookkeeping.sweep_temporaries` removes after a killed run)."""
+    return final.parent / (f".{final.name}.tmp-{os.getpid()}-{uuid.uuid4().hex[:8]}{tag}"
+                           f"{final.suffix}")
+
+
+def _fsync_directory(path: Path) -> None:
+    dir_fd = os.open(path, os.O_RDONLY)
+    try:
+        os.fsync(dir_fd)
+    finally:
+        os.close(dir_fd)
+
+
+def _publish_directory(tmp: Path, final: Path) -> None:
+    """Rename a complete directory store into place, its files flushed to disk first.
+
+    A directory cannot replace a non-empty one in one ``rename(2)``: an earlier
+    store under the final name is first renamed to a temporary name (so a
+    crash in between leaves no store under the final name, and the leftover is
+    swept like any temporary), then removed once the new one is in place.
+    """
+    for root, _, names in os.walk(tmp):
+        for name in names:
+            with open(os.path.join(root, name), "rb+") as handle:
+                os.fsync(handle.fileno())
+        _fsync_directory(Path(root))
+    old = None
+    if final.is_dir() and not final.is_symlink():
+        old = temporary_name(final, "-old")
+        os.replace(final, old)
+    os.replace(tmp, final)
+    if old is not None:
+        shutil.rmtree(old, ignore_errors=True)
 
 
 #: Free space below which a write that failed is taken to have filled the disk: less
@@ -308,15 +351,25 @@ def _quantized(ds: xr.Dataset, encoding: dict[str, dict], digits: int) -> xr.Dat
 
 def check_encoding(precision: str = "input", compression: str = DEFAULT_COMPRESSION,
                    compression_level: int | None = None,
-                   significant_digits: int | None = None) -> None:
+                   significant_digits: int | None = None,
+                   output: str | os.PathLike | None = None) -> None:
     """Refuse an encoding :func:`write` cannot make, in one line naming the option
-    (:func:`flowpipe.choices.encoding_refusal`).
+    (:func:`flowpipe.choices.encoding_refusal`; for Zarr ``output``, also what
+    Zarr cannot take).
 
     Raises
     ------
     flowpipe.errors.UsageError
-        For a precision, compression or level out of range.
+        For a precision, compression or level out of range, or quantization of
+        a Zarr ``output``.
     """
+    zarr_store = output is not None and Path(output).suffix == ZARR_SUFFIX
+    if significant_digits is not None and zarr_store:
+        raise UsageError(f"{output}: quantization (significant digits) is written to NetCDF "
+                         "outputs only; drop it or write a .nc file")
+    if zarr_store and compression_level is not None and compression_level > ZARR_MAX_LEVEL:
+        raise UsageError(f"{output}: Zarr's blosc codec takes compression levels up to "
+                         f"{ZARR_MAX_LEVEL}, not {compression_level}")
     refusal = encoding_refusal(precision, compression, compression_level, significant_digits)
     if refusal:
         raise UsageError(refusal)
@@ -330,7 +383,12 @@ def write(ds: xr.Dataset, path: str | os.PathLike, *, precision: str = "input",
           compression: str = DEFAULT_COMPRESSION, compression_level: int | None = None,
           significant_digits: int | None = None,
           attributes: dict[str, str] | None = None) -> Path:
-    """Write a Dataset to NetCDF-4 atomically, CF-1.11 and ACDD-1.3 annotated.
+    """Write a Dataset to NetCDF-4 (or Zarr) atomically, CF-1.11 and ACDD-1.3 annotated.
+
+    A ``path`` ending in ``.zarr`` (:data:`ZARR_SUFFIX`) is written as a Zarr
+    format 3 store with consolidated metadata and the same attributes, chunks
+    and compression (:func:`_zarr_encoding`; no quantization), published like a
+    file: written under a temporary name beside it, then renamed into place.
 
     Attributes are completed by :func:`flowpipe.annotate.complete`; data
     variables are compressed (by default zlib level 1 with shuffle) and chunked
@@ -390,7 +448,7 @@ def write(ds: xr.Dataset, path: str | os.PathLike, *, precision: str = "input",
         operating system refuses the write (see :func:`atomic_path`).
     """
     final = Path(path)
-    check_encoding(precision, compression, compression_level, significant_digits)
+    check_encoding(precision, compression, compression_level, significant_digits, final)
     out = annotate.complete(ds, attributes)
     lazy = {k: v for k, v in out.attrs.items() if dask.is_dask_collection(v)}
     out.attrs = {k: v for k, v in out.attrs.items() if k not in lazy}
@@ -412,6 +470,10 @@ def write(ds: xr.Dataset, path: str | os.PathLike, *, precision: str = "input",
             out[name].encoding["coordinates"] = None
     certain, upper = _stored_bytes(out, encoding)
     check_space(final, certain, upper)
+    if final.suffix == ZARR_SUFFIX:
+        with atomic_path(final, sources(ds), needed=upper) as tmp:
+            _write_zarr(out, tmp, _zarr_encoding(out, encoding, compression), lazy)
+        return final
     with atomic_path(final, sources(ds), needed=upper) as tmp, _write_chunk_cache():
         if not lazy:
             out.to_netcdf(tmp, engine="netcdf4", format="NETCDF4", encoding=encoding)
@@ -438,6 +500,63 @@ def write(ds: xr.Dataset, path: str | os.PathLike, *, precision: str = "input",
         if significant_digits is not None:
             _drop_library_quantization_attrs(tmp)
     return final
+
+
+def _zarr_encoding(ds: xr.Dataset, encoding: dict[str, dict], compression: str) -> dict[str, dict]:
+    """The NetCDF encodings of :func:`_encoding` as Zarr format 3 asks for them.
+
+    zlib and zstd become the core ``blosc`` codec (Zarr v3 specification) with
+    that compressor, the same level and byte shuffle, as the NetCDF writer
+    shuffles before zlib; shuffled floats compress to about three quarters of
+    the unshuffled size (benchmarks/bench_throughput.py measures the sizes).
+    Every variable is chunked as in NetCDF (:func:`chunk_sizes`: whole slabs).
+    """
+    from zarr.codecs import BloscCodec
+
+    result: dict[str, dict] = {}
+    for name, enc in encoding.items():
+        var = ds[name]
+        new = {k: enc[k] for k in ("units", "calendar", "_FillValue") if k in enc}
+        if "dtype" in enc and np.dtype(enc["dtype"]).kind != "S":  # strings stay strings
+            new["dtype"] = enc["dtype"]
+        if "complevel" in enc:
+            new["compressors"] = (BloscCodec(cname=compression, clevel=enc["complevel"],
+                                             shuffle="shuffle"),)
+        elif compression == "none":
+            new["compressors"] = None
+        if var.ndim:
+            itemsize = np.dtype(new.get("dtype", var.dtype)).itemsize
+            new["chunks"] = chunk_sizes(tuple(map(str, var.dims)), var.shape, itemsize)
+        result[name] = new
+    return result
+
+
+def _write_zarr(out: xr.Dataset, tmp: Path, encoding: dict[str, dict], lazy: dict) -> None:
+    """Write a Zarr format 3 store with consolidated metadata to ``tmp``.
+
+    Dask-backed variables are rechunked to the store's chunks first, so every
+    chunk is written by exactly one task; under a dask.distributed client the
+    workers write them in parallel. Attributes that are dask arrays are
+    computed in the same pass and added to the metadata afterwards.
+    """
+    import zarr
+
+    out = out.copy()
+    for name, enc in encoding.items():
+        var = out.variables[name]
+        if "chunks" in enc and dask.is_dask_collection(var.data):
+            out[name] = var.chunk(dict(zip(var.dims, enc["chunks"], strict=True)))
+    with warnings.catch_warnings():
+        # zarr-python writes consolidated metadata for format 3 ahead of the specification
+        warnings.filterwarnings("ignore", message=".*[Cc]onsolidated metadata", category=UserWarning)
+        pending = out.to_zarr(tmp, mode="w-", zarr_format=3, consolidated=True, encoding=encoding,
+                              compute=False)
+        _, *values = dask.compute(pending, *lazy.values())
+        if lazy:
+            group = zarr.open_group(tmp, mode="r+", zarr_format=3)
+            group.attrs.update({name: np.asarray(value).item()
+                                for name, value in zip(lazy, values, strict=True)})
+            zarr.consolidate_metadata(tmp, zarr_format=3)
 
 
 def _drop_library_quantization_attrs(path: Path) -> None:

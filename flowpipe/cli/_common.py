@@ -15,6 +15,12 @@ def output_file(text: str) -> str:
     return text
 
 
+def add_quiet_option(parser: argparse.ArgumentParser) -> None:
+    """``--quiet``: no progress bar on the terminal (there is none off a terminal)."""
+    parser.add_argument("--quiet", action="store_true",
+                        help="no progress bar (shown only when standard error is a terminal)")
+
+
 def add_output_options(parser: argparse.ArgumentParser) -> None:
     """How the output stores its data (precision, compression, quantization; see
     :func:`flowpipe.write`) and ``--attribute KEY=VALUE`` (repeatable): a global
@@ -48,7 +54,7 @@ def output_options(args: argparse.Namespace) -> dict:
     options = {"precision": args.precision, "compression": args.compression,
                "compression_level": args.compression_level,
                "significant_digits": args.significant_digits}
-    check_encoding(**options)  # before any work
+    check_encoding(**options, output=getattr(args, "output", None))  # before any work
     return {**options, "attributes": dict(args.attribute)}
 
 

@@ -7,15 +7,18 @@ import re
 
 import numpy as np
 import pandas as pd
+import xarray as xr
 
 from ..choices import STATUS_MEANINGS
 from ..ingest import input_notes, open_wind
 from ..parcels import advect, read_starts
 from ..parcels.starts import parse_start
+from ..progress import TaskBar, bar
 from ..store import write
 from ._common import (
     add_input_options,
     add_output_options,
+    add_quiet_option,
     input_options,
     output_file,
     output_options,
@@ -59,7 +62,25 @@ def register(sub: argparse._SubParsersAction, common: argparse.ArgumentParser) -
     parser.add_argument("--v", metavar="NAME", help="name of the northward wind variable")
     add_output_options(parser)
     add_input_options(parser)
+    add_quiet_option(parser)
     return parser
+
+
+def slice_progress(wind: xr.Dataset, starts: pd.DataFrame, hours: float, backward: bool,
+                   quiet: bool) -> TaskBar:
+    """Input time slices read (the integration walks through them in time, one dask
+    computation each), rate and time left. Out of those the trajectories span from the
+    default start (the first time, or the last one backward); out of all when the starts
+    give their own times."""
+    times = wind["time"].values if "time" in wind.dims else np.zeros(1, "datetime64[s]")
+    total = times.size
+    if "time" not in starts or starts["time"].isna().all():
+        span = np.timedelta64(int(round(hours * 3600)), "s")
+        if backward:
+            total = times.size - int(np.searchsorted(times, times[-1] - span, side="right")) + 1
+        else:
+            total = int(np.searchsorted(times, times[0] + span, side="left")) + 1
+    return TaskBar(bar(min(total, times.size), "time slice", quiet, desc="advect"))
 
 
 def run(args: argparse.Namespace) -> int:
@@ -71,9 +92,10 @@ def run(args: argparse.Namespace) -> int:
     wind = open_wind(args.files, u=args.u, v=args.v, **input_options(args))
     sample = [name.strip() for name in args.sample.split(",") if name.strip()] \
         if args.sample else []
-    tracks = advect(wind, starts, hours=args.hours, backward=args.backward,
-                    step_minutes=args.step_minutes, vertical=args.vertical, sample=sample,
-                    steady=args.steady, scheme=args.scheme)
+    with slice_progress(wind, starts, args.hours, args.backward, args.quiet):
+        tracks = advect(wind, starts, hours=args.hours, backward=args.backward,
+                        step_minutes=args.step_minutes, vertical=args.vertical, sample=sample,
+                        steady=args.steady, scheme=args.scheme)
     tracks.attrs.update(input_notes(wind))
     path = write(tracks, args.output, **options)
     counts = np.bincount(tracks["status"].values, minlength=len(STATUS_MEANINGS))

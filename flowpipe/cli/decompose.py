@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import argparse
+import math
 
 import xarray as xr
 
@@ -12,10 +13,12 @@ from ..errors import UsageError
 from ..fields import select_fields
 from ..ingest import input_notes, open_wind
 from ..kinematics import kinematics
-from ..store import write
+from ..progress import TaskBar, bar, key_name
+from ..store import WHOLE_DIMS, write
 from ._common import (
     add_input_options,
     add_output_options,
+    add_quiet_option,
     input_options,
     output_file,
     output_options,
@@ -55,7 +58,16 @@ def register(sub: argparse._SubParsersAction, common: argparse.ArgumentParser) -
     parser.add_argument("--v", metavar="NAME", help="name of the northward wind variable")
     add_output_options(parser)
     add_input_options(parser)
+    add_quiet_option(parser)
     return parser
+
+
+def write_progress(parts: xr.Dataset, quiet: bool) -> TaskBar:
+    """Slabs written (one slab: a time and level of every variable), rate and time left,
+    from the tasks that store the computed chunks."""
+    slabs = math.prod(parts.sizes.get(d, 1) for d in parts.dims if d not in WHOLE_DIMS)
+    return TaskBar(bar(slabs, "slab", quiet, desc="decompose"),
+                   lambda key: "store-map" in key_name(key))
 
 
 def _names(text: str) -> list[str]:
@@ -90,7 +102,8 @@ def run(args: argparse.Namespace) -> int:
         parts = xr.merge([parts, extra], combine_attrs="override")
     parts = select_fields(parts, wind, args.fields)
     parts.attrs.update(input_notes(wind))
-    path = write(parts, args.output, **options)
+    with write_progress(parts, args.quiet):
+        path = write(parts, args.output, **options)
     print(f"wrote {path}: {len(parts.data_vars)} variables by the "
           f"{parts.attrs.get('method', '')} method")
     return 0

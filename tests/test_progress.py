@@ -1,0 +1,95 @@
+"""Progress bars: on a terminal only, never in a pipe or under --quiet.
+
+External checks: the Python standard library's ``pty`` module gives the command a
+pseudo-terminal as standard error (``isatty()`` is then true, POSIX ``isatty(3)``),
+and tqdm draws its bars with carriage returns and ``N/M`` counts
+(tqdm documentation, "Usage"); a pipe is no terminal.
+"""
+
+from __future__ import annotations
+
+import fcntl
+import os
+import pty
+import struct
+import subprocess
+import sys
+import termios
+from pathlib import Path
+
+import numpy as np
+import pytest
+from windfiles import Encoding, encode, reference_field
+
+LAT, LON, LEVELS = np.linspace(-90, 90, 37), np.arange(0.0, 360.0, 5.0), np.array([850.0, 500.0])
+
+
+@pytest.fixture(scope="module")
+def wind_file(tmp_path_factory) -> Path:
+    directory = tmp_path_factory.mktemp("progress")
+    (path,) = encode(reference_field(LAT, LON, LEVELS, 3), LAT, LON, LEVELS, Encoding(), directory)
+    return path
+
+
+def _on_terminal(args: list[str]) -> tuple[int, str]:
+    """Run flowpipe with a pseudo-terminal as standard error; exit code and what it showed."""
+    master, slave = pty.openpty()
+    # a terminal of 24 rows of 100 columns (a new pseudo-terminal has no size)
+    fcntl.ioctl(slave, termios.TIOCSWINSZ, struct.pack("HHHH", 24, 100, 0, 0))
+    proc = subprocess.Popen([sys.executable, "-m", "flowpipe", *args], stdin=subprocess.DEVNULL,
+                            stdout=subprocess.DEVNULL, stderr=slave)
+    os.close(slave)
+    shown = b""
+    while True:
+        try:
+            block = os.read(master, 4096)
+        except OSError:  # EIO: the command closed the terminal
+            break
+        if not block:
+            break
+        shown += block
+    os.close(master)
+    return proc.wait(), shown.decode(errors="replace")
+
+
+def _decompose(wind_file: Path, tmp_path: Path, *extra: str) -> list[str]:
+    return ["decompose", str(wind_file), "-o", str(tmp_path / "out.nc"), *extra]
+
+
+def test_decompose_shows_slabs_on_a_terminal(wind_file, tmp_path):
+    code, shown = _on_terminal(_decompose(wind_file, tmp_path))
+    assert code == 0
+    assert "decompose" in shown and "slab" in shown
+    assert "6/6" in shown  # 3 times x 2 levels, all done
+    assert "\r" in shown  # redrawn in place
+
+
+def test_nothing_on_standard_error_without_a_terminal(wind_file, tmp_path):
+    proc = subprocess.run([sys.executable, "-m", "flowpipe", *_decompose(wind_file, tmp_path)],
+                          capture_output=True, check=False)
+    assert proc.returncode == 0
+    assert proc.stderr == b""
+    assert b"wrote" in proc.stdout
+
+
+def test_quiet_shows_nothing_on_a_terminal(wind_file, tmp_path):
+    code, shown = _on_terminal(_decompose(wind_file, tmp_path, "--quiet"))
+    assert code == 0
+    assert shown == ""
+
+
+def test_advect_shows_time_slices_on_a_terminal(wind_file, tmp_path):
+    code, shown = _on_terminal(["advect", str(wind_file), "-o", str(tmp_path / "tracks.nc"),
+                                "--start", "40,10,850", "--hours", "12"])
+    assert code == 0
+    assert "advect" in shown and "time slice" in shown
+    assert "3/3" in shown  # the 6-hourly wind's times 0, 6 and 12 h read, all of them
+
+
+def test_batch_run_shows_steps_on_a_terminal(wind_file, tmp_path):
+    config = tmp_path / "night.toml"
+    config.write_text(f'[input]\npaths = ["{wind_file}"]\n\n[decompose]\n\n'
+                      '[output]\ndirectory = "out"\n')
+    code, shown = _on_terminal(["run", str(config)])
+    assert code == 0
+    assert "1/1" in shown and "step" in shown

@@ -1,0 +1,213 @@
+"""Zarr outputs and inputs: the same data and attributes as NetCDF, atomic, from many workers.
+
+External checks, each named beside its assertions:
+* zarr-python (the Zarr format 3 reference implementation) and xarray's Zarr
+  backend read the stores back: values, chunk shapes and codecs;
+* xarray's NetCDF reader reads the NetCDF output the Zarr store is compared with;
+* compliance-checker (IOOS), suite ``cf:1.11``, on a NetCDF copy of the attributes
+  xarray reads back from the store (compliance-checker reads NetCDF only);
+* POSIX ``rename(2)`` of a directory: the final name appears only complete
+  (common practice for atomic publication);
+* dask.distributed (LocalCluster): the workers compute and write the chunks.
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import signal
+import subprocess
+import sys
+import time
+from pathlib import Path
+
+import netCDF4
+import numpy as np
+import pytest
+import xarray as xr
+import zarr
+from test_compliance import _failures, check
+from windfiles import Encoding, encode, reference_field
+
+import flowpipe as fp
+from flowpipe.bookkeeping import sweep_temporaries
+from flowpipe.cli import main
+from flowpipe.pipeline import run
+from flowpipe.progress import key_name
+
+LAT, LON, LEVELS = np.linspace(-90, 90, 37), np.arange(0.0, 360.0, 5.0), np.array([850.0, 500.0])
+
+
+@pytest.fixture(scope="module")
+def wind_file(tmp_path_factory) -> Path:
+    directory = tmp_path_factory.mktemp("zarr")
+    (path,) = encode(reference_field(LAT, LON, LEVELS, 2), LAT, LON, LEVELS, Encoding(), directory)
+    return path
+
+
+#: Global attributes stating when a file was written (ACDD-1.3 date_created, CF history).
+WRITE_TIMES = ("history", "date_created", "date_modified", "date_metadata_modified")
+
+
+@pytest.fixture(scope="module")
+def written(wind_file, tmp_path_factory) -> dict[str, Path]:
+    """The decomposition of the wind by the command line, to NetCDF and to Zarr."""
+    directory = tmp_path_factory.mktemp("written")
+    paths = {kind: directory / f"parts.{kind}" for kind in ("nc", "zarr")}
+    for path in paths.values():
+        assert main(["decompose", str(wind_file), "-o", str(path)]) == 0
+    return paths
+
+
+def test_zarr_equals_the_netcdf_output_exactly(written):
+    # Lossless encodings on both sides: xarray reads the same values, coordinates and
+    # attributes from the NetCDF file and the Zarr store.
+    with xr.open_dataset(written["nc"]) as nc, xr.open_zarr(written["zarr"]) as store:
+        nc, store = nc.load(), store.load()
+        for ds in (nc, store):  # when each was written, a second apart
+            for key in WRITE_TIMES:
+                ds.attrs.pop(key, None)
+        xr.testing.assert_identical(store, nc)
+        assert set(store.data_vars) >= {"streamfunction", "velocity_potential", "vorticity"}
+
+
+def test_zarr_store_is_format_3_consolidated_chunked_as_the_netcdf_file(written):
+    # zarr-python: the store's format, its consolidated metadata, chunks and codecs;
+    # netCDF4: the chunks of the NetCDF file (whole slabs, several small ones together).
+    group = zarr.open_group(written["zarr"], mode="r")
+    assert group.metadata.zarr_format == 3
+    assert group.metadata.consolidated_metadata is not None  # read without listing arrays
+    with netCDF4.Dataset(written["nc"]) as nc:
+        for name in ("streamfunction", "vorticity", "reconstruction_error"):
+            array = group[name]
+            assert array.chunks == tuple(nc[name].chunking())
+            if array.ndim == 4:
+                assert array.chunks[-2:] == (LAT.size, LON.size)  # whole slabs
+            (codec,) = array.compressors
+            # blosc with zlib at the default level and byte shuffle, as the NetCDF file
+            assert type(codec).__name__ == "BloscCodec"
+            assert (codec.cname.value, codec.clevel, codec.shuffle.value) == ("zlib", 1, "shuffle")
+
+
+def test_zarr_attributes_pass_the_cf_1_11_check(written, tmp_path):
+    # compliance-checker cf:1.11 on the attributes xarray reads back from the store,
+    # written unchanged into a NetCDF copy by plain xarray.
+    copy = tmp_path / "copy.nc"
+    with xr.open_zarr(written["zarr"], decode_cf=False) as store:
+        store = store.load()
+        # (xarray would add a NaN _FillValue to floating-point variables that have none)
+        store.to_netcdf(copy, encoding={name: {"_FillValue": None} for name, var in
+                                        store.variables.items() if "_FillValue" not in var.attrs})
+    result = check(copy, ("cf:1.11",))["cf:1.11"]
+    assert _failures(result, "high") == []
+    assert _failures(result, "medium") == []
+
+
+def test_zarr_store_as_input_to_decompose(written, wind_file, tmp_path):
+    # A wind stored by plain xarray as a Zarr store decomposes as its NetCDF original.
+    wind_store = tmp_path / "wind.zarr"
+    with xr.open_dataset(wind_file) as ds:
+        ds.load().to_zarr(wind_store, zarr_format=3, consolidated=True)
+    out = tmp_path / "from_store.nc"
+    assert main(["decompose", str(wind_store), "-o", str(out)]) == 0
+    with xr.open_dataset(out) as got, xr.open_dataset(written["nc"]) as want:
+        xr.testing.assert_equal(got.load(), want.load())
+
+
+def test_quantization_is_refused_for_zarr_in_one_line(wind_file, tmp_path, capsys):
+    assert main(["decompose", str(wind_file), "-o", str(tmp_path / "q.zarr"),
+                 "--significant-digits", "3"]) == 2
+    err = capsys.readouterr().err.strip()
+    assert len(err.splitlines()) == 1 and "quantization" in err
+    assert not list(tmp_path.iterdir())
+
+
+SLOW_WRITE = """
+import sys, time
+import dask.array as da, numpy as np, xarray as xr
+import flowpipe as fp
+
+def slow(block):
+    time.sleep(0.3)
+    return block
+
+n = 40
+data = da.map_blocks(slow, da.ones((n, 1, 37, 72), chunks=(1, 1, 37, 72)), dtype=float)
+ds = xr.Dataset({"vorticity": (("time", "level", "latitude", "longitude"), data,
+                               {"units": "s-1", "standard_name": "atmosphere_relative_vorticity"})},
+                coords={"time": np.arange(n).astype("datetime64[h]").astype("datetime64[ns]"),
+                        "level": ("level", [500.0], {"units": "hPa"}),
+                        "latitude": ("latitude", np.linspace(-90, 90, 37), {"units": "degrees_north"}),
+                        "longitude": ("longitude", np.arange(0, 360, 5.0), {"units": "degrees_east"})})
+fp.write(ds, sys.argv[1])
+"""
+
+
+def test_killed_zarr_write_leaves_no_store_under_the_final_name(tmp_path):
+    # SIGKILL while chunks are being written: the final name never appears; the
+    # temporary store is swept like a temporary file.
+    final = tmp_path / "out.zarr"
+    proc = subprocess.Popen([sys.executable, "-c", SLOW_WRITE, str(final)],
+                            stdout=subprocess.DEVNULL, stderr=subprocess.PIPE)
+    deadline = time.monotonic() + 120
+    chunks: list[Path] = []
+    while time.monotonic() < deadline and proc.poll() is None and len(chunks) < 3:
+        chunks = [p for p in tmp_path.glob(".out.zarr.tmp-*/vorticity/c/**/*") if p.is_file()]
+        time.sleep(0.05)
+    assert proc.poll() is None, proc.stderr.read().decode()  # killed mid-write, not after
+    proc.send_signal(signal.SIGKILL)
+    proc.wait()
+    assert chunks  # the store was being written
+    assert not final.exists()
+    (leftover,) = [p for p in tmp_path.iterdir() if ".tmp-" in p.name]
+    assert leftover.is_dir()
+    assert sweep_temporaries(tmp_path) == [leftover]
+    assert list(tmp_path.iterdir()) == []
+
+
+def test_rewriting_a_store_replaces_it_whole(written, tmp_path):
+    target = tmp_path / "again.zarr"
+    with xr.open_zarr(written["zarr"]) as ds:
+        ds = ds.load()
+    fp.write(ds, target)
+    fp.write(ds[["vorticity"]], target)
+    with xr.open_zarr(target) as again:
+        assert "vorticity" in again and "streamfunction" not in again
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["again.zarr"]
+
+
+def _night(directory: Path, wind_file: Path) -> Path:
+    config = directory / "night.toml"
+    config.write_text(f'[input]\npaths = ["{wind_file}"]\n\n[decompose]\n'
+                      'output = "{stem}_decomposition.zarr"\n\n[output]\ndirectory = "out"\n')
+    return config
+
+
+def test_distributed_run_writing_zarr_equals_the_local_run(wind_file, tmp_path):
+    from distributed import LocalCluster, get_task_stream
+
+    local, cluster_dir = tmp_path / "local", tmp_path / "cluster"
+    for d in (local, cluster_dir):
+        d.mkdir()
+    assert run(_night(local, wind_file), quiet=True, workers=1).exit_code == 0
+    with LocalCluster(n_workers=2, threads_per_worker=1, processes=False,
+                      dashboard_address=None) as cluster, cluster.get_client() as client, \
+            get_task_stream(client) as tasks:
+        summary = run(_night(cluster_dir, wind_file), quiet=True,
+                      scheduler=cluster.scheduler_address)
+    assert summary.exit_code == 0
+    # dask.distributed's record of where each task ran: the chunks were stored by the
+    # workers, both of them
+    stored = {t["worker"] for t in tasks.data if "store-map" in key_name(t["key"])}
+    assert len(stored) == 2
+    name = f"{wind_file.stem}_decomposition.zarr"
+    with xr.open_zarr(local / "out" / name) as a, xr.open_zarr(cluster_dir / "out" / name) as b:
+        assert set(a.data_vars) == set(b.data_vars)
+        for var in a.data_vars:
+            np.testing.assert_allclose(b[var].values, a[var].values, rtol=1e-12, atol=0)
+    manifest = json.loads((cluster_dir / "out" / "manifest.json").read_text())
+    record = manifest["outputs"][name]
+    assert record["facts"]["time_coverage_start"].startswith(str(a.time.values[0])[:10])
+    assert "reconstruction_error" in record["facts"]["quality"]
+    assert not [p for p in (cluster_dir / "out").iterdir() if ".tmp-" in p.name]
+    assert os.path.isdir(cluster_dir / "out" / name)
