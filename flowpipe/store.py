@@ -17,7 +17,7 @@ import os
 import shutil
 import uuid
 import warnings
-from collections.abc import Iterable, Iterator
+from collections.abc import Callable, Iterable, Iterator
 from pathlib import Path
 
 import dask
@@ -485,14 +485,8 @@ def write(ds: xr.Dataset, path: str | os.PathLike, *, precision: str = "input",
             pending = out.to_netcdf(tmp, engine="netcdf4", format="NETCDF4",
                                     encoding=encoding, compute=False)
             _, *values = dask.compute(pending, *lazy.values())
-        found = dict(zip(lazy, values, strict=True))
-        # The global quality figures of a lazy result: summed up from the per-slab figures
-        # just written (a few numbers read back), so the data are computed once.
-        unknown = [name for name in QUALITY_FIGURES
-                   if name in out.data_vars and name not in out.attrs]
-        if unknown:
-            with xr.open_dataset(tmp, engine="netcdf4") as written:
-                found.update(annotate.quality_summary(written[unknown].load()))
+        found = _late_attributes(out, lazy, values,
+                                 lambda: xr.open_dataset(tmp, engine="netcdf4"))
         if found:
             with netCDF4.Dataset(tmp, "a") as nc:
                 for name, value in found.items():
@@ -552,11 +546,25 @@ def _write_zarr(out: xr.Dataset, tmp: Path, encoding: dict[str, dict], lazy: dic
         pending = out.to_zarr(tmp, mode="w-", zarr_format=3, consolidated=True, encoding=encoding,
                               compute=False)
         _, *values = dask.compute(pending, *lazy.values())
-        if lazy:
+        found = _late_attributes(out, lazy, values, lambda: xr.open_zarr(tmp, zarr_format=3))
+        if found:
             group = zarr.open_group(tmp, mode="r+", zarr_format=3)
-            group.attrs.update({name: np.asarray(value).item()
-                                for name, value in zip(lazy, values, strict=True)})
+            group.attrs.update({name: np.asarray(value).item() for name, value in found.items()})
             zarr.consolidate_metadata(tmp, zarr_format=3)
+
+
+def _late_attributes(out: xr.Dataset, lazy: dict, values: list,
+                     written: Callable[[], xr.Dataset]) -> dict:
+    """Global attributes known only once the data are computed: a caller's dask-valued
+    attributes (``values``, computed with the data), and the global quality figures of a
+    lazy result, summed up from the per-slab figures just written (a few numbers read
+    back from the output, so the data are computed once)."""
+    found = dict(zip(lazy, values, strict=True))
+    unknown = [name for name in QUALITY_FIGURES if name in out.data_vars and name not in out.attrs]
+    if unknown:
+        with written() as ds:
+            found.update(annotate.quality_summary(ds[unknown].load()))
+    return found
 
 
 def _drop_library_quantization_attrs(path: Path) -> None:
