@@ -54,8 +54,9 @@ from .ingest import (
     find_coordinate,
     forecast_variable,
     is_grib,
+    is_zarr_store,
     lead_hours,
-    open_netcdf,
+    open_store,
     open_wind,
     parse_iso,
     run_text,
@@ -265,11 +266,11 @@ def _open(source: str | os.PathLike | xr.Dataset) -> tuple[xr.Dataset, str]:
         name = source.encoding.get("source") or (inputs[0] if inputs else None)
         return source, Path(str(name)).name if name else str(source.attrs.get("title", "dataset"))
     path = Path(source)
-    if not path.is_file():
+    if not path.is_file() and not is_zarr_store(path):
         raise InputError(f"{path}: no such file")
     if is_grib(path):  # a model's GRIB output: its wind, in the canonical form
         return open_wind(path), str(path)
-    return open_netcdf(path), str(path)
+    return open_store(path), str(path)
 
 
 # ---------------------------------------------------------------- coordinates

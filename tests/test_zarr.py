@@ -211,3 +211,17 @@ def test_distributed_run_writing_zarr_equals_the_local_run(wind_file, tmp_path):
     assert "reconstruction_error" in record["facts"]["quality"]
     assert not [p for p in (cluster_dir / "out").iterdir() if ".tmp-" in p.name]
     assert os.path.isdir(cluster_dir / "out" / name)
+
+
+def test_map_of_a_zarr_decomposition(written, tmp_path):
+    # The same map as from the NetCDF file: the colour bar spans the same values
+    # (matplotlib's ScalarMappable limits).
+    from flowpipe import maps
+
+    limits = []
+    for key in ("nc", "zarr"):
+        fig = maps.render(written[key], field="streamfunction", size=(400, 300))
+        (bar,) = [c.colorbar for ax in fig.axes for c in ax.collections
+                  if getattr(c, "colorbar", None) is not None]
+        limits.append((bar.vmin, bar.vmax))
+    assert limits[0] == limits[1]
