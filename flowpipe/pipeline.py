@@ -405,11 +405,13 @@ class Runner:
 
     # -- the run -------------------------------------------------------------
     def run_unit(self, unit: Unit) -> UnitResult:
-        """Run every configured stage of one unit; a failure stops that unit only."""
+        """Run every configured stage of one unit; a failure fails that stage only (the
+        stages after it still run, maps with the outputs that were made)."""
         result = UnitResult(unit.stem)
         record = result.record
         record["inputs"] = [str(p) for p in unit.inputs]
         sources: dict[str, Path] = {}
+        errors = []
         for stage in self.config.stages:
             try:
                 made = STAGE_TABLE[stage].make(self, unit, result, sources)
@@ -419,14 +421,16 @@ class Runner:
                 if isinstance(exc, OSError):  # the user's environment, not a bug
                     exc = from_os_error(exc)
                 message = str(exc).splitlines()[0] if str(exc) else type(exc).__name__
-                if not isinstance(exc, FlowpipeError):
-                    message = f"{type(exc).__name__}: {message}"
-                    log.debug("%s", traceback.format_exc())
+                if not isinstance(exc, FlowpipeError):  # a bug: its traceback into the log
+                    message = (f"internal error ({type(exc).__name__}: {message}); the "
+                               f"traceback is in {LOG_NAME}: please report it")
+                    log.error("%s: %s: %s", unit.stem, stage, traceback.format_exc())
                 record["stages"][stage] = {"status": "failed", "error": message}
-                record["status"] = "failed"
-                record["error"] = f"{stage}: {message}"
+                errors.append(f"{stage}: {message}")
                 log.error("%s: %s failed: %s", unit.stem, stage, message)
-                break
+        if errors:
+            record["status"] = "failed"
+            record["error"] = "; ".join(errors)
         record.setdefault("status", "ok")
         return result
 

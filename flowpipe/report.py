@@ -119,7 +119,7 @@ def summary_line(manifest: dict[str, Any]) -> str:
     states = [state for r in units.values() for state in r.get("outputs", {}).values()]
     written, current = states.count("written"), states.count("up to date")
     head = f"{_plural(len(units), 'input')}: {len(units) - failed} done, {failed} failed"
-    if not written and current:
+    if not written and current and not failed:
         when = [manifest.get("outputs", {}).get(k, {}).get("written") for r in units.values()
                 for k in r.get("outputs", {})]
         last = max((w for w in when if w), default=None)

@@ -249,12 +249,35 @@ def test_report_counts_inputs_and_files_and_shows_what_each_file_holds(tmp_path)
     assert main(["run", "--quiet", str(config)]) == 1  # again: the good inputs are up to date
     again = _report(out)
     line = next(p for p in again.paragraphs if p.startswith("3 inputs"))
+    assert line == "3 inputs: 2 done, 1 failed; 0 files written, 4 up to date"
+    inputs[2].write_bytes(inputs[0].read_bytes())  # the bad input repaired
+    assert main(["run", "--quiet", str(config)]) == 0
+    assert main(["run", "--quiet", str(config)]) == 0  # and once more: nothing new
+    again = _report(out)
+    line = next(p for p in again.paragraphs if p.startswith("3 inputs"))
     manifest = json.loads((out / "manifest.json").read_text())
     last = max(r["written"] for r in manifest["outputs"].values())
-    assert line == (f"3 inputs: 2 done, 1 failed; nothing new: all 4 outputs up to date "
+    assert line == (f"3 inputs: 3 done, 0 failed; nothing new: all 6 outputs up to date "
                     f"(last written {last})")
     rows = {row[0]: row for row in again.rows if row}
     assert rows["model_0_decomposition.nc"][3].startswith("up to date, written ")
+
+
+def test_a_failed_stage_leaves_the_later_stages_to_run(tmp_path):
+    # configs/README.md (exit codes): a stage that fails is recorded; the stages after it
+    # still run with what was made (the maps of the decomposition here).
+    inputs = _inputs(tmp_path, 1)
+    config = _config(tmp_path, inputs, maps=True, advect=False)
+    config.write_text(config.read_text().replace(
+        "[maps]", "[advect]\nstarts = [[50.0, 10.0, 100.0]]\nhours = 6\n\n[maps]"))
+    assert main(["run", "--quiet", str(config)]) == 1
+    out = tmp_path / "out"
+    manifest = json.loads((out / "manifest.json").read_text())
+    unit = manifest["units"]["model_0"]
+    assert unit["status"] == "failed" and unit["error"].startswith("advect: ")
+    assert unit["stages"]["advect"]["status"] == "failed"
+    assert (out / "model_0_decomposition.nc").exists()
+    assert (out / "model_0_streamfunction_500.png").exists()  # maps ran after the failure
 
 
 def test_lock_refuses_a_second_run_and_takes_over_a_stale_one(tmp_path, capsys):
