@@ -291,10 +291,11 @@ def _encoding(ds: xr.Dataset, precision: str, compression: str, level: int | Non
                        dtype=np.float64)
             if "calendar" in old:
                 enc["calendar"] = old["calendar"]
-            enc["_FillValue"] = None if is_dim else FILL_FLOAT
+            # a scalar time (the run of a forecast) is never missing
+            enc["_FillValue"] = None if is_dim or not var.ndim else FILL_FLOAT
         elif var.dtype.kind == "m":  # lead times: hours, as forecast files write them
             enc.update(units="hours", dtype=np.float64, _FillValue=None)
-        elif var.dtype.kind in "US" and var.ndim:
+        elif _is_text(var) and var.ndim:
             enc["dtype"] = "S1"  # a character array: netCDF-3 has no variable-length strings
         elif is_dim or name in bounds:
             enc["_FillValue"] = None
@@ -317,6 +318,13 @@ def _encoding(ds: xr.Dataset, precision: str, compression: str, level: int | Non
             enc["chunksizes"] = chunk_sizes(tuple(map(str, var.dims)), var.shape, itemsize)
         encoding[str(name)] = enc
     return encoding
+
+
+def _is_text(var: xr.Variable) -> bool:
+    """Strings, fixed-width or as Python objects (names of contours, say)."""
+    if var.dtype.kind in "US":
+        return True
+    return var.dtype.kind == "O" and var.size > 0 and isinstance(var.values.flat[0], str)
 
 
 def _quantized(ds: xr.Dataset, encoding: dict[str, dict], digits: int) -> xr.Dataset:

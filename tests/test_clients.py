@@ -42,6 +42,8 @@ def outputs(tmp_path_factory) -> dict[str, Path]:
         "variational": ["decompose", REGIONAL, "--scheme", "variational"],
         "dirichlet": ["decompose", REGIONAL, "--scheme", "dirichlet"],
         "quantized": ["decompose", GLOBAL, "--significant-digits", "3"],
+        "circulation": ["circulation", REGIONAL, "--box", "46,56,-26,-4", "--circle",
+                        "50,-20,300"],
         "tracks": ["advect", GLOBAL, "--start", "52,4,700", "--start", "40,-170,500",
                    "--hours", "24", "--backward", "--vertical", "omega", "--sample", "ta"],
         "tracks-regional": ["advect", REGIONAL, "--start", "55,-10,850", "--start", "50,5,850",
@@ -130,7 +132,7 @@ def test_pyproj_builds_a_geographic_crs_from_the_grid_mapping(outputs, kind):
 
 
 @pytest.mark.parametrize("kind", ["spectral", "variational", "dirichlet", "quantized", "tracks",
-                                  "tracks-regional"])
+                                  "tracks-regional", "circulation"])
 def test_nccopy_classic_round_trip(outputs, kind, tmp_path):
     # netCDF-C nccopy: into the classic (netCDF-3) format and back to netCDF-4.
     classic, back = tmp_path / "classic.nc", tmp_path / "back.nc"
