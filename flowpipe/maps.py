@@ -254,9 +254,9 @@ def image_format(path: str | os.PathLike) -> str:
     suffix = Path(path).suffix.lower().lstrip(".")
     formats = image_formats()
     if suffix not in formats:
+        given = f".{suffix} is not one of them" if suffix else "the name has no suffix"
         raise UsageError(f"{path}: a map is written as {', '.join('.' + f for f in formats)}; "
-                         f"{'.' + suffix if suffix else 'no suffix'} is none of them: end the "
-                         "name in .png, say")
+                         f"{given}: end the name in .png, say")
     return suffix
 
 
