@@ -43,6 +43,7 @@ import xarray as xr
 
 from .constants import EARTH_RADIUS
 from .errors import InputError, UsageError
+from .grid import continuous_longitudes
 
 #: Contour points per grid spacing (at least).
 SAMPLES_PER_SPACING = 4
@@ -732,7 +733,9 @@ _ATTRS = {
 def _describe(ds: xr.Dataset, contours, grid, pressure, obrien, surface, top) -> None:
     nodes = [contour_nodes(c, max(grid.step * SAMPLES_PER_SPACING, 1.0)) for c in contours]
     node_lat = np.concatenate([n[0][:-1] for n in nodes])
-    node_lon = np.concatenate([(n[1][:-1] + 180.0) % 360.0 - 180.0 for n in nodes])
+    # each contour's nodes without jumps (a polygon across the date line stays simple for
+    # readers that take the coordinates as planar, CF 1.11 section 7.5 orientation checks)
+    node_lon = np.concatenate([continuous_longitudes(n[1][:-1]) for n in nodes])
     ds["node_count"] = xr.DataArray(np.array([len(n[0]) - 1 for n in nodes], dtype="i4"),
                                     dims="contour", attrs={"long_name": "count of nodes per contour",
                                                            "units": "1"})

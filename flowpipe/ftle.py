@@ -24,7 +24,7 @@ import xarray as xr
 
 from . import annotate
 from .errors import InputError, UsageError
-from .grid import describe_grid
+from .grid import continuous_longitudes, describe_grid
 from .ingest import PERIOD_ATTRS, REFERENCE_ATTRS
 from .parcels import _kernels as K
 from .parcels._advect import (
@@ -104,7 +104,7 @@ def seed_grid(wind: xr.Dataset, spacing: float | None,
     else:
         lon = west + spacing * np.arange(int(math.floor((east - west) / spacing + 1e-9)) + 1)
         if not regional:
-            lon = lon - 360.0 * np.round(lon.mean() / 360.0)
+            lon = continuous_longitudes(lon)
     if lat.size < 2 or lon.size < 2:
         raise UsageError(f"--spacing {spacing:g}: fewer than two seeds along a side of the "
                          "region; give a smaller spacing or a larger region")

@@ -206,6 +206,18 @@ class GridInfo:
         }
 
 
+def continuous_longitudes(lon: np.ndarray) -> np.ndarray:
+    """Longitudes of a limited area or a contour as one continuous run, as given where
+    possible.
+
+    Jumps of 360 degrees are removed (``numpy.unwrap``), then the whole run is shifted
+    by whole turns so that its first value lies in [-180, 180): a domain given as
+    150..230 stays 150..230, one given as 350..380 (or 350..20) becomes -10..20.
+    """
+    run = np.unwrap(np.asarray(lon, dtype=np.float64), period=360.0)
+    return run - 360.0 * np.floor((run[0] + 180.0) / 360.0)
+
+
 def _edges(centres: np.ndarray) -> np.ndarray:
     mid = 0.5 * (centres[1:] + centres[:-1])
     first = centres[0] - (mid[0] - centres[0]) if centres.size > 1 else centres[0] - 0.5

@@ -6,7 +6,8 @@ The canonical wind Dataset every stage receives:
   (ensemble members, say), ``time``, ``level``, ``latitude``, ``longitude``;
 * ``latitude`` ascending (south to north), ``longitude`` ascending; on a global
   grid longitudes lie in ``[0, 360)`` and a repeated wrap-around column is
-  dropped; on a limited-area grid they are continuous across the date line;
+  dropped; on a limited-area grid they are continuous across the date line,
+  the first in [-180, 180) (:func:`flowpipe.grid.continuous_longitudes`);
 * ``u`` and ``v`` in m s-1 with ``standard_name`` ``eastward_wind`` /
   ``northward_wind`` and the name they had in the file in ``source_name``;
 * ``omega`` (Pa s-1, ``lagrangian_tendency_of_air_pressure``) or ``w``
@@ -48,6 +49,7 @@ import xarray as xr
 from .annotate import CANONICAL_COORDINATES, iso_time
 from .choices import DEFAULT_MAX_SPEED, IMPLAUSIBLE_CHOICES
 from .errors import FlowpipeWarning, InputError, UsageError
+from .grid import continuous_longitudes
 
 #: Standard names that identify the eastward and northward wind (CF 1.11
 #: standard-name table), in order of preference.
@@ -915,7 +917,7 @@ def _orient(ds: xr.Dataset, path: Path) -> xr.Dataset:
         ds = ds.roll(longitude=-start, roll_coords=False)
         new_lon = np.roll(wrapped, -start)
     else:
-        new_lon = unwrapped - 360.0 * np.round(unwrapped.mean() / 360.0)
+        new_lon = continuous_longitudes(unwrapped)
     lon_attrs = dict(ds["longitude"].attrs, units="degrees_east", standard_name="longitude")
     lat_attrs = dict(ds["latitude"].attrs, units="degrees_north", standard_name="latitude")
     ds = ds.assign_coords(

@@ -179,6 +179,10 @@ def outputs(tmp_path_factory) -> dict[str, Path]:
             contours.box(46, 56, -26, -4), contours.circle(50, -20, 300),
             contours.read_track(ROOT / "sample_data" / "demo_storm_track.csv", 500)],
             obrien=True), False),
+        # a box across the date line and a circle round the pole: simple polygons in the
+        # planar coordinates the checker's section 7.5 orientation test uses
+        "circulation-global": (fp.circulation(wind.isel(time=slice(0, 1)), [
+            contours.box(10, 30, 350, 20), contours.circle(88, 0, 500)]), False),
     }
     options = {False: {"precision": "double"}, True: {"precision": "single"},
                "quantized": {"significant_digits": 3, "compression": "zstd"}}
@@ -194,7 +198,7 @@ def reports(outputs) -> dict[str, dict]:
 KINDS = ("global-decomposition", "regional-decomposition", "kinematics-float32",
          "trajectories-3d", "trajectories-2d", "decompose-spectral", "decompose-regional",
          "decompose-masked", "kinematics", "advect", "ftle", "decompose-quantized-zstd",
-         "decompose-wind-products", "circulation")
+         "decompose-wind-products", "circulation", "circulation-global")
 
 
 @pytest.mark.parametrize("kind", KINDS)

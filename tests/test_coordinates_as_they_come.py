@@ -109,3 +109,25 @@ def test_a_truncation_message_speaks_of_the_grid_in_words():
         fp.decompose(wind, truncation=10**6)
     assert "equiangular (with pole rows)" in str(error.value)
     assert " CC " not in str(error.value)
+
+
+@pytest.mark.parametrize(("given", "expected"), [
+    # our choice, documented in DEVELOPERS.md: as given where possible, the first value
+    # in [-180, 180), continuous across the date line
+    (np.arange(150.0, 230.1, 5.0), (150.0, 230.0)),
+    (np.r_[np.arange(150.0, 180.0, 5.0), np.arange(-180.0, -129.9, 5.0)], (150.0, 230.0)),
+    (np.r_[np.arange(350.0, 360.0, 5.0), np.arange(0.0, 20.1, 5.0)], (-10.0, 20.0)),
+])
+def test_limited_area_longitudes_keep_their_numbers(tmp_path, given, expected):
+    lat = np.arange(-10.0, 10.1, 5.0)
+    u = np.full((1, 1, lat.size, given.size), 5.0)
+    ds = xr.Dataset({"u": (("time", "lev", "lat", "lon"), u, {"units": "m s-1"}),
+                     "v": (("time", "lev", "lat", "lon"), u * 0, {"units": "m s-1"})},
+                    coords={"time": [np.datetime64("2026-01-01", "ns")],
+                            "lev": ("lev", [500.0], {"units": "hPa", "standard_name": "air_pressure"}),
+                            "lat": ("lat", lat, {"units": "degrees_north"}),
+                            "lon": ("lon", given, {"units": "degrees_east"})})
+    ds.to_netcdf(tmp_path / "box.nc")
+    lon = fp.open_wind(tmp_path / "box.nc").longitude.values
+    assert (lon[0], lon[-1]) == expected
+    assert np.all(np.diff(lon) > 0)
