@@ -21,6 +21,7 @@ from matplotlib.cm import ScalarMappable
 from matplotlib.colors import BoundaryNorm, Colormap
 from matplotlib.figure import Figure
 from matplotlib.patches import Polygon
+from shapely.geometry import Polygon as ShapelyPolygon
 
 from .contours import circle, contour_nodes
 from .errors import InputError
@@ -71,8 +72,17 @@ def circulation_figure(fig: Figure, ds: xr.Dataset, label: str, field: str | Non
     levels = _contour_levels(-top, top, signed=True)
     norm = BoundaryNorm(levels, 256)
     for (ring_lat, ring_lon), value, name in zip(rings, values, names, strict=True):
-        xyz = proj.transform_points(ccrs.Geodetic(), ring_lon, ring_lat)[:, :2]
         colour = _cmap()(norm(value)) if np.isfinite(value) else "none"
+        if _round_a_pole(ring_lon) and not _is_azimuthal(proj):
+            # On a map with a straight pole line the cap is the band between the contour
+            # and the pole, closed along the pole line (cartopy cuts it at the map's edge).
+            cap_lat, cap_lon = _closed_at_the_pole(ring_lat, ring_lon)
+            projected = proj.project_geometry(
+                ShapelyPolygon(np.column_stack([cap_lon, cap_lat])), ccrs.PlateCarree())
+            parts = getattr(projected, "geoms", [projected])
+            xyz = np.asarray(max(parts, key=lambda g: g.area).exterior.coords)
+        else:
+            xyz = proj.transform_points(ccrs.Geodetic(), ring_lon, ring_lat)[:, :2]
         ax.add_patch(Polygon(xyz, closed=True, facecolor=colour, edgecolor="black",
                              linewidth=1.0, zorder=2, label=name))
         top = xyz[np.argmax(xyz[:, 1])]  # the name just inside the contour's top
@@ -90,6 +100,30 @@ def circulation_figure(fig: Figure, ds: xr.Dataset, label: str, field: str | Non
                  fontsize=10)
     if {"time", "level"} <= set(ds.dims) and FILLED in ds:
         _sections(fig, ds)
+
+
+def _round_a_pole(lon: np.ndarray) -> bool:
+    """Whether a contour's (continuous) node longitudes go once round: it encloses a pole."""
+    return abs(float(lon[-1] - lon[0])) > 180.0
+
+
+def _closed_at_the_pole(lat: np.ndarray, lon: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """A contour round a pole as a polygon in longitude-latitude: its nodes from -180 to
+    180 degrees east, closed along the pole it encloses."""
+    pole = 90.0 if lat.mean() > 0 else -90.0
+    wrapped = (lon + 180.0) % 360.0 - 180.0
+    order = np.argsort(wrapped)
+    lon_sorted, lat_sorted = wrapped[order], lat[order]
+    edge = float(np.interp(180.0, np.r_[lon_sorted, lon_sorted[0] + 360.0],
+                           np.r_[lat_sorted, lat_sorted[0]]))
+    return (np.r_[edge, lat_sorted, edge, pole, pole],
+            np.r_[-180.0, lon_sorted, 180.0, 180.0, -180.0])
+
+
+def _is_azimuthal(proj: ccrs.Projection) -> bool:
+    """Polar caps and azimuthal areas: the pole is a point there."""
+    return isinstance(proj, (ccrs.Stereographic, ccrs.NorthPolarStereo, ccrs.SouthPolarStereo,
+                             ccrs.LambertAzimuthalEqualArea, ccrs.AzimuthalEquidistant))
 
 
 def _cmap() -> Colormap:

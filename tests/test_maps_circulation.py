@@ -136,3 +136,25 @@ def test_bad_level_and_time_name_what_is_available(files):
         maps.render(files["storm"], level=300.0)
     with pytest.raises(InputError, match="2026-01-12T00:00Z"):
         maps.render(files["storm"], time="2026-02-01T00:00")
+
+
+@pytest.mark.parametrize("projection", ["globe", "north-cap"])
+def test_a_contour_round_the_pole_is_drawn(tmp_path, projection):
+    # A circle round the north pole is the polar cap poleward of it: on the globe (a
+    # straight pole line) the band between the circle and the pole, on a polar
+    # stereographic map (the pole a point) the disc; either way it covers the pole
+    # (cartopy/PROJ transforms of the pole, read back from the drawn artists).
+    cap = fp.circulation(fp.open_wind(GLOBAL).isel(time=slice(0, 1)),
+                         [contours.circle(90, 0, 1000), contours.box(60, 80, 300, 40)])
+    path = fp.write(cap, tmp_path / "cap.nc")
+    fig = maps.render(path, size=SIZE, projection=projection)
+    ax = _map_axes(fig)
+    name = "circle 90,0,1000km"
+    drawn = [a for a in [*ax.patches, *ax.artists, *ax.collections] if a.get_label() == name]
+    assert len(drawn) == 1
+    fig.canvas.draw()
+    pole = ax.projection.transform_point(0.0, 89.99, ccrs.PlateCarree())
+    inside = ax.transData.transform(pole)
+    extent = drawn[0].get_window_extent()
+    assert extent.height > 2  # not a degenerate sliver
+    assert extent.x0 <= inside[0] <= extent.x1 and extent.y0 - 1 <= inside[1] <= extent.y1 + 1
