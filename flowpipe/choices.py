@@ -23,6 +23,8 @@ VERTICAL = {"omega": ("pressure", 0.01), "w": ("height", 1.0)}
 #: mesosphere of deep reanalyses while catching fill values and unit mistakes (1e30, knots
 #: as cm s-1, ...).
 DEFAULT_MAX_SPEED = 250.0
+#: Map projections (:func:`flowpipe.render`, ``--projection``).
+PROJECTIONS = ("auto", "globe", "north-cap", "south-cap", "area", "lat-lon")
 #: What to do with values that are not finite or faster than the limit.
 IMPLAUSIBLE_CHOICES = ("refuse", "missing")
 #: Trajectory status flag meanings, in the order of the flag values 0, 1, 2, ...

@@ -47,6 +47,7 @@ from shapely.geometry import LineString
 
 from ._version import __version__
 from .annotate import CAUTION_SHORT, iso_time
+from .choices import PROJECTIONS
 from .errors import FlowpipeWarning, InputError, UsageError
 from .ingest import (
     as_timedelta,
@@ -91,9 +92,6 @@ WIND_FOR = {
 }
 #: Preferred default fields of a decomposition file, in order.
 DEFAULT_FIELDS = ("streamfunction", "velocity_potential", "vorticity", "divergence")
-
-#: Projection names accepted by ``projection=`` and ``--projection``.
-PROJECTIONS = ("auto", "globe", "north-cap", "south-cap", "area", "lat-lon")
 
 #: Longitude span (degrees) from which a domain counts as going round the globe.
 WRAP_SPAN = 330.0

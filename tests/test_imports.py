@@ -51,3 +51,17 @@ def test_importing_changes_neither_the_backend_nor_the_environment(module):
         "print(json.dumps([backend, matplotlib.get_backend(), env == dict(os.environ)]))")
     assert found[0] == found[1] == "svg"
     assert found[2] is True
+
+
+def test_command_line_help_loads_no_numerical_library():
+    # Each command imports its libraries when it runs, so `flowpipe --help` (and a usage
+    # error) answers at once: building every parser loads none of them.
+    loaded = _python(
+        "import contextlib, io, json, sys\n"
+        "from flowpipe.cli import build_parser\n"
+        "for command in ('', 'decompose', 'advect', 'map', 'run', 'ftle', 'circulation'):\n"
+        "    with contextlib.suppress(SystemExit), contextlib.redirect_stdout(io.StringIO()):\n"
+        "        build_parser().parse_args([command, '--help'] if command else ['--help'])\n"
+        "print(json.dumps([m for m in ('numpy', 'xarray', 'scipy', 'numba', 'matplotlib')"
+        " if m in sys.modules]))")
+    assert loaded == []

@@ -4,17 +4,9 @@ from __future__ import annotations
 
 import argparse
 import re
-
-import numpy as np
-import pandas as pd
-import xarray as xr
+from typing import TYPE_CHECKING
 
 from ..choices import STATUS_MEANINGS
-from ..ingest import input_notes, open_wind
-from ..parcels import advect, read_starts
-from ..parcels.starts import parse_start
-from ..progress import TaskBar, bar
-from ..store import write
 from ._common import (
     add_input_options,
     add_output_options,
@@ -23,6 +15,12 @@ from ._common import (
     output_file,
     output_options,
 )
+
+if TYPE_CHECKING:  # the command's libraries are imported when it runs: --help stays quick
+    import pandas as pd
+    import xarray as xr
+
+    from ..progress import TaskBar
 
 
 def register(sub: argparse._SubParsersAction, common: argparse.ArgumentParser) -> argparse.ArgumentParser:
@@ -72,6 +70,10 @@ def slice_progress(wind: xr.Dataset, starts: pd.DataFrame, hours: float, backwar
     computation each), rate and time left. Out of those the trajectories span from the
     default start (the first time, or the last one backward); out of all when the starts
     give their own times."""
+    import numpy as np
+
+    from ..progress import TaskBar, bar
+
     times = wind["time"].values if "time" in wind.dims else np.zeros(1, "datetime64[s]")
     total = times.size
     if "time" not in starts or starts["time"].isna().all():
@@ -84,6 +86,14 @@ def slice_progress(wind: xr.Dataset, starts: pd.DataFrame, hours: float, backwar
 
 
 def run(args: argparse.Namespace) -> int:
+    import numpy as np
+    import pandas as pd
+
+    from ..ingest import input_notes, open_wind
+    from ..parcels import advect, read_starts
+    from ..parcels.starts import parse_start
+    from ..store import write
+
     options = output_options(args)
     if args.starts:
         starts = read_starts(args.starts)

@@ -4,10 +4,7 @@ from __future__ import annotations
 
 import argparse
 
-from ..contours import circulation, gather
 from ..errors import UsageError
-from ..ingest import open_wind
-from ..store import write
 from ._common import (
     add_forecast_options,
     add_output_options,
@@ -67,6 +64,10 @@ def register(sub: argparse._SubParsersAction, common: argparse.ArgumentParser) -
 
 
 def run(args: argparse.Namespace) -> int:
+    from ..contours import circulation, gather
+    from ..ingest import open_wind
+    from ..store import write
+
     options = output_options(args)
     if args.radius_km is not None and not args.follow:
         raise UsageError("--radius-km is the radius of --follow circles; give --follow TRACK.csv")

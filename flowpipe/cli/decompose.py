@@ -4,17 +4,10 @@ from __future__ import annotations
 
 import argparse
 import math
-
-import xarray as xr
+from typing import TYPE_CHECKING
 
 from ..choices import METHODS, SCHEMES
-from ..decompose import decompose
 from ..errors import UsageError
-from ..fields import select_fields
-from ..ingest import input_notes, open_wind
-from ..kinematics import kinematics
-from ..progress import TaskBar, bar, key_name
-from ..store import WHOLE_DIMS, write
 from ._common import (
     add_input_options,
     add_output_options,
@@ -24,6 +17,10 @@ from ._common import (
     output_options,
 )
 
+if TYPE_CHECKING:  # the command's libraries are imported when it runs: --help stays quick
+    import xarray as xr
+
+    from ..progress import TaskBar
 
 def register(sub: argparse._SubParsersAction, common: argparse.ArgumentParser) -> argparse.ArgumentParser:
     parser = sub.add_parser(
@@ -65,6 +62,9 @@ def register(sub: argparse._SubParsersAction, common: argparse.ArgumentParser) -
 def write_progress(parts: xr.Dataset, quiet: bool) -> TaskBar:
     """Slabs written (one slab: a time and level of every variable), rate and time left,
     from the tasks that store the computed chunks."""
+    from ..progress import TaskBar, bar, key_name
+    from ..store import WHOLE_DIMS
+
     slabs = math.prod(parts.sizes.get(d, 1) for d in parts.dims if d not in WHOLE_DIMS)
     return TaskBar(bar(slabs, "slab", quiet, desc="decompose"),
                    lambda key: "store-map" in key_name(key))
@@ -90,6 +90,14 @@ def _levels(text: str) -> list[float]:
 
 
 def run(args: argparse.Namespace) -> int:
+    import xarray as xr
+
+    from ..decompose import decompose
+    from ..fields import select_fields
+    from ..ingest import input_notes, open_wind
+    from ..kinematics import kinematics
+    from ..store import write
+
     options = output_options(args)
     wind = open_wind(args.files, u=args.u, v=args.v, **input_options(args))
     parts = decompose(wind, method=args.method, truncation=args.truncation, levels=args.levels,

@@ -6,9 +6,6 @@ import argparse
 import re
 
 from ..errors import UsageError
-from ..ftle import ftle
-from ..ingest import open_wind
-from ..store import write
 from ._common import (
     add_forecast_options,
     add_output_options,
@@ -58,6 +55,10 @@ def _numbers(text: str | None, option: str) -> list[float] | None:
 
 
 def run(args: argparse.Namespace) -> int:
+    from ..ftle import ftle
+    from ..ingest import open_wind
+    from ..store import write
+
     options = output_options(args)
     wind = open_wind(args.files, u=args.u, v=args.v, **forecast_options(args))
     out = ftle(wind, hours=args.hours, backward=args.backward, spacing=args.spacing,

@@ -5,9 +5,6 @@ from __future__ import annotations
 import argparse
 import json
 
-from ..ingest import expand_paths
-from ..inspection import inspect_file
-
 
 def register(sub: argparse._SubParsersAction, common: argparse.ArgumentParser) -> argparse.ArgumentParser:
     parser = sub.add_parser(
@@ -23,6 +20,9 @@ def register(sub: argparse._SubParsersAction, common: argparse.ArgumentParser) -
 
 
 def run(args: argparse.Namespace) -> int:
+    from ..ingest import expand_paths
+    from ..inspection import inspect_file
+
     for path in expand_paths(args.files):  # one report per file, globs expanded here too
         report = inspect_file(path, u=args.u, v=args.v)
         if args.json:

@@ -5,8 +5,8 @@ from __future__ import annotations
 import argparse
 import re
 
+from ..choices import PROJECTIONS
 from ..errors import UsageError
-from ..maps import PROJECTIONS, image_format, render, save
 from ._common import add_forecast_options, output_file
 
 
@@ -60,6 +60,8 @@ def parse_size(text: str) -> tuple[int, int]:
 
 
 def run(args: argparse.Namespace) -> int:
+    from ..maps import image_format, render, save
+
     if args.lead and len(args.lead) > 1:
         raise UsageError("a map shows one lead time: give --lead HOURS once (one value)")
     image_format(args.output)  # before any work

@@ -5,9 +5,6 @@ from __future__ import annotations
 import argparse
 import sys
 
-from ..pipeline import plan
-from ..pipeline import run as run_pipeline
-
 
 def register(sub: argparse._SubParsersAction, common: argparse.ArgumentParser) -> argparse.ArgumentParser:
     parser = sub.add_parser(
@@ -29,6 +26,9 @@ def register(sub: argparse._SubParsersAction, common: argparse.ArgumentParser) -
 
 
 def run(args: argparse.Namespace) -> int:
+    from ..pipeline import plan
+    from ..pipeline import run as run_pipeline
+
     if args.workers is not None and args.workers < 1:
         print("flowpipe: error: --workers must be at least 1", file=sys.stderr)
         return 2
