@@ -325,8 +325,8 @@ def ftle(
             if not clock.seconds[0] - TIME_TOLERANCE <= t <= clock.seconds[-1] + TIME_TOLERANCE:
                 raise InputError(f"{_name(wind)}: the integration from {clock.text(t0)} over "
                                  f"{hours:g} h leaves the input times {clock.text(clock.seconds[0])}"
-                                 f" .. {clock.text(clock.seconds[-1])}; shorten --hours or move "
-                                 "--start")
+                                 f" .. {clock.text(clock.seconds[-1])}; shorten the hours (--hours, "
+                                 "[ftle] hours) or move the start (--start)")
 
     grid = slice_grid(wind, kind == "global", band=kind == "band")
     winds = SliceWindow(wind, grid, True, ())

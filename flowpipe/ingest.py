@@ -1103,7 +1103,8 @@ def _source(ds: xr.Dataset) -> str:
 
 
 def _time_text(value) -> str:
-    return str(value)[:19].replace("T", " ")
+    """A time in messages, ISO 8601 to the minute as everywhere in flowpipe."""
+    return iso_time(value, "minutes")
 
 
 def _check_gaps(times: np.ndarray, owners: list[Path]) -> None:

@@ -107,7 +107,7 @@ def test_gap_in_a_series_is_refused_naming_the_neighbours(tmp_path):
     assert run.returncode == 2, run.stderr
     errors = _error_lines(run.stderr)
     assert len(errors) == 1
-    assert "2026-01-12 12:00:00 missing" in errors[0]
+    assert "2026-01-12T12:00Z missing" in errors[0]
     assert str(files[1]) in errors[0] and str(files[2]) in errors[0]
     assert "--allow-gaps" in errors[0]
     accepted = _run("decompose", *files, "--allow-gaps", "-o", tmp_path / "d.nc")
@@ -120,7 +120,7 @@ def test_three_files_with_the_middle_one_missing(tmp_path):
     # 00, 06, (12 missing), 18: the usual step 6 h is the most frequent one
     files = _series(tmp_path, [0, 1, 3])
     run = _run("decompose", *files, "-o", tmp_path / "d.nc")
-    assert run.returncode == 2 and "2026-01-12 12:00:00" in run.stderr, run.stderr
+    assert run.returncode == 2 and "2026-01-12T12:00Z" in run.stderr, run.stderr
 
 
 def test_duplicated_time_names_both_files(tmp_path):

@@ -255,8 +255,8 @@ def _resolve_starts(table: pd.DataFrame, wind: xr.Dataset, clock: _Clock, grid_k
                 raise InputError(
                     f"{origin(table, row)}: the trajectory {what} at {clock.text(t[row])}, "
                     f"outside the input times {clock.text(clock.seconds[0])} .. "
-                    f"{clock.text(clock.seconds[-1])}; shorten --hours, move the start time or "
-                    "give more input")
+                    f"{clock.text(clock.seconds[-1])}; shorten the hours (--hours, [advect] hours), "
+                    "move the start time or give more input")
     return lat, lon, level, start, outside
 
 
