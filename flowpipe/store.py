@@ -495,12 +495,12 @@ def write(ds: xr.Dataset, path: str | os.PathLike, *, precision: str = "input",
             _, *values = dask.compute(pending, *lazy.values())
         found = _late_attributes(out, lazy, values,
                                  lambda: xr.open_dataset(tmp, engine="netcdf4"))
-        if found:
+        if found or significant_digits is not None:  # one pass over the file for both
             with netCDF4.Dataset(tmp, "a") as nc:
                 for name, value in found.items():
                     nc.setncattr(name, annotate.netcdf3_value(np.asarray(value)[()]))
-        if significant_digits is not None:
-            _drop_library_quantization_attrs(tmp)
+                if significant_digits is not None:
+                    _drop_library_quantization_attrs(nc)
     return final
 
 
@@ -575,18 +575,18 @@ def _late_attributes(out: xr.Dataset, lazy: dict, values: list,
     return found
 
 
-def _drop_library_quantization_attrs(path: Path) -> None:
-    """Remove netCDF-C's own record of quantization (``_Quantize...`` attributes).
+def _drop_library_quantization_attrs(nc: netCDF4.Dataset) -> None:
+    """Remove netCDF-C's own record of quantization (``_Quantize...`` attributes) from a
+    file open for appending.
 
     The CF attributes (``quantization``, ``quantization_nsd``) say the same, and
     names beginning with an underscore are reserved (NetCDF User Guide; CF 1.11
     section 2.3), so CF checkers flag them; cfdm's writer removes them likewise.
     """
-    with netCDF4.Dataset(path, "a") as nc:
-        for var in nc.variables.values():
-            for name in var.ncattrs():
-                if name.startswith("_Quantize"):
-                    var.delncattr(name)
+    for var in nc.variables.values():
+        for name in var.ncattrs():
+            if name.startswith("_Quantize"):
+                var.delncattr(name)
 
 
 def _stored_bytes(ds: xr.Dataset, encoding: dict[str, dict]) -> tuple[int, int]:
