@@ -86,8 +86,8 @@ def select_fields(parts: xr.Dataset, wind: xr.Dataset, names: Sequence[str] | No
     if names is None:
         return parts
     available = [str(n) for n in parts.data_vars if n not in KEPT_WITH_FIELDS]
-    products = [n for n, (un, vn, _) in WIND_PRODUCTS.items()
-                if {un, vn} <= set(parts.data_vars) | ({"u", "v"} if un == "u" else set())]
+    winds = set(parts.data_vars) | {"u", "v"}  # the full wind is the input's
+    products = [n for n, (un, vn, _) in WIND_PRODUCTS.items() if {un, vn} <= winds]
     unknown = [n for n in names if n not in available and n not in products]
     if unknown:
         raise UsageError(f"--fields: {', '.join(unknown)} not written by the "

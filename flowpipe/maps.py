@@ -618,7 +618,7 @@ def _field_map(fig: Figure, ds: xr.Dataset, label: str, field: str | None, level
     proj, extent = _domain_projection(lat, lon, projection, step)
     ax = _map_axes(fig, proj, extent)
 
-    rounding, companion = _rounding_level(ds, da, field, slab)
+    rounding, companion = _rounding_level(ds, da, field, values, slab)
     values = np.where(np.abs(values) <= rounding, 0.0, values)
     if not np.any(values):  # nothing above rounding: say so rather than colour the noise
         _zero_map(ax, da, field, words, rounding, companion)
@@ -687,22 +687,23 @@ def _field_map(fig: Figure, ds: xr.Dataset, label: str, field: str | None, level
     ax.set_title(f"{title}\n{' | '.join(words)}", loc="left", fontsize=10)
 
 
-def _rounding_level(ds: xr.Dataset, da: xr.DataArray, field: str,
+def _rounding_level(ds: xr.Dataset, da: xr.DataArray, field: str, values: np.ndarray,
                     slab) -> tuple[float, str]:
     """Magnitude below which a slab's values are rounding noise, and what it is relative to.
 
     :data:`ROUNDING` (by the precision the field is stored in) of the largest
     magnitude among the slab's fields of the same units and dimensions: the
     velocity potential of a non-divergent wind is measured against the
-    streamfunction, its divergence against the vorticity.
+    streamfunction, its divergence against the vorticity. ``values`` is the slab
+    of ``field`` already read; ``slab(name)`` reads that of another field.
     """
     stored = np.dtype(da.encoding.get("dtype", da.dtype))
     relative = ROUNDING.get(stored.itemsize, ROUNDING[8]) if stored.kind == "f" else 0.0
     units = da.attrs.get("units")
-    largest, companion = 0.0, field
+    largest, companion = float(np.nanmax(np.abs(values), initial=0.0)), field  # the slab shown
     for name in ds.data_vars:
         other = ds[name]
-        if other.dims != da.dims or other.attrs.get("units") != units:
+        if name == field or other.dims != da.dims or other.attrs.get("units") != units:
             continue
         magnitude = float(np.nanmax(np.abs(np.asarray(slab(str(name)).values, dtype=float)),
                                     initial=0.0))
