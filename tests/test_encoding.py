@@ -20,7 +20,7 @@ import netCDF4
 import numpy as np
 import pytest
 import xarray as xr
-from windfiles import Encoding, encode, reference_field
+from windfiles import SMALL_LEVELS, Encoding, encode, reference_field, small_global_file
 
 import flowpipe as fp
 from flowpipe.cli import main
@@ -28,15 +28,12 @@ from flowpipe.fields import speed_and_direction
 from flowpipe.pipeline import run
 from flowpipe.store import quantization_error
 
-LAT, LON, LEVELS = np.linspace(-90, 90, 37), np.arange(0.0, 360.0, 5.0), np.array([850.0, 500.0])
-
 
 @pytest.fixture(scope="module")
 def wind_file(tmp_path_factory) -> Path:
     """A small global wind in double precision (the reference field of windfiles)."""
     directory = tmp_path_factory.mktemp("encoding")
-    (path,) = encode(reference_field(LAT, LON, LEVELS, 2), LAT, LON, LEVELS, Encoding(), directory)
-    return path
+    return small_global_file(directory, 2)
 
 
 @pytest.fixture(scope="module")
@@ -129,8 +126,8 @@ def test_packed_16_bit_input_gives_single_precision(tmp_path):
     # CF 1.11 section 8.1 packing: 16-bit integers with scale_factor hold about 4.8
     # significant digits, so single precision output keeps all they carry.
     lat, lon = np.linspace(-90, 90, 19), np.arange(0.0, 360.0, 10.0)
-    ref = reference_field(lat, lon, LEVELS, 1)
-    (path,) = encode(ref, lat, lon, LEVELS, Encoding(), tmp_path)
+    ref = reference_field(lat, lon, SMALL_LEVELS, 1)
+    (path,) = encode(ref, lat, lon, SMALL_LEVELS, Encoding(), tmp_path)
     packed = tmp_path / "packed.nc"
     with xr.open_dataset(path) as ds:
         ds.load()

@@ -17,18 +17,14 @@ import sys
 import termios
 from pathlib import Path
 
-import numpy as np
 import pytest
-from windfiles import Encoding, encode, reference_field
-
-LAT, LON, LEVELS = np.linspace(-90, 90, 37), np.arange(0.0, 360.0, 5.0), np.array([850.0, 500.0])
+from windfiles import small_global_file
 
 
 @pytest.fixture(scope="module")
 def wind_file(tmp_path_factory) -> Path:
     directory = tmp_path_factory.mktemp("progress")
-    (path,) = encode(reference_field(LAT, LON, LEVELS, 3), LAT, LON, LEVELS, Encoding(), directory)
-    return path
+    return small_global_file(directory, 3)
 
 
 def _on_terminal(args: list[str]) -> tuple[int, str]:

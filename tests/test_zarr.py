@@ -27,7 +27,7 @@ import pytest
 import xarray as xr
 import zarr
 from test_compliance import _failures, check
-from windfiles import Encoding, encode, reference_field
+from windfiles import SMALL_LAT, SMALL_LON, small_global_file
 
 import flowpipe as fp
 from flowpipe.bookkeeping import sweep_temporaries
@@ -35,14 +35,11 @@ from flowpipe.cli import main
 from flowpipe.pipeline import run
 from flowpipe.progress import key_name
 
-LAT, LON, LEVELS = np.linspace(-90, 90, 37), np.arange(0.0, 360.0, 5.0), np.array([850.0, 500.0])
-
 
 @pytest.fixture(scope="module")
 def wind_file(tmp_path_factory) -> Path:
     directory = tmp_path_factory.mktemp("zarr")
-    (path,) = encode(reference_field(LAT, LON, LEVELS, 2), LAT, LON, LEVELS, Encoding(), directory)
-    return path
+    return small_global_file(directory, 2)
 
 
 #: Global attributes stating when a file was written (ACDD-1.3 date_created, CF history).
@@ -82,7 +79,7 @@ def test_zarr_store_is_format_3_consolidated_chunked_as_the_netcdf_file(written)
             array = group[name]
             assert array.chunks == tuple(nc[name].chunking())
             if array.ndim == 4:
-                assert array.chunks[-2:] == (LAT.size, LON.size)  # whole slabs
+                assert array.chunks[-2:] == (SMALL_LAT.size, SMALL_LON.size)  # whole slabs
             (codec,) = array.compressors
             # blosc with zlib at the default level and byte shuffle, as the NetCDF file
             assert type(codec).__name__ == "BloscCodec"

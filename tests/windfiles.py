@@ -98,3 +98,16 @@ def encode(ref: dict, lat, lon, levels, encoding: Encoding, directory: Path) -> 
         )
         paths.append(path)
     return paths
+
+
+#: A small global grid (5 degrees, pole rows) on two pressure levels, for tests that
+#: need a real file rather than a particular grid.
+SMALL_LAT, SMALL_LON = np.linspace(-90, 90, 37), np.arange(0.0, 360.0, 5.0)
+SMALL_LEVELS = np.array([850.0, 500.0])
+
+
+def small_global_file(directory: Path, ntime: int) -> Path:
+    """The reference field on the small global grid, ``ntime`` times, in one file."""
+    (path,) = encode(reference_field(SMALL_LAT, SMALL_LON, SMALL_LEVELS, ntime),
+                     SMALL_LAT, SMALL_LON, SMALL_LEVELS, Encoding(), directory)
+    return path
