@@ -350,7 +350,7 @@ class Runner:
         from .maps import render, save
 
         cfg = self.config.section("maps")
-        mapped = {"decompose", "advect"} | ({"ftle"} if cfg["ftle"] else set())
+        mapped = set(STAGE_TABLE["maps"].needs) - (set() if cfg["ftle"] else {"ftle"})
         for name, source in sources.items():
             if (self.dry_run and name in mapped
                     and self._rel(source) in {p for p, _, _ in result.planned}):
@@ -476,19 +476,16 @@ class Stage:
 
     make: Callable[[Runner, Unit, UnitResult, dict[str, Path]], Path | None]
     needs: tuple[str, ...] = ()
-    #: What the stage makes, for messages and docs.
-    makes: str = ""
 
 
 #: The stages of a batch config, in the order they run (``[decompose]`` and so on; each
 #: reads the outputs of the stages it needs, when the config has them).
 STAGE_TABLE: dict[str, Stage] = {
-    "decompose": Stage(Runner.decompose, makes="the Helmholtz decomposition"),
-    "advect": Stage(Runner.advect, makes="trajectories"),
-    "ftle": Stage(Runner.ftle, makes="finite-time Lyapunov exponents"),
-    "circulation": Stage(Runner.circulation, makes="circulation and flux around contours"),
-    "maps": Stage(Runner.maps, needs=("decompose", "advect", "ftle"),
-                  makes="maps of the decomposition, the trajectories and the FTLE"),
+    "decompose": Stage(Runner.decompose),
+    "advect": Stage(Runner.advect),
+    "ftle": Stage(Runner.ftle),
+    "circulation": Stage(Runner.circulation),
+    "maps": Stage(Runner.maps, needs=("decompose", "advect", "ftle")),
 }
 
 
