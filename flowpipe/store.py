@@ -467,9 +467,18 @@ def write(ds: xr.Dataset, path: str | os.PathLike, *, precision: str = "input",
         if enc.get("dtype") == np.float32 and out[name].dtype != np.float32:
             comment = out[name].attrs.get("comment")
             out[name].attrs["comment"] = f"{comment}\n{FLOAT32_NOTE}" if comment else FLOAT32_NOTE
+    auxiliary = [str(c) for c in out.coords if c not in out.dims]
     for var in out.variables.values():
-        # the only encoding kept: the coordinates a stage names (CF 1.11 section 9 readers need them)
-        var.encoding = {"coordinates": var.encoding["coordinates"]} if "coordinates" in var.encoding else {}
+        # the only encoding kept: the coordinates a stage names (CF 1.11 section 9 readers
+        # need them), completed with the other auxiliary coordinates along the variable's
+        # dimensions (a forecast's lead along time), which xarray would otherwise move to
+        # a global attribute once a variable names its own
+        named = var.encoding.get("coordinates") or var.attrs.pop("coordinates", None)
+        if named:
+            extra = [c for c in auxiliary if c not in named.split()
+                     and set(out[c].dims) <= set(var.dims)]
+            named = " ".join([*named.split(), *extra])
+        var.encoding = {"coordinates": named} if named else {}
     # the grid mapping and cell bounds describe coordinates: scalar coordinates (the run, a
     # single level) belong to the fields, not to them (xarray would list them everywhere)
     for name in (annotate.CRS, *(v.attrs["bounds"] for v in out.variables.values()

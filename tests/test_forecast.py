@@ -316,6 +316,15 @@ def test_circulation_run_and_lead(files, tmp_path):
             np.testing.assert_allclose(back[name].isel(time=0).values,
                                        ref[name].isel(time=0).values, rtol=1e-12)
         assert not np.allclose(back.circulation.isel(time=1), back.circulation.isel(time=0))
+        assert "coordinates" not in back.attrs  # CF 1.11 section 5: per variable only
+    # cfdm (the CF data model's reference library): the forecast axes are coordinates of
+    # the per-contour fields, not fields of their own, and nothing is reported
+    import cfdm
+
+    fields = cfdm.read(str(out))
+    assert not {f.identity() for f in fields} & {"forecast_period", "forecast_reference_time"}
+    for field in fields:
+        assert set(field.dataset_compliance()) <= {"CF version"}
     bad = _flowpipe("circulation", str(files["archive"]), "--run", "2026-12-05T00Z", "-o",
                     str(tmp_path / "x.nc"), *contour)
     assert bad.returncode == 2 and "runs present" in bad.stderr
