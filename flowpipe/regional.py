@@ -190,17 +190,23 @@ def _solve_slabs(u: np.ndarray, v: np.ndarray, slab: np.ndarray, *, lat: np.ndar
     ``slab`` holds the flat index of each slab in the whole wind and ``lead`` the
     coordinates of its leading dimensions, to name a slab whose mask is refused.
     The masks are looked at here, inside the task, so that building a lazy result
-    reads no data. ``pole`` names the pole beyond the last row that closes a band
-    (see :func:`_lynch`).
+    reads no data. ``pole`` names the pole that closes a band (see :func:`_lynch`):
+    ``u``, ``v`` then include that pole row (``lat`` does not), which is not solved
+    for but gets the pole's values (:func:`_pole_values`) where it is valid.
     """
     grid = _grid(lat, lon, periodic)
     names = REGIONAL_VARIABLES
     fields = np.full(u.shape[:-2] + (len(names),) + u.shape[-2:], np.nan)
     diagnostics = np.full(u.shape[:-2] + (len(DIAGNOSTICS),), np.nan)
+    body, row = {None: (slice(None), None), "north": (slice(0, -1), -1),
+                 "south": (slice(1, None), 0)}[pole]
     for index in np.ndindex(u.shape[:-2]):
         us = np.asarray(u[index], dtype=np.float64)
         vs = np.asarray(v[index], dtype=np.float64)
+        on_pole = np.isfinite(us[row]) & np.isfinite(vs[row]) if pole else None
+        us, vs = us[body], vs[body]
         valid = np.isfinite(us) & np.isfinite(vs)
+        solved = fields[index][:, body]  # a view: the slab's rows off the pole
         pieces, small = _check_mask(valid, _slab_label(lead, int(slab[index])), grid)
         if small:
             warnings.warn(f"{small} valid points of a latitude-longitude slab lie in pieces too "
@@ -215,7 +221,7 @@ def _solve_slabs(u: np.ndarray, v: np.ndarray, slab: np.ndarray, *, lat: np.ndar
                                                 np.where(piece, vs, np.nan), scheme,
                                                 regularisation, tolerance, max_iterations, pole)
             for k, field in enumerate(names):
-                fields[index + (k,)] = np.where(piece, parts[field], fields[index + (k,)])
+                solved[k] = np.where(piece, parts[field], solved[k])
             shares.append(float(energy[piece].sum()))
             figures.append([quality[figure] for figure in DIAGNOSTICS[:4]])
             solvers |= 1 << list(SOLVERS).index(name)
@@ -223,7 +229,77 @@ def _solve_slabs(u: np.ndarray, v: np.ndarray, slab: np.ndarray, *, lat: np.ndar
         error, harmonic, rotation, iterations = np.asarray(figures).T
         diagnostics[index] = [np.sqrt(w @ error**2), w @ harmonic, np.sqrt(w @ rotation**2),
                               iterations.max(), small, solvers]
+        if pole:
+            fields[index][:, row] = np.where(on_pole, _pole_values(grid, solved, us, vs, pole),
+                                             np.nan)
     return fields, diagnostics
+
+
+def _cap_rotation(grid: StaggeredGrid, u: np.ndarray, v: np.ndarray, ring: int, sign: float
+                  ) -> tuple[float, float]:
+    """Mean vorticity and divergence of the polar cap inside a row, from the row's winds.
+
+    Stokes' theorem and the divergence theorem on the cap of angular radius ``r``
+    round the pole: circulation ``sign * sum(u) a cos(phi) dlambda`` and outflow
+    ``-sign * sum(v) a cos(phi) dlambda`` over the cap's area ``2 pi a^2 (1 - cos r)``;
+    the cap's means are the pole's values to second order in ``r``.
+    """
+    length = grid.radius * np.cos(grid.lat[ring]) * grid.dlon
+    area = 2 * np.pi * grid.radius**2 * (1.0 - np.abs(np.sin(grid.lat[ring])))
+    return (sign * float(np.sum(u[ring])) * length / area,
+            -sign * float(np.sum(v[ring])) * length / area)
+
+
+def _pole_values(grid: StaggeredGrid, fields: np.ndarray, us: np.ndarray, vs: np.ndarray,
+                 pole: str) -> np.ndarray:
+    """The decomposition at the pole closing a band, as a pole row, from the row next to it.
+
+    Parameters
+    ----------
+    grid : StaggeredGrid
+        The band without its pole row.
+    fields : numpy.ndarray
+        The decomposition on that grid, shape ``(len(REGIONAL_VARIABLES), nlat, nlon)``.
+    us, vs : numpy.ndarray
+        The wind on that grid.
+    pole : {"north", "south"}
+
+    Returns
+    -------
+    numpy.ndarray
+        Shape ``(len(REGIONAL_VARIABLES), nlon)``. Each pair of winds is the one
+        vector the row next to the pole describes (:func:`flowpipe.spectral.pole_row`),
+        seen from each meridian; vorticity and divergence are the means of the cap
+        inside that row (:func:`_cap_rotation`; of the wind, as elsewhere); the
+        streamfunction and velocity potential are single values, the row's mean
+        less the rise the cap's mean vorticity (divergence) of the rotational
+        (divergent) wind gives a potential from the pole to the row. NaN where the
+        row next to the pole is.
+
+    References
+    ----------
+    Mean of a potential on a circle of angular radius ``r`` round a point where its
+    Laplacian is ``L``: ``f(pole) - 2 a^2 L ln(cos(r / 2))`` for ``L`` constant (Gauss'
+    theorem on the cap: the potential's mean rises by ``a L tan(rho / 2)`` per unit
+    ``rho``); common practice.
+    """
+    north = pole == "north"
+    ring, sign = (-1, 1.0) if north else (0, -1.0)
+    lon = np.degrees(grid.lon)
+    k = {name: i for i, name in enumerate(REGIONAL_VARIABLES)}
+    out = np.empty((len(REGIONAL_VARIABLES), lon.size))
+    for part in ("rotational", "divergent", "harmonic"):
+        out[[k[f"u_{part}"], k[f"v_{part}"]]] = pole_row(
+            fields[k[f"u_{part}"], ring], fields[k[f"v_{part}"], ring], lon, sign)
+    out[k["vorticity"]], out[k["divergence"]] = _cap_rotation(grid, us, vs, ring, sign)
+    rise = -2.0 * grid.radius**2 * np.log(np.cos((np.pi / 2 - abs(grid.lat[ring])) / 2))
+    rotation, _ = _cap_rotation(grid, fields[k["u_rotational"]], fields[k["v_rotational"]],
+                                ring, sign)
+    _, outflow = _cap_rotation(grid, fields[k["u_divergent"]], fields[k["v_divergent"]],
+                               ring, sign)
+    out[k["streamfunction"]] = np.mean(fields[k["streamfunction"], ring]) - rise * rotation
+    out[k["velocity_potential"]] = np.mean(fields[k["velocity_potential"], ring]) - rise * outflow
+    return out
 
 
 def _solve_piece(grid: StaggeredGrid, valid: np.ndarray, us: np.ndarray, vs: np.ndarray,
@@ -491,10 +567,11 @@ def decompose_regional(wind: xr.Dataset, scheme: str = "variational", periodic: 
     # The eastward and northward directions are undefined on a pole: solve without those
     # rows and return them missing; a band's one pole row stays a point of its domain.
     pole = _closing_pole(rows.values, on_pole, periodic)
+    full = wind
     if on_pole.any():
         wind = wind.isel(latitude=np.flatnonzero(~on_pole))
     lat, lon = _check_grid(wind, periodic)
-    u, v = wind["u"], wind["v"]
+    u, v = (full["u"], full["v"]) if pole else (wind["u"], wind["v"])
     lead = {str(dim): (wind[dim].values if dim in wind.coords else u.sizes[dim])
             for dim in u.dims[:-2]}
     slab = xr.DataArray(np.arange(int(np.prod(u.shape[:-2]))).reshape(u.shape[:-2]),
@@ -541,13 +618,16 @@ def decompose_regional(wind: xr.Dataset, scheme: str = "variational", periodic: 
     )
     if scheme == "variational":
         out.attrs.update(tolerance=tolerance, max_iterations=max_iterations)
-    if on_pole.any():
+    if pole:
+        out.attrs["pole_rows"] = (
+            f"the {pole} pole is a point of the domain, not an edge: its row holds the values "
+            "at the pole (each wind the one vector the row next to it describes, seen from each "
+            "meridian), missing where the input's pole row is")
+    elif on_pole.any():
         out = out.reindex(latitude=rows)
         if wind["u"].chunks is not None:  # one chunk per slab again, as the canonical Dataset
             out = out.chunk({"latitude": -1})
-        out.attrs["pole_rows"] = "missing: wind directions are undefined on a pole" + (
-            f"; the {pole} pole is a point of the domain of the harmonic wind, not an edge"
-            if pole else "")
+        out.attrs["pole_rows"] = "missing: wind directions are undefined on a pole"
     if out["solver"].chunks is None:  # known already: the global figures
         _summarise(out)
     return out
