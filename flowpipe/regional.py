@@ -71,7 +71,12 @@ from ._poisson import (
     partition_figures,
     variational_partition,
 )
-from ._staggered import StaggeredGrid, interior_corners
+from ._staggered import (
+    StaggeredGrid,
+    corners_to_centres,
+    curl_and_divergence,
+    interior_corners,
+)
 from .annotate import global_attrs, quality_summary, variable_attrs
 from .choices import REGIONAL_VARIABLES, SCHEMES
 from .constants import EARTH_RADIUS
@@ -358,6 +363,11 @@ def _lynch(grid: StaggeredGrid, valid: np.ndarray, us: np.ndarray, vs: np.ndarra
         fields, _ = dirichlet_partition(closed, stack(us, pu), stack(vs, pv),
                                         _dirichlet(closed, np.ones(closed.shape, bool)))
     fields = {name: values[inner] for name, values in fields.items()}
+    # The wind's vorticity and divergence are the band's own, as in the variational scheme:
+    # the closed grid's corner ring next to the pole gives the pole row's wind half its weight.
+    zeta, delta = curl_and_divergence(grid, us, vs, interior_corners(grid, valid))
+    fields["vorticity"] = corners_to_centres(grid, zeta)
+    fields["divergence"] = corners_to_centres(grid, delta)
     return fields, partition_figures(grid, us, vs, fields)
 
 
