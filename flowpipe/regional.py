@@ -529,11 +529,13 @@ def decompose_regional(wind: xr.Dataset, scheme: str = "variational", periodic: 
         ``max_iterations`` for ``variational``) and the largest of each
         per-slab figure under the same names (a float in memory, a 0-d dask
         array for a lazy result, which :func:`flowpipe.write` computes with
-        the data). Rows on a pole, where wind directions are
-        undefined, are returned missing (attribute ``pole_rows``); on a band
-        with one pole row (given or missing) the pole stays a point of the
-        domain of the harmonic wind, not an edge (:func:`_lynch`; every other
-        point valid). Lazy when the wind is dask-backed.
+        the data). On a band with one pole row (given or missing) the pole
+        stays a point of the domain of the harmonic wind, not an edge
+        (:func:`_lynch`; every other point valid), and its row holds the values
+        at the pole (:func:`_pole_values`), missing where the input's pole row
+        is; other rows on a pole, where wind directions are undefined, are
+        returned missing. Attribute ``pole_rows`` says which. Lazy when the
+        wind is dask-backed.
 
     Raises
     ------
