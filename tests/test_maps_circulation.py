@@ -139,22 +139,24 @@ def test_bad_level_and_time_name_what_is_available(files):
         maps.render(files["storm"], time="2026-02-01T00:00")
 
 
-@pytest.mark.parametrize("projection", ["globe", "north-cap"])
-def test_a_contour_round_the_pole_is_drawn(tmp_path, projection):
-    # A circle round the north pole is the polar cap poleward of it: on the globe (a
-    # straight pole line) the band between the circle and the pole, on a polar
-    # stereographic map (the pole a point) the disc; either way it covers the pole
-    # (cartopy/PROJ transforms of the pole, read back from the drawn artists).
-    cap = fp.circulation(fp.open_wind(GLOBAL).isel(time=slice(0, 1)),
-                         [contours.circle(90, 0, 1000), contours.box(60, 80, 300, 40)])
+@pytest.mark.parametrize("projection,pole", [("globe", 90), ("north-cap", 90),
+                                             ("globe", -90), ("south-cap", -90)])
+def test_a_contour_round_the_pole_is_drawn(tmp_path, projection, pole):
+    # A circle round a pole is the polar cap poleward of it: on the globe (a straight pole
+    # line) the band between the circle and the pole, on a polar stereographic map (the
+    # pole a point) the disc; either way it covers the pole (cartopy/PROJ transforms of
+    # the pole, read back from the drawn artists).
+    sign = np.sign(pole)
+    cap = fp.circulation(fp.open_wind(GLOBAL).isel(time=slice(0, 1)), [
+        contours.circle(pole, 0, 1000), contours.box(*sorted([60 * sign, 80 * sign]), 300, 40)])
     path = fp.write(cap, tmp_path / "cap.nc")
     fig = maps.render(path, size=SIZE, projection=projection)
     ax = _map_axes(fig)
-    name = "circle 90,0,1000km"
+    name = f"circle {pole},0,1000km"
     drawn = [a for a in [*ax.patches, *ax.artists, *ax.collections] if a.get_label() == name]
     assert len(drawn) == 1
     fig.canvas.draw()
-    pole = ax.projection.transform_point(0.0, 89.99, ccrs.PlateCarree())
+    pole = ax.projection.transform_point(0.0, 89.99 * sign, ccrs.PlateCarree())
     inside = ax.transData.transform(pole)
     extent = drawn[0].get_window_extent()
     assert extent.height > 2  # not a degenerate sliver
