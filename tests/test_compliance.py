@@ -188,7 +188,9 @@ def outputs(tmp_path_factory) -> dict[str, Path]:
             contours.circle(76, 0, 2000), contours.circle(-76, 30, 2000),
             contours.circle(90, 0, 1556), contours.circle(-90, 0, 1556),
             contours.box(70, 90, 0, 360), contours.box(-90, -70, 0, 360),
-            contours.polygon([-70, -65, -72], [0, 120, 240], name="south polygon")]), False),
+            contours.polygon([-70, -65, -72], [0, 120, 240], name="south polygon"),
+            contours.follow(["2026-01-12T00:00", "2026-01-13T00:00"], [80, 82], [0, 40], 1500,
+                            name="polar track")]), False),
     }
     options = {False: {"precision": "double"}, True: {"precision": "single"},
                "quantized": {"significant_digits": 3, "compression": "zstd"}}
