@@ -31,6 +31,7 @@ from .choices import (
     DEFAULT_LEVEL,
     MAX_SIGNIFICANT_DIGITS,
     QUALITY_FIGURES,
+    ZARR_SUFFIX,
     encoding_refusal,
 )
 from .errors import (
@@ -69,8 +70,6 @@ FLOAT32_NOTE = ("stored in single precision (IEEE 754 binary32): relative roundi
 
 _PRECISION_TYPES = {"single": np.dtype(np.float32), "double": np.dtype(np.float64)}
 
-#: The suffix of outputs written as a Zarr store (a directory) instead of NetCDF-4.
-ZARR_SUFFIX = ".zarr"
 #: Highest level of the blosc codec Zarr stores are compressed with (blosc's clevel 0-9).
 ZARR_MAX_LEVEL = 9
 
