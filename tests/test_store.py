@@ -15,7 +15,6 @@ External references used here:
 from __future__ import annotations
 
 import os
-
 import zlib
 
 import dask
@@ -201,38 +200,47 @@ def test_scalar_coordinates_name_the_fields_not_the_grid_mapping_or_bounds(parts
             assert "coordinates" not in nc[name].ncattrs(), name
 
 
-@pytest.mark.parametrize("level", [1, 4])
+@pytest.mark.parametrize("compression, level", [("zlib", 1), ("zlib", 4), ("zstd", 1)])
 def test_chunks_compressed_in_the_tasks_read_back_as_netcdf_c_writes_them(parts, tmp_path,
-                                                                           level):
+                                                                           compression, level):
     # A lazy result's chunks are filtered by the tasks that compute them (shuffle, then
-    # deflate) and written directly; an in-memory one is written by netCDF-C itself.
-    # Both must hold the same values under the same declared filters, with chunks that
-    # Python's zlib inflates and un-shuffles to the stored values; the edge chunks of
-    # 400 tracks in chunks that do not divide them included (padded with the fill value).
+    # deflate; or Zstandard) and written directly; an in-memory one is written by
+    # netCDF-C itself. Both must hold the same values under the same declared filters,
+    # with chunks that a decoder outside flowpipe's writer turns back into the values
+    # netCDF-C reads (Python's zlib and the HDF5 shuffle byte order; zstandard), the edge
+    # chunks of 400 tracks in chunks that do not divide them included (padded with the
+    # fill value).
+    import zstandard
+
     tracks = trajectory_like(ntraj=400, nobs=31)
     for name, data in (("parts", parts), ("tracks", tracks)):
         lazy = data.chunk({dim: size for dim, size in (("time", 1), ("level", 1),
                                                        ("trajectory", 7)) if dim in data.dims})
-        fast = fp.write(lazy, tmp_path / f"{name}_lazy.nc", compression_level=level)
-        plain = fp.write(data, tmp_path / f"{name}_plain.nc", compression_level=level)
+        options = {"compression": compression, "compression_level": level}
+        fast = fp.write(lazy, tmp_path / f"{name}_lazy.nc", **options)
+        plain = fp.write(data, tmp_path / f"{name}_plain.nc", **options)
+        field = "vorticity" if name == "parts" else "ta"
         with netCDF4.Dataset(fast) as a, netCDF4.Dataset(plain) as b:
             assert a.data_model == "NETCDF4"
             for var in data.data_vars:
                 assert a[var].filters() == b[var].filters(), var
-                if a[var].filters()["zlib"]:
+                if a[var].filters()[compression]:
                     assert a[var].filters()["complevel"] == level, var
                 assert a[var].chunking() == b[var].chunking(), var
                 np.testing.assert_array_equal(a[var][...], b[var][...])
+            stored = a[field][...].filled(a[field].getncattr("_FillValue"))
         with h5py.File(fast) as h5:
-            dataset = h5["vorticity" if name == "parts" else "ta"]
+            dataset = h5[field]
             shape, dtype = dataset.chunks, dataset.dtype
             last = tuple((n - 1) // c * c for n, c in zip(dataset.shape, shape, strict=True))
             for start in ((0,) * dataset.ndim, last):
                 _, raw = dataset.id.read_direct_chunk(start)
-                values = np.frombuffer(zlib.decompress(raw), np.uint8)
-                values = values.reshape(dtype.itemsize, -1).T.copy().view(dtype).reshape(shape)
-                inside = tuple(slice(0, min(c, n - s))
+                if compression == "zlib":
+                    values = np.frombuffer(zlib.decompress(raw), np.uint8)
+                    values = values.reshape(dtype.itemsize, -1).T.copy().view(dtype)
+                else:
+                    values = np.frombuffer(zstandard.ZstdDecompressor().decompress(raw), dtype)
+                inside = tuple(slice(s, min(s + c, n))
                                for s, c, n in zip(start, shape, dataset.shape, strict=True))
-                stored = dataset[tuple(slice(s, s + c.stop) for s, c in
-                                       zip(start, inside, strict=True))]
-                np.testing.assert_array_equal(values[inside], stored)
+                within = tuple(slice(0, r.stop - r.start) for r in inside)
+                np.testing.assert_array_equal(values.reshape(shape)[within], stored[inside])
