@@ -12,13 +12,16 @@ run, alternating the sides and taking medians:
   analysis, two spin-1 and four scalar syntheses; :mod:`_transforms`);
 * the bytes written per output field against the input's bytes per field;
 * the peak resident memory of the default run on the file against that on a
-  file of four times as many slabs.
+  file of four times as many slabs;
+* ``flowpipe run`` of a config decomposing ``--batch`` copies of the file on 2
+  workers: its time per slab over the floor, against the single default run's.
 
 Targets (issue 14): default <= 2.5x, zstd <= 1.5x, Zarr <= 1.5x the floor;
-bytes per field <= 1.3x; peak memory ratio <= 1.2.
+bytes per field <= 1.3x; peak memory ratio <= 1.2; the batch's ratio within 1.2x
+of the single run's.
 
 Run: ``.venv/bin/python benchmarks/bench_throughput.py [--times 4 --levels 6]
-[--repeats 3] [--memory-factor 4]``. The full setting takes tens of minutes on 2
+[--repeats 3] [--memory-factor 4] [--batch 8]``. The full setting takes tens of minutes on 2
 cores; ``--repeats 1`` (one round, about 13 minutes here) is the documented smaller one.
 """
 
@@ -138,6 +141,7 @@ def main() -> None:
     parser.add_argument("--levels", type=int, default=6)
     parser.add_argument("--repeats", type=int, default=3)
     parser.add_argument("--memory-factor", type=int, default=4)
+    parser.add_argument("--batch", type=int, default=8, help="inputs of the flowpipe run")
     args = parser.parse_args()
     nthreads = len(os.sched_getaffinity(0))
     slabs = args.times * args.levels
@@ -147,6 +151,14 @@ def main() -> None:
         small, large = work / "in.nc", work / "in_large.nc"
         write_input(small, args.times, args.levels, 1, nthreads)
         write_input(large, args.times * args.memory_factor, args.levels, 2, nthreads)
+        batch = work / "batch"
+        batch.mkdir()
+        for k in range(args.batch):
+            os.link(small, batch / f"night_{k}.nc")  # one file under many names
+        config = work / "night.toml"
+        config.write_text(f'[input]\npaths = ["{batch}/night_*.nc"]\n\n[decompose]\n'
+                          f'output = "{{stem}}_parts.nc"\n\n[output]\ndirectory = '
+                          f'"{work / "night"}"\n\n[run]\nworkers = 2\n')
         sides = {
             "default (OUT.nc)": [*flowpipe, str(small), "-o", str(work / "out.nc")],
             "--compression zstd": [*flowpipe, str(small), "-o", str(work / "zstd.nc"),
@@ -156,6 +168,7 @@ def main() -> None:
         run_command(sides["default (OUT.nc)"])  # warm compiled caches and the disk
         seconds: dict[str, list[float]] = {name: [] for name in sides}
         floors: list[float] = []
+        batches: list[float] = []
         peaks: dict[str, list[int]] = {"small": [], "large": []}
         for _ in range(args.repeats):  # alternate the sides, one of each per round
             floors.append(floor_seconds(slabs, nthreads))
@@ -166,6 +179,8 @@ def main() -> None:
                     peaks["small"].append(peak)
             peaks["large"].append(run_command(
                 [*flowpipe, str(large), "-o", str(work / "large.nc")])[1])
+            batches.append(run_command([flowpipe[0], "run", str(config), "--force",
+                                        "--quiet"])[0])
         floor = float(np.median(floors))
         in_per_field = size_of(small) / 2
         print(f"input: {slabs} slabs of {NLAT} x {NLON} float32, {size_of(small) / 2**20:.0f} MiB; "
@@ -177,6 +192,10 @@ def main() -> None:
             per_field = size_of(out) / fields_of(out)
             print(f"{name:<22} {np.median(seconds[name]) / floor:>12.2f} "
                   f"{per_field / in_per_field:>24.2f}")
+        single = np.median(seconds["default (OUT.nc)"]) / floor
+        per_batch = np.median(batches) / (args.batch * floor)
+        print(f"flowpipe run, {args.batch} inputs on 2 workers: {per_batch:.2f} x the floor per "
+              f"slab, {per_batch / single:.2f} x the single run's")
         ratio = np.median(peaks["large"]) / np.median(peaks["small"])
         print(f"peak memory, {slabs * args.memory_factor} vs {slabs} slabs: {ratio:.2f} "
               f"({np.median(peaks['large']) / 2**20:.0f} vs {np.median(peaks['small']) / 2**20:.0f}"

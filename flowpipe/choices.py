@@ -133,6 +133,8 @@ DEFAULT_COMPRESSION = "zlib"
 DEFAULT_LEVEL = {"zlib": 1, "zstd": 1}
 #: Levels each library accepts (zlib 1-9; zstd 1-22 in netCDF-C's filter).
 LEVEL_RANGES = {"zlib": (1, 9), "zstd": (1, 22)}
+#: The suffix of outputs written as a Zarr store (a directory) instead of NetCDF-4.
+ZARR_SUFFIX = ".zarr"
 #: Significant decimal digits quantization can keep, by bytes of the stored type:
 #: single precision holds about 7 (CF section 8.4.2).
 MAX_SIGNIFICANT_DIGITS = {4: 7, 8: 15}

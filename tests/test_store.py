@@ -7,15 +7,19 @@ External references used here:
   User Guide (zlib "deflate" with the shuffle filter; ``NC_FILL_DOUBLE``);
 * POSIX ``rename(2)``: the final name refers either to the old file or to the
   complete new one (common practice for atomic replacement);
-* CF Conventions 1.11 section 2.5.1: missing data as ``_FillValue``.
+* CF Conventions 1.11 section 2.5.1: missing data as ``_FillValue``;
+* h5py (``read_direct_chunk``), the HDF5 shuffle filter's byte order and Python's
+  zlib (RFC 1950): the chunks flowpipe compresses itself decode as netCDF-C's do.
 """
 
 from __future__ import annotations
 
 import os
+import zlib
 
 import dask
 import dask.array as da
+import h5py
 import netCDF4
 import numpy as np
 import pytest
@@ -194,3 +198,49 @@ def test_scalar_coordinates_name_the_fields_not_the_grid_mapping_or_bounds(parts
         assert "forecast_reference_time" in nc["streamfunction"].coordinates.split()
         for name in ("crs", "latitude_bounds", "longitude_bounds"):
             assert "coordinates" not in nc[name].ncattrs(), name
+
+
+@pytest.mark.parametrize("compression, level", [("zlib", 1), ("zlib", 4), ("zstd", 1)])
+def test_chunks_compressed_in_the_tasks_read_back_as_netcdf_c_writes_them(parts, tmp_path,
+                                                                           compression, level):
+    # A lazy result's chunks are filtered by the tasks that compute them (shuffle, then
+    # deflate; or Zstandard) and written directly; an in-memory one is written by
+    # netCDF-C itself. Both must hold the same values under the same declared filters,
+    # with chunks that a decoder outside flowpipe's writer turns back into the values
+    # netCDF-C reads (Python's zlib and the HDF5 shuffle byte order; zstandard), the edge
+    # chunks of 400 tracks in chunks that do not divide them included (padded with the
+    # fill value).
+    import zstandard
+
+    tracks = trajectory_like(ntraj=400, nobs=31)
+    for name, data in (("parts", parts), ("tracks", tracks)):
+        lazy = data.chunk({dim: size for dim, size in (("time", 1), ("level", 1),
+                                                       ("trajectory", 7)) if dim in data.dims})
+        options = {"compression": compression, "compression_level": level}
+        fast = fp.write(lazy, tmp_path / f"{name}_lazy.nc", **options)
+        plain = fp.write(data, tmp_path / f"{name}_plain.nc", **options)
+        field = "vorticity" if name == "parts" else "ta"
+        with netCDF4.Dataset(fast) as a, netCDF4.Dataset(plain) as b:
+            assert a.data_model == "NETCDF4"
+            for var in data.data_vars:
+                assert a[var].filters() == b[var].filters(), var
+                if a[var].filters()[compression]:
+                    assert a[var].filters()["complevel"] == level, var
+                assert a[var].chunking() == b[var].chunking(), var
+                np.testing.assert_array_equal(a[var][...], b[var][...])
+            stored = a[field][...].filled(a[field].getncattr("_FillValue"))
+        with h5py.File(fast) as h5:
+            dataset = h5[field]
+            shape, dtype = dataset.chunks, dataset.dtype
+            last = tuple((n - 1) // c * c for n, c in zip(dataset.shape, shape, strict=True))
+            for start in ((0,) * dataset.ndim, last):
+                _, raw = dataset.id.read_direct_chunk(start)
+                if compression == "zlib":
+                    values = np.frombuffer(zlib.decompress(raw), np.uint8)
+                    values = values.reshape(dtype.itemsize, -1).T.copy().view(dtype)
+                else:
+                    values = np.frombuffer(zstandard.ZstdDecompressor().decompress(raw), dtype)
+                inside = tuple(slice(s, min(s + c, n))
+                               for s, c, n in zip(start, shape, dataset.shape, strict=True))
+                within = tuple(slice(0, r.stop - r.start) for r in inside)
+                np.testing.assert_array_equal(values.reshape(shape)[within], stored[inside])

@@ -173,6 +173,25 @@ def test_rewriting_a_store_replaces_it_whole(written, tmp_path):
     assert sorted(p.name for p in tmp_path.iterdir()) == ["again.zarr"]
 
 
+def test_the_command_rerun_replaces_its_store_but_not_another_directory(wind_file, tmp_path,
+                                                                         capsys):
+    # A night run again writes over its earlier store (replaced whole once complete); a
+    # directory that is no Zarr store (no zarr.json, Zarr v3 specification) is refused.
+    target = tmp_path / "night.zarr"
+    for _ in range(2):
+        assert main(["decompose", str(wind_file), "-o", str(target)]) == 0
+    assert zarr.open_group(target, mode="r").attrs["Conventions"].startswith("CF-")
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["night.zarr"]
+    plain = tmp_path / "plain.zarr"
+    plain.mkdir()
+    capsys.readouterr()
+    with pytest.raises(SystemExit) as stop:
+        main(["decompose", str(wind_file), "-o", str(plain)])
+    assert stop.value.code == 2
+    assert "not a Zarr store" in capsys.readouterr().err
+    assert list(plain.iterdir()) == []
+
+
 def _night(directory: Path, wind_file: Path) -> Path:
     config = directory / "night.toml"
     config.write_text(f'[input]\npaths = ["{wind_file}"]\n\n[decompose]\n'

@@ -6,11 +6,22 @@ import argparse
 import math
 from pathlib import Path
 
+from ..choices import ZARR_SUFFIX
+
 
 def output_file(text: str) -> str:
     """An ``-o`` argument: a file name, not a directory (checked before any work; missing
-    parent directories are created when the file is written)."""
-    if Path(text).is_dir():
+    parent directories are created when the file is written). An existing Zarr store
+    under a ``.zarr`` name is replaced when the new one is complete, as a file is."""
+    path = Path(text)
+    if path.is_dir():
+        if path.suffix == ZARR_SUFFIX:
+            from ..ingest import is_zarr_store
+
+            if is_zarr_store(path):
+                return text
+            raise argparse.ArgumentTypeError(f"{text!r} is a directory but not a Zarr store; "
+                                             "give a new name or remove it")
         raise argparse.ArgumentTypeError(f"{text!r} is a directory; give a file name in it")
     return text
 
