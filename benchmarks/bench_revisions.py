@@ -3,10 +3,16 @@
 The other revision's ``flowpipe/`` is extracted from git (``git archive``) to
 a temporary directory; each measurement runs in a fresh process of its own,
 the two sides alternately, with its own numba cache directory
-(``NUMBA_CACHE_DIR``). Printed per round and as medians:
+(``NUMBA_CACHE_DIR``) and one thread (``NUMBA_NUM_THREADS=1``). Times are
+processor seconds of the process (``time.process_time``), which other work
+on a shared machine disturbs less than the wall clock. Printed per round and
+as medians:
 
 * compile: the first ``flowpipe.advect`` call of a process whose numba cache
-  is empty (seconds; the kernels compiled, nothing loaded from the cache);
+  is empty (the kernels compiled, nothing loaded from the cache), and the
+  number of loops LLVM reports as vectorised while compiling them
+  (``--pass-remarks=loop-vectorize``; the same on both sides when the
+  kernels' loops still run in SIMD lanes);
 * global: ``advect`` of the deformational flow of Nair & Lauritzen (2010) on
   a 1 deg global grid at hourly input, classical Runge-Kutta (the
   throughput case of ``bench_advect.py``), after a warm-up call (seconds,
@@ -67,9 +73,12 @@ def worker(mode: str) -> dict:
 
     result = {"source": str(Path(flowpipe.__file__).parent)}
     if mode == "compile":
-        start = time.perf_counter()
+        import llvmlite.binding
+
+        llvmlite.binding.set_option("", "--pass-remarks=loop-vectorize")
+        start = time.process_time()
         advect(wind, [(0.0, 0.0)], 1.0, step_minutes=STEP_MINUTES)
-        result["compile"] = time.perf_counter() - start
+        result["compile"] = time.process_time() - start
         return result
     area = wind.sel(latitude=slice(-60, 60), longitude=slice(30, 150))
     cases = {
@@ -80,19 +89,22 @@ def worker(mode: str) -> dict:
         advect(field, [(0.0, 90.0)], 1.0, step_minutes=STEP_MINUTES, scheme=scheme)  # warm up
         best = float("inf")
         for _ in range(3):
-            start = time.perf_counter()
+            start = time.process_time()
             advect(field, starts, HOURS, step_minutes=STEP_MINUTES, scheme=scheme,
                    record_minutes=HOURS * 60)
-            best = min(best, time.perf_counter() - start)
+            best = min(best, time.process_time() - start)
         result[name] = best
     return result
 
 
 def _measure(tree: Path, mode: str, cache: Path) -> dict:
-    env = dict(os.environ, NUMBA_CACHE_DIR=str(cache), PYTHONPATH=str(tree))
-    out = subprocess.run([sys.executable, __file__, "--worker", mode], env=env, check=True,
-                         capture_output=True, text=True).stdout
-    result = json.loads(out.strip().splitlines()[-1])
+    env = dict(os.environ, NUMBA_CACHE_DIR=str(cache), PYTHONPATH=str(tree),
+               NUMBA_NUM_THREADS="1")
+    done = subprocess.run([sys.executable, __file__, "--worker", mode], env=env, check=True,
+                          capture_output=True, text=True)
+    result = json.loads(done.stdout.strip().splitlines()[-1])
+    if mode == "compile":
+        result["simd loops"] = done.stderr.count("vectorized loop")
     if Path(result.pop("source")) != tree / "flowpipe":
         raise RuntimeError(f"the {tree} side imported another flowpipe")
     return result
@@ -124,7 +136,8 @@ def main() -> None:
         times: dict[str, dict[str, list[float]]] = {s: {} for s in sides}
         print(f"{PARCELS} parcels, {HOURS:g} h, step {STEP_MINUTES} min; base = {args.base}, "
               f"tree = {ROOT}")
-        print(f"{'round':>5} {'measure':>8} {'base (s)':>10} {'tree (s)':>10} {'ratio':>7}")
+        print(f"{'round':>5} {'measure':>10} {'base':>10} {'tree':>10} {'ratio':>7}  "
+              "(processor seconds; loops)")
         for r in range(args.rounds):
             order = list(sides) if r % 2 == 0 else list(reversed(sides))
             got: dict[str, dict[str, float]] = {s: {} for s in sides}
@@ -136,11 +149,11 @@ def main() -> None:
                 for side in sides:
                     times[side].setdefault(name, []).append(got[side][name])
                 b, t = got["base"][name], got["tree"][name]
-                print(f"{r:>5} {name:>8} {b:>10.3f} {t:>10.3f} {t / b:>7.3f}")
+                print(f"{r:>5} {name:>10} {b:>10.3f} {t:>10.3f} {t / b:>7.3f}")
         print("medians")
         for name in times["base"]:
             ratios = [t / b for b, t in zip(times["base"][name], times["tree"][name], strict=True)]
-            print(f"{'':>5} {name:>8} {_median(times['base'][name]):>10.3f} "
+            print(f"{'':>5} {name:>10} {_median(times['base'][name]):>10.3f} "
                   f"{_median(times['tree'][name]):>10.3f} {_median(ratios):>7.3f}")
 
 

@@ -105,18 +105,15 @@ def cell_tables(latitude: np.ndarray, longitude: np.ndarray) -> CellTables:
     Returns
     -------
     CellTables
-        With the fields below.
-    sin_lat, cos_lat, inv_dlat : numpy.ndarray
-        ``sin``, ``cos`` of each latitude and the inverse of the spacing (rad)
-        to the next row (0 for the last).
-    row_guess : numpy.ndarray of int64
-        For equal bins of the pseudo-angle ``z / (|z| + rho)`` in [-1, 1], the
-        last row at or before the bin (at most the last cell).
-    sin_lon, cos_lon, inv_dlon : numpy.ndarray
-        The same for the longitudes, the last column's spacing wrapping round.
-    column_guess : numpy.ndarray of int64
-        For equal bins of the pseudo-angle of :func:`_pseudo_angle` in
-        [0, 4), the last column at or before the bin (wrapping round).
+        ``sin_lat``, ``cos_lat``, ``inv_dlat``: ``sin``, ``cos`` of each
+        latitude and the inverse of the spacing (rad) to the next row (0 for
+        the last); ``row_guess`` (int64): for equal bins of the pseudo-angle
+        ``z / (|z| + rho)`` in [-1, 1], the last row at or before the bin (at
+        most the last cell); ``sin_lon``, ``cos_lon``, ``inv_dlon``: the same
+        for the longitudes, the last column's spacing wrapping round;
+        ``column_guess`` (int64): for equal bins of the pseudo-angle of
+        :func:`_pseudo_angle` in [0, 4), the last column at or before the bin
+        (wrapping round).
 
     Raises
     ------
