@@ -23,7 +23,7 @@ as medians:
 
 The ratio is working tree / other revision: above 1 the working tree is slower.
 
-Run: ``.venv/bin/python benchmarks/bench_revisions.py [--base main] [--rounds 5]``.
+Run: ``.venv/bin/python benchmarks/bench_revisions.py [--base main] [--rounds 3]``.
 """
 
 from __future__ import annotations
@@ -119,7 +119,7 @@ def _median(values: list[float]) -> float:
 def main() -> None:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--base", default="main", help="git revision to compare with")
-    parser.add_argument("--rounds", type=int, default=5)
+    parser.add_argument("--rounds", type=int, default=3)
     parser.add_argument("--worker", choices=("compile", "run"), help=argparse.SUPPRESS)
     args = parser.parse_args()
     if args.worker:
