@@ -325,8 +325,10 @@ class VariationalSolver:
     wind : scipy.sparse.csr_array
         ``W``: the stacked potentials of the active corners to the stacked winds of
         the valid points.
+    weight : numpy.ndarray
+        ``M``: the cell areas of the valid points, once for ``u`` and once for ``v``.
     operator : scipy.sparse.linalg.LinearOperator
-        The normal equations ``W^T M W + alpha (E + pin)`` (``M`` the areas).
+        The normal equations ``W^T M W + alpha (E + pin)``.
     preconditioner : scipy.sparse.linalg.LinearOperator
         The approximate inverse of :attr:`operator` the iterations use.
 
@@ -392,7 +394,7 @@ class VariationalSolver:
         self.wind = sp.block_array([[pick[0], pick[2]], [pick[1], pick[3]]], format="csr")
         self._wind_t = self.wind.T.tocsr()
         area = np.broadcast_to(grid.centre_area, grid.shape).ravel()[rows]
-        self._weight = np.concatenate([area, area])
+        self.weight = np.concatenate([area, area])
         energy = gradient_energy(grid, active)
         corner_area = np.broadcast_to(grid.corner_area, grid.corner_shape).ravel()[self._cols]
         pin = 1e-6 * self._gravest_eigenvalue(energy, corner_area) * corner_area
@@ -405,7 +407,7 @@ class VariationalSolver:
             self.preconditioner = _each_potential(
                 separable_energy_inverse(grid, pin.reshape(grid.corner_shape)[:, 0]))
         elif kind == "coupled":
-            normal = self._wind_t @ sp.diags_array(self._weight) @ self.wind
+            normal = self._wind_t @ sp.diags_array(self.weight) @ self.wind
             self.preconditioner = sparse_lu_inverse(
                 normal + COUPLED_WEIGHT * stacked_energy, permc_spec="MMD_AT_PLUS_A",
                 diag_pivot_thresh=0.0, options={"SymmetricMode": True})
@@ -427,7 +429,7 @@ class VariationalSolver:
         """``W^T M W x + alpha (E + pin) x``; ``wind`` is ``W x`` when known already."""
         if wind is None:
             wind = self.wind @ x
-        return self._wind_t @ (self._weight.reshape((-1,) + x.shape[1:]) * wind) + (
+        return self._wind_t @ (self.weight.reshape((-1,) + x.shape[1:]) * wind) + (
             self._regulariser @ x)
 
     def solve(self, rhs: np.ndarray) -> tuple[np.ndarray, int]:
@@ -470,14 +472,14 @@ class VariationalSolver:
         rows = self.valid.ravel()
         w = rhs.reshape(2, -1)[:, rows].ravel()
         misfit = w.copy()
-        target = self.tolerance**2 * _dot(w, self._weight * w)
-        residual = self._wind_t @ (self._weight * w)
+        target = self.tolerance**2 * _dot(w, self.weight * w)
+        residual = self._wind_t @ (self.weight * w)
         x = np.zeros_like(residual)
         z = self.preconditioner.matvec(residual)
         direction = z.copy()
         rz = _dot(residual, z)
         iterations = 0
-        while iterations < self.max_iterations and _dot(misfit, self._weight * misfit) > target:
+        while iterations < self.max_iterations and _dot(misfit, self.weight * misfit) > target:
             wind = self.wind @ direction
             image = self._normal(direction, wind)
             step = rz / _dot(direction, image)
