@@ -454,20 +454,24 @@ class VariationalSolver:
         rather than :func:`scipy.sparse.linalg.cg` on :attr:`operator` and
         :attr:`preconditioner`, for two reasons measured side by side by
         ``benchmarks/bench_cg.py`` (500 x 500 complete grid, the smooth wind of
-        ``bench_regional.py``, 21 iterations on either side to the same solution):
+        ``bench_regional.py``, 21 iterations on either side, winds 4e-14 apart):
 
         * ``cg``'s inner products are ``numpy.dot``, a BLAS ``ddot`` that OpenBLAS
-          runs on several threads for vectors over 10,000 long; on the shared 2-core
-          machine ``cg`` took 2.2 times as long as this loop (median of 7, 4.76 s
-          against 2.18 s), and 0.8 times with ``OPENBLAS_NUM_THREADS=1``. The fix
+          spreads over its threads for long vectors (from memory: over 10,000
+          elements). On the shared 2-core machine, with the BLAS threads it gives,
+          ``cg`` took 2.8 and 5.2 times as long as this loop (two runs, median of 7
+          each: 5.81 s against 2.10 s, 14.2 s against 2.73 s); with
+          ``OPENBLAS_NUM_THREADS=1``, 1.07 times (the extra product below). The fix
           would be a process-wide BLAS thread limit, which a library called from
-          dask threads must not set (and ``threadpoolctl`` is not thread-safe);
+          dask threads should not set; this loop's inner products (:func:`_dot`)
+          do not use BLAS;
         * ``cg`` stops on the normal equations' residual, which bounds the wind
-          misfit only loosely (its relative misfit came out 0.09 to 0.5 times its
-          ``rtol`` on the test and benchmark winds): to stop on the misfit, as
-          :attr:`tolerance` promises, ``cg`` needs a callback with one more sparse
-          product per iteration and an exception to stop it, while this loop
-          updates the misfit from the product it already makes.
+          misfit only loosely: with ``rtol`` = :attr:`tolerance` it took 43
+          iterations to a misfit of 1.2e-8 where 21 reach 9.9e-8 (on the test
+          winds the misfit came out 0.05 to 0.5 times ``rtol``). Stopping it on the
+          misfit, as :attr:`tolerance` promises, takes a callback with one more
+          sparse product per iteration and an exception, while this loop updates
+          the misfit from the product it already makes.
         """
         rows = self.valid.ravel()
         w = rhs.reshape(2, -1)[:, rows].ravel()
