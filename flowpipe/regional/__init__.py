@@ -134,6 +134,7 @@ REFERENCES = (
     "limited and irregular domains, Mon. Wea. Rev. 134, 3384-3394; Lynch (1989), Partitioning "
     "the wind in a limited domain, Mon. Wea. Rev. 117, 1492-1500")
 
+
 def _solve_slabs(u: np.ndarray, v: np.ndarray, slab: np.ndarray, *, lat: np.ndarray,
                  lon: np.ndarray, periodic: bool, scheme: str, regularisation: float,
                  tolerance: float, max_iterations: int, lead: dict[str, np.ndarray | None],
