@@ -297,23 +297,52 @@ def _winding(lon: np.ndarray) -> int:
     return int(round((ulon[-1] - ulon[0]) / 360.0))
 
 
-def _plane_polygon(lat: np.ndarray, lon: np.ndarray, y: str):
-    """A closed ring of nodes as a shapely polygon in the (longitude, ``y``) plane.
+def plane_ring(lat: np.ndarray, lon: np.ndarray, y: str = "latitude") -> tuple[np.ndarray,
+                                                                                np.ndarray]:
+    """A ring of nodes as the boundary of its region's image in the (longitude, ``y``) plane.
 
-    ``y`` is ``"latitude"`` or ``"sine"`` (sine of latitude: the plane of Lambert's
-    cylindrical equal-area projection, where areas are proportional to areas on
-    the sphere). A ring that turns once around a pole is closed along the
-    pole's edge of the plane. Longitudes are unwrapped from the first node.
+    Parameters
+    ----------
+    lat, lon : numpy.ndarray
+        The nodes (degrees), counter-clockwise seen from above; the ring may be
+        closed (last node the first, or the first one turn east or west) or not.
+    y : str
+        ``"latitude"`` (the equirectangular plane) or ``"sine"`` (sine of latitude:
+        the plane of Lambert's cylindrical equal-area projection, where areas are
+        proportional to areas on the sphere).
+
+    Returns
+    -------
+    x, y : numpy.ndarray
+        Longitudes unwrapped from the first node, and ``y``. A ring that turns once
+        around a pole gets two more nodes, at the pole's edge of the plane
+        (latitude +-90) above its last and its first node: the plane's polygon is
+        then the image of the region, pole side included, and runs
+        counter-clockwise in the plane like the ring on the sphere (CF-1.11
+        section 7.5, exterior rings anticlockwise). Other rings are returned as
+        they are, so the function gives the same nodes when applied again.
+
+    References
+    ----------
+    Snyder (1987), Map Projections: A Working Manual, USGS Professional Paper
+    1395, sections 10 and 12 (cylindrical equal-area and equidistant projections:
+    the poles are the lines y = +-1 and latitude +-90).
     """
-    import shapely
-
     ulon = _unwrap(lon)
     turns = int(round((ulon[-1] - ulon[0]) / 360.0))
     ys = np.asarray(lat, float) if y == "latitude" else np.sin(np.radians(lat))
     if turns:
         top = np.sign(turns) * (90.0 if y == "latitude" else 1.0)
         ulon, ys = np.append(ulon, [ulon[-1], ulon[0]]), np.append(ys, [top, top])
-    return shapely.Polygon(np.column_stack([ulon, ys]))
+    return ulon, ys
+
+
+def _plane_polygon(lat: np.ndarray, lon: np.ndarray, y: str):
+    """A closed ring of nodes as a shapely polygon in the (longitude, ``y``) plane
+    (:func:`plane_ring`)."""
+    import shapely
+
+    return shapely.Polygon(np.column_stack(plane_ring(lat, lon, y)))
 
 
 def _unwrap(lon: np.ndarray) -> np.ndarray:
@@ -731,12 +760,15 @@ _ATTRS = {
 
 
 def _describe(ds: xr.Dataset, contours, grid, pressure, obrien, surface, top) -> None:
-    nodes = [contour_nodes(c, max(grid.step * SAMPLES_PER_SPACING, 1.0)) for c in contours]
-    node_lat = np.concatenate([n[0][:-1] for n in nodes])
-    # each contour's nodes without jumps (a polygon across the date line stays simple for
-    # readers that take the coordinates as planar, CF 1.11 section 7.5 orientation checks)
-    node_lon = np.concatenate([continuous_longitudes(n[1][:-1]) for n in nodes])
-    ds["node_count"] = xr.DataArray(np.array([len(n[0]) - 1 for n in nodes], dtype="i4"),
+    # each contour's nodes without jumps, a contour round a pole closed along the pole's
+    # edge (plane_ring): a simple counter-clockwise polygon for readers that take the
+    # coordinates as planar (CF 1.11 section 7.5 orientation); only drawn, the integrals
+    # use contour_nodes themselves
+    nodes = [_open(*plane_ring(*_continuous(*contour_nodes(
+        c, max(grid.step * SAMPLES_PER_SPACING, 1.0))))) for c in contours]
+    node_lon = np.concatenate([n[0] for n in nodes])
+    node_lat = np.concatenate([n[1] for n in nodes])
+    ds["node_count"] = xr.DataArray(np.array([len(n[0]) for n in nodes], dtype="i4"),
                                     dims="contour", attrs={"long_name": "count of nodes per contour",
                                                            "units": "1"})
     ds["node_latitude"] = xr.DataArray(node_lat, dims="node", attrs={
@@ -760,6 +792,18 @@ def _describe(ds: xr.Dataset, contours, grid, pressure, obrien, surface, top) ->
             + (f"; O'Brien (1970) correction to {top} Pa s-1 at the top" if obrien else ""))
     ds["vorticity_disagreement"].attrs["comment"] = "quality figure of mean_vorticity"
     ds["divergence_disagreement"].attrs["comment"] = "quality figure of mean_divergence"
+
+
+def _continuous(lat: np.ndarray, lon: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    return lat, continuous_longitudes(lon)
+
+
+def _open(x: np.ndarray, y: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """A planar ring without its last node when that repeats the first (CF-1.11 section
+    7.5 closes polygons implicitly)."""
+    same = np.isclose(x[-1], x[0], rtol=0, atol=1e-9) and np.isclose(y[-1], y[0], rtol=0,
+                                                                       atol=1e-9)
+    return (x[:-1], y[:-1]) if same else (x, y)
 
 
 def _centres(ds: xr.Dataset, contours, time: xr.DataArray) -> None:

@@ -15,15 +15,17 @@ import cartopy.crs as ccrs
 import matplotlib
 import matplotlib.dates as mdates
 import numpy as np
+import shapely
 import xarray as xr
 from matplotlib import patheffects
 from matplotlib.cm import ScalarMappable
 from matplotlib.colors import BoundaryNorm, Colormap
 from matplotlib.figure import Figure
-from matplotlib.patches import Polygon
+from matplotlib.patches import PathPatch
+from matplotlib.path import Path
 from shapely.geometry import Polygon as ShapelyPolygon
 
-from .contours import circle, contour_nodes
+from .contours import circle, contour_nodes, plane_ring
 from .errors import InputError
 from .maps import (
     DIVERGING,
@@ -73,18 +75,13 @@ def circulation_figure(fig: Figure, ds: xr.Dataset, label: str, field: str | Non
     norm = BoundaryNorm(levels, 256)
     for (ring_lat, ring_lon), value, name in zip(rings, values, names, strict=True):
         colour = _cmap()(norm(value)) if np.isfinite(value) else "none"
-        if _round_a_pole(ring_lon) and not _is_azimuthal(proj):
-            # On a map with a straight pole line the cap is the band between the contour
-            # and the pole, closed along the pole line (cartopy cuts it at the map's edge).
-            cap_lat, cap_lon = _closed_at_the_pole(ring_lat, ring_lon)
-            projected = proj.project_geometry(
-                ShapelyPolygon(np.column_stack([cap_lon, cap_lat])), ccrs.PlateCarree())
-            parts = getattr(projected, "geoms", [projected])
-            xyz = np.asarray(max(parts, key=lambda g: g.area).exterior.coords)
-        else:
-            xyz = proj.transform_points(ccrs.Geodetic(), ring_lon, ring_lat)[:, :2]
-        ax.add_patch(Polygon(xyz, closed=True, facecolor=colour, edgecolor="black",
-                             linewidth=1.0, zorder=2, label=name))
+        parts = _drawn(proj, ring_lat, ring_lon)
+        if not parts:  # off this map
+            continue
+        ax.add_patch(PathPatch(Path.make_compound_path(*[Path(xy, closed=True) for xy in parts]),
+                               facecolor=colour, edgecolor="black", linewidth=1.0, zorder=2,
+                               label=name))
+        xyz = max(parts, key=lambda xy: ShapelyPolygon(xy).area)
         top = xyz[np.argmax(xyz[:, 1])]  # the name just inside the contour's top
         ax.text(xyz[:, 0].mean(), top[1], name, fontsize=7, ha="center", va="top", zorder=4,
                 path_effects=[patheffects.withStroke(linewidth=2.0, foreground="white")])
@@ -102,28 +99,22 @@ def circulation_figure(fig: Figure, ds: xr.Dataset, label: str, field: str | Non
         _sections(fig, ds)
 
 
-def _round_a_pole(lon: np.ndarray) -> bool:
-    """Whether a contour's (continuous) node longitudes go once round: it encloses a pole."""
-    return abs(float(lon[-1] - lon[0])) > 180.0
+def _drawn(proj: ccrs.Projection, lat: np.ndarray, lon: np.ndarray) -> list[np.ndarray]:
+    """The map coordinates of a contour: the outer rings of the parts it makes on ``proj``.
 
-
-def _closed_at_the_pole(lat: np.ndarray, lon: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-    """A contour round a pole as a polygon in longitude-latitude: its nodes from -180 to
-    180 degrees east, closed along the pole it encloses."""
-    pole = 90.0 if lat.mean() > 0 else -90.0
-    wrapped = (lon + 180.0) % 360.0 - 180.0
-    order = np.argsort(wrapped)
-    lon_sorted, lat_sorted = wrapped[order], lat[order]
-    edge = float(np.interp(180.0, np.r_[lon_sorted, lon_sorted[0] + 360.0],
-                           np.r_[lat_sorted, lat_sorted[0]]))
-    return (np.r_[edge, lat_sorted, edge, pole, pole],
-            np.r_[-180.0, lon_sorted, 180.0, 180.0, -180.0])
-
-
-def _is_azimuthal(proj: ccrs.Projection) -> bool:
-    """Polar caps and azimuthal areas: the pole is a point there."""
-    return isinstance(proj, (ccrs.Stereographic, ccrs.NorthPolarStereo, ccrs.SouthPolarStereo,
-                             ccrs.LambertAzimuthalEqualArea, ccrs.AzimuthalEquidistant))
+    The contour's region in the longitude-latitude plane (:func:`contours.plane_ring`:
+    a contour round a pole closed along the pole) is projected by cartopy, which cuts
+    it at the map's edge (a box across the date line on a map centred elsewhere makes
+    two parts) and closes a cap along a straight pole line; pieces it cut along the
+    pole ring's own seam are joined again, and the holes of slivers it may leave there
+    dropped (a contour encloses no hole).
+    """
+    x, y = plane_ring(lat, lon)
+    projected = proj.project_geometry(ShapelyPolygon(np.column_stack([x, y])),
+                                      ccrs.PlateCarree())
+    merged = shapely.union_all([shapely.make_valid(g) for g in shapely.get_parts(projected)])
+    return [np.asarray(g.exterior.coords) for g in shapely.get_parts(merged)
+            if g.geom_type == "Polygon" and g.area > 0]
 
 
 def _cmap() -> Colormap:

@@ -221,6 +221,43 @@ def test_polygon_around_the_pole_and_circle_area():
     assert out.area.values[2] == pytest.approx(cap, rel=1e-4)
 
 
+def test_written_geometry_is_the_regions_planar_image_anticlockwise(tmp_path):
+    # CF-1.11 section 7.5: exterior rings anticlockwise viewed from above. Read back with
+    # xarray, each contour's nodes (longitude, latitude) must make a valid shapely polygon
+    # of positive signed area (anticlockwise, shapely.algorithms.cga.signed_area), and for
+    # contours bounded by latitude circles and meridians its planar area is the region's
+    # equirectangular image: dlambda (phi2 - phi1) square degrees (common practice); a
+    # circle centred on a pole is the cap north (south) of latitude +-(90 - r / a).
+    import shapely
+    from shapely.algorithms.cga import signed_area
+
+    import flowpipe as fp
+
+    r = 1556.0
+    rim = 90.0 - np.degrees(r * 1e3 / A)
+    cases = [(C.box(30, 60, 170, -170), 20 * 30), (C.box(70, 90, 0, 360), 360 * 20),
+             (C.box(-90, -70, 0, 360), 360 * 20), (C.box(-80, -60, 300, 20), 80 * 20),
+             (C.circle(90, 0, r), 360 * (90 - rim)), (C.circle(-90, 40, r), 360 * (90 - rim)),
+             (C.circle(76, 0, 1500), None), (C.circle(-76, 30, 2000), None),
+             (C.polygon([70, 65, 72], [0, 120, 240]), None),
+             (C.polygon([-70, -65, -72], [0, 120, 240]), None)]
+    out = C.circulation(_solid(2.0), [c for c, _ in cases])
+    with xr.open_dataset(fp.write(out, tmp_path / "g.nc")) as ds:
+        counts = ds.node_count.values
+        nodes = np.column_stack([ds.node_longitude.values, ds.node_latitude.values])
+    for (contour, planar), ring in zip(cases, np.split(nodes, np.cumsum(counts)[:-1]),
+                                       strict=True):
+        poly = shapely.Polygon(ring)
+        assert poly.is_valid, contour.name
+        assert signed_area(poly.exterior) > 0, contour.name
+        if planar is not None:
+            assert poly.area == pytest.approx(planar, rel=1e-9), contour.name
+    # the drawing nodes are only a description: the polar cap's line integral is still the
+    # solid-body value 2 pi a U cos^2(phi) (Williamson et al. 1992, test case 1)
+    cap = out.circulation.values.reshape(-1)[4]
+    assert cap == pytest.approx(2 * np.pi * A * U * np.cos(np.radians(rim)) ** 2, rel=1e-3)
+
+
 def _great_circle(lat0: float, lon0: float, heading: float, angle: np.ndarray) -> np.ndarray:
     # Unit vectors c0 cos(angle) + d0 sin(angle): uniform motion along the great circle
     # leaving (lat0, lon0) with the given heading (spherical geometry, common practice).

@@ -179,10 +179,18 @@ def outputs(tmp_path_factory) -> dict[str, Path]:
             contours.box(46, 56, -26, -4), contours.circle(50, -20, 300),
             contours.read_track(ROOT / "sample_data" / "demo_storm_track.csv", 500)],
             obrien=True), False),
-        # a box across the date line and a circle round the pole: simple polygons in the
-        # planar coordinates the checker's section 7.5 orientation test uses
+        # boxes across the date line, circles near and round either pole, boxes and a
+        # polygon round a pole: simple anticlockwise polygons in the planar coordinates the
+        # checker's section 7.5 orientation test uses (shapely's is_ccw on lon, lat)
         "circulation-global": (fp.circulation(wind.isel(time=slice(0, 1)), [
-            contours.box(10, 30, 350, 20), contours.circle(88, 0, 500)]), False),
+            contours.box(10, 30, 350, 20), contours.box(30, 60, 170, -170),
+            contours.circle(88, 0, 500), contours.circle(76, 0, 1500),
+            contours.circle(76, 0, 2000), contours.circle(-76, 30, 2000),
+            contours.circle(90, 0, 1556), contours.circle(-90, 0, 1556),
+            contours.box(70, 90, 0, 360), contours.box(-90, -70, 0, 360),
+            contours.polygon([-70, -65, -72], [0, 120, 240], name="south polygon"),
+            contours.follow(["2026-01-12T00:00", "2026-01-13T00:00"], [80, 82], [0, 40], 1500,
+                            name="polar track")]), False),
     }
     options = {False: {"precision": "double"}, True: {"precision": "single"},
                "quantized": {"significant_digits": 3, "compression": "zstd"}}

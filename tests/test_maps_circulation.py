@@ -17,8 +17,9 @@ import matplotlib.image
 import numpy as np
 import pyproj
 import pytest
+import shapely
 import xarray as xr
-from matplotlib.patches import Polygon
+from matplotlib.patches import PathPatch
 from test_compliance import GLOBAL, REGIONAL, ROOT
 
 import flowpipe as fp
@@ -52,7 +53,7 @@ def _sections(fig):
 
 
 def _patches(fig):
-    return {p.get_label(): p for p in _map_axes(fig).patches if isinstance(p, Polygon)}
+    return {p.get_label(): p for p in _map_axes(fig).patches if isinstance(p, PathPatch)}
 
 
 @pytest.mark.parametrize("key,options", [
@@ -85,7 +86,7 @@ def test_moving_circle_drawn_where_it_is_at_that_time(files):
     for time in ("2026-01-12T00:00", "2026-01-12T18:00"):
         fig = maps.render(files["storm"], size=SIZE, time=time)
         ax = _map_axes(fig)
-        xy = _patches(fig)["demo_storm_track"].get_xy()
+        xy = _patches(fig)["demo_storm_track"].get_path().vertices
         lonlat = ccrs.Geodetic().transform_points(ax.projection, xy[:, 0], xy[:, 1])
         with xr.open_dataset(files["storm"]) as ds:
             centre = ds.sel(time=np.datetime64(time)).isel(contour=1)
@@ -138,23 +139,50 @@ def test_bad_level_and_time_name_what_is_available(files):
         maps.render(files["storm"], time="2026-02-01T00:00")
 
 
-@pytest.mark.parametrize("projection", ["globe", "north-cap"])
-def test_a_contour_round_the_pole_is_drawn(tmp_path, projection):
-    # A circle round the north pole is the polar cap poleward of it: on the globe (a
-    # straight pole line) the band between the circle and the pole, on a polar
-    # stereographic map (the pole a point) the disc; either way it covers the pole
-    # (cartopy/PROJ transforms of the pole, read back from the drawn artists).
-    cap = fp.circulation(fp.open_wind(GLOBAL).isel(time=slice(0, 1)),
-                         [contours.circle(90, 0, 1000), contours.box(60, 80, 300, 40)])
+@pytest.mark.parametrize("projection,pole", [("globe", 90), ("north-cap", 90),
+                                             ("globe", -90), ("south-cap", -90)])
+def test_a_contour_round_the_pole_is_drawn(tmp_path, projection, pole):
+    # A circle round a pole is the polar cap poleward of it: on the globe (a straight pole
+    # line) the band between the circle and the pole, on a polar stereographic map (the
+    # pole a point) the disc; either way it covers the pole (cartopy/PROJ transforms of
+    # the pole, read back from the drawn artists).
+    sign = np.sign(pole)
+    cap = fp.circulation(fp.open_wind(GLOBAL).isel(time=slice(0, 1)), [
+        contours.circle(pole, 0, 1000), contours.box(*sorted([60 * sign, 80 * sign]), 300, 40)])
     path = fp.write(cap, tmp_path / "cap.nc")
     fig = maps.render(path, size=SIZE, projection=projection)
     ax = _map_axes(fig)
-    name = "circle 90,0,1000km"
+    name = f"circle {pole},0,1000km"
     drawn = [a for a in [*ax.patches, *ax.artists, *ax.collections] if a.get_label() == name]
     assert len(drawn) == 1
     fig.canvas.draw()
-    pole = ax.projection.transform_point(0.0, 89.99, ccrs.PlateCarree())
+    pole = ax.projection.transform_point(0.0, 89.99 * sign, ccrs.PlateCarree())
     inside = ax.transData.transform(pole)
     extent = drawn[0].get_window_extent()
     assert extent.height > 2  # not a degenerate sliver
     assert extent.x0 <= inside[0] <= extent.x1 and extent.y0 - 1 <= inside[1] <= extent.y1 + 1
+
+
+@pytest.mark.parametrize("centre", [0.0, 180.0])
+def test_a_box_across_the_date_line_is_drawn_as_the_box(tmp_path, centre):
+    # A box 30-60 N from 170 E to 170 W on an equal-area world map (Equal Earth, on a sphere
+    # of flowpipe's radius): the drawn patch's area is the box's, R^2 dlambda (sin phi2 -
+    # sin phi1) (area of a latitude-longitude box, common practice), not the whole band's;
+    # on a map centred on the prime meridian it is cut at the map's edge into two parts,
+    # each beside one edge, on one centred on 180 degrees it is one part.
+    box = fp.circulation(fp.open_wind(GLOBAL).isel(time=slice(0, 1)),
+                         [contours.box(30, 60, 170, -170)])
+    path = fp.write(box, tmp_path / "dateline.nc")
+    sphere = ccrs.Globe(semimajor_axis=EARTH_RADIUS, semiminor_axis=EARTH_RADIUS, ellipse=None)
+    proj = ccrs.EqualEarth(central_longitude=centre, globe=sphere)
+    fig = maps.render(path, size=SIZE, projection=proj)
+    (patch,) = _patches(fig).values()
+    parts = [shapely.Polygon(xy) for xy in patch.get_path().to_polygons()]
+    expect = EARTH_RADIUS**2 * np.radians(20.0) * (np.sin(np.radians(60)) - np.sin(np.radians(30)))
+    assert sum(p.area for p in parts) == pytest.approx(expect, rel=1e-3)
+    assert len(parts) == (2 if centre == 0.0 else 1)
+    if centre == 0.0:  # cut at the map's edge: one part 170-180 E, one 180-170 W
+        lons = [ccrs.PlateCarree().transform_points(proj, *np.asarray(p.exterior.coords).T)[:, 0]
+                for p in parts]
+        ranges = sorted((float(lo.min()), float(lo.max())) for lo in lons)
+        np.testing.assert_allclose(ranges, [(-180.0, -170.0), (170.0, 180.0)], atol=1e-6)

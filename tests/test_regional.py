@@ -12,11 +12,10 @@ import xarray as xr
 from reference_winds import case6
 
 from flowpipe import regional
-from flowpipe.regional import cache
 from flowpipe.choices import REGIONAL_VARIABLES
 from flowpipe.constants import EARTH_RADIUS
 from flowpipe.errors import InputError, UsageError
-from flowpipe.regional import decompose_regional
+from flowpipe.regional import cache, decompose_regional
 
 A = EARTH_RADIUS
 

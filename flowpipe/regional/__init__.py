@@ -64,7 +64,7 @@ from ..errors import FlowpipeWarning, InputError, UsageError
 from ..grid import describe_grid
 from . import cache
 from .operators import StaggeredGrid
-from .partitions import lynch_partition, variational_partition
+from .partitions import lynch_partition, pole_values, variational_partition
 from .pieces import MINIMUM_SIZE, check_mask, solvable_pieces
 from .solvers import DirichletSolver, VariationalSolver
 
@@ -144,17 +144,24 @@ def _solve_slabs(u: np.ndarray, v: np.ndarray, slab: np.ndarray, *, lat: np.ndar
     ``slab`` holds the flat index of each slab in the whole wind and ``lead`` the
     coordinates of its leading dimensions, to name a slab whose mask is refused.
     The masks are looked at here, inside the task, so that building a lazy result
-    reads no data. ``pole`` names the pole beyond the last row that closes a band
-    (see :func:`flowpipe.regional.partitions.lynch_partition`).
+    reads no data. ``pole`` names the pole that closes a band (see
+    :func:`flowpipe.regional.partitions.lynch_partition`):
+    ``u``, ``v`` then include that pole row (``lat`` does not), which is not solved
+    for but gets the pole's values (:func:`flowpipe.regional.partitions.pole_values`) where it is valid.
     """
     grid = cache.staggered_grid(lat, lon, periodic)
     names = REGIONAL_VARIABLES
     fields = np.full(u.shape[:-2] + (len(names),) + u.shape[-2:], np.nan)
     diagnostics = np.full(u.shape[:-2] + (len(DIAGNOSTICS),), np.nan)
+    body, row = {None: (slice(None), None), "north": (slice(0, -1), -1),
+                 "south": (slice(1, None), 0)}[pole]
     for index in np.ndindex(u.shape[:-2]):
         us = np.asarray(u[index], dtype=np.float64)
         vs = np.asarray(v[index], dtype=np.float64)
+        on_pole = np.isfinite(us[row]) & np.isfinite(vs[row]) if pole else None
+        us, vs = us[body], vs[body]
         valid = np.isfinite(us) & np.isfinite(vs)
+        solved = fields[index][:, body]  # a view: the slab's rows off the pole
         pieces, small = check_mask(valid, _slab_label(lead, int(slab[index])), grid)
         if small:
             warnings.warn(f"{small} valid points of a latitude-longitude slab lie in pieces too "
@@ -169,7 +176,7 @@ def _solve_slabs(u: np.ndarray, v: np.ndarray, slab: np.ndarray, *, lat: np.ndar
                                                 np.where(piece, vs, np.nan), scheme,
                                                 regularisation, tolerance, max_iterations, pole)
             for k, field in enumerate(names):
-                fields[index + (k,)] = np.where(piece, parts[field], fields[index + (k,)])
+                solved[k] = np.where(piece, parts[field], solved[k])
             shares.append(float(energy[piece].sum()))
             figures.append([quality[figure] for figure in DIAGNOSTICS[:4]])
             solvers |= 1 << list(SOLVERS).index(name)
@@ -177,6 +184,9 @@ def _solve_slabs(u: np.ndarray, v: np.ndarray, slab: np.ndarray, *, lat: np.ndar
         error, harmonic, rotation, iterations = np.asarray(figures).T
         diagnostics[index] = [np.sqrt(w @ error**2), w @ harmonic, np.sqrt(w @ rotation**2),
                               iterations.max(), small, solvers]
+        if pole:
+            fields[index][:, row] = np.where(on_pole, pole_values(grid, solved, us, vs, pole),
+                                             np.nan)
     return fields, diagnostics
 
 
@@ -284,11 +294,13 @@ def decompose_regional(wind: xr.Dataset, scheme: str = "variational", periodic: 
         ``max_iterations`` for ``variational``) and the largest of each
         per-slab figure under the same names (a float in memory, a 0-d dask
         array for a lazy result, which :func:`flowpipe.write` computes with
-        the data). Rows on a pole, where wind directions are
-        undefined, are returned missing (attribute ``pole_rows``); on a band
-        with one pole row (given or missing) the pole stays a point of the
-        domain of the harmonic wind, not an edge (:func:`.partitions.lynch_partition`; every other
-        point valid). Lazy when the wind is dask-backed.
+        the data). On a band with one pole row (given or missing) the pole
+        stays a point of the domain of the harmonic wind, not an edge
+        (:func:`.partitions.lynch_partition`; every other point valid), and its row holds the values
+        at the pole (:func:`.partitions.pole_values`), missing where the input's pole row
+        is; other rows on a pole, where wind directions are undefined, are
+        returned missing. Attribute ``pole_rows`` says which. Lazy when the
+        wind is dask-backed.
 
     Raises
     ------
@@ -332,10 +344,11 @@ def decompose_regional(wind: xr.Dataset, scheme: str = "variational", periodic: 
     # The eastward and northward directions are undefined on a pole: solve without those
     # rows and return them missing; a band's one pole row stays a point of its domain.
     pole = _closing_pole(rows.values, on_pole, periodic)
+    full = wind
     if on_pole.any():
         wind = wind.isel(latitude=np.flatnonzero(~on_pole))
     lat, lon = _check_grid(wind, periodic)
-    u, v = wind["u"], wind["v"]
+    u, v = (full["u"], full["v"]) if pole else (wind["u"], wind["v"])
     lead = {str(dim): (wind[dim].values if dim in wind.coords else u.sizes[dim])
             for dim in u.dims[:-2]}
     slab = xr.DataArray(np.arange(int(np.prod(u.shape[:-2]))).reshape(u.shape[:-2]),
@@ -382,13 +395,16 @@ def decompose_regional(wind: xr.Dataset, scheme: str = "variational", periodic: 
     )
     if scheme == "variational":
         out.attrs.update(tolerance=tolerance, max_iterations=max_iterations)
-    if on_pole.any():
+    if pole:
+        out.attrs["pole_rows"] = (
+            f"the {pole} pole is a point of the domain, not an edge: its row holds the values "
+            "at the pole (each wind the one vector the row next to it describes, seen from each "
+            "meridian), missing where the input's pole row is")
+    elif on_pole.any():
         out = out.reindex(latitude=rows)
         if wind["u"].chunks is not None:  # one chunk per slab again, as the canonical Dataset
             out = out.chunk({"latitude": -1})
-        out.attrs["pole_rows"] = "missing: wind directions are undefined on a pole" + (
-            f"; the {pole} pole is a point of the domain of the harmonic wind, not an edge"
-            if pole else "")
+        out.attrs["pole_rows"] = "missing: wind directions are undefined on a pole"
     if out["solver"].chunks is None:  # known already: the global figures
         _summarise(out)
     return out

@@ -6,13 +6,15 @@ values and leaves the rest of the wind as the harmonic part, and
 (Li, Chao & McWilliams 2006) takes the least-squares potentials of a
 :class:`flowpipe.regional.solvers.VariationalSolver`. Each works on one connected
 piece of valid points (:mod:`flowpipe.regional.pieces`) and returns the fields and
-the quality figures of the piece.
+the quality figures of the piece; ``pole_values`` gives a band's pole row the values
+at the pole.
 """
 
 from __future__ import annotations
 
 import numpy as np
 
+from ..choices import REGIONAL_VARIABLES
 from ..spectral import pole_row
 from . import cache
 from .operators import StaggeredGrid, corners_to_centres, curl_and_divergence, interior_corners
@@ -251,4 +253,76 @@ def lynch_partition(grid: StaggeredGrid, valid: np.ndarray, us: np.ndarray, vs: 
         fields, _ = dirichlet_partition(closed, stack(us, pu), stack(vs, pv),
                                         cache.dirichlet(closed, np.ones(closed.shape, bool)))
     fields = {name: values[inner] for name, values in fields.items()}
+    # The wind's vorticity and divergence are the band's own, as in the variational scheme:
+    # the closed grid's corner ring next to the pole gives the pole row's wind half its weight.
+    zeta, delta = curl_and_divergence(grid, us, vs, interior_corners(grid, valid))
+    fields["vorticity"] = corners_to_centres(grid, zeta)
+    fields["divergence"] = corners_to_centres(grid, delta)
     return fields, partition_figures(grid, us, vs, fields)
+
+
+def _cap_rotation(grid: StaggeredGrid, u: np.ndarray, v: np.ndarray, ring: int, sign: float
+                  ) -> tuple[float, float]:
+    """Mean vorticity and divergence of the polar cap inside a row, from the row's winds.
+
+    Stokes' theorem and the divergence theorem on the cap of angular radius ``r``
+    round the pole: circulation ``sign * sum(u) a cos(phi) dlambda`` and outflow
+    ``-sign * sum(v) a cos(phi) dlambda`` over the cap's area ``2 pi a^2 (1 - cos r)``;
+    the cap's means are the pole's values to second order in ``r``.
+    """
+    length = grid.radius * np.cos(grid.lat[ring]) * grid.dlon
+    area = 2 * np.pi * grid.radius**2 * (1.0 - np.abs(np.sin(grid.lat[ring])))
+    return (sign * float(np.sum(u[ring])) * length / area,
+            -sign * float(np.sum(v[ring])) * length / area)
+
+
+def pole_values(grid: StaggeredGrid, fields: np.ndarray, us: np.ndarray, vs: np.ndarray,
+                pole: str) -> np.ndarray:
+    """The decomposition at the pole closing a band, as a pole row, from the row next to it.
+
+    Parameters
+    ----------
+    grid : StaggeredGrid
+        The band without its pole row.
+    fields : numpy.ndarray
+        The decomposition on that grid, shape ``(len(REGIONAL_VARIABLES), nlat, nlon)``.
+    us, vs : numpy.ndarray
+        The wind on that grid.
+    pole : {"north", "south"}
+
+    Returns
+    -------
+    numpy.ndarray
+        Shape ``(len(REGIONAL_VARIABLES), nlon)``. Each pair of winds is the one
+        vector the row next to the pole describes (:func:`flowpipe.spectral.pole_row`),
+        seen from each meridian; vorticity and divergence are the means of the cap
+        inside that row (:func:`_cap_rotation`; of the wind, as elsewhere); the
+        streamfunction and velocity potential are single values, the row's mean
+        less the rise the cap's mean vorticity (divergence) of the rotational
+        (divergent) wind gives a potential from the pole to the row. NaN where the
+        row next to the pole is.
+
+    References
+    ----------
+    Mean of a potential on a circle of angular radius ``r`` round a point where its
+    Laplacian is ``L``: ``f(pole) - 2 a^2 L ln(cos(r / 2))`` for ``L`` constant (Gauss'
+    theorem on the cap: the potential's mean rises by ``a L tan(rho / 2)`` per unit
+    ``rho``); common practice.
+    """
+    north = pole == "north"
+    ring, sign = (-1, 1.0) if north else (0, -1.0)
+    lon = np.degrees(grid.lon)
+    k = {name: i for i, name in enumerate(REGIONAL_VARIABLES)}
+    out = np.empty((len(REGIONAL_VARIABLES), lon.size))
+    for part in ("rotational", "divergent", "harmonic"):
+        out[[k[f"u_{part}"], k[f"v_{part}"]]] = pole_row(
+            fields[k[f"u_{part}"], ring], fields[k[f"v_{part}"], ring], lon, sign)
+    out[k["vorticity"]], out[k["divergence"]] = _cap_rotation(grid, us, vs, ring, sign)
+    rise = -2.0 * grid.radius**2 * np.log(np.cos((np.pi / 2 - abs(grid.lat[ring])) / 2))
+    rotation, _ = _cap_rotation(grid, fields[k["u_rotational"]], fields[k["v_rotational"]],
+                                ring, sign)
+    _, outflow = _cap_rotation(grid, fields[k["u_divergent"]], fields[k["v_divergent"]],
+                               ring, sign)
+    out[k["streamfunction"]] = np.mean(fields[k["streamfunction"], ring]) - rise * rotation
+    out[k["velocity_potential"]] = np.mean(fields[k["velocity_potential"], ring]) - rise * outflow
+    return out
