@@ -157,11 +157,11 @@ def main() -> None:
           f"(timed on {args.baseline_levels} level(s), scaled to {args.levels}: "
           f"{base_level * args.levels:,.0f} s)")
     for scheme in regional.SCHEMES:
-        regional._cache.clear()
+        regional.cache.clear()
         with dask.config.set(scheduler="synchronous"):
             t_first, m_first, tm_first, out1 = timed(lambda s=scheme: regional.decompose_regional(
                 one, scheme=s))
-            regional._cache.clear()
+            regional.cache.clear()
             t_all, m_all, tm_all, out = timed(lambda s=scheme: regional.decompose_regional(
                 wind, scheme=s).compute())
         per_level = t_all / args.levels
@@ -190,7 +190,7 @@ def masked_level(n: int) -> None:
     v[ground] = np.nan
     dims = ("latitude", "longitude")
     wind = xr.Dataset({"u": (dims, u), "v": (dims, v)}, coords={"latitude": lat, "longitude": lon})
-    regional._cache.clear()
+    regional.cache.clear()
     t_first, m_first, _, out = timed(lambda: regional.decompose_regional(wind))
     t_again, _, _, _ = timed(lambda: regional.decompose_regional(wind))
     print(f"masked {n} x {n} (block below ground), variational: first level {t_first:6.2f} s "

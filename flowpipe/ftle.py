@@ -38,6 +38,7 @@ from .parcels._advect import (
     _iso,
     _name,
     _schedule,
+    _settings,
     _steps,
 )
 from .parcels._geometry import unit_vectors
@@ -343,6 +344,7 @@ def ftle(
             raise UsageError(f"--step-minutes {step_minutes:g}: give a positive step no longer "
                              "than the input interval")
     schedule = _schedule(total, step, record)
+    settings = _settings(grid, 0.0, scheme)  # seeds stay on their levels
 
     nlev, nlat, nlon = chosen.size, lat.size, lon.size
     stencil = _stencil(nlev, nlat, nlon, wraps, lat)
@@ -355,12 +357,12 @@ def ftle(
     dirs = np.full((len(starts), n, 2), np.nan)
     for s, ts in enumerate(starts):
         _one_start(initial, seed_level, stencil, float(ts), sign, schedule, clock, winds, grid,
-                   SCHEMES[scheme], complete_only, fields[s], used[s], dirs[s])
+                   settings, complete_only, fields[s], used[s], dirs[s])
     return _dataset(wind, clock, starts, chosen, has_levels, lat, lon, fields, used, dirs,
                     hours, backward, step, complete_only)
 
 
-def _one_start(initial, seed_level, stencil, t0, sign, schedule, clock, winds, grid, scheme,
+def _one_start(initial, seed_level, stencil, t0, sign, schedule, clock, winds, grid, settings,
                complete_only, out, used, dirs) -> None:
     """Advect every seed from ``t0``; fill the FTLE, its time and direction per seed."""
     pos = initial.copy()
@@ -391,7 +393,7 @@ def _one_start(initial, seed_level, stencil, t0, sign, schedule, clock, winds, g
         previous["pos"][alive] = pos[alive]
         previous["t"], previous["alive"] = t, alive
 
-    _steps(pos, lev, status, t0, sign, schedule, clock, winds, grid, 0.0, scheme, record)
+    _steps(K.Parcels(pos, lev, status), t0, sign, schedule, clock, winds, grid, settings, record)
     rest = np.flatnonzero(~done)
     evaluate(rest, previous["pos"], abs(previous["t"] - t0))
 

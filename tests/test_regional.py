@@ -15,7 +15,7 @@ from flowpipe import regional
 from flowpipe.choices import REGIONAL_VARIABLES
 from flowpipe.constants import EARTH_RADIUS
 from flowpipe.errors import InputError, UsageError
-from flowpipe.regional import decompose_regional
+from flowpipe.regional import cache, decompose_regional
 
 A = EARTH_RADIUS
 
@@ -286,14 +286,16 @@ def test_fast_poisson_solver_matches_a_sparse_direct_solve():
     # (Hockney 1965, J. ACM 12, 95-113: the transform method solves the same linear system).
     import scipy.sparse.linalg as spla
 
-    from flowpipe._poisson import SeparableDirichletSolver
-    from flowpipe._staggered import StaggeredGrid
+    from flowpipe.regional.operators import StaggeredGrid
+    from flowpipe.regional.solvers import dirichlet_solver
 
     rng = np.random.default_rng(5)
     for periodic, lon in ((False, np.linspace(-20, 20, 33)), (True, np.arange(0, 360, 7.5))):
         grid = StaggeredGrid(np.radians(np.linspace(10, 60, 27)), np.radians(lon), A, periodic)
         rhs = rng.standard_normal(grid.corner_shape)
-        fast = SeparableDirichletSolver(grid).solve(rhs)
+        solver = dirichlet_solver(grid, np.ones(grid.shape, dtype=bool))
+        assert solver.name == solver.names["separable"]
+        fast, _ = solver.solve(rhs)
         inner = np.zeros(grid.corner_shape, dtype=bool)
         inner[1:-1] = True
         if not periodic:
@@ -376,17 +378,17 @@ def test_masked_preconditioners_reach_the_same_least_energy_split(monkeypatch):
     # preconditioner's metric (Hansen 1998, "Rank-Deficient and Discrete Ill-Posed Problems",
     # SIAM, section 6.3): the coupled and the uncoupled preconditioner keep the same metric on
     # the null space, so both give one split, within the iteration tolerance.
-    from flowpipe import _poisson
+    from flowpipe.regional import solvers
 
     lat, lon, u, v, _, _ = box_case(0.5)
     valid = coastline_mask(lat, lon)
     u_m, v_m = np.where(valid, u, np.nan), np.where(valid, v, np.nan)
-    regional._cache.clear()
+    cache.clear()
     coupled = decompose_regional(as_wind(lat, lon, u_m, v_m))
-    monkeypatch.setattr(_poisson, "COUPLED_LIMIT", 0)
-    regional._cache.clear()
+    monkeypatch.setattr(solvers, "COUPLED_LIMIT", 0)
+    cache.clear()
     uncoupled = decompose_regional(as_wind(lat, lon, u_m, v_m))
-    regional._cache.clear()
+    cache.clear()
     assert coupled.attrs["solver"] != uncoupled.attrs["solver"]
     assert uncoupled.attrs["iterations"] > 10 * coupled.attrs["iterations"]
     scale = np.nanmax(np.hypot(u_m, v_m))
@@ -460,8 +462,8 @@ def test_periodic_grid_is_connected_across_the_date_line():
     out = decompose_regional(as_wind(lat, lon, u_m, v_m), periodic=True)
     assert reconstruction_error(out, u_m, v_m) <= 1e-6
     assert "points_left_missing" not in out.attrs
-    assert len(regional.solvable_pieces(np.isfinite(u_m), regional._grid(lat, lon, True))[0]) == 1
-    assert len(regional.solvable_pieces(np.isfinite(u_m), regional._grid(lat, lon, False))[0]) == 2
+    assert len(regional.solvable_pieces(np.isfinite(u_m), cache.staggered_grid(lat, lon, True))[0]) == 1
+    assert len(regional.solvable_pieces(np.isfinite(u_m), cache.staggered_grid(lat, lon, False))[0]) == 2
 
 
 # --- bad input -------------------------------------------------------------------------------
@@ -569,7 +571,7 @@ def test_levels_are_lazy_and_share_one_factorisation(monkeypatch, masked):
         original(self, *args, **kwargs)
 
     monkeypatch.setattr(regional.VariationalSolver, "__init__", counting)
-    regional._cache.clear()
+    cache.clear()
     out = decompose_regional(wind)
     assert out["streamfunction"].chunks is not None
     assert built == []
@@ -644,20 +646,21 @@ def test_harmonic_rotation_reports_a_poisson_solve_gone_wrong(monkeypatch):
     # A solver that returns half the solution leaves half the vorticity and divergence in
     # the "harmonic" wind, which the figure must report (and which the reconstruction
     # error, zero by construction for this scheme, cannot).
-    from flowpipe import _poisson
+    from flowpipe.regional import solvers
 
     class Halved:
         def __init__(self, solver):
             self.solver, self.name = solver, solver.name
 
         def solve(self, rhs):
-            return 0.5 * self.solver.solve(rhs)
+            x, iterations = self.solver.solve(rhs)
+            return 0.5 * x, iterations
 
     lat, lon, u, v, _, _ = box_case(0.5)
-    regional._cache.clear()
-    monkeypatch.setattr(regional, "dirichlet_solver",
-                        lambda grid, valid: Halved(_poisson.dirichlet_solver(grid, valid)))
+    cache.clear()
+    monkeypatch.setattr(cache, "dirichlet_solver",
+                        lambda grid, valid: Halved(solvers.dirichlet_solver(grid, valid)))
     broken = decompose_regional(as_wind(lat, lon, u, v), scheme="dirichlet")
-    regional._cache.clear()
+    cache.clear()
     assert broken.attrs["reconstruction_error"] == 0.0
     assert broken.attrs["harmonic_rotation"] >= 0.3

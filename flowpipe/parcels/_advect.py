@@ -442,11 +442,10 @@ def advect(
     n = lat.size
     rows_all = n * len(ensemble)  # member after member
     nobs = schedule.offsets.size
-    out_lat = np.full((rows_all, nobs), np.nan)
-    out_lon = np.full((rows_all, nobs), np.nan)
-    out_level = np.full((rows_all, nobs), np.nan)
-    out_sample = np.full((rows_all, nobs, len(sample)), np.nan)
-    out_speed = np.full((rows_all, nobs), np.nan)
+    tracks = _Tracks(*(np.full((rows_all, nobs), np.nan) for _ in range(3)),
+                     np.full((rows_all, nobs, len(sample)), np.nan),
+                     np.full((rows_all, nobs), np.nan))
+    settings = _settings(grid, vertical_scale, scheme)
     status = np.full(rows_all, K.ACTIVE, dtype=np.int8)
     level_for = level if raw_levels is not None else np.zeros(n)
     for k, member in enumerate(ensemble):
@@ -455,26 +454,24 @@ def advect(
         # starts outside the domain keep their position at 0 h and go no further
         rows = np.flatnonzero(outside) + k * n  # rows of the output, member after member
         status[rows] = K.OUTSIDE_AT_START
-        out_lat[rows, 0], out_lon[rows, 0] = lat[outside], lon[outside]
-        out_level[rows, 0] = level_for[outside]
+        tracks.lat[rows, 0], tracks.lon[rows, 0] = lat[outside], lon[outside]
+        tracks.level[rows, 0] = level_for[outside]
         for t0 in np.unique(start[~outside]):
             group = np.flatnonzero((start == t0) & ~outside)
             members = group + k * n
-            pos = unit_vectors(lat[group], lon[group])
-            lev = level_for[group].copy()
-            st = status[members]
-            _integrate(pos, lev, st, float(t0), sign, schedule, clock, winds, samples, grid,
-                       vertical_scale, SCHEMES[scheme], out_lat, out_lon, out_level, out_sample,
-                       out_speed, members)
-            status[members] = st
+            parcels = K.Parcels(unit_vectors(lat[group], lon[group]), level_for[group].copy(),
+                                status[members])
+            _integrate(parcels, float(t0), sign, schedule, clock, winds, samples, grid, settings,
+                       tracks, members)
+            status[members] = parcels.status
         del winds, samples
     status[status == K.ACTIVE] = K.COMPLETED
     realization = (np.repeat(wind["realization"].values, n)
                    if "realization" in wind["u"].dims else None)
 
     return _trajectory_dataset(
-        wind, clock, np.tile(start, len(ensemble)), sign, schedule.offsets, out_lat, out_lon,
-        out_level, out_sample, out_speed, status, sample, kind, raw_levels is not None,
+        wind, clock, np.tile(start, len(ensemble)), sign, schedule.offsets, tracks, status,
+        sample, kind, raw_levels is not None,
         realization, dict(
             integration_scheme="classical fourth-order Runge-Kutta" if scheme == "rk4"
             else "Petterssen (1940) iterative scheme",
@@ -482,6 +479,24 @@ def advect(
             trajectory_hours=float(hours),
             vertical_motion=vertical or "none (level-following)",
             steady_wind="yes" if clock.steady else "no"))
+
+
+def _settings(grid: SliceGrid, vertical_scale: float, scheme: str) -> K.Settings:
+    """The settings argument of :func:`flowpipe.parcels._kernels.advance`."""
+    return K.Settings(float(vertical_scale), grid.log_levels, EARTH_RADIUS, SCHEMES[scheme],
+                      PETTERSSEN_ITERATIONS, PETTERSSEN_TOLERANCE)
+
+
+@dataclass(frozen=True)
+class _Tracks:
+    """The recorded output of every parcel, filled in place: ``(trajectory, obs)`` arrays
+    (``sample`` with a last axis of the sampled variables)."""
+
+    lat: np.ndarray
+    lon: np.ndarray
+    level: np.ndarray
+    sample: np.ndarray
+    speed: np.ndarray
 
 
 @dataclass(frozen=True)
@@ -504,32 +519,33 @@ def _schedule(total: float, step: float, record: float) -> _Schedule:
     return _Schedule(steps, recorded, np.concatenate([[0.0], ends[recorded]]))
 
 
-def _integrate(pos, lev, status, t0, sign, schedule, clock, winds, samples, grid,
-               vertical_scale, scheme, out_lat, out_lon, out_level, out_sample, out_speed,
-               members) -> None:
-    """Integrate one group of parcels sharing a start time, recording as scheduled.
+def _integrate(parcels: K.Parcels, t0, sign, schedule, clock, winds, samples, grid, settings,
+               tracks: _Tracks, members) -> None:
+    """Integrate one group of parcels sharing a start time, recording as scheduled into the
+    rows ``members`` of ``tracks``.
 
     With each position goes the speed of the horizontal wind there: the length
     of the Cartesian wind vector the parcel moves with (its first three
     components), interpolated as the integration does.
     """
-    args = grid.kernel_args()
+    kernel_grid = grid.kernel_grid()
+    pos, lev, status = parcels
 
     def record(obs: int, t: float) -> None:
         alive = status == K.ACTIVE
         rows = members[alive]
-        out_lat[rows, obs], out_lon[rows, obs] = latitude_longitude(pos[alive])
-        out_level[rows, obs] = lev[alive]
+        tracks.lat[rows, obs], tracks.lon[rows, obs] = latitude_longitude(pos[alive])
+        tracks.level[rows, obs] = lev[alive]
         k0, k1, w = clock.bracket(t)
         s0, s1 = winds.slots_for([k0, k1])
         wind_here = np.empty((pos.shape[0], winds.field.shape[4]))
-        K.sample(pos, lev, status, winds.field, s0, s1, w, *args, wind_here)
-        out_speed[members, obs] = np.sqrt(np.sum(wind_here[:, :3] ** 2, axis=1))
+        K.sample(parcels, winds.field, s0, s1, w, kernel_grid, grid.tables, wind_here)
+        tracks.speed[members, obs] = np.sqrt(np.sum(wind_here[:, :3] ** 2, axis=1))
         if samples is not None:
             s0, s1 = samples.slots_for([k0, k1])
             values = np.empty((pos.shape[0], len(samples.names)))
-            K.sample(pos, lev, status, samples.field, s0, s1, w, *args, values)
-            out_sample[members, obs] = values
+            K.sample(parcels, samples.field, s0, s1, w, kernel_grid, grid.tables, values)
+            tracks.sample[members, obs] = values
 
     threads = numba.get_num_threads()
     numba.set_num_threads(threads if pos.shape[0] >= PARALLEL_PARCELS else 1)
@@ -537,21 +553,19 @@ def _integrate(pos, lev, status, t0, sign, schedule, clock, winds, samples, grid
         # Blocks handed out one at a time: a thread slowed by other work on a
         # shared machine takes fewer of them instead of holding up every step.
         with numba.parallel_chunksize(1):
-            _steps(pos, lev, status, t0, sign, schedule, clock, winds, grid, vertical_scale,
-                   scheme, record)
+            _steps(parcels, t0, sign, schedule, clock, winds, grid, settings, record)
     finally:
         numba.set_num_threads(threads)
 
 
-def _steps(pos, lev, status, t0, sign, schedule, clock, winds, grid, vertical_scale, scheme,
+def _steps(parcels: K.Parcels, t0, sign, schedule, clock, winds, grid, settings,
            record) -> None:
     """The time loop of :func:`_integrate`: advance, and record when scheduled.
 
     Consecutive steps go to the kernel together, up to a record or until they
     need more input times than the window holds.
     """
-    args = grid.kernel_args()
-    lowest_at_top = grid.log_levels
+    kernel_grid = grid.kernel_grid()
     record(0, t0)
     t = t0
     obs = 1
@@ -561,13 +575,12 @@ def _steps(pos, lev, status, t0, sign, schedule, clock, winds, grid, vertical_sc
     def flush() -> None:
         indices = sorted(needed)
         slot = dict(zip(indices, winds.slots_for(indices), strict=True))
-        steps = np.array([h for h, _ in chunk])
-        slot0 = np.array([[slot[b[0]] for b in brackets] for _, brackets in chunk], np.int64)
-        slot1 = np.array([[slot[b[1]] for b in brackets] for _, brackets in chunk], np.int64)
-        weight = np.array([[b[2] for b in brackets] for _, brackets in chunk])
-        K.advance(pos, lev, status, steps, winds.field, slot0, slot1, weight, *args,
-                  vertical_scale, lowest_at_top, EARTH_RADIUS, scheme, PETTERSSEN_ITERATIONS,
-                  PETTERSSEN_TOLERANCE)
+        steps = K.Steps(
+            np.array([h for h, _ in chunk]),
+            np.array([[slot[b[0]] for b in brackets] for _, brackets in chunk], np.int64),
+            np.array([[slot[b[1]] for b in brackets] for _, brackets in chunk], np.int64),
+            np.array([[b[2] for b in brackets] for _, brackets in chunk]))
+        K.advance(parcels, winds.field, steps, kernel_grid, grid.tables, settings)
         chunk.clear()
         needed.clear()
 
@@ -584,7 +597,7 @@ def _steps(pos, lev, status, t0, sign, schedule, clock, winds, grid, vertical_sc
             flush()
             record(obs, t)
             obs += 1
-            if not np.any(status == K.ACTIVE):
+            if not np.any(parcels.status == K.ACTIVE):
                 break
 
 
@@ -620,9 +633,10 @@ def trajectory_ids(wind: xr.Dataset, start: np.ndarray, lat0: np.ndarray, lon0: 
     return np.char.add(f"fp{digest.hexdigest()}-", numbers)
 
 
-def _trajectory_dataset(wind, clock, start, sign, offsets, lat, lon, out_level, out_sample,
-                        out_speed, status, sample, kind, has_levels, realization,
-                        method) -> xr.Dataset:
+def _trajectory_dataset(wind, clock, start, sign, offsets, tracks, status, sample, kind,
+                        has_levels, realization, method) -> xr.Dataset:
+    lat, lon, out_level, out_sample, out_speed = (tracks.lat, tracks.lon, tracks.level,
+                                                  tracks.sample, tracks.speed)
     n, nobs = out_level.shape
     lon = wrap_longitude(lon)
     dims = ("trajectory", "obs")

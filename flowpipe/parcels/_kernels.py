@@ -15,6 +15,7 @@ others are the flag values written to the output (see
 from __future__ import annotations
 
 import math
+from typing import NamedTuple
 
 import numba
 import numpy as np
@@ -35,6 +36,66 @@ BLOCK = 512
 #: Longitudes and latitudes within this many degrees outside the grid still
 #: count as inside (rounding of coordinates read from files; common practice).
 EDGE_TOLERANCE = 1e-9
+
+
+# The kernels' grouped parameters: numba passes a NamedTuple of arrays and
+# scalars as one typed tuple (no copy). None holds another tuple: a parallel
+# loop takes its tuples apart one level deep only (numba 0.68: a tuple
+# inside a tuple fails with "scalar type ... given for non scalar argument").
+
+class Parcels(NamedTuple):
+    """The parcels the kernels move, updated in place."""
+
+    pos: np.ndarray     # (n, 3) unit position vectors
+    level: np.ndarray   # (n,) vertical coordinates (hPa or m)
+    status: np.ndarray  # (n,) int8: ACTIVE, or the flag a parcel stopped with
+
+
+class CellTables(NamedTuple):
+    """What :func:`_global_cells` needs to find a cell on a global grid
+    (:func:`flowpipe.parcels._window.cell_tables`; empty arrays on limited areas)."""
+
+    sin_lat: np.ndarray
+    cos_lat: np.ndarray
+    inv_dlat: np.ndarray      # inverse spacing (rad-1) to the next row, 0 for the last
+    row_guess: np.ndarray     # int64, first row per bin of the latitude's pseudo-angle
+    sin_lon: np.ndarray
+    cos_lon: np.ndarray
+    inv_dlon: np.ndarray      # inverse spacing (rad-1) to the next column, wrapping round
+    column_guess: np.ndarray  # int64, first column per bin of the longitude's pseudo-angle
+
+
+class Grid(NamedTuple):
+    """The grid as the kernels see it."""
+
+    lat: np.ndarray       # ascending degrees, pole rows included on global grids
+    lat_uniform: bool     # equal spacing
+    lon: np.ndarray       # ascending degrees
+    lon_uniform: bool
+    periodic: bool        # a global grid: cells found with the CellTables
+    levels: np.ndarray    # ascending vertical interpolation coordinates (log p or height)
+    log_levels: bool      # interpolate in the logarithm of the level
+
+
+class Steps(NamedTuple):
+    """Consecutive time steps and, per step, the slots and time weights of the wind at the
+    stage times ``t``, ``t + h/2``, ``t + h`` (see :func:`_gather`)."""
+
+    lengths: np.ndarray   # (nstep,) seconds, negative backward
+    slot0: np.ndarray     # (nstep, 3) int64
+    slot1: np.ndarray     # (nstep, 3) int64
+    weight: np.ndarray    # (nstep, 3) weight of slot1
+
+
+class Settings(NamedTuple):
+    """How the kernels integrate."""
+
+    vertical_scale: float          # vertical velocity to level units per second (0: none)
+    lowest_at_top_of_range: bool   # the largest vertical coordinate is the lowest (pressure)
+    radius: float                  # sphere radius (m)
+    scheme: int                    # RK4 or PETTERSSEN
+    iterations: int                # most corrector iterations of the Petterssen scheme
+    tolerance: float               # convergence of the Petterssen iteration
 
 
 @numba.njit(cache=True, inline="always")
@@ -132,7 +193,7 @@ def _global_cells(m, px, py, pz, tables, ux, uy, uz, cj, ci, ci1, fy, fx):
         Number of parcels.
     px, py, pz : ndarray
         Positions (not necessarily of unit length).
-    tables : tuple
+    tables : CellTables
         Sine, cosine and inverse spacing (rad-1) of each latitude, the first
         row per bin, and the same for the longitudes
         (:func:`flowpipe.parcels._window.cell_tables`).
@@ -190,8 +251,7 @@ def _global_cells(m, px, py, pz, tables, ux, uy, uz, cj, ci, ci1, fy, fx):
 
 
 @numba.njit(**BLOCK_LOOP)
-def _limited_cells(m, px, py, pz, lat, lat_uniform, lon, lon_uniform, ux, uy, uz, cj, ci, ci1,
-                   fy, fx, flag):
+def _limited_cells(m, px, py, pz, grid, ux, uy, uz, cj, ci, ci1, fy, fx, flag):
     """Normalise ``m`` positions and find their cells on a limited-area grid; ``flag`` is
     ``LEFT_DOMAIN`` outside it (cell 0 then).
 
@@ -200,6 +260,7 @@ def _limited_cells(m, px, py, pz, lat, lat_uniform, lon, lon_uniform, ux, uy, uz
     Spherical coordinates of a unit vector (common practice) and
     :func:`_locate`.
     """
+    lat, lat_uniform, lon, lon_uniform = grid.lat, grid.lat_uniform, grid.lon, grid.lon_uniform
     nlon = lon.shape[0]
     for q in range(m):
         x, y, z = px[q], py[q], pz[q]
@@ -217,7 +278,7 @@ def _limited_cells(m, px, py, pz, lat, lat_uniform, lon, lon_uniform, ux, uy, uz
 
 
 @numba.njit(**BLOCK_LOOP)
-def _vertical_cells(m, vertical, levels, log_levels, ck, fz, between):
+def _vertical_cells(m, vertical, grid, ck, fz, between):
     """Vertical layer ``k`` and fraction ``fz`` of ``m`` vertical coordinates (hPa or m),
     clamped to the range of ``levels``; ``between[0]`` becomes 1 when any lies between two
     levels, else 0.
@@ -227,6 +288,7 @@ def _vertical_cells(m, vertical, levels, log_levels, ck, fz, between):
     Linear interpolation in log-pressure on pressure levels (common practice)
     and :func:`_locate`.
     """
+    levels, log_levels = grid.levels, grid.log_levels
     between[0] = 0
     for q in range(m):
         s = vertical[q]
@@ -368,8 +430,8 @@ def _rate(q, values, ux, uy, uz, vertical_scale, radius):
 
 
 @numba.njit(**BLOCK_LOOP)
-def _runge_kutta_stage(m, first, stage, h, pos, level, status, settled, flag, values, ux, uy, uz,
-                       vertical_scale, radius, mean, px, py, pz, pl):
+def _runge_kutta_stage(m, first, stage, h, parcels, settled, flag, values, ux, uy, uz, settings,
+                       mean, px, py, pz, pl):
     """Add one stage's rates (:func:`_rate`) to the mean rate and place the next stage's
     points, for the parcels whose rate counts (:func:`_counts`).
 
@@ -381,6 +443,8 @@ def _runge_kutta_stage(m, first, stage, h, pos, level, status, settled, flag, va
     Phys. 46, 435-453; Butcher (2016), Numerical Methods for Ordinary
     Differential Equations, 3rd ed., section 23.
     """
+    pos, level, status = parcels
+    vertical_scale, radius = settings.vertical_scale, settings.radius
     share = (1.0 if stage == 0 or stage == 3 else 2.0) / 6.0
     reach = 0.5 * h if stage < 2 else h
     for q in range(m):  # (selects rather than a branch: the loop runs in SIMD lanes)
@@ -398,8 +462,8 @@ def _runge_kutta_stage(m, first, stage, h, pos, level, status, settled, flag, va
 
 
 @numba.njit(**BLOCK_LOOP)
-def _petterssen_stage(m, first, stage, h, tolerance, pos, level, status, settled, flag, values,
-                      ux, uy, uz, vertical_scale, radius, start, mean, px, py, pz, pl):
+def _petterssen_stage(m, first, stage, h, parcels, settled, flag, values, ux, uy, uz, settings,
+                      start, mean, px, py, pz, pl):
     """One pass of the iterative scheme for the parcels whose rate counts
     (:func:`_counts`): the rate at the start (stage 0), then the mean of the start and end
     rates, re-evaluated at the new end point until it settles.
@@ -409,6 +473,8 @@ def _petterssen_stage(m, first, stage, h, tolerance, pos, level, status, settled
     Petterssen (1940), Weather Analysis and Forecasting, McGraw-Hill,
     pp. 221-223 (from memory).
     """
+    pos, level, status = parcels
+    vertical_scale, radius, tolerance = settings.vertical_scale, settings.radius, settings.tolerance
     for q in range(m):
         p = first + q
         if _counts(p, q, status, settled, flag, values):
@@ -428,7 +494,7 @@ def _petterssen_stage(m, first, stage, h, tolerance, pos, level, status, settled
 
 
 @numba.njit(**BLOCK_LOOP)
-def _begin_step(m, first, pos, level, px, py, pz, pl, mean, settled, flag):
+def _begin_step(m, first, parcels, px, py, pz, pl, mean, settled, flag):
     """Start a step: the first stage's points at the parcels' positions, no mean rate yet,
     nothing settled or flagged.
 
@@ -436,6 +502,7 @@ def _begin_step(m, first, pos, level, px, py, pz, pl, mean, settled, flag):
     ----------
     See :func:`advance`.
     """
+    pos, level = parcels.pos, parcels.level
     for q in range(m):
         p = first + q
         px[q], py[q], pz[q], pl[q] = pos[p, 0], pos[p, 1], pos[p, 2], level[p]
@@ -445,7 +512,7 @@ def _begin_step(m, first, pos, level, px, py, pz, pl, mean, settled, flag):
 
 
 @numba.njit(**BLOCK_LOOP)
-def _end_points(m, first, h, pos, level, mean, px, py, pz, pl):
+def _end_points(m, first, h, parcels, mean, px, py, pz, pl):
     """The points one step ``h`` along the mean rate from the start, normalised to unit length.
 
     References
@@ -453,6 +520,7 @@ def _end_points(m, first, h, pos, level, mean, px, py, pz, pl):
     Renormalisation after each step keeps positions on the sphere (common
     practice).
     """
+    pos, level = parcels.pos, parcels.level
     for q in range(m):
         p = first + q
         x1 = pos[p, 0] + h * mean[0, q]
@@ -463,7 +531,7 @@ def _end_points(m, first, h, pos, level, mean, px, py, pz, pl):
 
 
 @numba.njit(**BLOCK_LOOP)
-def _vertical_range(m, vertical, levels, log_levels, lowest_at_top_of_range, flag):
+def _vertical_range(m, vertical, grid, settings, flag):
     """Flag vertical coordinates beyond the lowest or the highest level.
 
     References
@@ -471,6 +539,8 @@ def _vertical_range(m, vertical, levels, log_levels, lowest_at_top_of_range, fla
     Parcels that leave the vertical range of the input stop there (common
     practice: no extrapolation).
     """
+    levels, log_levels = grid.levels, grid.log_levels
+    lowest_at_top_of_range = settings.lowest_at_top_of_range
     nlev = levels.shape[0]
     for q in range(m):
         l1 = vertical[q]
@@ -482,7 +552,7 @@ def _vertical_range(m, vertical, levels, log_levels, lowest_at_top_of_range, fla
 
 
 @numba.njit(**BLOCK_LOOP)
-def _settle(m, first, status, flag, pos, level, px, py, pz, pl):
+def _settle(m, first, parcels, flag, px, py, pz, pl):
     """Move the active parcels whose end point is good (``flag`` ``ACTIVE``) to it; the other
     active parcels keep their position and get the flag as status.
 
@@ -490,6 +560,7 @@ def _settle(m, first, status, flag, pos, level, px, py, pz, pl):
     ----------
     Positions after a parcel stops are not extrapolated (common practice).
     """
+    pos, level, status = parcels
     for q in range(m):
         p = first + q
         active = status[p] == ACTIVE
@@ -499,54 +570,32 @@ def _settle(m, first, status, flag, pos, level, px, py, pz, pl):
 
 
 @numba.njit(cache=True, parallel=True, fastmath=FASTMATH, error_model="numpy")
-def advance(pos, level, status, steps, field, slot0, slot1, weight, lat, lat_uniform, lon,
-            lon_uniform, periodic, tables, levels, log_levels, vertical_scale,
-            lowest_at_top_of_range, radius, scheme, iterations, tolerance):
-    """Advance every active parcel by the time steps ``steps`` (seconds, negative backward).
+def advance(parcels, field, steps, grid, tables, settings):
+    """Advance every active parcel by the time steps ``steps.lengths`` (seconds, negative
+    backward).
 
     Parameters
     ----------
-    pos : ndarray, shape (n, 3)
-        Unit position vectors, updated in place.
-    level : ndarray, shape (n,)
-        Vertical coordinates (hPa or m), updated in place.
-    status : ndarray of int8, shape (n,)
-        ``ACTIVE`` parcels are advanced; a parcel that leaves the domain,
-        meets missing wind or leaves the vertical range keeps its last
+    parcels : Parcels
+        Unit position vectors and vertical coordinates (hPa or m), updated in
+        place; ``ACTIVE`` parcels are advanced, and a parcel that leaves the
+        domain, meets missing wind or leaves the vertical range keeps its last
         position and gets the matching status.
-    steps : ndarray, shape (nstep,)
-        The time steps, one after the other, in seconds.
     field : ndarray, shape (nslot, nlev, nlat, nlon, ncomp)
         Cartesian wind components (m s-1) and, when ``ncomp == 4``, the
         vertical velocity.
-    slot0, slot1, weight : ndarray, shape (nstep, 3)
-        Per step, the slots and time weights at the stage times ``t``,
-        ``t + h/2``, ``t + h`` (see :func:`_gather`).
-    lat, lon : ndarray
-        Ascending grid coordinates in degrees (``lat`` includes any pole rows).
-    lat_uniform, lon_uniform, periodic : bool
-        Equal spacing of each axis; a global grid.
-    tables : tuple
+    steps : Steps
+        The time steps, one after the other, and per step the slots and time
+        weights at the stage times.
+    grid : Grid
+        The horizontal grid and the vertical interpolation coordinates.
+    tables : CellTables
         On global grids, the tables of :func:`_global_cells`.
-    levels : ndarray
-        Ascending vertical interpolation coordinates (``log p`` or height).
-    log_levels : bool
-        Interpolate in the logarithm of the level.
-    vertical_scale : float
-        Factor from the vertical velocity to level units per second
-        (0.01 for omega in Pa s-1 on hPa levels, 1 for w on height levels,
-        0 for level-following runs).
-    lowest_at_top_of_range : bool
-        True when the largest vertical coordinate is the lowest level
-        (pressure).
-    radius : float
-        Sphere radius in m.
-    scheme : int
-        ``RK4`` or ``PETTERSSEN``.
-    iterations : int
-        Most corrector iterations of the Petterssen scheme.
-    tolerance : float
-        Convergence of the Petterssen iteration (radians and level units).
+    settings : Settings
+        The scheme, its iterations and tolerance (radians and level units),
+        the sphere radius and the factor from the vertical velocity to level
+        units per second (0.01 for omega in Pa s-1 on hPa levels, 1 for w on
+        height levels, 0 for level-following runs).
 
     Notes
     -----
@@ -571,11 +620,14 @@ def advance(pos, level, status, steps, field, slot0, slot1, weight, lat, lat_uni
     1992, J. Comput. Phys. 102, 211-224, section 2 for the Cartesian form
     of a wind on the sphere).
     """
-    n = pos.shape[0]
-    nlev = levels.shape[0]
+    n = parcels.pos.shape[0]
+    nlev = grid.levels.shape[0]
+    periodic = grid.periodic
+    scheme = settings.scheme
+    slot0, slot1, weight = steps.slot0, steps.slot1, steps.weight
     nblock = (n + BLOCK - 1) // BLOCK
-    nstage = 4 if scheme == RK4 else 1 + iterations
-    moving = vertical_scale != 0.0 and nlev > 1  # levels change: layers found at every stage
+    nstage = 4 if scheme == RK4 else 1 + settings.iterations
+    moving = settings.vertical_scale != 0.0 and nlev > 1  # levels change: layers found at every stage
     for block in numba.prange(nblock):
         first = block * BLOCK
         m = min(n, first + BLOCK) - first
@@ -610,11 +662,11 @@ def advance(pos, level, status, steps, field, slot0, slot1, weight, lat, lat_uni
         # Stopped parcels go through the passes too (at their last position,
         # their results unused): skipping them, or a block without active
         # parcels, costs more in the compiled loops than it saves.
-        for step in range(steps.shape[0]):
-            h = steps[step]
-            _begin_step(m, first, pos, level, px, py, pz, pl, mean, settled, flag)
+        for step in range(steps.lengths.shape[0]):
+            h = steps.lengths[step]
+            _begin_step(m, first, parcels, px, py, pz, pl, mean, settled, flag)
             if nlev > 1 and (moving or step == 0):  # level-following: the layers stay
-                _vertical_cells(m, pl, levels, log_levels, ck, fz, layered)
+                _vertical_cells(m, pl, grid, ck, fz, layered)
             # RK4: stages at t, t + h/2, t + h/2, t + h with weights 1, 2, 2, 1 (/6).
             # Petterssen: the rate at the start, then the mean of the start and
             # end rates, re-evaluated at the new end point until it settles.
@@ -627,45 +679,40 @@ def advance(pos, level, status, steps, field, slot0, slot1, weight, lat, lat_uni
                 if periodic:  # (a call per grid kind here: each loop then runs in SIMD lanes)
                     _global_cells(m, px, py, pz, tables, ux, uy, uz, cj, ci, ci1, fy, fx)
                 else:
-                    _limited_cells(m, px, py, pz, lat, lat_uniform, lon, lon_uniform, ux, uy, uz,
-                                   cj, ci, ci1, fy, fx, flag)
+                    _limited_cells(m, px, py, pz, grid, ux, uy, uz, cj, ci, ci1, fy, fx, flag)
                 if moving and stage > 0:
-                    _vertical_cells(m, pl, levels, log_levels, ck, fz, layered)
+                    _vertical_cells(m, pl, grid, ck, fz, layered)
                 if layered[0] == 1:
                     _gather_between_levels(m, field, s0, s1, wt, cj, ci, ci1, ck, fy, fx, fz,
                                            values)
                 else:
                     _gather(m, field, s0, s1, wt, cj, ci, ci1, ck, fy, fx, values)
                 if scheme == RK4:
-                    _runge_kutta_stage(m, first, stage, h, pos, level, status, settled, flag,
-                                       values, ux, uy, uz, vertical_scale, radius, mean, px, py,
-                                       pz, pl)
+                    _runge_kutta_stage(m, first, stage, h, parcels, settled, flag, values, ux, uy,
+                                       uz, settings, mean, px, py, pz, pl)
                 else:
-                    _petterssen_stage(m, first, stage, h, tolerance, pos, level, status, settled,
-                                      flag, values, ux, uy, uz, vertical_scale, radius, start,
-                                      mean, px, py, pz, pl)
-            _end_points(m, first, h, pos, level, mean, px, py, pz, pl)
+                    _petterssen_stage(m, first, stage, h, parcels, settled, flag, values, ux, uy,
+                                      uz, settings, start, mean, px, py, pz, pl)
+            _end_points(m, first, h, parcels, mean, px, py, pz, pl)
             if not periodic:  # the end point itself must lie inside a limited-area domain
-                _limited_cells(m, px, py, pz, lat, lat_uniform, lon, lon_uniform, ux, uy, uz, cj,
-                               ci, ci1, fy, fx, flag)
+                _limited_cells(m, px, py, pz, grid, ux, uy, uz, cj, ci, ci1, fy, fx, flag)
             if moving:
-                _vertical_range(m, pl, levels, log_levels, lowest_at_top_of_range, flag)
-            _settle(m, first, status, flag, pos, level, px, py, pz, pl)
+                _vertical_range(m, pl, grid, settings, flag)
+            _settle(m, first, parcels, flag, px, py, pz, pl)
 
 
 @numba.njit(cache=True, parallel=True, fastmath=FASTMATH, error_model="numpy")
-def sample(pos, level, status, field, s0, s1, wt, lat, lat_uniform, lon, lon_uniform, periodic,
-           tables, levels, log_levels, out):
+def sample(parcels, field, s0, s1, wt, grid, tables, out):
     """Sample ``field`` at the positions of the active parcels (NaN elsewhere).
 
     Parameters
     ----------
-    pos, level, status
-        As in :func:`advance`.
+    parcels : Parcels
+        As in :func:`advance` (not changed).
     field : ndarray, shape (nslot, nlev, nlat, nlon, ncomp)
     s0, s1, wt
         Slots and time weight (see :func:`_gather`).
-    lat, lat_uniform, lon, lon_uniform, periodic, tables, levels, log_levels
+    grid, tables
         As in :func:`advance`.
     out : ndarray, shape (n, ncomp)
         Receives the values.
@@ -674,6 +721,7 @@ def sample(pos, level, status, field, s0, s1, wt, lat, lat_uniform, lon, lon_uni
     ----------
     See :func:`_gather`.
     """
+    pos, level, status = parcels
     n = pos.shape[0]
     ncomp = field.shape[4]
     for block in numba.prange((n + BLOCK - 1) // BLOCK):
@@ -698,14 +746,13 @@ def sample(pos, level, status, field, s0, s1, wt, lat, lat_uniform, lon, lon_uni
         for q in range(m):
             p = first + q
             px[q], py[q], pz[q], pl[q] = pos[p, 0], pos[p, 1], pos[p, 2], level[p]
-        if periodic:
+        if grid.periodic:
             _global_cells(m, px, py, pz, tables, ux, uy, uz, cj, ci, ci1, fy, fx)
         else:
-            _limited_cells(m, px, py, pz, lat, lat_uniform, lon, lon_uniform, ux, uy, uz, cj, ci,
-                           ci1, fy, fx, flag)
+            _limited_cells(m, px, py, pz, grid, ux, uy, uz, cj, ci, ci1, fy, fx, flag)
         layered = np.zeros(1, np.int64)
-        if levels.shape[0] > 1:
-            _vertical_cells(m, pl, levels, log_levels, ck, fz, layered)
+        if grid.levels.shape[0] > 1:
+            _vertical_cells(m, pl, grid, ck, fz, layered)
         if layered[0] == 1:
             _gather_between_levels(m, field, s0, s1, wt, cj, ci, ci1, ck, fy, fx, fz, values)
         else:

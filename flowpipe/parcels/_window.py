@@ -22,7 +22,7 @@ import numpy as np
 import xarray as xr
 
 from ..errors import InputError
-from ._kernels import MAX_GLOBAL_SPACING, cartesian_slice
+from ._kernels import MAX_GLOBAL_SPACING, CellTables, Grid, cartesian_slice
 
 
 @dataclass(frozen=True)
@@ -39,13 +39,13 @@ class SliceGrid:
     level_order: np.ndarray       # input level indices in the order of ``levels``
     add_south: bool               # a virtual pole row is added south of the input rows
     add_north: bool
-    tables: tuple                 # cell_tables (global grids; empty on limited areas)
+    tables: CellTables            # cell_tables (global grids; empty on limited areas)
     wrap_column: bool = False     # a band: the first column repeated 360 degrees east
 
-    def kernel_args(self) -> tuple:
-        """The grid arguments of the kernels, in their order."""
-        return (self.latitude, self.lat_uniform, self.longitude, self.lon_uniform,
-                self.periodic, self.tables, self.levels, self.log_levels)
+    def kernel_grid(self) -> Grid:
+        """The grid argument of the kernels (the ``tables`` go beside it)."""
+        return Grid(self.latitude, self.lat_uniform, self.longitude, self.lon_uniform,
+                    self.periodic, self.levels, self.log_levels)
 
 
 def _uniform(values: np.ndarray) -> bool:
@@ -92,7 +92,7 @@ def _guesses(lines: np.ndarray, low: float, span: float, wrap: bool) -> np.ndarr
     return np.clip(found, 0, lines.size - 2).astype(np.int64)
 
 
-def cell_tables(latitude: np.ndarray, longitude: np.ndarray) -> tuple:
+def cell_tables(latitude: np.ndarray, longitude: np.ndarray) -> CellTables:
     """Tables with which the kernels find the cell of a position on a global grid.
 
     Parameters
@@ -104,17 +104,16 @@ def cell_tables(latitude: np.ndarray, longitude: np.ndarray) -> tuple:
 
     Returns
     -------
-    sin_lat, cos_lat, inv_dlat : numpy.ndarray
-        ``sin``, ``cos`` of each latitude and the inverse of the spacing (rad)
-        to the next row (0 for the last).
-    row_guess : numpy.ndarray of int64
-        For equal bins of the pseudo-angle ``z / (|z| + rho)`` in [-1, 1], the
-        last row at or before the bin (at most the last cell).
-    sin_lon, cos_lon, inv_dlon : numpy.ndarray
-        The same for the longitudes, the last column's spacing wrapping round.
-    column_guess : numpy.ndarray of int64
-        For equal bins of the pseudo-angle of :func:`_pseudo_angle` in
-        [0, 4), the last column at or before the bin (wrapping round).
+    CellTables
+        ``sin_lat``, ``cos_lat``, ``inv_dlat``: ``sin``, ``cos`` of each
+        latitude and the inverse of the spacing (rad) to the next row (0 for
+        the last); ``row_guess`` (int64): for equal bins of the pseudo-angle
+        ``z / (|z| + rho)`` in [-1, 1], the last row at or before the bin (at
+        most the last cell); ``sin_lon``, ``cos_lon``, ``inv_dlon``: the same
+        for the longitudes, the last column's spacing wrapping round;
+        ``column_guess`` (int64): for equal bins of the pseudo-angle of
+        :func:`_pseudo_angle` in [0, 4), the last column at or before the bin
+        (wrapping round).
 
     Raises
     ------
@@ -136,8 +135,9 @@ def cell_tables(latitude: np.ndarray, longitude: np.ndarray) -> tuple:
     sin_lon, cos_lon = np.sin(lam), np.cos(lam)
     row_guess = _guesses(sin_lat / (np.abs(sin_lat) + cos_lat), -1.0, 2.0, wrap=False)
     column_guess = _guesses(_pseudo_angle(cos_lon, sin_lon), 0.0, 4.0, wrap=True)
-    return (sin_lat, cos_lat, np.append(1.0 / np.diff(phi), 0.0), row_guess,
-            sin_lon, cos_lon, 1.0 / np.diff(np.append(lam, lam[0] + 2 * np.pi)), column_guess)
+    return CellTables(sin_lat, cos_lat, np.append(1.0 / np.diff(phi), 0.0), row_guess,
+                      sin_lon, cos_lon, 1.0 / np.diff(np.append(lam, lam[0] + 2 * np.pi)),
+                      column_guess)
 
 
 def slice_grid(wind: xr.Dataset, periodic: bool, band: bool = False) -> SliceGrid:
@@ -186,7 +186,7 @@ def slice_grid(wind: xr.Dataset, periodic: bool, band: bool = False) -> SliceGri
         tables = cell_tables(full_lat, lon)
     else:  # limited areas locate latitude and longitude instead
         empty, none = np.zeros(0), np.zeros(0, np.int64)
-        tables = (empty, empty, empty, none, empty, empty, empty, none)
+        tables = CellTables(empty, empty, empty, none, empty, empty, empty, none)
     return SliceGrid(full_lat, _uniform(full_lat), lon, _uniform(lon), periodic, levels,
                      log_levels, order, add_south, add_north, tables, band)
 

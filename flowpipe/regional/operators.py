@@ -1,4 +1,4 @@
-"""Staggered latitude-longitude operators for limited-area Helmholtz partitions.
+"""The staggered latitude-longitude grid and its operators, for limited-area Helmholtz partitions.
 
 The wind lives at the grid points ("centres", shape ``(nlat, nlon)``). The
 streamfunction and the velocity potential live on the staggered grid of cell

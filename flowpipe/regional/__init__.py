@@ -19,7 +19,7 @@ irrotational, carries what crosses the boundary. Two schemes assign it:
     they leave is the harmonic wind, returned as ``u_harmonic``/``v_harmonic``
     (Lynch 1989). Reconstruction is exact by construction.
 
-Discretisation (see :mod:`flowpipe._staggered`): the potentials sit on the
+Discretisation (see :mod:`flowpipe.regional.operators`): the potentials sit on the
 staggered grid of cell corners, the wind at each grid point is the box
 difference of its four corners, vorticity and divergence at a corner are the
 circulation and outflow around the four grid points that surround it, and the
@@ -44,45 +44,31 @@ latitude) and ``variational`` runs conjugate gradients preconditioned by the
 same kind of separable solver (cosine or Fourier transform); on a masked
 grid the Dirichlet Laplacian and the preconditioner are sparse LU
 factorisations (the variational one of the coupled normal equations up to
-:data:`flowpipe._poisson.COUPLED_LIMIT` corners: one or two iterations; beyond
+:data:`flowpipe.regional.solvers.COUPLED_LIMIT` corners: one or two iterations; beyond
 it an uncoupled one, with hundreds of iterations around the mask). The work
-is lazy - one dask task per latitude-longitude slab - except for the masks,
-which are read once up front to check them.
+is lazy - one dask task per latitude-longitude slab, which also looks at the
+slab's mask and finds its pieces (:mod:`flowpipe.regional.pieces`).
 """
 
 from __future__ import annotations
 
-import threading
 import warnings
-from collections import OrderedDict
 from typing import Any
 
 import numpy as np
-import scipy.sparse as sp
 import xarray as xr
-from scipy.sparse.csgraph import connected_components
 
-from ._poisson import (
-    SeparableDirichletSolver,
-    SparseDirichletSolver,
-    VariationalSolver,
-    dirichlet_partition,
-    dirichlet_solver,
-    partition_figures,
-    variational_partition,
-)
-from ._staggered import (
-    StaggeredGrid,
-    corners_to_centres,
-    curl_and_divergence,
-    interior_corners,
-)
-from .annotate import global_attrs, quality_summary, variable_attrs
-from .choices import REGIONAL_VARIABLES, SCHEMES
-from .constants import EARTH_RADIUS
-from .errors import FlowpipeWarning, InputError, UsageError
-from .grid import describe_grid
-from .spectral import pole_row
+from ..annotate import global_attrs, quality_summary, variable_attrs
+from ..choices import REGIONAL_VARIABLES, SCHEMES
+from ..errors import FlowpipeWarning, InputError, UsageError
+from ..grid import describe_grid
+from . import cache
+from .operators import StaggeredGrid
+from .partitions import lynch_partition, pole_values, variational_partition
+from .pieces import MINIMUM_SIZE, check_mask, solvable_pieces
+from .solvers import DirichletSolver, VariationalSolver
+
+__all__ = ["SCHEMES", "VariationalSolver", "decompose_regional", "solvable_pieces"]
 
 #: Default dimensionless Tikhonov weight of the variational scheme (the weight of
 #: the parts' gradient energy against the wind misfit): the misfit it leaves,
@@ -91,11 +77,8 @@ DEFAULT_REGULARISATION = 1e-10
 #: Default relative RMS wind misfit at which the variational iterations stop.
 DEFAULT_TOLERANCE = 1e-7
 DEFAULT_MAX_ITERATIONS = 1000
-MINIMUM_SIZE = 5
 #: Latitudes within this many degrees of +/-90 are rows on a pole.
 POLE_TOLERANCE = 1e-6
-#: Factorisations kept in memory (each grid and mask is one entry).
-CACHE_SIZE = 8
 
 DIAGNOSTICS = ("reconstruction_error", "harmonic_energy_share", "harmonic_rotation",
                "iterations", "points_left_missing", "solver")
@@ -121,8 +104,8 @@ DIAGNOSTIC_ATTRS = {
 }
 #: The solvers a slab may use (its ``solver`` flags, CF 1.11 section 3.5): description, flag.
 SOLVERS = {
-    SeparableDirichletSolver.name: "separable_fast_poisson_solver",
-    SparseDirichletSolver.name: "sparse_lu_poisson_solver",
+    DirichletSolver.names["separable"]: "separable_fast_poisson_solver",
+    DirichletSolver.names["sparse"]: "sparse_lu_poisson_solver",
     VariationalSolver.names["complete"]: "cg_with_separable_preconditioner",
     VariationalSolver.names["coupled"]: "cg_with_coupled_sparse_lu_preconditioner",
     VariationalSolver.names["uncoupled"]: "cg_with_uncoupled_sparse_lu_preconditioner",
@@ -151,40 +134,6 @@ REFERENCES = (
     "limited and irregular domains, Mon. Wea. Rev. 134, 3384-3394; Lynch (1989), Partitioning "
     "the wind in a limited domain, Mon. Wea. Rev. 117, 1492-1500")
 
-_cache: OrderedDict[tuple, Any] = OrderedDict()
-_cache_lock = threading.Lock()
-
-
-def _cached(key: tuple, build):
-    with _cache_lock:
-        if key in _cache:
-            _cache.move_to_end(key)
-            return _cache[key]
-        value = build()
-        _cache[key] = value
-        while len(_cache) > CACHE_SIZE:
-            _cache.popitem(last=False)
-        return value
-
-
-def _grid(lat: np.ndarray, lon: np.ndarray, periodic: bool) -> StaggeredGrid:
-    key = ("grid", lat.tobytes(), lon.tobytes(), periodic)
-    return _cached(key, lambda: StaggeredGrid(np.radians(lat), np.radians(lon), EARTH_RADIUS,
-                                              periodic))
-
-
-def _solver(grid: StaggeredGrid, valid: np.ndarray, scheme: str, regularisation: float,
-            tolerance: float, max_iterations: int
-            ) -> SeparableDirichletSolver | SparseDirichletSolver | VariationalSolver:
-    """The cached solver of a scheme for a grid and mask (built on first use)."""
-    key = (scheme, grid.lat.tobytes(), grid.lon.tobytes(), grid.periodic,
-           np.packbits(valid).tobytes())
-    if scheme == "dirichlet":
-        return _cached(key, lambda: dirichlet_solver(grid, valid))
-    return _cached(key + (regularisation, tolerance, max_iterations),
-                   lambda: VariationalSolver(grid, valid, regularisation, tolerance,
-                                             max_iterations))
-
 
 def _solve_slabs(u: np.ndarray, v: np.ndarray, slab: np.ndarray, *, lat: np.ndarray,
                  lon: np.ndarray, periodic: bool, scheme: str, regularisation: float,
@@ -195,11 +144,12 @@ def _solve_slabs(u: np.ndarray, v: np.ndarray, slab: np.ndarray, *, lat: np.ndar
     ``slab`` holds the flat index of each slab in the whole wind and ``lead`` the
     coordinates of its leading dimensions, to name a slab whose mask is refused.
     The masks are looked at here, inside the task, so that building a lazy result
-    reads no data. ``pole`` names the pole that closes a band (see :func:`_lynch`):
+    reads no data. ``pole`` names the pole that closes a band (see
+    :func:`flowpipe.regional.partitions.lynch_partition`):
     ``u``, ``v`` then include that pole row (``lat`` does not), which is not solved
-    for but gets the pole's values (:func:`_pole_values`) where it is valid.
+    for but gets the pole's values (:func:`flowpipe.regional.partitions.pole_values`) where it is valid.
     """
-    grid = _grid(lat, lon, periodic)
+    grid = cache.staggered_grid(lat, lon, periodic)
     names = REGIONAL_VARIABLES
     fields = np.full(u.shape[:-2] + (len(names),) + u.shape[-2:], np.nan)
     diagnostics = np.full(u.shape[:-2] + (len(DIAGNOSTICS),), np.nan)
@@ -212,7 +162,7 @@ def _solve_slabs(u: np.ndarray, v: np.ndarray, slab: np.ndarray, *, lat: np.ndar
         us, vs = us[body], vs[body]
         valid = np.isfinite(us) & np.isfinite(vs)
         solved = fields[index][:, body]  # a view: the slab's rows off the pole
-        pieces, small = _check_mask(valid, _slab_label(lead, int(slab[index])), grid)
+        pieces, small = check_mask(valid, _slab_label(lead, int(slab[index])), grid)
         if small:
             warnings.warn(f"{small} valid points of a latitude-longitude slab lie in pieces too "
                           "small to decompose and are left missing (variable "
@@ -235,76 +185,9 @@ def _solve_slabs(u: np.ndarray, v: np.ndarray, slab: np.ndarray, *, lat: np.ndar
         diagnostics[index] = [np.sqrt(w @ error**2), w @ harmonic, np.sqrt(w @ rotation**2),
                               iterations.max(), small, solvers]
         if pole:
-            fields[index][:, row] = np.where(on_pole, _pole_values(grid, solved, us, vs, pole),
+            fields[index][:, row] = np.where(on_pole, pole_values(grid, solved, us, vs, pole),
                                              np.nan)
     return fields, diagnostics
-
-
-def _cap_rotation(grid: StaggeredGrid, u: np.ndarray, v: np.ndarray, ring: int, sign: float
-                  ) -> tuple[float, float]:
-    """Mean vorticity and divergence of the polar cap inside a row, from the row's winds.
-
-    Stokes' theorem and the divergence theorem on the cap of angular radius ``r``
-    round the pole: circulation ``sign * sum(u) a cos(phi) dlambda`` and outflow
-    ``-sign * sum(v) a cos(phi) dlambda`` over the cap's area ``2 pi a^2 (1 - cos r)``;
-    the cap's means are the pole's values to second order in ``r``.
-    """
-    length = grid.radius * np.cos(grid.lat[ring]) * grid.dlon
-    area = 2 * np.pi * grid.radius**2 * (1.0 - np.abs(np.sin(grid.lat[ring])))
-    return (sign * float(np.sum(u[ring])) * length / area,
-            -sign * float(np.sum(v[ring])) * length / area)
-
-
-def _pole_values(grid: StaggeredGrid, fields: np.ndarray, us: np.ndarray, vs: np.ndarray,
-                 pole: str) -> np.ndarray:
-    """The decomposition at the pole closing a band, as a pole row, from the row next to it.
-
-    Parameters
-    ----------
-    grid : StaggeredGrid
-        The band without its pole row.
-    fields : numpy.ndarray
-        The decomposition on that grid, shape ``(len(REGIONAL_VARIABLES), nlat, nlon)``.
-    us, vs : numpy.ndarray
-        The wind on that grid.
-    pole : {"north", "south"}
-
-    Returns
-    -------
-    numpy.ndarray
-        Shape ``(len(REGIONAL_VARIABLES), nlon)``. Each pair of winds is the one
-        vector the row next to the pole describes (:func:`flowpipe.spectral.pole_row`),
-        seen from each meridian; vorticity and divergence are the means of the cap
-        inside that row (:func:`_cap_rotation`; of the wind, as elsewhere); the
-        streamfunction and velocity potential are single values, the row's mean
-        less the rise the cap's mean vorticity (divergence) of the rotational
-        (divergent) wind gives a potential from the pole to the row. NaN where the
-        row next to the pole is.
-
-    References
-    ----------
-    Mean of a potential on a circle of angular radius ``r`` round a point where its
-    Laplacian is ``L``: ``f(pole) - 2 a^2 L ln(cos(r / 2))`` for ``L`` constant (Gauss'
-    theorem on the cap: the potential's mean rises by ``a L tan(rho / 2)`` per unit
-    ``rho``); common practice.
-    """
-    north = pole == "north"
-    ring, sign = (-1, 1.0) if north else (0, -1.0)
-    lon = np.degrees(grid.lon)
-    k = {name: i for i, name in enumerate(REGIONAL_VARIABLES)}
-    out = np.empty((len(REGIONAL_VARIABLES), lon.size))
-    for part in ("rotational", "divergent", "harmonic"):
-        out[[k[f"u_{part}"], k[f"v_{part}"]]] = pole_row(
-            fields[k[f"u_{part}"], ring], fields[k[f"v_{part}"], ring], lon, sign)
-    out[k["vorticity"]], out[k["divergence"]] = _cap_rotation(grid, us, vs, ring, sign)
-    rise = -2.0 * grid.radius**2 * np.log(np.cos((np.pi / 2 - abs(grid.lat[ring])) / 2))
-    rotation, _ = _cap_rotation(grid, fields[k["u_rotational"]], fields[k["v_rotational"]],
-                                ring, sign)
-    _, outflow = _cap_rotation(grid, fields[k["u_divergent"]], fields[k["v_divergent"]],
-                               ring, sign)
-    out[k["streamfunction"]] = np.mean(fields[k["streamfunction"], ring]) - rise * rotation
-    out[k["velocity_potential"]] = np.mean(fields[k["velocity_potential"], ring]) - rise * outflow
-    return out
 
 
 def _solve_piece(grid: StaggeredGrid, valid: np.ndarray, us: np.ndarray, vs: np.ndarray,
@@ -314,67 +197,20 @@ def _solve_piece(grid: StaggeredGrid, valid: np.ndarray, us: np.ndarray, vs: np.
 
     References
     ----------
-    :func:`flowpipe._poisson.dirichlet_partition` and
-    :func:`flowpipe._poisson.variational_partition`.
+    :func:`flowpipe.regional.partitions.lynch_partition` and
+    :func:`flowpipe.regional.partitions.variational_partition`.
     """
-    solver = _solver(grid, valid, scheme, regularisation, tolerance, max_iterations)
+    solver = cache.solver(grid, valid, scheme, regularisation, tolerance, max_iterations)
     if scheme == "dirichlet":
-        return *_lynch(grid, valid, us, vs, pole), solver.name
+        return *lynch_partition(grid, valid, us, vs, pole), solver.name
     parts, quality = variational_partition(grid, us, vs, solver)
     # The harmonic flow, for reference: Lynch's harmonic wind, one more direct solve; the
     # share and the rotation describe this wind, the one written (see variational_partition).
-    lynch, figures = _lynch(grid, valid, us, vs, pole)
+    lynch, figures = lynch_partition(grid, valid, us, vs, pole)
     parts["u_harmonic"], parts["v_harmonic"] = lynch["u_harmonic"], lynch["v_harmonic"]
     quality["harmonic_energy_share"] = figures["harmonic_energy_share"]
     quality["harmonic_rotation"] = figures["harmonic_rotation"]
     return parts, quality, solver.name
-
-
-def _lynch(grid: StaggeredGrid, valid: np.ndarray, us: np.ndarray, vs: np.ndarray,
-           pole: str | None) -> tuple[dict[str, np.ndarray], dict[str, float]]:
-    """Lynch's partition of one piece; on a band closed by a pole, the pole is a point.
-
-    Without its pole row, a band that has one (0..90, say) would end at an edge half a
-    spacing short of the pole, and the zonal harmonic flow ``u ~ 1/cos(phi)`` of that
-    ring-shaped domain would carry the flow near the pole. With every point valid, the
-    pole row is put back on a row of cells of zero area (``cos 90 = 0``), its wind the
-    one vector the row nearest the pole describes (:func:`flowpipe.spectral.pole_row`;
-    it closes the circulation round the cells next to the pole, whatever the input's
-    pole row holds, which may be missing): no flux crosses the pole, so the corner ring
-    next to it is an inner point of the finite-volume Laplacian with the pole a single
-    point, and the domain's only boundary is its open latitude edge.
-
-    References
-    ----------
-    Lynch (1989), Mon. Wea. Rev. 117, 1492-1500 (the partition); no flux through the
-    pole point of a finite-volume latitude-longitude grid (common practice).
-    """
-    if pole is None or not valid.all():
-        return dirichlet_partition(grid, us, vs, _dirichlet(grid, valid))
-    north = pole == "north"
-    lat = np.degrees(grid.lat)
-    closed = _grid(np.append(lat, 90.0) if north else np.insert(lat, 0, -90.0),
-                   np.degrees(grid.lon), True)
-    ring = -1 if north else 0
-    pu, pv = pole_row(us[ring], vs[ring], np.degrees(grid.lon), 1.0 if north else -1.0)
-    stack = (lambda x, p: np.vstack([x, p])) if north else (lambda x, p: np.vstack([p, x]))
-    inner = slice(0, -1) if north else slice(1, None)
-    with np.errstate(invalid="ignore", divide="ignore"):  # the pole corners: no area
-        fields, _ = dirichlet_partition(closed, stack(us, pu), stack(vs, pv),
-                                        _dirichlet(closed, np.ones(closed.shape, bool)))
-    fields = {name: values[inner] for name, values in fields.items()}
-    # The wind's vorticity and divergence are the band's own, as in the variational scheme:
-    # the closed grid's corner ring next to the pole gives the pole row's wind half its weight.
-    zeta, delta = curl_and_divergence(grid, us, vs, interior_corners(grid, valid))
-    fields["vorticity"] = corners_to_centres(grid, zeta)
-    fields["divergence"] = corners_to_centres(grid, delta)
-    return fields, partition_figures(grid, us, vs, fields)
-
-
-def _dirichlet(grid: StaggeredGrid, valid: np.ndarray
-               ) -> SeparableDirichletSolver | SparseDirichletSolver:
-    """The cached Dirichlet solver of a grid and mask (the iteration settings do not apply)."""
-    return _solver(grid, valid, "dirichlet", 0.0, DEFAULT_TOLERANCE, DEFAULT_MAX_ITERATIONS)
 
 
 def _slab_label(lead: dict[str, np.ndarray | None], flat_index: int) -> str:
@@ -388,77 +224,6 @@ def _slab_label(lead: dict[str, np.ndarray | None], flat_index: int) -> str:
     for (dim, values), i in zip(lead.items(), index, strict=True):
         parts.append(f"{dim}={values[i] if np.ndim(values) else i}")
     return "the slab at " + ", ".join(parts)
-
-
-def _pieces(valid: np.ndarray, periodic: bool) -> tuple[int, np.ndarray]:
-    """Connected pieces of the valid points, neighbours sharing a corner (8-connectivity)."""
-    ny, nx = valid.shape
-    jj, ii = np.meshgrid(np.arange(ny), np.arange(nx), indexing="ij")
-    first, second = [], []
-    for dj, di in ((0, 1), (1, 0), (1, 1), (1, -1)):
-        j2, i2 = jj + dj, ii + di
-        if periodic:
-            i2 = i2 % nx
-        inside = (j2 < ny) & (i2 >= 0) & (i2 < nx)
-        first.append((jj * nx + ii)[inside])
-        second.append((j2 * nx + i2)[inside])
-    a, b = np.concatenate(first), np.concatenate(second)
-    flat = valid.ravel()
-    keep = flat[a] & flat[b]
-    graph = sp.coo_array((np.ones(int(keep.sum())), (a[keep], b[keep])), shape=(ny * nx,) * 2)
-    _, labels = connected_components(graph, directed=False)
-    labels = np.where(flat, labels, -1).reshape(ny, nx)
-    return int(np.unique(labels[labels >= 0]).size), labels
-
-
-def _large_enough(piece: np.ndarray, grid: StaggeredGrid) -> bool:
-    """Whether a piece of valid points can be decomposed: at least ``MINIMUM_SIZE`` rows and
-    columns, ``MINIMUM_SIZE**2`` points and one 2x2 block."""
-    return (int(piece.sum()) >= MINIMUM_SIZE**2 and int(piece.any(axis=1).sum()) >= MINIMUM_SIZE
-            and int(piece.any(axis=0).sum()) >= MINIMUM_SIZE
-            and bool(interior_corners(grid, piece).any()))
-
-
-def solvable_pieces(valid: np.ndarray, grid: StaggeredGrid) -> tuple[list[np.ndarray], int]:
-    """The connected pieces of the valid points that can be decomposed, each alone, and the
-    number of valid points in pieces too small for that (left missing).
-
-    Pieces share no grid-cell corner, so their potentials are independent: each is a
-    Poisson problem (or least-squares fit) of its own domain.
-
-    References
-    ----------
-    Connected components of a graph: Tarjan (1972), "Depth-first search and linear
-    graph algorithms", SIAM J. Comput. 1, 146-160, through
-    :func:`scipy.sparse.csgraph.connected_components`; a potential per connected
-    domain is common practice.
-    """
-    _, labels = _pieces(valid, grid.periodic)
-    pieces, small = [], 0
-    for label in np.unique(labels[labels >= 0]):
-        piece = labels == label
-        if _large_enough(piece, grid):
-            pieces.append(piece)
-        else:
-            small += int(piece.sum())
-    return pieces, small
-
-
-def _check_mask(valid: np.ndarray, where: str, grid: StaggeredGrid
-                ) -> tuple[list[np.ndarray], int]:
-    """Refuse a slab with nothing to decompose; return :func:`solvable_pieces`."""
-    count = int(valid.sum())
-    if count == 0:
-        raise InputError(f"u/v: every point of {where} is missing; drop it or fill it")
-    pieces, small = solvable_pieces(valid, grid)
-    if not pieces:
-        rows = int(valid.any(axis=1).sum())
-        cols = int(valid.any(axis=0).sum())
-        raise InputError(
-            f"u/v: {where} has {count} valid points in {rows} rows and {cols} columns, in no "
-            f"piece of at least {MINIMUM_SIZE}x{MINIMUM_SIZE} with a 2x2 block: the regional "
-            "decomposition needs a larger domain")
-    return pieces, small
 
 
 def _check_grid(wind: xr.Dataset, periodic: bool) -> tuple[np.ndarray, np.ndarray]:
@@ -523,7 +288,7 @@ def decompose_regional(wind: xr.Dataset, scheme: str = "variational", periodic: 
         ``reconstruction_error``, ``harmonic_energy_share`` (area-weighted,
         relative, never negative: the energy of the ``u_harmonic``,
         ``v_harmonic`` written, for both schemes; see
-        :func:`flowpipe._poisson.variational_partition`) and
+        :func:`flowpipe.regional.partitions.variational_partition`) and
         ``iterations``; attributes ``method`` (``"regional"``), ``scheme``,
         ``regularisation``, ``periodic``, ``solver`` (and ``tolerance``,
         ``max_iterations`` for ``variational``) and the largest of each
@@ -531,8 +296,8 @@ def decompose_regional(wind: xr.Dataset, scheme: str = "variational", periodic: 
         array for a lazy result, which :func:`flowpipe.write` computes with
         the data). On a band with one pole row (given or missing) the pole
         stays a point of the domain of the harmonic wind, not an edge
-        (:func:`_lynch`; every other point valid), and its row holds the values
-        at the pole (:func:`_pole_values`), missing where the input's pole row
+        (:func:`.partitions.lynch_partition`; every other point valid), and its row holds the values
+        at the pole (:func:`.partitions.pole_values`), missing where the input's pole row
         is; other rows on a pole, where wind directions are undefined, are
         returned missing. Attribute ``pole_rows`` says which. Lazy when the
         wind is dask-backed.

@@ -1,0 +1,500 @@
+"""Solvers of the limited-area Helmholtz problems, built once per grid and mask.
+
+One interface: every solver has a ``name`` (its description, for the output) and
+``solve(rhs) -> (x, iterations)``; the linear maps inside it - the inverse
+Laplacians, the operator of the normal equations and the preconditioners - are
+:class:`scipy.sparse.linalg.LinearOperator` objects. Everything that depends only
+on the grid and the mask (transforms' eigenvalues, tridiagonal eliminations,
+sparse LU factors) is built by the constructors; ``solve`` then costs transforms,
+sparse products and triangular sweeps only, so one solver serves every level and
+time of a run.
+"""
+
+from __future__ import annotations
+
+import threading
+
+import numpy as np
+import scipy.fft
+import scipy.sparse as sp
+import scipy.sparse.linalg as spla
+
+from .operators import StaggeredGrid, active_corners, gradient_energy, interior_corners
+
+
+class _Tridiagonal:
+    """Batched Thomas elimination for ``(T + diag(scale) * eig_k) x_k = r_k``, all ``k`` at once.
+
+    ``T`` is tridiagonal in latitude (``lower``, ``diag``, ``upper``) and
+    ``eig_k`` the eigenvalues of the longitude operator that the caller
+    diagonalises with a fast transform. The elimination is done here, once.
+
+    References
+    ----------
+    Thomas algorithm: Conte & de Boor (1980), "Elementary Numerical Analysis",
+    3rd ed., McGraw-Hill, section 3.3 (from memory); its use after a Fourier
+    transform in one direction: Hockney (1965), J. ACM 12, 95-113.
+    """
+
+    def __init__(self, lower: np.ndarray, diag: np.ndarray, upper: np.ndarray,
+                 scale: np.ndarray, eig: np.ndarray) -> None:
+        full = diag[:, None] + scale[:, None] * eig[None, :]
+        den = np.empty_like(full)
+        cprime = np.empty_like(full)
+        den[0] = full[0]
+        cprime[0] = upper[0] / den[0]
+        for j in range(1, full.shape[0]):
+            den[j] = full[j] - lower[j] * cprime[j - 1]
+            cprime[j] = upper[j] / den[j]
+        self._lower = lower
+        self._den = den
+        self._cprime = cprime
+
+    def sweep(self, hat: np.ndarray) -> np.ndarray:
+        """Solve for ``hat`` of shape ``(nlat, ..., nwavenumber)`` (latitude first)."""
+        out = np.empty_like(hat)
+        out[0] = hat[0] / self._den[0]
+        for j in range(1, hat.shape[0]):
+            out[j] = (hat[j] - self._lower[j] * out[j - 1]) / self._den[j]
+        for j in range(hat.shape[0] - 2, -1, -1):
+            out[j] -= self._cprime[j] * out[j + 1]
+        return out
+
+
+def _operator(n: int, apply) -> spla.LinearOperator:
+    """A symmetric ``n x n`` LinearOperator from a function of a vector or of columns."""
+    return spla.LinearOperator((n, n), matvec=apply, matmat=apply, dtype=np.float64)
+
+
+def sparse_lu_inverse(matrix: sp.sparray, **options) -> spla.LinearOperator:
+    """The inverse of a sparse matrix as a LinearOperator, by its sparse LU factors.
+
+    Parameters
+    ----------
+    matrix : scipy.sparse array
+        Square and non-singular.
+    **options
+        Passed to :func:`scipy.sparse.linalg.splu`.
+
+    Returns
+    -------
+    scipy.sparse.linalg.LinearOperator
+        Applies ``matrix^-1`` to a vector or to columns; one factorisation shared by
+        the dask threads (SuperLU's solve is not re-entrant, so it is locked).
+
+    References
+    ----------
+    Li (2005), "An overview of SuperLU: algorithms, implementation, and user
+    interface", ACM Trans. Math. Softw. 31, 302-325, through
+    :func:`scipy.sparse.linalg.splu`.
+    """
+    lu = spla.splu(sp.csc_matrix(matrix), **options)
+    lock = threading.Lock()
+
+    def apply(rhs: np.ndarray) -> np.ndarray:
+        with lock:
+            return lu.solve(np.asarray(rhs, dtype=np.float64))
+
+    return _operator(matrix.shape[0], apply)
+
+
+def separable_laplacian_inverse(grid: StaggeredGrid) -> spla.LinearOperator:
+    """Fast Poisson solver for the five-point corner Laplacian on a whole grid.
+
+    Zero values on the outer ring of corners (on the northern and southern rings
+    only when the grid is periodic in longitude).
+
+    Parameters
+    ----------
+    grid : StaggeredGrid
+
+    Returns
+    -------
+    scipy.sparse.linalg.LinearOperator
+        The inverse Laplacian on the inner corners (rows ``1:-1``, and columns
+        ``1:-1`` unless periodic), flattened in C order.
+
+    Notes
+    -----
+    The longitude second difference is diagonalised by a type-I discrete sine
+    transform (Fourier transform when periodic); each wavenumber leaves a
+    tridiagonal system in latitude. Cost per solve: two transforms and two
+    sweeps, ``O(N log N)``.
+
+    References
+    ----------
+    Hockney (1965), "A fast direct solution of Poisson's equation using
+    Fourier analysis", J. ACM 12, 95-113; Swarztrauber (1974), "A direct method
+    for the discrete solution of separable elliptic equations", SIAM J. Numer.
+    Anal. 11, 1136-1150 (the spherical, variable-coefficient case).
+    """
+    lat_op, b, off = grid.laplacian_factors()
+    ny1, m = grid.corner_shape
+    if grid.periodic:
+        eig = -4.0 * off * np.sin(np.pi * np.arange(m // 2 + 1) / m) ** 2
+    else:
+        eig = -4.0 * off * np.sin(np.pi * np.arange(1, m - 1) / (2 * (m - 1))) ** 2
+    inner = np.arange(1, ny1 - 1)
+    lines = _Tridiagonal(lat_op[inner, inner - 1], lat_op[inner, inner], lat_op[inner, inner + 1],
+                         b[inner], eig)
+    shape = (ny1 - 2, m if grid.periodic else m - 2)
+
+    def apply(rhs: np.ndarray) -> np.ndarray:
+        columns = rhs.reshape(shape + (-1,)).transpose(0, 2, 1)  # latitude, column, longitude
+        if grid.periodic:
+            hat = lines.sweep(scipy.fft.rfft(columns, axis=-1))
+            out = scipy.fft.irfft(hat, n=m, axis=-1)
+        else:
+            out = scipy.fft.idst(lines.sweep(scipy.fft.dst(columns, type=1, axis=-1)), type=1,
+                                 axis=-1)
+        return out.transpose(0, 2, 1).reshape(rhs.shape)
+
+    return _operator(shape[0] * shape[1], apply)
+
+
+def separable_energy_inverse(grid: StaggeredGrid, pin: np.ndarray) -> spla.LinearOperator:
+    """Fast solver for ``(E + diag(pin)) x = r``, ``E`` the gradient energy of a whole corner grid.
+
+    ``E`` is :func:`flowpipe.regional.operators.gradient_energy` with every corner
+    active (natural boundary conditions); ``pin`` a weight per corner row.
+
+    Parameters
+    ----------
+    grid : StaggeredGrid
+    pin : numpy.ndarray
+        Non-negative weight per corner row; positive somewhere, to remove the constants.
+
+    Returns
+    -------
+    scipy.sparse.linalg.LinearOperator
+        ``(E + diag(pin))^-1`` on the corners, flattened in C order.
+
+    Notes
+    -----
+    The longitude path Laplacian is diagonalised by a type-II discrete cosine
+    transform (Fourier when periodic), leaving one tridiagonal system in
+    latitude per wavenumber.
+
+    References
+    ----------
+    Swarztrauber (1974), SIAM J. Numer. Anal. 11, 1136-1150; Strang (1999),
+    "The discrete cosine transform", SIAM Review 41, 135-147 (the DCT-II as the
+    eigenvector basis of the Neumann second difference).
+    """
+    ny1, m = grid.corner_shape
+    zonal, meridional = grid.energy_factors()
+    if grid.periodic:
+        eig = 4.0 * np.sin(np.pi * np.arange(m // 2 + 1) / m) ** 2
+    else:
+        eig = 4.0 * np.sin(np.pi * np.arange(m) / (2 * m)) ** 2
+    diag = np.concatenate([meridional, [0.0]]) + np.concatenate([[0.0], meridional]) + pin
+    lines = _Tridiagonal(np.concatenate([[0.0], -meridional]), diag,
+                         np.concatenate([-meridional, [0.0]]), zonal, eig)
+
+    def apply(rhs: np.ndarray) -> np.ndarray:
+        columns = rhs.reshape(ny1, m, -1).transpose(0, 2, 1)  # latitude, column, longitude
+        if grid.periodic:
+            out = scipy.fft.irfft(lines.sweep(scipy.fft.rfft(columns, axis=-1)), n=m, axis=-1)
+        else:
+            out = scipy.fft.idct(lines.sweep(scipy.fft.dct(columns, type=2, axis=-1, norm="ortho")),
+                                 type=2, axis=-1, norm="ortho")
+        return out.transpose(0, 2, 1).reshape(rhs.shape)
+
+    return _operator(ny1 * m, apply)
+
+
+def _each_potential(inverse: spla.LinearOperator) -> spla.LinearOperator:
+    """``blockdiag(inverse, inverse)`` on the stacked streamfunction and velocity potential."""
+    n = inverse.shape[0]
+
+    def apply(rhs: np.ndarray) -> np.ndarray:
+        pair = rhs.reshape(2, n, -1).transpose(1, 0, 2).reshape(n, -1)
+        return inverse.matmat(pair).reshape(n, 2, -1).transpose(1, 0, 2).reshape(rhs.shape)
+
+    return _operator(2 * n, apply)
+
+
+class DirichletSolver:
+    """Solver of the five-point corner Laplacian with zero values off the interior corners.
+
+    Parameters
+    ----------
+    grid : StaggeredGrid
+    interior : numpy.ndarray
+        Boolean corner mask of the unknowns (:func:`flowpipe.regional.operators.interior_corners`).
+    inverse : scipy.sparse.linalg.LinearOperator
+        The inverse Laplacian on the interior corners, in the order of ``flatnonzero(interior)``.
+    kind : str
+        A key of :attr:`names`.
+    """
+
+    #: The solver's description, for a complete grid and a masked one.
+    names = {
+        "separable": "separable fast Poisson solver (sine or Fourier transform in longitude, "
+                     "tridiagonal in latitude)",
+        "sparse": "sparse LU (SuperLU) of the five-point Laplacian, factorised once per grid "
+                  "and mask",
+    }
+
+    def __init__(self, grid: StaggeredGrid, interior: np.ndarray, inverse: spla.LinearOperator,
+                 kind: str) -> None:
+        self.grid = grid
+        self.interior = interior
+        self.inverse = inverse
+        self.name = self.names[kind]
+
+    def solve(self, rhs: np.ndarray) -> tuple[np.ndarray, int]:
+        """Solve ``L psi = rhs`` at the interior corners for each field of ``rhs``.
+
+        ``rhs`` has shape ``(..., nlat + 1, ncorner_lon)``; ``psi`` the same, zero off
+        the interior corners; no iterations (0).
+        """
+        values = rhs[..., self.interior]
+        columns = values.reshape(-1, values.shape[-1]).T
+        psi = np.zeros(rhs.shape)
+        psi[..., self.interior] = self.inverse.matmat(columns).T.reshape(values.shape)
+        return psi, 0
+
+
+def dirichlet_solver(grid: StaggeredGrid, valid: np.ndarray) -> DirichletSolver:
+    """The cheapest Dirichlet solver for a grid and its mask of valid wind points.
+
+    A whole grid gets :func:`separable_laplacian_inverse`, a masked one the sparse
+    LU of the Laplacian on its interior corners (:func:`sparse_lu_inverse`).
+    """
+    interior = interior_corners(grid, valid)
+    if valid.all():
+        return DirichletSolver(grid, interior, separable_laplacian_inverse(grid), "separable")
+    index = np.flatnonzero(interior.ravel())
+    inverse = sparse_lu_inverse(grid.laplacian[index][:, index])
+    return DirichletSolver(grid, interior, inverse, "sparse")
+
+
+def _dot(a: np.ndarray, b: np.ndarray) -> float:
+    """Inner product without BLAS: a threaded BLAS dot stalls on a busy machine."""
+    return float(np.einsum("i,i->", a, b))
+
+
+#: Masked grids with at most this many active corners get the coupled direct
+#: preconditioner (its factorisation takes about 2 GB at the limit); larger
+#: ones the uncoupled one, which needs far more iterations around the mask.
+COUPLED_LIMIT = 250_000
+#: Regulariser weight of the coupled preconditioner: large enough to keep its
+#: factorisation well conditioned, small enough that few modes feel it.
+COUPLED_WEIGHT = 1e-6
+
+
+class VariationalSolver:
+    """Regularised least-squares fit of corner potentials to the valid winds.
+
+    Minimises, over ``psi`` and ``chi`` at the corners touching a valid wind point,
+
+    ``sum_valid A |w - W_psi psi - W_chi chi|^2 + alpha (E(psi) + E(chi))``
+
+    with ``A`` the cell areas and ``E(f)`` the discrete ``integral |grad f|^2 dA``
+    over the active corners (:func:`flowpipe.regional.operators.gradient_energy`, plus a
+    ``1e-6`` times weaker ``integral f^2 dA`` that fixes the arbitrary
+    constants). The misfit and ``E`` have the same units (``E(psi)`` is the
+    energy of the wind ``psi`` implies), so ``alpha`` is dimensionless.
+
+    The wind operator has a null space: constants, the corner checkerboard
+    (which makes no wind) and the harmonic pairs (a harmonic flow written
+    either as a rotational or as a divergent wind). The normal equations are
+    solved by conjugate gradients preconditioned with ``E`` itself, started
+    from zero: the iterates then never leave the ``E``-orthogonal complement
+    of that null space, so the result is, among the potentials that fit the
+    wind, the pair of least total energy ``E(psi) + E(chi)`` - the limit of
+    the Tikhonov solution for small ``alpha`` - with no checkerboard and the
+    harmonic flow shared between the two parts. Iterations stop when the
+    relative misfit falls to ``tolerance``.
+
+    Parameters
+    ----------
+    grid : StaggeredGrid
+    valid : numpy.ndarray
+        Boolean mask of valid wind points.
+    regularisation : float
+        ``alpha``.
+    tolerance : float
+        Relative (area-weighted RMS) wind misfit at which iterations stop.
+    max_iterations : int
+        Upper bound of iterations.
+
+    Attributes
+    ----------
+    wind : scipy.sparse.csr_array
+        ``W``: the stacked potentials of the active corners to the stacked winds of
+        the valid points.
+    weight : numpy.ndarray
+        ``M``: the cell areas of the valid points, once for ``u`` and once for ``v``.
+    operator : scipy.sparse.linalg.LinearOperator
+        The normal equations ``W^T M W + alpha (E + pin)``.
+    preconditioner : scipy.sparse.linalg.LinearOperator
+        The approximate inverse of :attr:`operator` the iterations use.
+
+    Notes
+    -----
+    What depends on the grid and mask is built once: the sparse operators and
+    the preconditioner. On a complete grid that is ``E`` itself, solved by a
+    separable fast solver: a smooth wind needs a few tens of iterations
+    whatever the grid size. Masks with re-entrant corners (a coast, a block
+    below the ground) make the solution singular there, which ``E`` - blind to
+    the coupling of the two potentials where the mask cuts the box stencils -
+    resolves only in hundreds of iterations; so a masked grid with up to
+    :data:`COUPLED_LIMIT` active corners is preconditioned by the sparse LU of
+    the normal equations plus ``1e-6 E``, which keeps the iterates
+    ``E``-orthogonal to the null space of the wind operator (for ``n`` in it
+    ``n^T N = 0``, so ``(N + beta E) y = b`` with ``b`` orthogonal to ``n`` gives
+    ``n^T E y = 0``): the same least-energy limit in one or two iterations.
+    Larger masked grids fall back to the LU of ``E`` and its many iterations.
+
+    References
+    ----------
+    Li, Chao & McWilliams (2006), "Computation of the streamfunction and
+    velocity potential for limited and irregular domains", Mon. Wea. Rev.
+    134, 3384-3394 (the least-squares formulation with Tikhonov
+    regularisation); Hestenes & Stiefel (1952), "Methods of conjugate gradients
+    for solving linear systems", J. Res. Nat. Bur. Standards 49, 409-436;
+    Hansen (1998), "Rank-Deficient and Discrete Ill-Posed Problems", SIAM,
+    section 6.3 (preconditioned CG started from zero converges to the solution
+    of least seminorm).
+    """
+
+    #: The solver's description, for each kind of preconditioner (:meth:`kind`).
+    names = {
+        "complete": "conjugate gradients preconditioned by a separable fast solver (cosine or "
+                    "Fourier transform in longitude, tridiagonal in latitude)",
+        "coupled": "conjugate gradients preconditioned by a sparse LU (SuperLU) of the "
+                   "regularised normal equations, factorised once per grid and mask",
+        "uncoupled": "conjugate gradients preconditioned by a sparse LU (SuperLU) of the "
+                     "gradient energy, factorised once per grid and mask",
+    }
+
+    @classmethod
+    def kind(cls, grid: StaggeredGrid, valid: np.ndarray) -> str:
+        """Which preconditioner a grid and mask get (a key of :attr:`names`)."""
+        if valid.all():
+            return "complete"
+        if np.count_nonzero(active_corners(grid, valid)) <= COUPLED_LIMIT:
+            return "coupled"
+        return "uncoupled"
+
+    def __init__(self, grid: StaggeredGrid, valid: np.ndarray, regularisation: float,
+                 tolerance: float = 1e-7, max_iterations: int = 1000) -> None:
+        self.grid = grid
+        self.valid = valid
+        self.regularisation = regularisation
+        self.tolerance = tolerance
+        self.max_iterations = max_iterations
+        rows = np.flatnonzero(valid.ravel())
+        active = active_corners(grid, valid)
+        self._cols = np.flatnonzero(active.ravel())
+        u_psi, v_psi, u_chi, v_chi = grid.wind_operators
+        pick = [op[rows][:, self._cols] for op in (u_psi, v_psi, u_chi, v_chi)]
+        self.wind = sp.block_array([[pick[0], pick[2]], [pick[1], pick[3]]], format="csr")
+        self._wind_t = self.wind.T.tocsr()
+        area = np.broadcast_to(grid.centre_area, grid.shape).ravel()[rows]
+        self.weight = np.concatenate([area, area])
+        energy = gradient_energy(grid, active)
+        corner_area = np.broadcast_to(grid.corner_area, grid.corner_shape).ravel()[self._cols]
+        pin = 1e-6 * self._gravest_eigenvalue(energy, corner_area) * corner_area
+        energy = energy + sp.diags_array(pin)
+        stacked_energy = sp.block_diag([energy, energy], format="csr")
+        self._regulariser = regularisation * stacked_energy
+        self.operator = _operator(2 * self._cols.size, self._normal)
+        kind = self.kind(grid, valid)
+        if kind == "complete":
+            self.preconditioner = _each_potential(
+                separable_energy_inverse(grid, pin.reshape(grid.corner_shape)[:, 0]))
+        elif kind == "coupled":
+            normal = self._wind_t @ sp.diags_array(self.weight) @ self.wind
+            self.preconditioner = sparse_lu_inverse(
+                normal + COUPLED_WEIGHT * stacked_energy, permc_spec="MMD_AT_PLUS_A",
+                diag_pivot_thresh=0.0, options={"SymmetricMode": True})
+        else:
+            self.preconditioner = _each_potential(sparse_lu_inverse(energy))
+        self.name = self.names[kind]
+
+    def _gravest_eigenvalue(self, energy: sp.csr_array, corner_area: np.ndarray) -> float:
+        """Rayleigh quotient ``E(f) / integral f^2 dA`` of the domain's gravest sine mode."""
+        ny1, m = self.grid.corner_shape
+        jj, ii = np.meshgrid(np.arange(ny1), np.arange(m), indexing="ij")
+        mode = np.sin(np.pi * (jj + 0.5) / ny1)
+        if not self.grid.periodic:
+            mode = mode * np.sin(np.pi * (ii + 0.5) / m)
+        x = mode.ravel()[self._cols]
+        return _dot(x, energy @ x) / _dot(x, corner_area * x)
+
+    def _normal(self, x: np.ndarray, wind: np.ndarray | None = None) -> np.ndarray:
+        """``W^T M W x + alpha (E + pin) x``; ``wind`` is ``W x`` when known already."""
+        if wind is None:
+            wind = self.wind @ x
+        return self._wind_t @ (self.weight.reshape((-1,) + x.shape[1:]) * wind) + (
+            self._regulariser @ x)
+
+    def solve(self, rhs: np.ndarray) -> tuple[np.ndarray, int]:
+        """Corner streamfunction and velocity potential, and the iterations taken.
+
+        Parameters
+        ----------
+        rhs : numpy.ndarray
+            The wind ``(u, v)`` stacked, shape ``(2, nlat, nlon)``, valid where the
+            solver's mask is.
+
+        Returns
+        -------
+        x : numpy.ndarray
+            ``(psi, chi)`` stacked, shape ``(2, nlat + 1, ncorner_lon)``, zero off the
+            active corners.
+        iterations : int
+
+        Notes
+        -----
+        Preconditioned conjugate gradients (Hestenes & Stiefel 1952) written out here
+        rather than :func:`scipy.sparse.linalg.cg` on :attr:`operator` and
+        :attr:`preconditioner`, for two reasons measured side by side by
+        ``benchmarks/bench_cg.py`` (500 x 500 complete grid, the smooth wind of
+        ``bench_regional.py``, 21 iterations on either side, winds 4e-14 apart):
+
+        * ``cg``'s inner products are ``numpy.dot``, a BLAS ``ddot`` that OpenBLAS
+          spreads over its threads for long vectors (from memory: over 10,000
+          elements). On the shared 2-core machine, with the BLAS threads it gives,
+          ``cg`` took 2.8 and 5.2 times as long as this loop (two runs, median of 7
+          each: 5.81 s against 2.10 s, 14.2 s against 2.73 s); with
+          ``OPENBLAS_NUM_THREADS=1``, 1.07 times (the extra product below). The fix
+          would be a process-wide BLAS thread limit, which a library called from
+          dask threads should not set; this loop's inner products (:func:`_dot`)
+          do not use BLAS;
+        * ``cg`` stops on the normal equations' residual, which bounds the wind
+          misfit only loosely: with ``rtol`` = :attr:`tolerance` it took 43
+          iterations to a misfit of 1.2e-8 where 21 reach 9.9e-8 (on the test
+          winds the misfit came out 0.05 to 0.5 times ``rtol``). Stopping it on the
+          misfit, as :attr:`tolerance` promises, takes a callback with one more
+          sparse product per iteration and an exception, while this loop updates
+          the misfit from the product it already makes.
+        """
+        rows = self.valid.ravel()
+        w = rhs.reshape(2, -1)[:, rows].ravel()
+        misfit = w.copy()
+        target = self.tolerance**2 * _dot(w, self.weight * w)
+        residual = self._wind_t @ (self.weight * w)
+        x = np.zeros_like(residual)
+        z = self.preconditioner.matvec(residual)
+        direction = z.copy()
+        rz = _dot(residual, z)
+        iterations = 0
+        while iterations < self.max_iterations and _dot(misfit, self.weight * misfit) > target:
+            wind = self.wind @ direction
+            image = self._normal(direction, wind)
+            step = rz / _dot(direction, image)
+            x += step * direction
+            residual -= step * image
+            misfit -= step * wind
+            z = self.preconditioner.matvec(residual)
+            rz_new = _dot(residual, z)
+            direction = z + (rz_new / rz) * direction
+            rz = rz_new
+            iterations += 1
+        potentials = np.zeros((2,) + self.grid.corner_shape)
+        potentials.reshape(2, -1)[:, self._cols] = x.reshape(2, -1)
+        return potentials, iterations
