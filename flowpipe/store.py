@@ -528,6 +528,12 @@ def write(ds: xr.Dataset, path: str | os.PathLike, *, precision: str = "input",
     return final
 
 
+#: The names in the dask keys of the tasks that write computed chunks: xarray's own
+#: (``store-map``) and those of :func:`_write_netcdf_chunks`; progress bars count them.
+CHUNK_TASK = "store-chunk"
+WRITE_TASKS = ("store-map", CHUNK_TASK)
+
+
 def _distributed() -> bool:
     """Whether a dask.distributed client runs the computations (its workers are other
     processes, which cannot share one open HDF5 file)."""
@@ -584,11 +590,13 @@ def _write_netcdf_chunks(out: xr.Dataset, tmp: Path, encoding: dict[str, dict],
             if dataset.chunks is not None:
                 source = source.rechunk(dataset.chunks)
             starts = [np.cumsum((0, *sizes[:-1])) for sizes in source.chunks]
+            token = dask.base.tokenize(str(tmp), target.variable_name)
             for index, block in zip(np.ndindex(source.numblocks),
                                     source.to_delayed(optimize_graph=False).ravel(),
                                     strict=True):
                 start = tuple(int(s[i]) for s, i in zip(starts, index, strict=True))
-                tasks.append(dask.delayed(put)(block, start))
+                key = f"{CHUNK_TASK}-{token}-{'.'.join(map(str, index))}"
+                tasks.append(dask.delayed(put)(block, start, dask_key_name=key))
         _, *values = dask.compute(tasks, *lazy.values())
     return values
 
