@@ -203,6 +203,9 @@ def test_the_command_rerun_replaces_its_store_but_not_another_directory(wind_fil
     assert stop.value.code == 2
     assert "not a Zarr store" in capsys.readouterr().err
     assert list(plain.iterdir()) == []
+    # the same directory as an input is named for what it is, not as missing
+    assert main(["inspect", str(plain)]) == 2
+    assert "is a directory, not a NetCDF or GRIB file nor a Zarr store" in capsys.readouterr().err
 
 
 def _night(directory: Path, wind_file: Path) -> Path:
