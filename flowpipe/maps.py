@@ -104,8 +104,6 @@ COLOUR_BAR_BOX = (1.03, 0.0, 0.025, 1.0)
 
 #: Widest limited area (degrees of longitude or latitude) drawn on an azimuthal map.
 AREA_SPAN = 120.0
-#: A domain round the globe that stays poleward of this latitude is a polar cap.
-CAP_EDGE = 15.0
 #: Arrows on a map, about: evenly spaced on the sphere whatever the domain's shape.
 ARROWS = 400
 
@@ -414,9 +412,9 @@ def _domain_projection(lat: np.ndarray, lon: np.ndarray, name: str | ccrs.Projec
             name = "area"
         elif span + step < WRAP_SPAN:
             name = "globe"  # too wide for one azimuthal view: the globe, centred on it
-        elif south >= CAP_EDGE:
+        elif south >= 0.0:  # a hemisphere or a cap round the north pole
             name = "north-cap"
-        elif north <= -CAP_EDGE:
+        elif north <= 0.0:
             name = "south-cap"
         else:
             name = "globe"
@@ -424,8 +422,7 @@ def _domain_projection(lat: np.ndarray, lon: np.ndarray, name: str | ccrs.Projec
         return ccrs.EqualEarth(central_longitude=centre_lon if span < WRAP_SPAN else 0.0), None
     if name in ("north-cap", "south-cap"):
         north_cap = name == "north-cap"
-        edge = (min(max(south, CAP_EDGE), 80.0) if north_cap
-                else max(min(north, -CAP_EDGE), -80.0))
+        edge = (min(max(south, 0.0), 80.0) if north_cap else max(min(north, 0.0), -80.0))
         proj = ccrs.NorthPolarStereo() if north_cap else ccrs.SouthPolarStereo()
         return proj, [-180.0, 180.0, edge, 90.0] if north_cap else [-180.0, 180.0, -90.0, edge]
     pad_lon, pad_lat = max(0.05 * span, 0.5), max(0.05 * (north - south), 0.5)

@@ -424,3 +424,33 @@ def test_image_format_follows_the_suffix(files, tmp_path, capsys):
     assert main(["map", str(files["global"]), "-o", str(tmp_path / "map.nc4")]) == 2
     err = capsys.readouterr().err
     assert err.startswith("flowpipe: error:") and ".png" in err and len(err.splitlines()) == 1
+
+
+@pytest.mark.parametrize("south,north", [(0.0, 90.0), (-90.0, 0.0), (20.0, 90.0)])
+def test_a_hemisphere_is_drawn_on_its_polar_cap(tmp_path, south, north):
+    # A band round the globe that stays in one hemisphere (a 0..90 N file with its pole
+    # row, say) is drawn on that pole's stereographic map reaching its outer row, not on
+    # the globe with an empty other hemisphere (polar stereographic maps of a hemisphere,
+    # common practice); the extent read back from the axes with cartopy.
+    lat = np.linspace(south, north, 19)
+    lon = np.arange(0.0, 360.0, 10.0)
+    wind = xr.Dataset(
+        {"u": (("latitude", "longitude"), np.full((lat.size, lon.size), 5.0),
+               {"standard_name": "eastward_wind", "units": "m s-1"}),
+         "v": (("latitude", "longitude"), np.zeros((lat.size, lon.size)),
+               {"standard_name": "northward_wind", "units": "m s-1"})},
+        coords={"latitude": ("latitude", lat, {"units": "degrees_north"}),
+                "longitude": ("longitude", lon, {"units": "degrees_east"})})
+    fig = maps.render(wind, field="u", size=SIZE)
+    ax = _map_axes(fig)
+    polar = ccrs.NorthPolarStereo if north > 0 else ccrs.SouthPolarStereo
+    assert isinstance(ax.projection, polar)
+    outer = south if north > 0 else north
+    (x0, x1), (y0, y1) = ax.get_xlim(), ax.get_ylim()
+
+    def shown(latitude: float) -> bool:
+        x, y = ax.projection.transform_point(0.0, latitude, ccrs.PlateCarree())
+        return x0 <= x <= x1 and y0 <= y <= y1
+
+    assert shown(outer + 2.0 * np.sign(north + south))  # the outer rows are on the map
+    assert not shown(-outer - 45.0 * np.sign(north + south))  # the other hemisphere is not
