@@ -426,11 +426,17 @@ class Runner:
                                f"traceback is in {LOG_NAME}: please report it")
                     log.error("%s: %s: %s", unit.stem, stage, traceback.format_exc())
                 record["stages"][stage] = {"status": "failed", "error": message}
-                errors.append(f"{stage}: {message}")
+                errors.append((stage, message))
                 log.error("%s: %s failed: %s", unit.stem, stage, message)
         if errors:
+            # stages that failed for one reason (an unreadable input fails them all) are
+            # named together before it, so the reason is said once
+            grouped: dict[str, list[str]] = {}
+            for stage, message in errors:
+                grouped.setdefault(message, []).append(stage)
             record["status"] = "failed"
-            record["error"] = "; ".join(errors)
+            record["error"] = "; ".join(f"{', '.join(stages)}: {message}"
+                                        for message, stages in grouped.items())
         record.setdefault("status", "ok")
         return result
 

@@ -182,6 +182,20 @@ def test_one_truncated_input_among_four(tmp_path):
     assert manifest["status"] == "failed"
 
 
+def test_an_unreadable_input_is_said_once_for_the_stages_it_fails(tmp_path):
+    # Both stages of a truncated input fail for the same reason: the manifest names them
+    # together and gives the reason once (each stage's own record keeps it too).
+    inputs = _inputs(tmp_path, 2)
+    inputs[1].write_bytes(inputs[1].read_bytes()[:2000])
+    config = _config(tmp_path, inputs, maps=False)
+    assert main(["run", "--quiet", str(config)]) == 1
+    unit = json.loads((tmp_path / "out" / "manifest.json").read_text())["units"]["model_1"]
+    assert unit["error"].startswith("decompose, advect: ")
+    assert unit["error"].count("cannot be read as NetCDF") == 1
+    assert all("cannot be read as NetCDF" in unit["stages"][s]["error"]
+               for s in ("decompose", "advect"))
+
+
 class _Text(html.parser.HTMLParser):
     """The page's text: paragraphs, and table rows as lists of cell texts."""
 
