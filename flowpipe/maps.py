@@ -783,6 +783,19 @@ def _arrows(ax, u: xr.DataArray, v: xr.DataArray, lat: np.ndarray, lon: np.ndarr
 
 # ---------------------------------------------------------------- track maps
 
+def _skipped(ds: xr.Dataset, count: int) -> np.ndarray:
+    """Which of ``count`` trajectories were never run: CF flag ``outside_domain_at_start``
+    of their ``status`` (flowpipe's status meanings)."""
+    status = ds.get("status")
+    if status is None or "flag_meanings" not in status.attrs or status.size != count:
+        return np.zeros(count, bool)
+    meanings = str(status.attrs["flag_meanings"]).split()
+    if "outside_domain_at_start" not in meanings:
+        return np.zeros(count, bool)
+    flag = np.ravel(status.attrs["flag_values"])[meanings.index("outside_domain_at_start")]
+    return np.ravel(status.values) == flag
+
+
 def _track_variables(ds: xr.Dataset, label: str) -> dict[str, xr.DataArray]:
     found: dict[str, xr.DataArray] = {}
     for key, standard_name, units in (("latitude", "latitude", "degrees_north"),
@@ -847,7 +860,11 @@ def _track_map(fig: Figure, ds: xr.Dataset, label: str, field: str | None,
         units = str(colour.attrs.get("units", ""))
         colour_label += f" ({_units_text(units)})" if units else ""
 
-    proj, extent = _domain_projection(lat.ravel(), lon.ravel(), projection)
+    # the map covers the tracks that were run: a start outside the domain (skipped, its
+    # one position the start) would stretch it away from them
+    ran = ~_skipped(ds, lat.shape[0])
+    proj, extent = _domain_projection(lat[ran].ravel() if ran.any() else lat.ravel(),
+                                      lon[ran].ravel() if ran.any() else lon.ravel(), projection)
     ax = _map_axes(fig, proj, extent)
     xyz = proj.transform_points(ccrs.Geodetic(), lon.ravel(), lat.ravel())
     x, y = xyz[:, 0].reshape(lat.shape), xyz[:, 1].reshape(lat.shape)

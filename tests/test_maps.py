@@ -405,6 +405,20 @@ def test_track_map_marks_times_ends_by_status_and_the_domain(files, tmp_path):
     assert len(marks.get_offsets()) == expected
 
 
+def test_a_start_outside_the_domain_does_not_stretch_the_track_map(tmp_path):
+    # A start at 40 N 100 E, far east of the 35-65 N, 30 W-10 E domain, is skipped (CF flag
+    # outside_domain_at_start): the map covers the track that ran, not the skipped start
+    # (the map's extent read back in longitude and latitude with cartopy).
+    path = tmp_path / "tracks.nc"
+    assert main(["advect", str(REGIONAL), "--start", "55,-10,850", "--start", "40,100,850",
+                 "--hours", "12", "-o", str(path)]) == 0
+    west, east, south, north = _map_axes(maps.render(path, size=SIZE)).get_extent(
+        ccrs.PlateCarree())
+    with xr.open_dataset(path) as ds:
+        track_lon = ds["longitude"].values[0]
+    assert west <= np.nanmin(track_lon) and np.nanmax(track_lon) <= east < 50.0
+
+
 def test_many_starts_are_thinned(tmp_path):
     tracks = trajectory_like()
     many = xr.concat([tracks] * 150, dim="trajectory")
