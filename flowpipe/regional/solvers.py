@@ -12,13 +12,16 @@ time of a run.
 
 from __future__ import annotations
 
+import math
 import threading
+import time
 
 import numpy as np
 import scipy.fft
 import scipy.sparse as sp
 import scipy.sparse.linalg as spla
 
+from ..notes import note
 from .operators import StaggeredGrid, active_corners, gradient_energy, interior_corners
 
 
@@ -432,6 +435,21 @@ class VariationalSolver:
         return self._wind_t @ (self.weight.reshape((-1,) + x.shape[1:]) * wind) + (
             self._regulariser @ x)
 
+    def _progress(self, iterations: int, first: float, now: float, target: float,
+                  start: float) -> str:
+        """The note of an iteration: its count, the misfit and a guess of the time left.
+
+        The guess extrapolates the mean decrease of the misfit per iteration so far
+        (its logarithm, linearly) to :attr:`tolerance`, at the mean time per iteration.
+        """
+        text = (f"CG iteration {iterations}/{self.max_iterations}, misfit "
+                f"{math.sqrt(now / first):.1e} (stops at {self.tolerance:.0e})")
+        rate = math.log(first / now) / iterations if now < first else 0.0
+        if rate > 0:
+            left = min(math.log(now / target) / rate, self.max_iterations - iterations)
+            text += f", about {left * (time.perf_counter() - start) / iterations:.0f} s left"
+        return text
+
     def solve(self, rhs: np.ndarray) -> tuple[np.ndarray, int]:
         """Corner streamfunction and velocity potential, and the iterations taken.
 
@@ -483,7 +501,11 @@ class VariationalSolver:
         direction = z.copy()
         rz = _dot(residual, z)
         iterations = 0
-        while iterations < self.max_iterations and _dot(misfit, self.weight * misfit) > target:
+        start, first = time.perf_counter(), _dot(w, self.weight * w)
+        while (iterations < self.max_iterations
+               and (now := _dot(misfit, self.weight * misfit)) > target):
+            if iterations:
+                note(lambda k=iterations, m=now: self._progress(k, first, m, target, start))
             wind = self.wind @ direction
             image = self._normal(direction, wind)
             step = rz / _dot(direction, image)
