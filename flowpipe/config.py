@@ -20,7 +20,6 @@ from typing import Any
 
 from .choices import (
     COMPRESSIONS,
-    DEFAULT_COMPRESSION,
     DEFAULT_MAX_SPEED,
     IMPLAUSIBLE_CHOICES,
     METHODS,
@@ -104,7 +103,7 @@ SCHEMA: dict[str, dict[str, tuple[tuple[type, ...], Any]]] = {
     "output": {
         "directory": ((str,), REQUIRED),
         "precision": ((str,), "input"),
-        "compression": ((str,), DEFAULT_COMPRESSION),
+        "compression": ((str,), None),
         "compression_level": ((int,), None),
         "significant_digits": ((int,), None),
     },

@@ -84,6 +84,9 @@ def expand_paths(paths: str | os.PathLike | Iterable[str | os.PathLike]) -> list
             found.extend(Path(m) for m in matches)
         elif Path(text).is_file() or is_zarr_store(Path(text)):
             found.append(Path(text))
+        elif Path(text).is_dir():
+            raise InputError(f"{text}: is a directory, not a NetCDF or GRIB file nor a Zarr "
+                             "store (no Zarr metadata in it); give a file or a store")
         else:
             raise InputError(f"{text}: no such file")
     if not found:

@@ -215,7 +215,8 @@ def render(
         elif "contour" in ds.dims and "node_count" in ds:  # a circulation output
             from .maps_circulation import circulation_figure
 
-            circulation_figure(fig, ds, label, field, level, (time, run, lead), projection)
+            circulation_figure(fig, ds, label, field, level, (time, run, lead), projection,
+                               member)
         else:
             _field_map(fig, ds, label, field, level, (time, run, lead), projection, barbs,
                        member)

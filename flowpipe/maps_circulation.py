@@ -33,6 +33,7 @@ from .maps import (
     _contour_levels,
     _domain_projection,
     _map_axes,
+    _members,
     _select,
     _units_text,
 )
@@ -52,8 +53,14 @@ NODE_STEP = 0.25
 
 def circulation_figure(fig: Figure, ds: xr.Dataset, label: str, field: str | None,
                        level: float | None, when: tuple[str | None, str | None, float | None],
-                       projection) -> None:
-    """Draw the map of the contours and their time-pressure sections into ``fig``."""
+                       projection, member: int | None = None) -> None:
+    """Draw the map of the contours and their time-pressure sections into ``fig``; of an
+    ensemble, those of one member (``member``, default the first)."""
+    name, rows = _members(ds, tuple(ds.dims), label, member)
+    chosen = []
+    if name is not None:
+        ds = ds.isel({name: int(rows[0])})
+        chosen = [f"member {ds[name].values}"]
     choices = [str(n) for n in ds.data_vars if "contour" in ds[n].dims
                and ds[n].dtype.kind == "f" and set(ds[n].dims) <= {"contour", "time", "level"}]
     field = field or DEFAULT_FIELD
@@ -62,6 +69,7 @@ def circulation_figure(fig: Figure, ds: xr.Dataset, label: str, field: str | Non
                          f"{', '.join(choices)}")
     da = ds[field]
     indexers, words = _select(ds, da, label, level, when)
+    words += chosen
     values = np.asarray(da.isel(indexers).transpose("contour", ...).values, float).reshape(-1)
     names = [str(n) for n in ds["contour_name"].values]
     rings = _rings(ds, indexers.get("time"))
@@ -112,7 +120,9 @@ def _drawn(proj: ccrs.Projection, lat: np.ndarray, lon: np.ndarray) -> list[np.n
     x, y = plane_ring(lat, lon)
     projected = proj.project_geometry(ShapelyPolygon(np.column_stack([x, y])),
                                       ccrs.PlateCarree())
-    merged = shapely.union_all([shapely.make_valid(g) for g in shapely.get_parts(projected)])
+    # (2-D: the parts of a ring cut at the map edge may come back with a third coordinate)
+    merged = shapely.force_2d(shapely.union_all([shapely.make_valid(g)
+                                                 for g in shapely.get_parts(projected)]))
     return [np.asarray(g.exterior.coords) for g in shapely.get_parts(merged)
             if g.geom_type == "Polygon" and g.area > 0]
 

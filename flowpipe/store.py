@@ -30,11 +30,11 @@ import xarray as xr
 
 from . import annotate
 from .choices import (
-    DEFAULT_COMPRESSION,
     DEFAULT_LEVEL,
     MAX_SIGNIFICANT_DIGITS,
     QUALITY_FIGURES,
     ZARR_SUFFIX,
+    compression_for,
     encoding_refusal,
 )
 from .errors import (
@@ -370,7 +370,7 @@ def _quantized(ds: xr.Dataset, encoding: dict[str, dict], digits: int) -> xr.Dat
     return ds
 
 
-def check_encoding(precision: str = "input", compression: str = DEFAULT_COMPRESSION,
+def check_encoding(precision: str = "input", compression: str | None = None,
                    compression_level: int | None = None,
                    significant_digits: int | None = None,
                    output: str | os.PathLike | None = None) -> None:
@@ -401,7 +401,7 @@ WRITE_CHUNK_CACHE = 4 * 2**20
 
 
 def write(ds: xr.Dataset, path: str | os.PathLike, *, precision: str = "input",
-          compression: str = DEFAULT_COMPRESSION, compression_level: int | None = None,
+          compression: str | None = None, compression_level: int | None = None,
           significant_digits: int | None = None,
           attributes: dict[str, str] | None = None) -> Path:
     """Write a Dataset to NetCDF-4 (or Zarr) atomically, CF-1.11 and ACDD-1.3 annotated.
@@ -439,8 +439,9 @@ def write(ds: xr.Dataset, path: str | os.PathLike, *, precision: str = "input",
         values beyond about 3.4e38 cannot be stored. Variables rounded from
         double say so in their ``comment`` (:data:`FLOAT32_NOTE`).
         ``"double"``: IEEE 754 binary64.
-    compression : {"zlib", "zstd", "none"}
-        Lossless compression of data variables, zlib with shuffle (:data:`COMPRESSIONS`).
+    compression : {"zlib", "zstd", "none"}, optional
+        Lossless compression of data variables, zlib with shuffle (:data:`COMPRESSIONS`);
+        by default zlib for NetCDF and zstd for a Zarr store (:func:`compression_for`).
     compression_level : int, optional
         zlib 1-9 or zstd 1-22; default 1 (:data:`DEFAULT_LEVEL`).
     significant_digits : int, optional
@@ -470,6 +471,7 @@ def write(ds: xr.Dataset, path: str | os.PathLike, *, precision: str = "input",
     """
     final = Path(path)
     check_encoding(precision, compression, compression_level, significant_digits, final)
+    compression = compression_for(compression, final)
     out = annotate.complete(ds, attributes)
     lazy = {k: v for k, v in out.attrs.items() if dask.is_dask_collection(v)}
     out.attrs = {k: v for k, v in out.attrs.items() if k not in lazy}

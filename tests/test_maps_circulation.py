@@ -186,3 +186,47 @@ def test_a_box_across_the_date_line_is_drawn_as_the_box(tmp_path, centre):
                 for p in parts]
         ranges = sorted((float(lo.min()), float(lo.max())) for lo in lons)
         np.testing.assert_allclose(ranges, [(-180.0, -170.0), (170.0, 180.0)], atol=1e-6)
+
+
+@pytest.mark.parametrize("projection", [None, "globe"])
+def test_a_pole_circle_beside_a_moving_circle_is_drawn(tmp_path, projection):
+    # A polar cap and a storm-following circle in one file, on the map the file chooses
+    # (auto: the globe) and on the globe: each contour drawn once, the cap over the pole
+    # (cartopy/PROJ transform of the pole read back from the drawn artist).
+    both = fp.circulation(fp.open_wind(GLOBAL).isel(time=slice(0, 2)), [
+        contours.circle(90, 0, 300), contours.read_track(TRACK, 400)])
+    path = fp.write(both, tmp_path / "both.nc")
+    fig = maps.render(path, size=SIZE, projection=projection)
+    patches = _patches(fig)
+    assert sorted(patches) == ["circle 90,0,300km", "demo_storm_track"]
+    ax = _map_axes(fig)
+    fig.canvas.draw()
+    inside = ax.transData.transform(ax.projection.transform_point(0.0, 89.99,
+                                                                   ccrs.PlateCarree()))
+    extent = patches["circle 90,0,300km"].get_window_extent()
+    assert extent.x0 <= inside[0] <= extent.x1 and extent.y0 - 1 <= inside[1] <= extent.y1 + 1
+
+
+@pytest.mark.parametrize("member", [None, 7])
+def test_an_ensembles_contours_are_those_of_one_member(tmp_path, member):
+    # Two members (CF standard name realization), the second with twice the wind: the map
+    # colours each contour by the chosen member's value (the first by default), as
+    # BoundaryNorm bands it (matplotlib), and says which member it is.
+    wind = fp.open_wind(GLOBAL).isel(time=slice(0, 1)).load()
+    ensemble = xr.concat([wind, wind * 2.0], dim="realization")
+    ensemble = ensemble.assign_coords(realization=("realization", [3, 7],
+                                                   {"standard_name": "realization"}))
+    for name in ("u", "v"):
+        ensemble[name].attrs = wind[name].attrs
+    shapes = [contours.box(30, 60, -40, 0), contours.circle(45, 160, 1500)]
+    path = fp.write(fp.circulation(ensemble, shapes), tmp_path / "ensemble.nc")
+    fig = maps.render(path, size=SIZE, member=member)
+    with xr.open_dataset(path) as ds:
+        chosen = ds["mean_vorticity"].sel(realization=member or 3).isel(time=0, level=0)
+        values, names = chosen.values, [str(n) for n in ds.contour_name.values]
+    (bar,) = _map_axes(fig).child_axes
+    (solids,) = [c for c in bar.collections if type(c).__name__ == "QuadMesh"]
+    patches = _patches(fig)
+    for name, value in zip(names, values, strict=True):
+        np.testing.assert_allclose(patches[name].get_facecolor(), solids.cmap(solids.norm(value)))
+    assert f"member {member or 3}" in _map_axes(fig).get_title(loc="left")

@@ -81,9 +81,22 @@ def test_zarr_store_is_format_3_consolidated_chunked_as_the_netcdf_file(written)
             if array.ndim == 4:
                 assert array.chunks[-2:] == (SMALL_LAT.size, SMALL_LON.size)  # whole slabs
             (codec,) = array.compressors
-            # blosc with zlib at the default level and byte shuffle, as the NetCDF file
+            # blosc with the stores' default zstd at the default level and byte shuffle
             assert type(codec).__name__ == "BloscCodec"
-            assert (codec.cname.value, codec.clevel, codec.shuffle.value) == ("zlib", 1, "shuffle")
+            assert (codec.cname.value, codec.clevel, codec.shuffle.value) == ("zstd", 1, "shuffle")
+
+
+def test_zlib_asked_for_is_written_to_a_store_and_zlib_is_the_netcdf_default(written,
+                                                                             wind_file, tmp_path):
+    # zarr-python reads the codec of a store written with --compression zlib; netCDF4
+    # reports the filters netCDF-C applied to the NetCDF file written with the defaults.
+    target = tmp_path / "zlib.zarr"
+    assert main(["decompose", str(wind_file), "-o", str(target), "--compression", "zlib"]) == 0
+    (codec,) = zarr.open_group(target, mode="r")["vorticity"].compressors
+    assert (codec.cname.value, codec.clevel) == ("zlib", 1)
+    with netCDF4.Dataset(written["nc"]) as nc:
+        filters = nc["vorticity"].filters()
+        assert filters["zlib"] and filters["shuffle"] and not filters["zstd"]
 
 
 def test_zarr_attributes_pass_the_cf_1_11_check(written, tmp_path):
@@ -190,6 +203,9 @@ def test_the_command_rerun_replaces_its_store_but_not_another_directory(wind_fil
     assert stop.value.code == 2
     assert "not a Zarr store" in capsys.readouterr().err
     assert list(plain.iterdir()) == []
+    # the same directory as an input is named for what it is, not as missing
+    assert main(["inspect", str(plain)]) == 2
+    assert "is a directory, not a NetCDF or GRIB file nor a Zarr store" in capsys.readouterr().err
 
 
 def _night(directory: Path, wind_file: Path) -> Path:

@@ -36,16 +36,16 @@ def add_output_options(parser: argparse.ArgumentParser) -> None:
     """How the output stores its data (precision, compression, quantization; see
     :func:`flowpipe.write`) and ``--attribute KEY=VALUE`` (repeatable): a global
     attribute stamped on it."""
-    from ..choices import COMPRESSIONS, DEFAULT_COMPRESSION, PRECISIONS
+    from ..choices import COMPRESSIONS, PRECISIONS
 
     parser.add_argument("--precision", choices=PRECISIONS, default="input",
                         help="floating-point storage: as the input wind was stored (default; "
                         "float32 or packed 16-bit input gives single precision), single "
                         "(about 7 significant digits, half the size) or double")
-    parser.add_argument("--compression", choices=COMPRESSIONS, default=DEFAULT_COMPRESSION,
-                        help="lossless compression: zlib with shuffle (default, level 1; every "
-                        "netCDF-4 reader), zstd (faster; readers need netCDF-C 4.9 or later) "
-                        "or none")
+    parser.add_argument("--compression", choices=COMPRESSIONS,
+                        help="lossless compression: zlib with shuffle (default for NetCDF, level "
+                        "1; every netCDF-4 reader), zstd (default for .zarr stores; for NetCDF "
+                        "faster, but readers need netCDF-C 4.9 or later) or none")
     parser.add_argument("--compression-level", type=int, metavar="N",
                         help="zlib 1-9 or zstd 1-22 (default 1)")
     parser.add_argument("--significant-digits", type=int, metavar="N",
