@@ -351,6 +351,20 @@ class VariationalSolver:
     ``n^T E y = 0``): the same least-energy limit in one or two iterations.
     Larger masked grids fall back to the LU of ``E`` and its many iterations.
 
+    Measured alternatives for the larger masked grids (400 x 400 box, a disc of 6
+    degrees radius masked, the wind of ``benchmarks/bench_regional.py``; the coupled LU
+    there: 2 iterations, 4.5 s), neither kept:
+
+    * smoothed-aggregation algebraic multigrid (pyamg 5.4, the corner checkerboard of
+      each potential as near-null candidates, CG-accelerated) on the matrix the coupled
+      LU factorises: 300 iterations, 162 s, residual still 1.4e-5;
+    * ``E + gamma W^T D W`` with ``D`` the cell areas of the valid points within 12 (or
+      40) points of the mask, zero elsewhere: the coupled preconditioner near the mask
+      only. It keeps the least-energy limit for any ``D`` (``W n = 0`` on the null
+      space), and its LU is as cheap as that of ``E``, but with ``gamma`` 1e2 to 1e6 it
+      had not converged after 150 iterations: the slow modes are not only those next to
+      the mask.
+
     References
     ----------
     Li, Chao & McWilliams (2006), "Computation of the streamfunction and
