@@ -16,11 +16,22 @@ and prints their ratio (issue target <= 10, aim about 3), the largest misfit of
 rotational + divergent + unresolved at the valid points (target 1e-6) and the size of the
 unresolved part alone. The regional route (``method="regional"``) is timed once at 1 degree.
 
-Run: ``.venv/bin/python benchmarks/bench_masked.py``
+Limited area (issue target: a masked level <= 3x the same level unmasked, both schemes):
+the smooth wind of ``bench_regional.py`` on an ``N x N`` box (default 1000 x 1000, 20-70N,
+30W-20E) with a terrain-like mask (a disc of 6 degrees radius and a ridge, about 7.5 % of
+the points), ``decompose_regional`` with each scheme on the unmasked and the masked level,
+each timed twice per round, sides alternated: with an empty solver cache (``first``: the
+build included) and again (``again``: the solver reused, the cost of every later level
+and time). It prints the median of each, the iterations and the reconstruction error
+beside each time, and the masked / unmasked ratios side by side.
+
+Run: ``.venv/bin/python benchmarks/bench_masked.py [--global 1,0.5,0.25]
+[--limited-n 1000] [--limited-repeats 1]`` (``--global ""`` or ``--limited-n 0`` skips a part)
 """
 
 from __future__ import annotations
 
+import argparse
 import os
 import sys
 import time
@@ -28,13 +39,17 @@ from functools import partial
 from pathlib import Path
 
 import numpy as np
+import xarray as xr
 
 sys.path.insert(0, str(Path(__file__).resolve().parents[1] / "tests"))
 from _transforms import floor_transforms  # noqa: E402
 from reference_winds import A, mesh, wind_dataset  # noqa: E402
 
 import flowpipe as fp  # noqa: E402
-from flowpipe import spectral  # noqa: E402
+from flowpipe import regional, spectral  # noqa: E402
+
+sys.path.insert(0, str(Path(__file__).resolve().parent))
+from bench_regional import smooth_wind  # noqa: E402
 
 REPEATS = 5
 NTHREADS = len(os.sched_getaffinity(0))
@@ -114,5 +129,58 @@ def main(resolutions=(1.0, 0.5, 0.25)) -> None:
                   f"({t / f:.1f}x the floor), reconstruction max error {worst:.2e}")
 
 
+def terrain_mask(lat: np.ndarray, lon: np.ndarray) -> np.ndarray:
+    """A disc of 6 degrees radius at 45N 5W and a ridge 1.5 degrees wide along 60N, 15W-5E."""
+    y, x = lat[:, None], lon[None, :]
+    disc = (y - 45.0) ** 2 + ((x + 5.0) * np.cos(np.radians(45.0))) ** 2 < 6.0**2
+    return disc | ((np.abs(y - 60.0) < 0.75) & (x > -15.0) & (x < 5.0))
+
+
+def limited_area(n: int, repeats: int) -> None:
+    """The masked and the unmasked limited-area level, both schemes, side by side."""
+    lat, lon = np.linspace(20.0, 70.0, n), np.linspace(-30.0, 20.0, n)
+    u, v = smooth_wind(lat, lon, 0)
+    mask = terrain_mask(lat, lon)
+    dims = ("latitude", "longitude")
+    levels = {name: xr.Dataset({"u": (dims, np.where(m, np.nan, u)),
+                                "v": (dims, np.where(m, np.nan, v))},
+                               coords={"latitude": lat, "longitude": lon})
+              for name, m in (("unmasked", np.zeros_like(mask)), ("masked", mask))}
+    print(f"limited area {n}x{n}, masked {mask.mean():.1%} of points; per level, median of "
+          f"{repeats}, sides alternated")
+    for scheme in regional.SCHEMES:
+        times: dict[str, dict[str, list[float]]] = {k: {"first": [], "again": []} for k in levels}
+        figures = {}
+        for k in range(repeats):
+            for name in (("unmasked", "masked") if k % 2 == 0 else ("masked", "unmasked")):
+                regional.cache.clear()
+                for when in ("first", "again"):
+                    t, out = timed(partial(regional.decompose_regional, levels[name],
+                                           scheme=scheme))
+                    times[name][when].append(t)
+                figures[name] = (out.attrs["iterations"], out.attrs["reconstruction_error"],
+                                 out.attrs["solver"])
+        med = {name: {when: float(np.median(t)) for when, t in sides.items()}
+               for name, sides in times.items()}
+        for name in levels:
+            iterations, error, solver = figures[name]
+            print(f"  {scheme:>11} {name:>8}: first {med[name]['first']:7.2f} s, again "
+                  f"{med[name]['again']:7.2f} s; {iterations:.0f} iterations, reconstruction "
+                  f"error {error:.1e}; {solver}")
+        print(f"  {scheme:>11} masked / unmasked: first "
+              f"{med['masked']['first'] / med['unmasked']['first']:.2f}x, again "
+              f"{med['masked']['again'] / med['unmasked']['again']:.2f}x (target <= 3)")
+
+
 if __name__ == "__main__":
-    main()
+    parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    parser.add_argument("--global", dest="resolutions", default="1,0.5,0.25",
+                        help="global resolutions in degrees, comma-separated ('' to skip)")
+    parser.add_argument("--limited-n", type=int, default=1000,
+                        help="points per side of the limited area (0 to skip)")
+    parser.add_argument("--limited-repeats", type=int, default=1)
+    args = parser.parse_args()
+    if args.resolutions:
+        main(tuple(float(step) for step in args.resolutions.split(",")))
+    if args.limited_n:
+        limited_area(args.limited_n, args.limited_repeats)

@@ -4,16 +4,25 @@ A bar appears only when standard error is a terminal: a nightly job under cron,
 a pipe or a log file gets nothing from here (the batch runner logs its own
 lines instead). The long single commands follow their dask computations with
 a dask callback (:class:`dask.callbacks.Callback`, local schedulers only; a
-dask.distributed cluster has its own dashboard).
+dask.distributed cluster has its own dashboard). A bar that takes notes shows the last
+one (:mod:`flowpipe.notes`: the iterations of the slab being solved, say) after its
+counts, so that something moves while one slab takes minutes.
 """
 
 from __future__ import annotations
 
 import sys
+import time
 from collections.abc import Callable, Hashable
+from contextlib import ExitStack
 
 from dask.callbacks import Callback
 from tqdm import tqdm
+
+from .notes import listening
+
+#: Seconds between two notes redrawn on a bar (the first is always shown).
+NOTE_INTERVAL = 0.5
 
 
 def on_terminal(quiet: bool = False) -> bool:
@@ -46,13 +55,32 @@ class TaskBar(Callback):
         Counted tasks per unit of the bar; by default the counted tasks of each
         computation spread evenly over the bar's total (the tasks of writing
         ``N`` variables of ``S`` slabs advance it by one slab every ``N``).
+    notes : bool
+        Show the notes of the computation (:func:`flowpipe.notes.note`) after the counts,
+        at most one every :data:`NOTE_INTERVAL` seconds; a note is cleared when the bar
+        advances. Never on a disabled bar.
     """
 
     def __init__(self, progress: tqdm, counts: Callable[[Hashable], bool] | None = None,
-                 per_unit: int | None = None) -> None:
+                 per_unit: int | None = None, notes: bool = False) -> None:
         super().__init__()
         self.progress, self.counts, self.per_unit = progress, counts, per_unit
         self.done = self.tasks = 0
+        self._notes = notes and not progress.disable
+        self._noted: float | None = None
+        self._stack = ExitStack()
+
+    def __enter__(self) -> TaskBar:
+        super().__enter__()
+        if self._notes:
+            self._stack.enter_context(listening(self._note))
+        return self
+
+    def _note(self, text: str) -> None:
+        now = time.monotonic()
+        if self._noted is None or now - self._noted >= NOTE_INTERVAL:
+            self._noted = now
+            self.progress.set_postfix_str(text)
 
     def _start(self, dsk) -> None:
         if self.counts is not None:
@@ -69,8 +97,11 @@ class TaskBar(Callback):
         per_unit = self.per_unit or max(self.tasks, 1) / max(self.progress.total or 1, 1)
         shown = min(int(self.done / per_unit), self.progress.total or 0)
         if shown > self.progress.n:
+            if self._notes:
+                self.progress.set_postfix_str("", refresh=False)
             self.progress.update(shown - self.progress.n)
 
     def __exit__(self, *args) -> None:
+        self._stack.close()
         super().__exit__(*args)
         self.progress.close()

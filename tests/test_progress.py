@@ -9,6 +9,7 @@ and tqdm draws its bars with carriage returns and ``N/M`` counts
 from __future__ import annotations
 
 import fcntl
+import io
 import os
 import pty
 import struct
@@ -17,7 +18,10 @@ import sys
 import termios
 from pathlib import Path
 
+import numpy as np
 import pytest
+import xarray as xr
+from tqdm import tqdm
 from windfiles import small_global_file
 
 
@@ -89,3 +93,59 @@ def test_batch_run_shows_steps_on_a_terminal(wind_file, tmp_path):
     code, shown = _on_terminal(["run", str(config)])
     assert code == 0
     assert "1/1" in shown and "step" in shown
+
+
+@pytest.fixture(scope="module")
+def regional_file(tmp_path_factory) -> Path:
+    """A limited-area level (invented: a vortex over a 40x40 box) with a disc below the ground."""
+    lat = np.linspace(30.0, 50.0, 40)
+    lon = np.linspace(-10.0, 10.0, 40)
+    y, x = np.meshgrid(lat - 40.0, lon, indexing="ij")
+    u, v = -y * np.exp(-(x**2 + y**2) / 50), x * np.exp(-(x**2 + y**2) / 50)
+    ground = (y - 4) ** 2 + (x + 3) ** 2 < 9
+    attrs = {"u": {"standard_name": "eastward_wind", "units": "m s-1"},
+             "v": {"standard_name": "northward_wind", "units": "m s-1"}}
+    wind = xr.Dataset({name: (("latitude", "longitude"), np.where(ground, np.nan, field),
+                              attrs[name]) for name, field in (("u", u), ("v", v))},
+                      coords={"latitude": ("latitude", lat, {"units": "degrees_north"}),
+                              "longitude": ("longitude", lon, {"units": "degrees_east"})})
+    path = tmp_path_factory.mktemp("progress_regional") / "box.nc"
+    wind.to_netcdf(path)
+    return path
+
+
+def test_regional_decompose_shows_its_solver_notes_on_a_terminal(regional_file, tmp_path):
+    code, shown = _on_terminal(_decompose(regional_file, tmp_path))
+    assert code == 0
+    assert "1/1" in shown and "slab" in shown
+    # the first note is always drawn (tqdm's postfix after the counts, tqdm docs "Usage")
+    assert "building the" in shown
+
+
+def test_regional_quiet_shows_no_notes(regional_file, tmp_path):
+    code, shown = _on_terminal(_decompose(regional_file, tmp_path, "--quiet"))
+    assert code == 0
+    assert shown == ""
+
+
+def test_a_bar_shows_the_iterations_of_a_slab(monkeypatch):
+    """The CG iterations of a variational solve reach a bar taking notes, off the counts."""
+    from flowpipe import progress
+    from flowpipe.regional import cache, solvers
+
+    monkeypatch.setattr(progress, "NOTE_INTERVAL", 0.0)  # draw every note
+    lat, lon = np.linspace(30.0, 50.0, 30), np.linspace(-10.0, 10.0, 30)
+    grid = cache.staggered_grid(lat, lon, False)
+    solver = solvers.VariationalSolver(grid, np.ones(grid.shape, bool), 1e-10)
+    y, x = np.meshgrid(lat - 40.0, lon, indexing="ij")
+    wind = np.stack([-y * np.exp(-(x**2 + y**2) / 50), x * np.exp(-(x**2 + y**2) / 50)])
+    shown = io.StringIO()
+    with progress.TaskBar(tqdm(total=1, file=shown, disable=False), notes=True):
+        _, iterations = solver.solve(wind)
+    assert iterations > 1
+    assert f"CG iteration {iterations - 1}/" in shown.getvalue()
+    assert "s left" in shown.getvalue()
+    quiet = io.StringIO()
+    with progress.TaskBar(tqdm(total=1, file=quiet, disable=True), notes=True):
+        solver.solve(wind)
+    assert quiet.getvalue() == ""

@@ -61,13 +61,14 @@ def register(sub: argparse._SubParsersAction, common: argparse.ArgumentParser) -
 
 def write_progress(parts: xr.Dataset, quiet: bool) -> TaskBar:
     """Slabs written (one slab: a time and level of every variable), rate and time left,
-    from the tasks that store the computed chunks."""
+    from the tasks that store the computed chunks; the notes of the solvers after them
+    (the iterations of the slab being solved), which move while a slab takes minutes."""
     from ..progress import TaskBar, bar, key_name
     from ..store import WHOLE_DIMS, WRITE_TASKS
 
     slabs = math.prod(parts.sizes.get(d, 1) for d in parts.dims if d not in WHOLE_DIMS)
     return TaskBar(bar(slabs, "slab", quiet, desc="decompose"),
-                   lambda key: any(name in key_name(key) for name in WRITE_TASKS))
+                   lambda key: any(name in key_name(key) for name in WRITE_TASKS), notes=True)
 
 
 def _names(text: str) -> list[str]:

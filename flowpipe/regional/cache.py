@@ -16,11 +16,16 @@ from typing import Any
 import numpy as np
 
 from ..constants import EARTH_RADIUS
+from ..notes import note
 from .operators import StaggeredGrid
 from .solvers import DirichletSolver, VariationalSolver, dirichlet_solver
 
 #: Grids and solvers kept in memory (each grid and mask is one entry).
 CACHE_SIZE = 8
+
+#: What each kind of entry is, for the progress notes while one is built.
+BUILDS = {"grid": "the staggered grid", "dirichlet": "the Dirichlet solver",
+          "variational": "the variational solver"}
 
 _entries: OrderedDict[tuple, Any] = OrderedDict()
 _lock = threading.Lock()
@@ -37,6 +42,7 @@ def _cached(key: tuple, build: Callable[[], Any]) -> Any:
         if key in _entries:
             _entries.move_to_end(key)
             return _entries[key]
+        note(lambda: f"building {BUILDS[key[0]]} of a new grid or mask")
         value = build()
         _entries[key] = value
         while len(_entries) > CACHE_SIZE:
