@@ -15,7 +15,7 @@ import re
 import tomllib
 from collections.abc import Callable, Iterable
 from dataclasses import dataclass, field
-from pathlib import Path
+from pathlib import Path, PurePath
 from typing import Any
 
 from .choices import (
@@ -28,6 +28,7 @@ from .choices import (
     SPECTRAL_VARIABLES,
     VERTICAL,
     WIND_PRODUCTS,
+    ZARR_SUFFIX,
     encoding_refusal,
 )
 from .choices import SCHEMES as REGIONAL_SCHEMES
@@ -408,8 +409,15 @@ def _check_values(config: Config, text: str) -> None:
         raise ConfigError(f"{_where(cfg_path, text, 'output', None)}: [output] {refusal}")
     for stage, fields_allowed in TEMPLATE_FIELDS.items():
         if stage in config.tables:
-            check_template(config.tables[stage]["output"], fields_allowed,
-                           _where(cfg_path, text, stage, "output"), f"[{stage}] output")
+            template = config.tables[stage]["output"]
+            check_template(template, fields_allowed, _where(cfg_path, text, stage, "output"),
+                           f"[{stage}] output")
+            if storage["significant_digits"] is not None and \
+                    PurePath(template).suffix == ZARR_SUFFIX:
+                raise ConfigError(f"{_where(cfg_path, text, 'output', 'significant_digits')}: "
+                                  f"[output] significant_digits: [{stage}] output {template} "
+                                  "is a Zarr store, and quantization is written to NetCDF "
+                                  "outputs only; drop significant_digits or write .nc files")
     if "advect" in config.tables:
         adv = config.tables["advect"]
         if (adv["starts"] is None) == (adv["starts_file"] is None):

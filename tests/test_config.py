@@ -49,6 +49,19 @@ def test_config_errors_name_the_key_and_line(tmp_path, capsys, body, expected):
     assert not (tmp_path / "out").exists()  # nothing written
 
 
+def test_quantization_with_a_zarr_template_is_refused_when_loading(tmp_path, capsys):
+    # configs/README.md: significant_digits applies to NetCDF outputs only (Zarr stores
+    # take no quantization), said at loading, before anything is written.
+    path = tmp_path / "night.toml"
+    path.write_text(f'[input]\npaths = ["{SAMPLE}"]\n\n[decompose]\noutput = "{{stem}}.zarr"\n'
+                    '\n[output]\ndirectory = "out"\nsignificant_digits = 3\n')
+    assert main(["run", str(path)]) == 2
+    err = capsys.readouterr().err
+    assert "line 9: [output] significant_digits: [decompose] output {stem}.zarr is a Zarr store" \
+        in err
+    assert not (tmp_path / "out").exists()
+
+
 def test_missing_input_path_is_named(tmp_path, capsys):
     path = tmp_path / "night.toml"
     path.write_text('[input]\npaths = ["nowhere/*.nc"]\n[output]\ndirectory = "out"\n')
