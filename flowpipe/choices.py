@@ -147,12 +147,18 @@ ZARR_SUFFIX = ".zarr"
 MAX_SIGNIFICANT_DIGITS = {4: 7, 8: 15}
 
 
+def is_zarr_path(path: str | os.PathLike) -> bool:
+    """Whether an output or input name is a Zarr store's (ends in :data:`ZARR_SUFFIX`);
+    every other name is a NetCDF-4 file's."""
+    return PurePath(path).suffix == ZARR_SUFFIX
+
+
 def compression_for(compression: str | None, output: str | os.PathLike | None) -> str:
     """The compression asked for, or by default that of the output's format: zlib for
     NetCDF (every netCDF-4 reader), zstd for a Zarr store (:data:`ZARR_DEFAULT_COMPRESSION`)."""
     if compression is not None:
         return compression
-    zarr_store = output is not None and PurePath(output).suffix == ZARR_SUFFIX
+    zarr_store = output is not None and is_zarr_path(output)
     return ZARR_DEFAULT_COMPRESSION if zarr_store else DEFAULT_COMPRESSION
 
 

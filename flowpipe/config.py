@@ -15,7 +15,7 @@ import re
 import tomllib
 from collections.abc import Callable, Iterable
 from dataclasses import dataclass, field
-from pathlib import Path, PurePath
+from pathlib import Path
 from typing import Any
 
 from .choices import (
@@ -28,8 +28,8 @@ from .choices import (
     SPECTRAL_VARIABLES,
     VERTICAL,
     WIND_PRODUCTS,
-    ZARR_SUFFIX,
     encoding_refusal,
+    is_zarr_path,
 )
 from .choices import SCHEMES as REGIONAL_SCHEMES
 from .errors import InputError, UsageError
@@ -413,7 +413,7 @@ def _check_values(config: Config, text: str) -> None:
             check_template(template, fields_allowed, _where(cfg_path, text, stage, "output"),
                            f"[{stage}] output")
             if storage["significant_digits"] is not None and \
-                    PurePath(template).suffix == ZARR_SUFFIX:
+                    is_zarr_path(template):
                 raise ConfigError(f"{_where(cfg_path, text, 'output', 'significant_digits')}: "
                                   f"[output] significant_digits: [{stage}] output {template} "
                                   "is a Zarr store, and quantization is written to NetCDF "

@@ -17,7 +17,7 @@ import netCDF4
 import numpy as np
 
 from .annotate import CAUTION
-from .choices import REPORTED_FIGURES
+from .choices import REPORTED_FIGURES, is_zarr_path
 from .store import atomic_path
 
 REPORT_NAME = "report.html"
@@ -68,7 +68,7 @@ def output_facts(path: Path) -> dict[str, Any]:
                 name: (lambda var=var: np.ma.filled(np.ma.asarray(var[:], dtype=float), np.nan),
                        {k: var.getncattr(k) for k in var.ncattrs()})
                 for name, var in nc.variables.items()})
-    if path.suffix == ".zarr":
+    if is_zarr_path(path):
         import xarray as xr
 
         with xr.open_zarr(path, decode_times=False) as ds:

@@ -15,7 +15,6 @@ import errno
 import math
 import os
 import shutil
-import threading
 import uuid
 import warnings
 import zlib
@@ -33,9 +32,9 @@ from .choices import (
     DEFAULT_LEVEL,
     MAX_SIGNIFICANT_DIGITS,
     QUALITY_FIGURES,
-    ZARR_SUFFIX,
     compression_for,
     encoding_refusal,
+    is_zarr_path,
 )
 from .errors import (
     NO_SPACE_ERRNOS,
@@ -384,7 +383,7 @@ def check_encoding(precision: str = "input", compression: str | None = None,
         For a precision, compression or level out of range, or quantization of
         a Zarr ``output``.
     """
-    zarr_store = output is not None and Path(output).suffix == ZARR_SUFFIX
+    zarr_store = output is not None and is_zarr_path(output)
     if significant_digits is not None and zarr_store:
         raise UsageError(f"{output}: quantization (significant digits) is written to NetCDF "
                          "outputs only; drop it or write a .nc file")
@@ -502,7 +501,7 @@ def write(ds: xr.Dataset, path: str | os.PathLike, *, precision: str = "input",
             out[name].encoding["coordinates"] = None
     certain, upper = _stored_bytes(out, encoding)
     check_space(final, certain, upper)
-    if final.suffix == ZARR_SUFFIX:
+    if is_zarr_path(final):
         with atomic_path(final, sources(ds), needed=upper) as tmp:
             _write_zarr(out, tmp, _zarr_encoding(out, encoding, compression), lazy)
         return final
@@ -630,10 +629,9 @@ def _chunk_writer(dataset) -> Callable[[np.ndarray, tuple[int, ...]], None]:
 
         compress = Zstd(level=level).encode  # one zstd frame, as netCDF-C's filter writes it
     else:
-        compress = _ISAL_LEVEL1 if level == 1 else (lambda data: zlib.compress(data, level))
+        compress = _isal_level1 if level == 1 else (lambda data: zlib.compress(data, level))
     shape, dtype, fill = dataset.chunks, dataset.dtype, dataset.fillvalue
     shuffle = ids[0] == _SHUFFLE
-    lock = threading.Lock()
 
     def put(block: np.ndarray, start: tuple[int, ...]) -> None:
         block = np.ascontiguousarray(block, dtype=dtype)
@@ -643,9 +641,7 @@ def _chunk_writer(dataset) -> Callable[[np.ndarray, tuple[int, ...]], None]:
         raw = block.view(np.uint8)
         if shuffle:  # byte k of every value together, then byte k+1 (HDF5 shuffle filter)
             raw = raw.reshape(-1, dtype.itemsize).T
-        data = compress(raw.tobytes())
-        with lock:
-            dataset.id.write_direct_chunk(start, data)
+        dataset.id.write_direct_chunk(start, compress(raw.tobytes()))  # h5py's lock serialises
     return put
 
 
@@ -658,7 +654,6 @@ def _isal_level1(data: bytes) -> bytes:
 #: HDF5 filter identifiers (HDF Group, "HDF5 Filters": H5Z_FILTER_DEFLATE, H5Z_FILTER_SHUFFLE,
 #: and the registered identifier of the Zstandard filter netCDF-C 4.9 ships).
 _DEFLATE, _SHUFFLE, _ZSTD = 1, 2, 32015
-_ISAL_LEVEL1 = _isal_level1
 
 
 def _zarr_encoding(ds: xr.Dataset, encoding: dict[str, dict], compression: str) -> dict[str, dict]:

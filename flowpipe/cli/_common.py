@@ -6,7 +6,7 @@ import argparse
 import math
 from pathlib import Path
 
-from ..choices import ZARR_SUFFIX
+from ..choices import is_zarr_path
 
 
 def output_file(text: str) -> str:
@@ -15,7 +15,7 @@ def output_file(text: str) -> str:
     under a ``.zarr`` name is replaced when the new one is complete, as a file is."""
     path = Path(text)
     if path.is_dir():
-        if path.suffix == ZARR_SUFFIX:
+        if is_zarr_path(path):
             from ..ingest import is_zarr_store
 
             if is_zarr_store(path):
