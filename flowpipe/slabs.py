@@ -19,6 +19,7 @@ import numpy as np
 import xarray as xr
 
 from . import spectral
+from .cluster import distributed_client
 from .errors import InputError, UsageError
 from .grid import GridInfo
 
@@ -173,15 +174,13 @@ def transform_threads(n_tasks: int) -> int:
     Avoiding oversubscription when nesting thread pools (common practice).
     """
     cores = dask.config.get("flowpipe.cores", None) or len(os.sched_getaffinity(0))
-    try:
-        from distributed import get_client
-
-        workers = sum(get_client().nthreads().values())
-    except (ImportError, ValueError):
-        if dask.config.get("scheduler", None) in ("sync", "synchronous", "single-threaded"):
-            workers = 1
-        else:
-            workers = dask.config.get("num_workers", None) or cores
+    client = distributed_client()
+    if client is not None:
+        workers = sum(client.nthreads().values())
+    elif dask.config.get("scheduler", None) in ("sync", "synchronous", "single-threaded"):
+        workers = 1
+    else:
+        workers = dask.config.get("num_workers", None) or cores
     return max(1, cores // max(1, min(workers, n_tasks)))
 
 

@@ -36,6 +36,7 @@ from .choices import (
     encoding_refusal,
     is_zarr_path,
 )
+from .cluster import distributed_client
 from .errors import (
     NO_SPACE_ERRNOS,
     FlowpipeError,
@@ -506,7 +507,8 @@ def write(ds: xr.Dataset, path: str | os.PathLike, *, precision: str = "input",
             _write_zarr(out, tmp, _zarr_encoding(out, encoding, compression), lazy)
         return final
     with atomic_path(final, sources(ds), needed=upper) as tmp, _write_chunk_cache():
-        if compression != "none" and significant_digits is None and not _distributed():
+        if compression != "none" and significant_digits is None \
+                and distributed_client() is None:  # (workers cannot share an open HDF5 file)
             values = _write_netcdf_chunks(out, tmp, encoding, lazy)
         elif not lazy:
             out.to_netcdf(tmp, engine="netcdf4", format="NETCDF4", encoding=encoding)
@@ -533,18 +535,6 @@ def write(ds: xr.Dataset, path: str | os.PathLike, *, precision: str = "input",
 #: (``store-map``) and those of :func:`_write_netcdf_chunks`; progress bars count them.
 CHUNK_TASK = "store-chunk"
 WRITE_TASKS = ("store-map", CHUNK_TASK)
-
-
-def _distributed() -> bool:
-    """Whether a dask.distributed client runs the computations (its workers are other
-    processes, which cannot share one open HDF5 file)."""
-    try:
-        from distributed import default_client
-
-        default_client()
-    except (ImportError, ValueError):
-        return False
-    return True
 
 
 def _write_netcdf_chunks(out: xr.Dataset, tmp: Path, encoding: dict[str, dict],
@@ -576,8 +566,12 @@ def _write_netcdf_chunks(out: xr.Dataset, tmp: Path, encoding: dict[str, dict],
     import h5py
     from xarray.backends import NetCDF4DataStore
     from xarray.backends.common import ArrayWriter
+    from xarray.backends.netCDF4_ import NETCDF4_PYTHON_LOCK
 
-    store = NetCDF4DataStore.open(tmp, mode="w", format="NETCDF4")
+    # The lock of the netCDF and HDF5 libraries, given: xarray's default adds a per-file lock
+    # chosen by the scheduler, and finding it imports distributed (0.16 s); here no dask
+    # task writes through this store, and no client runs (see write)
+    store = NetCDF4DataStore.open(tmp, mode="w", format="NETCDF4", lock=NETCDF4_PYTHON_LOCK)
     writer = ArrayWriter()  # collects the encoded dask arrays instead of writing them
     try:
         out.dump_to_store(store, writer=writer, encoding=encoding)
