@@ -179,6 +179,7 @@ def test_wind_from_direction_of_the_cardinal_winds(u, v, expected):
 
 @pytest.mark.parametrize("args", [
     ["--fields", "no_such_field"],
+    ["--kinematics", "--fields", "streamfunction"],  # asks for kinematics, keeps none of them
     ["--compression", "none", "--compression-level", "3"],
     ["--compression-level", "12"],
     ["--precision", "single", "--significant-digits", "9"],

@@ -108,6 +108,10 @@ def run(args: argparse.Namespace) -> int:
             raise UsageError("--kinematics needs the spectral method (a complete global grid "
                              "without missing values); drop --kinematics")
         extra = kinematics(wind, truncation=args.truncation, levels=args.levels)
+        if args.fields is not None and not set(args.fields) & set(extra.data_vars):
+            raise UsageError(f"--fields names none of the variables --kinematics adds "
+                             f"({', '.join(map(str, extra.data_vars))}); name some of them "
+                             "or drop --kinematics")
         parts = xr.merge([parts, extra], combine_attrs="override")
     parts = select_fields(parts, wind, args.fields)
     parts.attrs.update(input_notes(wind))
