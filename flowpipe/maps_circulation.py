@@ -81,11 +81,14 @@ def circulation_figure(fig: Figure, ds: xr.Dataset, label: str, field: str | Non
     top = float(np.abs(finite).max()) if finite.size else 1.0
     levels = _contour_levels(-top, top, signed=True)
     norm = BoundaryNorm(levels, 256)
-    for (ring_lat, ring_lon), value, name in zip(rings, values, names, strict=True):
+    drawn = [(parts, value, name) for (ring_lat, ring_lon), value, name
+             in zip(rings, values, names, strict=True)
+             if (parts := _drawn(proj, ring_lat, ring_lon))]  # (none: off this map)
+    # the largest first, so that a contour inside another (a small circle on the pole in
+    # a cap round it) is drawn over it and stays in sight
+    drawn.sort(key=lambda item: -sum(ShapelyPolygon(xy).area for xy in item[0]))
+    for parts, value, name in drawn:
         colour = _cmap()(norm(value)) if np.isfinite(value) else "none"
-        parts = _drawn(proj, ring_lat, ring_lon)
-        if not parts:  # off this map
-            continue
         ax.add_patch(PathPatch(Path.make_compound_path(*[Path(xy, closed=True) for xy in parts]),
                                facecolor=colour, edgecolor="black", linewidth=1.0, zorder=2,
                                label=name))

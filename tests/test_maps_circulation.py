@@ -207,6 +207,19 @@ def test_a_pole_circle_beside_a_moving_circle_is_drawn(tmp_path, projection):
     assert extent.x0 <= inside[0] <= extent.x1 and extent.y0 - 1 <= inside[1] <= extent.y1 + 1
 
 
+def test_a_small_contour_inside_a_large_one_is_drawn_over_it(tmp_path):
+    # A 300 km circle on the pole listed before a 1500 km one round it: matplotlib draws
+    # artists of equal zorder in the order they were added (matplotlib documentation,
+    # "Zorder Demo"), so the small one must come later to stay in sight.
+    both = fp.circulation(fp.open_wind(GLOBAL).isel(time=slice(0, 1)), [
+        contours.circle(90, 0, 300), contours.circle(90, 0, 1500)])
+    fig = maps.render(fp.write(both, tmp_path / "nested.nc"), size=SIZE, projection="north-cap")
+    order = [p.get_label() for p in _map_axes(fig).patches if isinstance(p, PathPatch)]
+    zorders = {p.get_label(): p.get_zorder() for p in _map_axes(fig).patches}
+    assert zorders["circle 90,0,300km"] == zorders["circle 90,0,1500km"]
+    assert order.index("circle 90,0,300km") > order.index("circle 90,0,1500km")
+
+
 @pytest.mark.parametrize("member", [None, 7])
 def test_an_ensembles_contours_are_those_of_one_member(tmp_path, member):
     # Two members (CF standard name realization), the second with twice the wind: the map
