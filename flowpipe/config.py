@@ -99,6 +99,7 @@ SCHEMA: dict[str, dict[str, tuple[tuple[type, ...], Any]]] = {
         "levels": ((list,), None),
         "trajectories": ((bool,), True),
         "ftle": ((bool,), True),
+        "circulation": ((bool,), True),
         "output": ((str,), "{stem}_{field}_{level}.png"),
     },
     "output": {

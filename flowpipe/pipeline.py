@@ -350,7 +350,8 @@ class Runner:
         from .maps import render, save
 
         cfg = self.config.section("maps")
-        mapped = set(STAGE_TABLE["maps"].needs) - (set() if cfg["ftle"] else {"ftle"})
+        mapped = set(STAGE_TABLE["maps"].needs) - {name for name in ("ftle", "circulation")
+                                                   if not cfg[name]}
         for name, source in sources.items():
             if (self.dry_run and name in mapped
                     and self._rel(source) in {p for p, _, _ in result.planned}):
@@ -361,6 +362,11 @@ class Runner:
                          tables)
         if cfg["ftle"]:  # every level the [ftle] table seeded
             self._field_maps(unit, result, sources.get("ftle"), ["ftle"], None, tables)
+        if cfg["circulation"]:  # the contours coloured by their mean vorticity, every level
+            from .maps_circulation import DEFAULT_FIELD
+
+            self._field_maps(unit, result, sources.get("circulation"), [DEFAULT_FIELD], None,
+                             tables)
         tracks = sources.get("advect")
         if cfg["trajectories"] and tracks is not None and tracks.exists():
             out = render_template(cfg["output"], self.out, **{
@@ -491,7 +497,7 @@ STAGE_TABLE: dict[str, Stage] = {
     "advect": Stage(Runner.advect),
     "ftle": Stage(Runner.ftle),
     "circulation": Stage(Runner.circulation),
-    "maps": Stage(Runner.maps, needs=("decompose", "advect", "ftle")),
+    "maps": Stage(Runner.maps, needs=("decompose", "advect", "ftle", "circulation")),
 }
 
 

@@ -352,6 +352,27 @@ def _run_config(tmp_path, table: str):
     return main(["run", str(path)])
 
 
+def test_batch_maps_of_circulation_output(tmp_path):
+    # configs/README.md, [maps] circulation: with a [circulation] table, one map per level of
+    # its output ({stem}_mean_vorticity_{level}.png), a PNG of the [maps] size read back by
+    # matplotlib's image reader (PNG specification, IHDR), not blank; none with
+    # circulation = false.
+    import matplotlib.image
+
+    table = 'boxes = [[45.0, 55.0, -25.0, -5.0]]\nlevels = [850.0, 500.0]\n\n[maps]\nfields = []\n'
+    assert _run_config(tmp_path, table) == 0
+    pictures = sorted((tmp_path / "out").glob("*.png"))
+    assert [p.name for p in pictures] == ["demo_global_mean_vorticity_500.png",
+                                          "demo_global_mean_vorticity_850.png"]
+    for picture in pictures:
+        image = matplotlib.image.imread(picture)
+        assert image.shape[:2] == (800, 1200) and image[..., :3].std() > 0.05
+    for picture in pictures:
+        picture.unlink()
+    assert _run_config(tmp_path, table.replace("fields = []", "fields = []\ncirculation = false")) == 0
+    assert not list((tmp_path / "out").glob("*.png"))
+
+
 def test_circulation_table_in_batch_config(tmp_path):
     # configs/README.md, [circulation]: the batch stage writes what the API computes for the
     # same contours (read back with netCDF-C through xarray), named {stem}_circulation.nc.
