@@ -147,10 +147,24 @@ ZARR_SUFFIX = ".zarr"
 MAX_SIGNIFICANT_DIGITS = {4: 7, 8: 15}
 
 
+#: The suffixes of NetCDF file names that the writing commands accept (besides
+#: :data:`ZARR_SUFFIX`); ``.nc`` is the common one (NetCDF User Guide, file naming).
+NETCDF_SUFFIXES = (".nc", ".nc4", ".cdf", ".netcdf")
+
+
 def is_zarr_path(path: str | os.PathLike) -> bool:
     """Whether an output or input name is a Zarr store's (ends in :data:`ZARR_SUFFIX`);
     every other name is a NetCDF-4 file's."""
     return PurePath(path).suffix == ZARR_SUFFIX
+
+
+def output_suffix_refusal(path: str | os.PathLike) -> str | None:
+    """Why a data output's name is refused (a suffix that promises another format, or
+    none), or None for a NetCDF (:data:`NETCDF_SUFFIXES`) or Zarr name."""
+    if is_zarr_path(path) or PurePath(path).suffix.lower() in NETCDF_SUFFIXES:
+        return None
+    return (f"{path} would be a NetCDF-4 file under a name that does not say so; name it "
+            f"*.nc (or {', '.join(NETCDF_SUFFIXES[1:])}), or *{ZARR_SUFFIX} for a Zarr store")
 
 
 def compression_for(compression: str | None, output: str | os.PathLike | None) -> str:

@@ -30,6 +30,7 @@ from .choices import (
     WIND_PRODUCTS,
     encoding_refusal,
     is_zarr_path,
+    output_suffix_refusal,
 )
 from .choices import SCHEMES as REGIONAL_SCHEMES
 from .errors import InputError, UsageError
@@ -413,6 +414,9 @@ def _check_values(config: Config, text: str) -> None:
             template = config.tables[stage]["output"]
             check_template(template, fields_allowed, _where(cfg_path, text, stage, "output"),
                            f"[{stage}] output")
+            if stage != "maps" and (refusal := output_suffix_refusal(template)):
+                raise ConfigError(f"{_where(cfg_path, text, stage, 'output')}: [{stage}] "
+                                  f"output: {refusal}")
             if storage["significant_digits"] is not None and \
                     is_zarr_path(template):
                 raise ConfigError(f"{_where(cfg_path, text, 'output', 'significant_digits')}: "

@@ -50,6 +50,10 @@ def test_debug_before_the_command_shows_the_traceback(tmp_path):
     (lambda t: ["decompose", GLOBAL, "-o", str(t / "o.nc"), "--scheme", "foo"], "invalid choice"),
     (lambda t: ["map", GLOBAL, "-o", str(t / "m.png"), "--size", "100000x100000"],
      "from 100 to"),
+    # a data output named as another format (or as none) would mislead its readers
+    (lambda t: ["decompose", GLOBAL, "-o", str(t / "parts.grib")], "name it *.nc"),
+    (lambda t: ["circulation", GLOBAL, "-o", str(t / "parts"), "--box", "40,50,0,10"],
+     "name it *.nc"),
 ])
 def test_bad_arguments_are_refused_before_any_work(tmp_path, capsys, make_args, text):
     with pytest.raises(SystemExit) as stop:

@@ -36,6 +36,8 @@ def _config(tmp_path: Path, body: str) -> Path:
         ("[maps]\noutput = \"{stem}_{colour}.png\"\n", "unknown field(s) colour"),
         ("[extras]\nx = 1\n", "line 7: unknown table [extras]"),
         ("[advect]\nhours = 12\n", "needs exactly one of starts"),
+        ("[ftle]\nhours = 6\noutput = \"{stem}_ftle.png\"\n",
+         "line 9: [ftle] output: {stem}_ftle.png would be a NetCDF-4 file"),
     ],
 )
 def test_config_errors_name_the_key_and_line(tmp_path, capsys, body, expected):

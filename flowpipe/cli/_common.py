@@ -6,7 +6,7 @@ import argparse
 import math
 from pathlib import Path
 
-from ..choices import is_zarr_path
+from ..choices import is_zarr_path, output_suffix_refusal
 
 
 def output_file(text: str) -> str:
@@ -23,6 +23,15 @@ def output_file(text: str) -> str:
             raise argparse.ArgumentTypeError(f"{text!r} is a directory but not a Zarr store; "
                                              "give a new name or remove it")
         raise argparse.ArgumentTypeError(f"{text!r} is a directory; give a file name in it")
+    return text
+
+
+def data_file(text: str) -> str:
+    """An ``-o`` argument of a command writing data: an :func:`output_file` named as a
+    NetCDF file or a Zarr store (:func:`flowpipe.choices.output_suffix_refusal`)."""
+    refusal = output_suffix_refusal(output_file(text))
+    if refusal:
+        raise argparse.ArgumentTypeError(refusal)
     return text
 
 

@@ -11,8 +11,8 @@ from ._common import (
     add_input_options,
     add_output_options,
     add_quiet_option,
+    data_file,
     input_options,
-    output_file,
     output_options,
 )
 
@@ -34,7 +34,7 @@ def register(sub: argparse._SubParsersAction, common: argparse.ArgumentParser) -
     # numbers for values, not comma-separated lists beginning with a minus sign.
     parser._negative_number_matcher = re.compile(r"^-\d*\.?\d+(,[-+]?\d*\.?\d+)*$")
     parser.add_argument("files", nargs="+", metavar="FILE", help="NetCDF files or globs")
-    parser.add_argument("-o", "--output", required=True, type=output_file, metavar="OUT.nc",
+    parser.add_argument("-o", "--output", required=True, type=data_file, metavar="OUT.nc",
                         help="the trajectory file to write")
     where = parser.add_mutually_exclusive_group(required=True)
     where.add_argument("--start", action="append", metavar="LAT,LON[,LEVEL]",

@@ -8,8 +8,8 @@ from ..errors import UsageError
 from ._common import (
     add_forecast_options,
     add_output_options,
+    data_file,
     forecast_options,
-    output_file,
     output_options,
 )
 from .decompose import _levels
@@ -36,7 +36,7 @@ def register(sub: argparse._SubParsersAction, common: argparse.ArgumentParser) -
         "kinematic omega of each contour's column on pressure levels.",
     )
     parser.add_argument("files", nargs="+", metavar="FILE", help="NetCDF files or globs")
-    parser.add_argument("-o", "--output", required=True, type=output_file, metavar="OUT.nc")
+    parser.add_argument("-o", "--output", required=True, type=data_file, metavar="OUT.nc")
     parser.add_argument("--box", action="append", default=[], metavar="S,N,W,E",
                         type=_numbers(4, "S,N,W,E in degrees"),
                         help="box bounded by latitudes S, N and meridians W to E (eastward)")

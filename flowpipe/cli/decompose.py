@@ -12,8 +12,8 @@ from ._common import (
     add_input_options,
     add_output_options,
     add_quiet_option,
+    data_file,
     input_options,
-    output_file,
     output_options,
 )
 
@@ -32,7 +32,7 @@ def register(sub: argparse._SubParsersAction, common: argparse.ArgumentParser) -
         "global grids use spherical harmonics; limited-area or gappy grids the regional solver.",
     )
     parser.add_argument("files", nargs="+", metavar="FILE", help="NetCDF files or globs")
-    parser.add_argument("-o", "--output", required=True, type=output_file, metavar="OUT.nc",
+    parser.add_argument("-o", "--output", required=True, type=data_file, metavar="OUT.nc",
                         help="file to write")
     parser.add_argument("--method", choices=METHODS, default="auto",
                         help="spectral (complete global grids), regional, or auto (default)")

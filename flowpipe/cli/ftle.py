@@ -9,8 +9,8 @@ from ..errors import UsageError
 from ._common import (
     add_forecast_options,
     add_output_options,
+    data_file,
     forecast_options,
-    output_file,
     output_options,
 )
 
@@ -23,7 +23,7 @@ def register(sub: argparse._SubParsersAction, common: argparse.ArgumentParser) -
         "warning product.")
     parser._negative_number_matcher = re.compile(r"^-\d*\.?\d+(,[-+]?\d*\.?\d+)*$")
     parser.add_argument("files", nargs="+", metavar="FILE", help="NetCDF files or globs")
-    parser.add_argument("-o", "--output", required=True, type=output_file, metavar="OUT.nc")
+    parser.add_argument("-o", "--output", required=True, type=data_file, metavar="OUT.nc")
     parser.add_argument("--hours", required=True, type=float, metavar="H",
                         help="integration time in hours")
     parser.add_argument("--backward", action="store_true", help="integrate backward in time")
