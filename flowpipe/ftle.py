@@ -276,7 +276,8 @@ def ftle(
         direction); lazy nothing: the field is computed here. Longitudes as
         :func:`seed_grid` gives them. A forecast wind adds the run
         (``forecast_reference_time``) and the lead at each start time
-        (``forecast_period``).
+        (``forecast_period``); an ensemble (``realization``) gives each member's
+        field, computed as for that member alone, with ``realization`` first.
 
     References
     ----------
@@ -290,6 +291,14 @@ def ftle(
         raise UsageError(f"scheme {scheme!r}: choose rk4 or petterssen")
     if every is not None and not (every > 0 and math.isfinite(every)):
         raise UsageError(f"--every {every:g}: give a positive interval in hours")
+    if "realization" in wind.dims:  # each member as a run of its own, stacked members first
+        fields = [ftle(wind.isel(realization=k), hours, backward, spacing, region, levels, start,
+                       every, steady, step_minutes, scheme, complete_only, record_minutes,
+                       courant) for k in range(wind.sizes["realization"])]
+        stacked = xr.concat(fields, dim=wind["realization"], combine_attrs="override")
+        stacked.attrs["summary"] += (f" Each of the {len(fields)} ensemble members "
+                                     "(realization) on its own.")
+        return stacked
     _check_wind(wind, None, ())
     clock = _clock(wind, steady)
     kind = describe_grid(wind).kind

@@ -147,6 +147,23 @@ def test_circulation_per_member_equals_the_single_member_run(files):
                                    alone["circulation"].values, rtol=1e-12)
 
 
+def test_ftle_per_member_equals_the_single_member_run(files, tmp_path):
+    # Each member's exponents are those of the member alone (the single-member path), with
+    # the member axis first; the file passes compliance-checker cf:1.11 like the others.
+    from test_compliance import check
+
+    ensemble = fp.ftle(fp.open_wind(files["wave"]), hours=6, spacing=4.0)
+    assert ensemble["ftle"].dims[0] == "realization"
+    np.testing.assert_array_equal(ensemble["realization"].values, MEMBERS)
+    for member in MEMBERS:
+        alone = fp.ftle(fp.open_wind(files[("wave", int(member))]), hours=6, spacing=4.0)
+        got = ensemble["ftle"].sel(realization=member).values
+        assert np.array_equal(np.isnan(got), np.isnan(alone["ftle"].values))
+        np.testing.assert_allclose(got, alone["ftle"].values, rtol=1e-12, atol=0.0)
+    report = check(fp.write(ensemble, tmp_path / "ftle.nc"), ("cf:1.11",))["cf:1.11"]
+    assert report["high_count"] == 0 and report["medium_count"] == 0
+
+
 def test_solid_body_rotation_per_member(files):
     # Williamson et al. (1992), case 2 (alpha = 0): latitude kept, longitude + u0 t / a
     hours = 12.0

@@ -67,5 +67,6 @@ def run(args: argparse.Namespace) -> int:
                complete_only=args.complete_only)
     path = write(out, args.output, **options)
     print(f"wrote {path}: ftle on {out.sizes['latitude']} x {out.sizes['longitude']} seeds, "
-          f"{out.sizes['time']} start time(s)")
+          f"{out.sizes['time']} start time(s)"
+          + (f", {out.sizes['realization']} members" if "realization" in out.dims else ""))
     return 0
