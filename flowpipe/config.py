@@ -246,7 +246,7 @@ TEMPLATE_FIELDS = {
     "advect": {"stem", "run", "lead"},
     "ftle": {"stem", "run", "lead"},
     "circulation": {"stem", "run", "lead"},
-    "maps": {"stem", "field", "level", "time", "run", "lead"},
+    "maps": {"stem", "field", "level", "time", "run", "lead", "member"},
 }
 
 

@@ -14,6 +14,7 @@ complete files under final names and the next run finishes the work.
 from __future__ import annotations
 
 import contextlib
+import itertools
 import logging
 import os
 import signal
@@ -27,6 +28,7 @@ from pathlib import Path
 from typing import Any
 
 import dask
+import numpy as np
 import xarray as xr
 
 from . import bookkeeping
@@ -369,12 +371,25 @@ class Runner:
                              tables)
         tracks = sources.get("advect")
         if cfg["trajectories"] and tracks is not None and tracks.exists():
-            out = render_template(cfg["output"], self.out, **{
-                **self._fields(unit, cfg["output"]), "field": "trajectories", "level": "all",
-                "time": "all", "lead": "all"})
-            self._produce("maps", result, out, [bookkeeping.fingerprint(tracks)],
-                          self._tables("maps"),
-                          lambda p: save(render(tracks), p))
+            for member in self._members(tracks, cfg["output"]):
+                out = render_template(cfg["output"], self.out, **{
+                    **self._fields(unit, cfg["output"]), "field": "trajectories",
+                    "level": "all", "time": "all", "lead": "all", "member": _member_text(member)})
+                self._produce("maps", result, out, [bookkeeping.fingerprint(tracks)],
+                              self._tables("maps"),
+                              lambda p, m=member: save(render(tracks, member=m), p))
+
+    @staticmethod
+    def _members(source: Path, template: str) -> list[int | None]:
+        """The ensemble members to map one by one: every member of the output (a
+        ``realization`` dimension, or coordinate of trajectories) when the template names
+        ``{member}``; else one map, None (the first member's fields, every member's tracks)."""
+        if "{member" not in template:
+            return [None]
+        with xr.open_dataset(source) as ds:
+            if "realization" not in ds.variables:
+                return [None]
+            return sorted({int(m) for m in np.atleast_1d(ds["realization"].values)})
 
     def _field_maps(self, unit: Unit, result: UnitResult, source: Path | None,
                     names: list[str], levels: list[float] | None,
@@ -398,16 +413,17 @@ class Runner:
             times = times if each else times[:1]
             forecast = ([forecast_fields(ds, i) for i in range(len(times))]
                         if each or "{run" in cfg["output"] else [{}] * len(times))
-        for name in names:
-            for level in levels if levels is not None else present:
-                for when, words in zip(times, forecast, strict=True):
-                    out = render_template(cfg["output"], self.out, stem=unit.stem, field=name,
-                                          level=_level_text(level), time=_time_text(when),
-                                          **words)
-                    self._produce("maps", result, out, depends, tables,
-                                  lambda p, n=name, lv=level, t=when: save(render(
-                                      source, field=n, level=lv,
-                                      time=None if t is None else iso_time(t)), p))
+        members = self._members(source, cfg["output"])
+        for name, level, (when, words), member in itertools.product(
+                names, levels if levels is not None else present,
+                zip(times, forecast, strict=True), members):
+            out = render_template(cfg["output"], self.out, stem=unit.stem, field=name,
+                                  level=_level_text(level), time=_time_text(when),
+                                  member=_member_text(member), **words)
+            self._produce("maps", result, out, depends, tables,
+                          lambda p, n=name, lv=level, t=when, m=member: save(render(
+                              source, field=n, level=lv,
+                              time=None if t is None else iso_time(t), member=m), p))
 
     # -- the run -------------------------------------------------------------
     def run_unit(self, unit: Unit) -> UnitResult:
@@ -546,6 +562,10 @@ def _unit_in_worker(config_path: Path, force: bool, unit: Unit,
 
 def _level_text(level: float | None) -> str:
     return "all" if level is None else f"{level:g}"
+
+
+def _member_text(member: int | None) -> str:
+    return "all" if member is None else str(member)
 
 
 def _time_text(value: Any) -> str:

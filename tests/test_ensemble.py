@@ -164,6 +164,34 @@ def test_ftle_per_member_equals_the_single_member_run(files, tmp_path):
     assert report["high_count"] == 0 and report["medium_count"] == 0
 
 
+def test_batch_maps_one_per_member_with_the_member_in_the_name(files, tmp_path):
+    # configs/README.md, [maps] output: {member} makes one map per member, of its fields and
+    # of its tracks, each the picture `flowpipe map --member M` draws (read back by
+    # matplotlib's image reader, PNG specification); members differ, so the maps do too.
+    import matplotlib.image
+
+    from flowpipe.maps import render, save
+    from flowpipe.pipeline import run
+
+    config = tmp_path / "night.toml"
+    config.write_text(f'[input]\npaths = ["{files["wave"]}"]\n\n[decompose]\n\n'
+                      '[advect]\nstarts = [[45.0, 10.0]]\nhours = 6\n\n'
+                      '[maps]\nfields = ["vorticity"]\noutput = "{stem}_{field}_m{member}.png"\n'
+                      '\n[output]\ndirectory = "out"\n')
+    summary = run(config, quiet=True)
+    assert summary.exit_code == 0, summary.failures
+    out = tmp_path / "out"
+    for field, source in (("vorticity", "ensemble_wave_decomposition.nc"),
+                          ("trajectories", "ensemble_wave_trajectories.nc")):
+        pictures = [out / f"ensemble_wave_{field}_m{m}.png" for m in MEMBERS]
+        assert all(p in summary.written for p in pictures), field
+        images = [matplotlib.image.imread(p) for p in pictures]
+        assert not np.array_equal(images[0], images[-1]), field
+        expect = save(render(out / source, field=None if field == "trajectories" else field,
+                             member=int(MEMBERS[-1])), tmp_path / "expect.png")
+        np.testing.assert_array_equal(images[-1], matplotlib.image.imread(expect))
+
+
 def test_solid_body_rotation_per_member(files):
     # Williamson et al. (1992), case 2 (alpha = 0): latitude kept, longitude + u0 t / a
     hours = 12.0
