@@ -182,14 +182,14 @@ def helmholtz_slab(
     nlat, nlon = u.shape
     grid = {"geometry": geometry, "nlat": nlat, "nlon": nlon, "truncation": truncation,
             "nthreads": nthreads}
-    psi_lm, chi_lm = spectral.vector_analysis(u, v, geometry, truncation, radius, nthreads)
+    eb = spectral.wind_coefficients(u, v, geometry, truncation, nthreads)
+    psi_lm, chi_lm = spectral.potentials(eb, truncation, radius)
     psi = spectral.scalar_synthesis(psi_lm, **grid)
     chi = spectral.scalar_synthesis(chi_lm, **grid)
     zeta = spectral.scalar_synthesis(spectral.laplacian(psi_lm, truncation, radius), **grid)
     delta = spectral.scalar_synthesis(spectral.laplacian(chi_lm, truncation, radius), **grid)
-    east, north = spectral.gradient_synthesis(psi_lm, radius=radius, **grid)
-    u_div, v_div = spectral.gradient_synthesis(chi_lm, radius=radius, **grid)
-    u_rot, v_rot = -north, east
+    u_rot, v_rot = spectral.rotational_wind(eb[1], **grid)
+    u_div, v_div = spectral.divergent_wind(eb[0], **grid)
     residual = (u_rot + u_div - u) ** 2 + (v_rot + v_div - v) ** 2
     norm = u**2 + v**2
     return (psi, chi, zeta, delta, u_rot, v_rot, u_div, v_div,
