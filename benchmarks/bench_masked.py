@@ -66,10 +66,11 @@ def random_wind(nlat: int, nlon: int, seed: int = 1) -> tuple[np.ndarray, np.nda
         c[spectral.orders(n) == 0] = c[spectral.orders(n) == 0].real
         return c
     psi, chi = coeffs(), 0.3 * coeffs()
-    grid = {"geometry": "CC", "nlat": nlat, "nlon": nlon, "truncation": n, "radius": A}
-    east, north = spectral.gradient_synthesis(psi, **grid)
-    u_div, v_div = spectral.gradient_synthesis(chi, **grid)
-    return -north + u_div, east + v_div
+    grid = {"geometry": "CC", "nlat": nlat, "nlon": nlon, "truncation": n}
+    gradient = np.sqrt(ell * (ell + 1.0)) / A  # curl and gradient coefficients of the wind
+    u_rot, v_rot = spectral.rotational_wind(gradient * psi, **grid)
+    u_div, v_div = spectral.divergent_wind(gradient * chi, **grid)
+    return u_rot + u_div, v_rot + v_div
 
 
 def orography_mask(phi: np.ndarray, lam: np.ndarray) -> np.ndarray:

@@ -78,15 +78,16 @@ def kinematics_slab(
     nlat, nlon = u.shape
     grid = {"geometry": geometry, "nlat": nlat, "nlon": nlon, "truncation": truncation,
             "nthreads": nthreads}
-    psi_lm, chi_lm = spectral.vector_analysis(u, v, geometry, truncation, radius, nthreads)
+    eb = spectral.wind_coefficients(u, v, geometry, truncation, nthreads)
+    psi_lm, chi_lm = spectral.potentials(eb, truncation, radius)
     zeta = spectral.scalar_synthesis(spectral.laplacian(psi_lm, truncation, radius), **grid)
     coriolis = 2.0 * rotation_rate * np.sin(np.radians(latitude))[:, None]
     stretching, shearing = spectral.deformation_synthesis(psi_lm, chi_lm, radius=radius, **grid)
-    east, north = spectral.gradient_synthesis(psi_lm, radius=radius, **grid)
-    u_div, v_div = spectral.gradient_synthesis(chi_lm, radius=radius, **grid)
+    u_rot, v_rot = spectral.rotational_wind(eb[1], **grid)
+    u_div, v_div = spectral.divergent_wind(eb[0], **grid)
     return (
         zeta + coriolis, stretching, shearing, np.hypot(stretching, shearing),
-        0.5 * (east**2 + north**2), 0.5 * (u_div**2 + v_div**2),
+        0.5 * (u_rot**2 + v_rot**2), 0.5 * (u_div**2 + v_div**2),
         spectral.energy_per_degree(psi_lm, truncation, radius),
         spectral.energy_per_degree(chi_lm, truncation, radius),
     )
