@@ -384,9 +384,9 @@ class VariationalSolver:
 
     * coarse correction with the coupled matrix ``P^T (N + beta E) P``, ``P`` bilinear
       interpolation from every 4th (8th) corner, SuperLU, added to the uncoupled
-      preconditioner or balanced with it (BNN, symmetric, for CG): 344 to 377
-      iterations at 200 x 200, 0.16 to 0.36 off (``beta`` 1e-6; 0.01 to 0.2 for
-      ``beta`` up to 1);
+      preconditioner (344 to 377 iterations at 200 x 200) or balanced with it (BNN,
+      symmetric, for CG; 184 to 262), 0.16 to 0.36 off with ``beta`` 1e-6 to 1e-2 and
+      still 0.01 to 0.04 with ``beta`` = 1;
     * the same with ``P`` extended by the checkerboard times each bilinear function:
       balanced, 21 iterations at 200 x 200 and 18 at 400 x 400 (40 with every 8th
       corner), but 0.36 and 0.41 off. The answer is not the least-energy one: the
