@@ -501,7 +501,7 @@ class VariationalSolver:
         """``W^T M W x + alpha (E + pin) x``; ``wind`` is ``W x`` when known already."""
         if wind is None:
             wind = self.wind @ x
-        return self._wind_t @ (self.weight.reshape((-1,) + x.shape[1:]) * wind) + (
+        return self._wind_t @ (self.weight.reshape((-1,) + (1,) * (x.ndim - 1)) * wind) + (
             self._regulariser @ x)
 
     def _progress(self, iterations: int, first: float, now: float, target: float,
