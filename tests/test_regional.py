@@ -308,6 +308,20 @@ def test_fast_poisson_solver_matches_a_sparse_direct_solve():
         assert np.all(fast.ravel()[~inner.ravel()] == 0)
 
 
+
+def test_normal_equations_apply_to_columns_as_to_each_vector():
+    # scipy.sparse.linalg.LinearOperator's contract: matmat(X) is matvec of each column of X
+    # (SciPy reference guide, "LinearOperator").
+    from flowpipe.regional.solvers import VariationalSolver
+
+    lat, lon, *_ = box_case(1.0)
+    grid = cache.staggered_grid(np.radians(lat), np.radians(lon), False)
+    solver = VariationalSolver(grid, coastline_mask(lat, lon), 1e-3)
+    columns = np.random.default_rng(7).standard_normal((solver.operator.shape[0], 3))
+    by_columns = solver.operator.matmat(columns)
+    each = np.stack([solver.operator.matvec(c) for c in columns.T], axis=1)
+    assert np.allclose(by_columns, each, rtol=1e-12, atol=0)
+
 # --- consistency with the global method ------------------------------------------------------
 
 @pytest.mark.parametrize("scheme", SCHEMES)

@@ -291,6 +291,14 @@ COUPLED_LIMIT = 250_000
 #: Regulariser weight of the coupled preconditioner: large enough to keep its
 #: factorisation well conditioned, small enough that few modes feel it.
 COUPLED_WEIGHT = 1e-6
+#: SuperLU options for the symmetric positive definite matrices of the variational
+#: solver: a minimum-degree ordering of ``A^T + A`` and no pivoting off the diagonal.
+#: On the gradient energy of a 1000 x 1000 level with the mask of
+#: ``benchmarks/bench_masked.py`` they roughly halve the fill and make the factorisation
+#: about 1.7 and each solve about 2 times faster than SuperLU's default ordering and
+#: pivoting (``benchmarks/bench_lu_ordering.py``, median of 3, another benchmark running).
+SYMMETRIC_LU = {"permc_spec": "MMD_AT_PLUS_A", "diag_pivot_thresh": 0.0,
+                "options": {"SymmetricMode": True}}
 
 
 class VariationalSolver:
@@ -371,6 +379,48 @@ class VariationalSolver:
       had not converged after 150 iterations: the slow modes are not only those next to
       the mask.
 
+    Two-level methods, measured on the mask of ``benchmarks/bench_masked.py`` (a disc
+    and a ridge) with its wind, default tolerance and regularisation; the uncoupled
+    preconditioner there takes 334 iterations at 200 x 200 and 597 at 400 x 400, and
+    "off" is the largest difference of the rotational (or divergent) wind from the
+    coupled preconditioner's, relative to the largest wind (the uncoupled one: 5e-7).
+    The error of the uncoupled iterations is, away from the corners of the mask, a
+    smooth modulation of the corner checkerboard: nearly no wind, much energy. None of
+    these was kept:
+
+    * coarse correction with the coupled matrix ``P^T (N + beta E) P``, ``P`` bilinear
+      interpolation from every 4th (8th) corner, SuperLU, added to the uncoupled
+      preconditioner (344 to 377 iterations at 200 x 200) or balanced with it (BNN,
+      symmetric, for CG; 184 to 262), 0.16 to 0.36 off with ``beta`` 1e-6 to 1e-2 and
+      still 0.01 to 0.04 with ``beta`` = 1;
+    * the same with ``P`` extended by the checkerboard times each bilinear function:
+      balanced, 21 iterations at 200 x 200 and 18 at 400 x 400 (40 with every 8th
+      corner), but 0.36 and 0.41 off. The answer is not the least-energy one: the
+      coarse space is not ``E``-orthogonal to the null space of ``W``, and the result
+      carries a smooth harmonic pair with a fifth of the solution's energy and a wind
+      of 2e-7. The checkerboard part alone: 51 to 96 iterations, 0.01 to 0.08 off
+      whatever ``beta`` (1e-6 to 1e-2); with its functions zero within 2 corners of the
+      mask, 156 iterations, 6e-3 off;
+    * a correction that keeps the least-energy limit for any coarse matrix ``C``,
+      ``E^-1 + E^-1 W^T M W P C P^T W^T M W E^-1`` (its range lies in the
+      ``E``-complement of the null space): no faster than ``E^-1`` alone, even with the
+      exact Galerkin ``C`` (222 iterations against 219 at 100 x 100);
+    * the coupled LU replaced by an inner CG on its matrix, preconditioned by the
+      balanced two-level method above (flexible outer CG): the inner iterations did not
+      reach 1e-4 in 500;
+    * the dual problem, CG on the winds ``(W E^-1 W^T M + alpha) y = w`` with
+      ``x = E^-1 W^T M y``: each iterate stays in the ``E``-complement of the null
+      space, so any preconditioner keeps the least-energy answer. Additive two-level,
+      coarse space the checkerboard times bilinear functions of every 4th wind point,
+      ``E^-1`` in the coarse matrix replaced by 4 damped Jacobi terms (exact on the
+      checkerboard): 161 iterations at 200 x 200 and 147 at 400 x 400, 4e-7 off
+      (every 2nd point: 87 iterations at 400 x 400, but 33 s to factorise the coarse
+      matrix; the exact coarse matrix at 200 x 200: 120). At 1000 x 1000: 134
+      iterations in 84 s after 40 s building the coarse matrix and its LU, where the
+      complete grid takes 18 iterations in 3.0 s (one run, another benchmark running):
+      the iterations no longer grow with the grid, but a masked level still costs about
+      28 times an unmasked one.
+
     References
     ----------
     Li, Chao & McWilliams (2006), "Computation of the streamfunction and
@@ -380,7 +430,13 @@ class VariationalSolver:
     for solving linear systems", J. Res. Nat. Bur. Standards 49, 409-436;
     Hansen (1998), "Rank-Deficient and Discrete Ill-Posed Problems", SIAM,
     section 6.3 (preconditioned CG started from zero converges to the solution
-    of least seminorm).
+    of least seminorm). For the measured two-level alternatives: Nicolaides (1987),
+    "Deflation of conjugate gradients with applications to boundary value problems",
+    SIAM J. Numer. Anal. 24, 355-365; Mandel (1993), "Balancing domain decomposition",
+    Commun. Numer. Methods Eng. 9, 233-241; Frank & Vuik (2001), "On the construction of
+    deflation-based preconditioners", SIAM J. Sci. Comput. 23, 442-462; Tang, Nabben,
+    Vuik & Erlangga (2009), "Comparison of two-level preconditioners derived from
+    deflation, domain decomposition and multigrid methods", J. Sci. Comput. 39, 340-370.
     """
 
     #: The solver's description, for each kind of preconditioner (:meth:`kind`).
@@ -431,11 +487,10 @@ class VariationalSolver:
                 separable_energy_inverse(grid, pin.reshape(grid.corner_shape)[:, 0]))
         elif kind == "coupled":
             normal = self._wind_t @ sp.diags_array(self.weight) @ self.wind
-            self.preconditioner = sparse_lu_inverse(
-                normal + COUPLED_WEIGHT * stacked_energy, permc_spec="MMD_AT_PLUS_A",
-                diag_pivot_thresh=0.0, options={"SymmetricMode": True})
+            self.preconditioner = sparse_lu_inverse(normal + COUPLED_WEIGHT * stacked_energy,
+                                                    **SYMMETRIC_LU)
         else:
-            self.preconditioner = _each_potential(sparse_lu_inverse(energy))
+            self.preconditioner = _each_potential(sparse_lu_inverse(energy, **SYMMETRIC_LU))
         self.name = self.names[kind]
 
     def _gravest_eigenvalue(self, energy: sp.csr_array, corner_area: np.ndarray) -> float:
@@ -452,7 +507,7 @@ class VariationalSolver:
         """``W^T M W x + alpha (E + pin) x``; ``wind`` is ``W x`` when known already."""
         if wind is None:
             wind = self.wind @ x
-        return self._wind_t @ (self.weight.reshape((-1,) + x.shape[1:]) * wind) + (
+        return self._wind_t @ (self.weight.reshape((-1,) + (1,) * (x.ndim - 1)) * wind) + (
             self._regulariser @ x)
 
     def _progress(self, iterations: int, first: float, now: float, target: float,
