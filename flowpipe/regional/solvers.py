@@ -217,6 +217,19 @@ def _each_potential(inverse: spla.LinearOperator) -> spla.LinearOperator:
     return _operator(2 * n, apply)
 
 
+#: SuperLU options for the matrices of the limited-area solvers, whose patterns are
+#: symmetric and whose diagonals need no pivoting (the symmetric positive definite ones of
+#: the variational solver; the diagonally dominant Laplacian of the Dirichlet one): a
+#: minimum-degree ordering of ``A^T + A`` and the diagonal pivots. On a 1000 x 1000 level
+#: with the mask of ``benchmarks/bench_masked.py`` they about halve the fill and make the
+#: factorisation 1.7 to 2.8 times faster and each solve about 2 times faster than
+#: SuperLU's default ordering and pivoting, with the same residual (the gradient energy:
+#: ``benchmarks/bench_lu_ordering.py``; the Dirichlet Laplacian, measured alike by hand:
+#: 4.1 s against 11.3 s, 64 against 127 million entries).
+SYMMETRIC_LU = {"permc_spec": "MMD_AT_PLUS_A", "diag_pivot_thresh": 0.0,
+                "options": {"SymmetricMode": True}}
+
+
 class DirichletSolver:
     """Solver of the five-point corner Laplacian with zero values off the interior corners.
 
@@ -269,13 +282,7 @@ def dirichlet_solver(grid: StaggeredGrid, valid: np.ndarray) -> DirichletSolver:
     if valid.all():
         return DirichletSolver(grid, interior, separable_laplacian_inverse(grid), "separable")
     index = np.flatnonzero(interior.ravel())
-    # The Laplacian's pattern is symmetric and its diagonal dominant, so SuperLU may order
-    # it by minimum degree on A^T + A and keep the diagonal pivots: measured on a
-    # 1000 x 1000 box with benchmarks/bench_masked.py's terrain mask, 4.1 s against 11.3 s
-    # for the default column ordering, with half the fill (64 against 127 million entries)
-    # and the same residual (2e-14)
-    inverse = sparse_lu_inverse(grid.laplacian[index][:, index], permc_spec="MMD_AT_PLUS_A",
-                                diag_pivot_thresh=0.0, options={"SymmetricMode": True})
+    inverse = sparse_lu_inverse(grid.laplacian[index][:, index], **SYMMETRIC_LU)
     return DirichletSolver(grid, interior, inverse, "sparse")
 
 
@@ -291,14 +298,6 @@ COUPLED_LIMIT = 250_000
 #: Regulariser weight of the coupled preconditioner: large enough to keep its
 #: factorisation well conditioned, small enough that few modes feel it.
 COUPLED_WEIGHT = 1e-6
-#: SuperLU options for the symmetric positive definite matrices of the variational
-#: solver: a minimum-degree ordering of ``A^T + A`` and no pivoting off the diagonal.
-#: On the gradient energy of a 1000 x 1000 level with the mask of
-#: ``benchmarks/bench_masked.py`` they roughly halve the fill and make the factorisation
-#: about 1.7 and each solve about 2 times faster than SuperLU's default ordering and
-#: pivoting (``benchmarks/bench_lu_ordering.py``, median of 3, another benchmark running).
-SYMMETRIC_LU = {"permc_spec": "MMD_AT_PLUS_A", "diag_pivot_thresh": 0.0,
-                "options": {"SymmetricMode": True}}
 
 
 class VariationalSolver:
