@@ -143,13 +143,14 @@ def masked_helmholtz_slab(
     -------
     tuple of numpy.ndarray
         The eight fields of ``spectral_kernel``, then ``u_unresolved`` and
-        ``v_unresolved`` (the wind minus the rotational and divergent winds
-        on a slab with missing points, zero on a complete slab), all NaN
-        where ``u`` or ``v`` is missing; then three area-weighted sums
-        over the valid points: of the squared residual
-        ``|rotational + divergent + unresolved - (u, v)|**2`` (rounding level
-        on a slab with missing points),
-        of ``|unresolved|**2`` and of ``|(u, v)|**2``. Without missing points
+        ``v_unresolved`` (the wind minus the rotational and divergent winds:
+        on a complete slab what the band-limited transforms do not carry,
+        rounding on a band-limited wind), all NaN where ``u`` or ``v`` is
+        missing; then three area-weighted sums over the valid points: of the
+        squared residual ``|rotational + divergent + unresolved - (u, v)|**2``
+        (rounding level on a slab with missing points, zero on a complete
+        one, whose remainder is that difference itself), of
+        ``|unresolved|**2`` and of ``|(u, v)|**2``. Without missing points
         the eight fields are those of ``spectral_kernel`` itself.
 
     References
@@ -164,9 +165,14 @@ def masked_helmholtz_slab(
     if mask is None:
         # A complete slab, as most are: the spectral result as it is (masking the eight
         # fields and summing the residual again cost 0.16 s a 0.25 degree slab, about the
-        # transforms' own time: benchmarks/bench_throughput.py).
-        zero = np.zeros(u.shape)
-        return (*out[:8], zero, zero, out[8], 0.0, out[9])
+        # transforms' own time: benchmarks/bench_throughput.py), and the remainder the
+        # band-limited winds leave, so that the sum holds on every level of the file;
+        # its squares are the kernel's residual sum, and the sum with it is exact
+        u_rest = np.subtract(u, out[4], dtype=np.float64)
+        u_rest -= out[6]
+        v_rest = np.subtract(v, out[5], dtype=np.float64)
+        v_rest -= out[7]
+        return (*out[:8], u_rest, v_rest, 0.0, out[8], out[9])
     u = np.asarray(u, dtype=np.float64)
     v = np.asarray(v, dtype=np.float64)
     fields = tuple(np.where(mask, np.nan, f) for f in out[:8])

@@ -167,6 +167,30 @@ def test_unmasked_level_through_the_masked_kernel_equals_the_spectral_kernel():
         assert np.max(np.abs(a - b)) <= 1e-9 * max(np.max(np.abs(a)), 1e-300)
 
 
+def test_complete_levels_of_a_masked_file_carry_the_unresolved_remainder_too():
+    # A wind with grid-scale noise is not band-limited, so the spectral parts leave a
+    # remainder on a complete level as well. In a file whose other level has missing
+    # points, rotational + divergent + unresolved must still be the wind at every point of
+    # the complete level (README), with the remainder's share the reconstruction error the
+    # plain spectral route gives that level decomposed on its own.
+    lat, lon, phi, lam, u, v, exact, mask = _case()
+    noise = np.random.default_rng(5).standard_normal((2,) + u.shape)
+    u, v = u + noise[0], v + noise[1]
+    levels = [np.stack([np.where(mask, np.nan, c), c]) for c in (u, v)]
+    wind = wind_dataset(levels[0], levels[1], lat, lon, levels=[850.0, 500.0])
+    parts = fp.decompose(wind)
+    assert "u_unresolved" in parts
+    alone = fp.decompose(wind_dataset(u, v, lat, lon))  # complete: the plain spectral route
+    full = parts.sel(level=500.0)
+    for c, name in (("u", u), ("v", v)):
+        total = full[f"{c}_rotational"] + full[f"{c}_divergent"] + full[f"{c}_unresolved"]
+        assert np.max(np.abs(total.values - name)) <= 1e-12 * np.max(np.abs(name))
+    assert float(full["unresolved_fraction"]) > 1e-3  # the noise is not resolved away
+    np.testing.assert_allclose(float(full["unresolved_fraction"]),
+                               float(alone["reconstruction_error"]), rtol=1e-9)
+    assert float(full["reconstruction_error"]) == 0.0
+
+
 def test_lazy_masked_levels_compute_nothing_while_building():
     # The missing points are found inside each slab task: building the result must not run
     # the dask graph (a scheduler that raises, per dask's documented `scheduler=` callable).
