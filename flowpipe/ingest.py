@@ -1190,7 +1190,7 @@ def _implausible_mask(u: np.ndarray, v: np.ndarray, *, max_speed: float, refuse:
         count = int(bad.sum())
         nonfinite = int((np.isinf(u) | np.isinf(v)).sum())
         what = (f"{count} point(s) of {names[0]}/{names[1]} not finite or faster than "
-                f"{max_speed:g} m s-1 ({nonfinite} not finite), the first at {where}")
+                f"{max_speed:g} m s-1 ({nonfinite} not finite), one of them at {where}")
         if refuse:
             raise InputError(f"{source}: {what}; fix the file, or treat them as missing with "
                              "--implausible missing (config: [input] implausible = \"missing\") "

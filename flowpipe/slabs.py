@@ -105,8 +105,8 @@ def refuse_missing(u: np.ndarray, v: np.ndarray, *, kernel: Callable[..., tuple]
         raise InputError(
             f"u/v have {int(missing.sum())} missing points in a latitude-longitude slab, within "
             f"latitudes {lats.min():g}..{lats.max():g} and longitudes {lons.min():g}.."
-            f"{lons.max():g}; {what} need complete fields: fill the gaps first, or "
-            "decompose with the regional method (--method regional, method='regional')")
+            f"{lons.max():g}; {what} need complete fields: choose the levels that have no "
+            "missing points (--levels, levels=...), or fill the gaps first")
     return kernel(u, v, latitude=latitude, **kwargs)
 
 
