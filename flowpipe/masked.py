@@ -116,6 +116,38 @@ def harmonic_fill(u: np.ndarray, v: np.ndarray, latitude: np.ndarray
     return uf, vf, mask
 
 
+def input_rounding(u: np.ndarray, v: np.ndarray) -> float:
+    """The size below which a remainder of the wind is the input's own rounding: the machine
+    epsilon of the input's floating-point type (twice its unit roundoff) times the slab's
+    largest wind component.
+
+    Parameters
+    ----------
+    u, v : numpy.ndarray
+        The slab's wind as stored (float32 or float64; NaN where missing).
+
+    Returns
+    -------
+    float
+        In the wind's units.
+
+    Notes
+    -----
+    A float32 wind is stored with relative errors up to 2**-24, so band-limited parts
+    cannot match it closer than that: a remainder within this bound is noise of the
+    storage, not wind the transforms missed, and it does not compress (written, two such
+    fields made the default output of benchmarks/bench_throughput.py larger and slower).
+
+    References
+    ----------
+    IEEE 754-2019, binary32 and binary64 (unit roundoff 2**-24 and 2**-53).
+    """
+    dtype = np.result_type(u, v)
+    largest = max(float(np.nanmax(np.abs(u), initial=0.0)),
+                  float(np.nanmax(np.abs(v), initial=0.0)))
+    return float(np.finfo(dtype if dtype.kind == "f" else np.float64).eps) * largest
+
+
 def masked_helmholtz_slab(
     u: np.ndarray, v: np.ndarray, *, spectral_kernel: Callable[..., tuple], latitude: np.ndarray,
     weights: np.ndarray, **kwargs,
@@ -162,22 +194,30 @@ def masked_helmholtz_slab(
     """
     uf, vf, mask = harmonic_fill(u, v, latitude)
     out = spectral_kernel(uf, vf, weights=weights, **kwargs)
+    rounding = input_rounding(u, v)
     if mask is None:
         # A complete slab, as most are: the spectral result as it is (masking the eight
         # fields and summing the residual again cost 0.16 s a 0.25 degree slab, about the
         # transforms' own time: benchmarks/bench_throughput.py), and the remainder the
-        # band-limited winds leave, so that the sum holds on every level of the file;
-        # its squares are the kernel's residual sum, and the sum with it is exact
+        # band-limited winds leave, so that the sum holds on every level of the file. The
+        # kernel's residual sum is that of the whole remainder: what is kept of it, and
+        # the rest (the input's rounding, set to zero), split it exactly.
         u_rest = np.subtract(u, out[4], dtype=np.float64)
         u_rest -= out[6]
         v_rest = np.subtract(v, out[5], dtype=np.float64)
         v_rest -= out[7]
-        return (*out[:8], u_rest, v_rest, 0.0, out[8], out[9])
+        for rest in (u_rest, v_rest):
+            rest[np.abs(rest) <= rounding] = 0.0
+        kept = weights @ (np.einsum("ij,ij->i", u_rest, u_rest)
+                          + np.einsum("ij,ij->i", v_rest, v_rest))
+        return (*out[:8], u_rest, v_rest, max(out[8] - kept, 0.0), kept, out[9])
     u = np.asarray(u, dtype=np.float64)
     v = np.asarray(v, dtype=np.float64)
     fields = tuple(np.where(mask, np.nan, f) for f in out[:8])
     u_rest = np.where(mask, np.nan, u - fields[4] - fields[6])
     v_rest = np.where(mask, np.nan, v - fields[5] - fields[7])
+    for rest in (u_rest, v_rest):
+        rest[np.abs(rest) <= rounding] = 0.0
     valid = ~mask
 
     def area_sum(x: np.ndarray) -> float:

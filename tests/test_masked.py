@@ -191,6 +191,25 @@ def test_complete_levels_of_a_masked_file_carry_the_unresolved_remainder_too():
     assert float(full["reconstruction_error"]) == 0.0
 
 
+def test_a_band_limited_float32_wind_leaves_no_unresolved_wind_but_its_rounding():
+    # The analytic wind is band-limited, so stored as float32 (IEEE 754 binary32, relative
+    # rounding up to 2**-24) all it differs from the band-limited parts by is its storage
+    # rounding: that is not written as unresolved wind (zeros, which compress to nothing),
+    # and the parts still give the wind to within it.
+    lat, lon, phi, lam, u, v, exact, mask = _case()
+    u32, v32 = u.astype(np.float32), v.astype(np.float32)
+    wind = wind_dataset(np.stack([np.where(mask, np.nan, u32), u32]),
+                        np.stack([np.where(mask, np.nan, v32), v32]), lat, lon,
+                        levels=[850.0, 500.0])
+    full = fp.decompose(wind).sel(level=500.0).compute()
+    eps = float(np.finfo(np.float32).eps)
+    for c, given in (("u", u32), ("v", v32)):
+        assert np.count_nonzero(full[f"{c}_unresolved"].values) == 0, c
+        parts = full[f"{c}_rotational"].values + full[f"{c}_divergent"].values
+        assert np.max(np.abs(parts - given)) <= eps * max(np.abs(u32).max(), np.abs(v32).max())
+    assert float(full["unresolved_fraction"]) == 0.0
+
+
 def test_lazy_masked_levels_compute_nothing_while_building():
     # The missing points are found inside each slab task: building the result must not run
     # the dask graph (a scheduler that raises, per dask's documented `scheduler=` callable).
