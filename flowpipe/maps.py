@@ -53,6 +53,7 @@ from .ingest import (
     as_timedelta,
     canonical_levels,
     find_coordinate,
+    forecast_pieces,
     forecast_variable,
     is_grib,
     is_zarr_store,
@@ -267,7 +268,13 @@ def _open(source: str | os.PathLike | xr.Dataset) -> tuple[xr.Dataset, str]:
         raise InputError(f"{path}: no such file")
     if is_grib(path):  # a model's GRIB output: its wind, in the canonical form
         return open_wind(path), str(path)
-    return open_store(path), str(path)
+    # a forecast file by lead, or by runs x leads: the valid time as the dimension, with
+    # the run and lead along it, as ingest reads it for the other commands
+    pieces = forecast_pieces(open_store(path), path)
+    if len(pieces) == 1:
+        return pieces[0], str(path)
+    return xr.concat(pieces, dim="time", data_vars="minimal", coords="different",
+                     compat="equals", join="outer"), str(path)
 
 
 # ---------------------------------------------------------------- coordinates

@@ -254,6 +254,40 @@ def test_map_title_names_run_and_lead(files, tmp_path):
         ax.get_title(loc="left") for ax in first.axes)
 
 
+@pytest.mark.parametrize("layout", ["archive", "lead"])
+def test_map_of_a_forecast_input_picks_run_and_lead(files, tmp_path, layout):
+    # An input file laid out by lead, or by runs x leads (valid time 2-D): the map takes the
+    # run and lead as the other commands do (valid time = run + lead, CF standard-name
+    # table) and draws that slab: the same filled contours (matplotlib's paths) as the map
+    # of the plain analysis file that holds only run 12Z + 12 h, and a colour bar spanning
+    # the slab's values read independently with xarray.
+    from test_maps import _colour_bar
+
+    from flowpipe.maps import render
+
+    def contours(fig):
+        return [p.vertices for ax in fig.axes if hasattr(ax, "projection")
+                for c in ax.collections if hasattr(c, "get_paths") for p in c.get_paths()]
+
+    figure = render(files[layout], field="u", run="2026-12-01T12Z", lead=12)
+    title = "".join(ax.get_title(loc="left") for ax in figure.axes)
+    assert "run 2026-12-01T12Z +12 h, valid 2026-12-02T00:00Z" in title
+    with xr.open_dataset(files[layout]) as raw:
+        if layout == "archive":
+            expect = raw["u"].sel(reference_time=RUNS[1], step=LEADS[2]).values
+        else:
+            expect = raw["u"].sel(forecast_period=12.0).values
+    plain = contours(render(files["plain"], field="u"))
+    drawn = contours(figure)
+    assert len(drawn) == len(plain) > 0
+    for a, b in zip(drawn, plain, strict=True):
+        np.testing.assert_array_equal(a, b)
+    bar = _colour_bar(figure)
+    step = np.diff(bar.mappable.levels).max()
+    assert bar.vmin <= expect.min() and bar.vmax >= expect.max()
+    assert bar.vmax - max(abs(expect.min()), abs(expect.max())) < step
+
+
 LATEST_CONFIG = """[input]
 paths = ["runs/fc_*.nc"]
 run = "latest"
