@@ -364,11 +364,11 @@ class Runner:
                          tables)
         if cfg["ftle"]:  # every level the [ftle] table seeded
             self._field_maps(unit, result, sources.get("ftle"), ["ftle"], None, tables)
-        if cfg["circulation"]:  # the contours coloured by their mean vorticity, every level
+        if cfg["circulation"]:  # the contours coloured by their mean vorticity, at the levels
             from .maps_circulation import DEFAULT_FIELD
 
-            self._field_maps(unit, result, sources.get("circulation"), [DEFAULT_FIELD], None,
-                             tables)
+            self._field_maps(unit, result, sources.get("circulation"), [DEFAULT_FIELD],
+                             cfg["levels"], tables, only_present=True)
         tracks = sources.get("advect")
         if cfg["trajectories"] and tracks is not None and tracks.exists():
             for member in self._members(tracks, cfg["output"]):
@@ -393,10 +393,10 @@ class Runner:
 
     def _field_maps(self, unit: Unit, result: UnitResult, source: Path | None,
                     names: list[str], levels: list[float] | None,
-                    tables: dict[str, str]) -> None:
+                    tables: dict[str, str], only_present: bool = False) -> None:
         """Maps of the fields ``names`` of one stage's output, at ``levels`` (default:
-        every level of the file); one per time with ``{lead}`` in the name, else of the
-        first time."""
+        every level of the file; ``only_present``: those of them the file has); one per
+        time with ``{lead}`` in the name, else of the first time."""
         import xarray as xr
 
         from .ingest import forecast_fields
@@ -413,6 +413,8 @@ class Runner:
             times = times if each else times[:1]
             forecast = ([forecast_fields(ds, i) for i in range(len(times))]
                         if each or "{run" in cfg["output"] else [{}] * len(times))
+        if levels is not None and only_present:
+            levels = [lv for lv in levels if any(abs(lv - p) < 1e-6 for p in present if p is not None)]
         members = self._members(source, cfg["output"])
         for name, level, (when, words), member in itertools.product(
                 names, levels if levels is not None else present,

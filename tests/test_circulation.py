@@ -369,6 +369,11 @@ def test_batch_maps_of_circulation_output(tmp_path):
         assert image.shape[:2] == (800, 1200) and image[..., :3].std() > 0.05
     for picture in pictures:
         picture.unlink()
+    assert _run_config(tmp_path, table.replace("fields = []", "fields = []\nlevels = [500.0, 300.0]")) == 0
+    # [maps] levels limit them too (300 hPa: not in this output, so no map of it)
+    assert [p.name for p in (tmp_path / "out").glob("*.png")] == [
+        "demo_global_mean_vorticity_500.png"]
+    (tmp_path / "out" / "demo_global_mean_vorticity_500.png").unlink()
     assert _run_config(tmp_path, table.replace("fields = []", "fields = []\ncirculation = false")) == 0
     assert not list((tmp_path / "out").glob("*.png"))
 
