@@ -63,6 +63,24 @@ def test_bad_arguments_are_refused_before_any_work(tmp_path, capsys, make_args, 
     assert not list(tmp_path.iterdir())
 
 
+def test_a_southern_or_western_coordinate_first_is_taken_as_the_value(tmp_path):
+    # argparse reads "-30,100,500" as an option, not as a value (Python documentation,
+    # argparse, "Arguments containing -"); a contour or start in the southern or western
+    # hemisphere must not need the "=" form: both forms give the same file.
+    import xarray as xr
+
+    for form, args in (("spaced", ["--circle", "-30,100,500", "--box", "-40,-20,-60,-30"]),
+                       ("joined", ["--circle=-30,100,500", "--box=-40,-20,-60,-30"])):
+        assert main(["circulation", GLOBAL, "-o", str(tmp_path / f"{form}.nc"), *args]) == 0
+    assert main(["advect", GLOBAL, "-o", str(tmp_path / "t.nc"), "--start", "-35,-60,850",
+                 "--hours", "6"]) == 0
+    with xr.open_dataset(tmp_path / "spaced.nc") as a, xr.open_dataset(tmp_path / "joined.nc") as b:
+        assert list(a["contour_name"].values) == list(b["contour_name"].values)
+        xr.testing.assert_identical(a["circulation"], b["circulation"])
+    with xr.open_dataset(tmp_path / "t.nc") as t:
+        assert float(t["latitude"].isel(obs=0).max()) == -35.0
+
+
 def test_a_start_file_that_is_not_text_is_an_input_error(tmp_path, capsys):
     assert main(["advect", GLOBAL, "-o", str(tmp_path / "t.nc"), "--starts", GLOBAL,
                  "--hours", "6"]) == 2
