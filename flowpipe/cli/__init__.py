@@ -34,6 +34,14 @@ class _Parser(argparse.ArgumentParser):
         sys.exit(2)
 
 
+#: What every command reads as a value, not an option, though it begins with a minus sign:
+#: a number or a comma-separated list of them ("--circle -30,100,500", "--start -20,150").
+#: argparse itself takes plain negative numbers only (Python documentation, argparse,
+#: "Arguments containing -"), which would refuse a southern latitude or western longitude
+#: given first.
+NEGATIVE_VALUES = re.compile(r"^-\d*\.?\d+(,[-+]?\d*\.?\d+)*$")
+
+
 def build_parser() -> argparse.ArgumentParser:
     """The ``flowpipe`` argument parser with every command registered."""
     common = argparse.ArgumentParser(add_help=False)
@@ -50,6 +58,7 @@ def build_parser() -> argparse.ArgumentParser:
     for name in COMMANDS:
         module = importlib.import_module(f"{__name__}.{name}")
         command = module.register(sub, common)
+        command._negative_number_matcher = NEGATIVE_VALUES
         command.set_defaults(handler=module.run)
     return parser
 
@@ -88,28 +97,10 @@ def _local_threads() -> None:
         dask.config.set({"array.rechunk.method": "tasks"})
 
 
-#: Options whose value is a list of coordinates, which may begin with a minus sign.
-COORDINATE_OPTIONS = ("--start", "--box", "--circle", "--region")
-
-
-def attach_negative_values(argv: Sequence[str]) -> list[str]:
-    """``--circle -30,100,500`` as ``--circle=-30,100,500``: argparse takes a value that
-    begins with ``-`` and is not a plain negative number for an option of its own
-    (Python documentation, argparse, "Arguments containing -"), so a southern latitude or
-    western longitude first would be refused."""
-    out: list[str] = []
-    for item in argv:
-        if out and out[-1] in COORDINATE_OPTIONS and re.match(r"-[0-9.]", item):
-            out[-1] = f"{out[-1]}={item}"
-        else:
-            out.append(item)
-    return out
-
-
 def main(argv: Sequence[str] | None = None) -> int:
     """Entry point of the ``flowpipe`` command; returns the exit code."""
     parser = build_parser()
-    args = parser.parse_args(attach_negative_values(sys.argv[1:] if argv is None else argv))
+    args = parser.parse_args(argv)
     args.debug = getattr(args, "debug", False)  # (absent when given nowhere)
     warnings.showwarning = _show_warning
     # Idle worker threads of the compiled kernels sleep between steps instead of spinning:

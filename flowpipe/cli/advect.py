@@ -3,7 +3,6 @@
 from __future__ import annotations
 
 import argparse
-import re
 from typing import TYPE_CHECKING
 
 from ..choices import STATUS_MEANINGS
@@ -30,9 +29,6 @@ def register(sub: argparse._SubParsersAction, common: argparse.ArgumentParser) -
         "time slice at a time) and write their trajectories as a CF trajectory file. "
         "Trajectories are analysis diagnostics, not a dispersion or warning product.",
     )
-    # Let "--start -20,150" read as a value: argparse takes only plain negative
-    # numbers for values, not comma-separated lists beginning with a minus sign.
-    parser._negative_number_matcher = re.compile(r"^-\d*\.?\d+(,[-+]?\d*\.?\d+)*$")
     parser.add_argument("files", nargs="+", metavar="FILE", help="NetCDF files or globs")
     parser.add_argument("-o", "--output", required=True, type=data_file, metavar="OUT.nc",
                         help="the trajectory file to write")

@@ -3,7 +3,6 @@
 from __future__ import annotations
 
 import argparse
-import re
 
 from ..errors import UsageError
 from ._common import (
@@ -21,7 +20,6 @@ def register(sub: argparse._SubParsersAction, common: argparse.ArgumentParser) -
         description="Seed a regular grid, advect it through the winds of FILE... and write "
         "the finite-time Lyapunov exponent (s-1). Analysis diagnostics, not a dispersion or "
         "warning product.")
-    parser._negative_number_matcher = re.compile(r"^-\d*\.?\d+(,[-+]?\d*\.?\d+)*$")
     parser.add_argument("files", nargs="+", metavar="FILE", help="NetCDF files or globs")
     parser.add_argument("-o", "--output", required=True, type=data_file, metavar="OUT.nc")
     parser.add_argument("--hours", required=True, type=float, metavar="H",
