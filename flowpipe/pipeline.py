@@ -371,25 +371,15 @@ class Runner:
                              cfg["levels"], tables, only_present=True)
         tracks = sources.get("advect")
         if cfg["trajectories"] and tracks is not None and tracks.exists():
-            for member in self._members(tracks, cfg["output"]):
+            with xr.open_dataset(tracks) as ds:
+                members = _members(ds, cfg["output"])
+            for member in members:
                 out = render_template(cfg["output"], self.out, **{
                     **self._fields(unit, cfg["output"]), "field": "trajectories",
                     "level": "all", "time": "all", "lead": "all", "member": _member_text(member)})
                 self._produce("maps", result, out, [bookkeeping.fingerprint(tracks)],
                               self._tables("maps"),
                               lambda p, m=member: save(render(tracks, member=m), p))
-
-    @staticmethod
-    def _members(source: Path, template: str) -> list[int | None]:
-        """The ensemble members to map one by one: every member of the output (a
-        ``realization`` dimension, or coordinate of trajectories) when the template names
-        ``{member}``; else one map, None (the first member's fields, every member's tracks)."""
-        if "{member" not in template:
-            return [None]
-        with xr.open_dataset(source) as ds:
-            if "realization" not in ds.variables:
-                return [None]
-            return sorted({int(m) for m in np.atleast_1d(ds["realization"].values)})
 
     def _field_maps(self, unit: Unit, result: UnitResult, source: Path | None,
                     names: list[str], levels: list[float] | None,
@@ -413,9 +403,9 @@ class Runner:
             times = times if each else times[:1]
             forecast = ([forecast_fields(ds, i) for i in range(len(times))]
                         if each or "{run" in cfg["output"] else [{}] * len(times))
+            members = _members(ds, cfg["output"])
         if levels is not None and only_present:
             levels = [lv for lv in levels if any(abs(lv - p) < 1e-6 for p in present if p is not None)]
-        members = self._members(source, cfg["output"])
         for name, level, (when, words), member in itertools.product(
                 names, levels if levels is not None else present,
                 zip(times, forecast, strict=True), members):
@@ -564,6 +554,15 @@ def _unit_in_worker(config_path: Path, force: bool, unit: Unit,
 
 def _level_text(level: float | None) -> str:
     return "all" if level is None else f"{level:g}"
+
+
+def _members(ds: xr.Dataset, template: str) -> list[int | None]:
+    """The ensemble members to map one by one: every member of an output (a ``realization``
+    dimension, or coordinate of trajectories) when the template names ``{member}``; else
+    one map, None (the first member's fields, every member's tracks)."""
+    if "{member" not in template or "realization" not in ds.variables:
+        return [None]
+    return sorted({int(m) for m in np.atleast_1d(ds["realization"].values)})
 
 
 def _member_text(member: int | None) -> str:
