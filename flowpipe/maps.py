@@ -130,6 +130,11 @@ END_MARKERS = {
 #: double, the accuracy the spectral decomposition holds on analytic winds
 #: (1e-10 of the wind, tests/test_decompose.py). *Common practice.*
 ROUNDING = {4: 1e-6, 8: 1e-10}
+#: Share of a slab's valid points at each end that may lie beyond the colour scale, drawn
+#: in its end colours and marked by the colour bar's arrows: a handful of extremes (a
+#: cyclone's core, the lee of a mountain) would otherwise set the scale and leave the rest
+#: of the map in its middle colours (common practice).
+BEYOND_SCALE = 1e-3
 
 
 class MapWarning(FlowpipeWarning):
@@ -628,7 +633,7 @@ def _field_map(fig: Figure, ds: xr.Dataset, label: str, field: str | None, level
     if not np.any(values):  # nothing above rounding: say so rather than colour the noise
         _zero_map(ax, da, field, words, rounding, companion)
         return
-    low, high = float(np.nanmin(values)), float(np.nanmax(values))
+    low, high = (float(q) for q in np.nanquantile(values, [BEYOND_SCALE, 1 - BEYOND_SCALE]))
     names = (field, str(da.attrs.get("standard_name", "")))
     from_zero = _from_zero(field, da)
     if from_zero:
@@ -658,10 +663,12 @@ def _field_map(fig: Figure, ds: xr.Dataset, label: str, field: str | None, level
     outside = ~np.isfinite(xyz[..., :2]).all(axis=-1)
     x, y = (np.where(outside, 0.0, xyz[..., i]) for i in (0, 1))
     limits = ax.get_xlim(), ax.get_ylim()
+    below, above = np.nanmin(values) < levels[0], np.nanmax(values) > levels[-1]
     contours = matplotlib.axes.Axes.contourf(
         ax, x, y, np.ma.masked_where(outside | ~np.isfinite(filled), filled), levels=levels,
         cmap=DIVERGING if signed else SEQUENTIAL, norm=Normalize(levels[0], levels[-1]),
-        zorder=1)
+        extend={(False, False): "neither", (True, False): "min", (False, True): "max",
+                (True, True): "both"}[bool(below), bool(above)], zorder=1)
     ax.set_xlim(*limits[0])
     ax.set_ylim(*limits[1])
     units = str(da.attrs.get("units", ""))

@@ -129,10 +129,15 @@ def test_png_of_requested_size_not_blank(figures, files, kind):
 
 @pytest.mark.parametrize("kind", list(FIELD_MAPS))
 def test_colour_bar_spans_the_data(figures, kind):
+    # The scale covers all but the extreme thousandth of the points at each end (numpy's
+    # quantiles, the reference); values beyond it are marked by the bar's arrows.
     source, options, fig = figures[kind]
     values = _slab(source, options).values
-    low, high = np.nanmin(values), np.nanmax(values)
+    low, high = np.nanquantile(values, [1e-3, 1 - 1e-3])
     bar = _colour_bar(fig)
+    assert bar.extend == {(False, False): "neither", (True, False): "min", (False, True): "max",
+                          (True, True): "both"}[np.nanmin(values) < bar.vmin,
+                                                np.nanmax(values) > bar.vmax]
     step = np.diff(bar.mappable.levels).max()
     name = bar.cmap.name
     signed = options["field"] in ("streamfunction", "velocity_potential", "vorticity",
@@ -146,6 +151,22 @@ def test_colour_bar_spans_the_data(figures, kind):
     else:
         assert name in SEQUENTIAL
         assert low - bar.vmin < step and bar.vmax - high < step
+
+
+def test_a_few_extremes_do_not_set_the_colour_scale():
+    # A smooth vorticity-like field with a cyclone's core of 20 points 30 times as strong:
+    # the scale follows the field and the core is drawn beyond it, in the end colour with the
+    # bar's arrow (common practice for maps of fields with sharp peaks).
+    lat, lon = np.linspace(-89.5, 89.5, 180), np.arange(0.0, 360.0, 1.0)
+    field = 1e-5 * np.sin(np.radians(lat))[:, None] * np.cos(np.radians(2 * lon))[None, :]
+    field[100:104, 50:55] = 3e-4
+    ds = xr.Dataset({"vorticity": (("latitude", "longitude"), field,
+                                   {"units": "s-1", "standard_name": "atmosphere_relative_vorticity"})},
+                    coords={"latitude": ("latitude", lat, {"units": "degrees_north"}),
+                            "longitude": ("longitude", lon, {"units": "degrees_east"})})
+    bar = _colour_bar(fp.render(ds, field="vorticity", size=SIZE))
+    assert bar.vmax < 2e-5 and bar.vmin == pytest.approx(-bar.vmax)
+    assert bar.extend == "max"
 
 
 @pytest.mark.parametrize("kind", ["streamfunction", "velocity-potential", "vorticity-cap",
