@@ -679,6 +679,14 @@ def _isal_level1(data: bytes) -> bytes:
 _DEFLATE, _SHUFFLE, _ZSTD = 1, 2, 32015
 
 
+#: Bytes blosc compresses at a time, by compressor (0: blosc's own choice). zstd starts
+#: afresh in each block: on a 0.25 degree float32 field, blosc's own choice (blocks of a few
+#: hundred kilobytes) took 5.2 ms to compress, blocks of 1 MiB 2.0 ms, 1.5 % smaller;
+#: zlib was slowest with blosc's own choice too (42 against 55 ms). The block size is
+#: written in each chunk's header, so every blosc reader decodes either.
+ZARR_BLOCK = {"zstd": 2**20, "zlib": 0}
+
+
 def _zarr_encoding(ds: xr.Dataset, encoding: dict[str, dict], compression: str) -> dict[str, dict]:
     """The NetCDF encodings of :func:`_encoding` as Zarr format 3 asks for them.
 
@@ -698,7 +706,7 @@ def _zarr_encoding(ds: xr.Dataset, encoding: dict[str, dict], compression: str) 
             new["dtype"] = enc["dtype"]
         if "complevel" in enc:
             new["compressors"] = (BloscCodec(cname=compression, clevel=enc["complevel"],
-                                             shuffle="shuffle"),)
+                                             shuffle="shuffle", blocksize=ZARR_BLOCK[compression]),)
         elif compression == "none":
             new["compressors"] = None
         if var.ndim:

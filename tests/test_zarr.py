@@ -84,6 +84,17 @@ def test_zarr_store_is_format_3_consolidated_chunked_as_the_netcdf_file(written)
             # blosc with the stores' default zstd at the default level and byte shuffle
             assert type(codec).__name__ == "BloscCodec"
             assert (codec.cname.value, codec.clevel, codec.shuffle.value) == ("zstd", 1, "shuffle")
+        # c-blosc's own decoder (numcodecs.Blosc), not zarr-python's codec pipeline, reads
+        # the first chunk of a field: little-endian floats equal to the NetCDF ones
+        # (Zarr v3 specification: chunk key "c" + "." + indices, bytes codec, then blosc)
+        import numcodecs
+
+        chunks = group["vorticity"].chunks
+        raw = (written["zarr"] / "vorticity" / f"c.{'.'.join('0' * len(chunks))}").read_bytes()
+        stored = np.dtype(nc["vorticity"].dtype).newbyteorder("<")
+        block = np.frombuffer(numcodecs.Blosc().decode(raw), dtype=stored).reshape(chunks)
+        expected = np.ma.filled(nc["vorticity"][tuple(slice(0, c) for c in chunks)], np.nan)
+        assert np.array_equal(block, expected, equal_nan=True)
 
 
 def test_zlib_asked_for_is_written_to_a_store_and_zlib_is_the_netcdf_default(written,
