@@ -144,7 +144,7 @@ def decompose(
 
 def helmholtz_slab(
     u: np.ndarray, v: np.ndarray, *, geometry: str, truncation: int, radius: float,
-    weights: np.ndarray, nthreads: int = 1,
+    weights: np.ndarray, nthreads: int = 1, sums: bool = True,
 ) -> tuple[np.ndarray, ...]:
     """Helmholtz decomposition of one global slab.
 
@@ -163,13 +163,16 @@ def helmholtz_slab(
         Quadrature weight of each row (ascending), for the error norms.
     nthreads : int
         Threads ducc0 may use.
+    sums : bool
+        Whether to add the two area sums below (a caller that forms the residual itself
+        does without them).
 
     Returns
     -------
     tuple of numpy.ndarray
         ``psi, chi, zeta, delta, u_rot, v_rot, u_div, v_div`` on the grid,
-        then the area-weighted sums of the squared reconstruction residual
-        ``|(u_rot + u_div, v_rot + v_div) - (u, v)|**2`` and of ``|(u, v)|**2``.
+        then (with ``sums``) the area-weighted sums of the squared reconstruction
+        residual ``|(u_rot + u_div, v_rot + v_div) - (u, v)|**2`` and of ``|(u, v)|**2``.
 
     References
     ----------
@@ -191,8 +194,8 @@ def helmholtz_slab(
     zeta = spectral.scalar_synthesis(spectral.laplacian(psi_lm, truncation, radius), **grid)
     delta = spectral.scalar_synthesis(spectral.laplacian(chi_lm, truncation, radius), **grid)
     del psi_lm, chi_lm
-    return (psi, chi, zeta, delta, u_rot, v_rot, u_div, v_div,
-            *_residual_sums(u, v, (u_rot, v_rot, u_div, v_div), weights))
+    fields = (psi, chi, zeta, delta, u_rot, v_rot, u_div, v_div)
+    return (*fields, *_residual_sums(u, v, fields[4:], weights)) if sums else fields
 
 
 #: Rows of the residual per block in :func:`_residual_sums` (a 0.25 degree block fits in L2).
