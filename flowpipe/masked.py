@@ -28,8 +28,6 @@ from __future__ import annotations
 from collections.abc import Callable
 
 import numpy as np
-import scipy.sparse as sp
-import scipy.sparse.linalg as spla
 
 #: How the route treats missing points, for the output attributes.
 MASKED_POINTS = ("missing points of u or v (if any) filled by harmonic (Laplace) "
@@ -81,6 +79,11 @@ def harmonic_fill(u: np.ndarray, v: np.ndarray, latitude: np.ndarray
     mask = np.isnan(u) | np.isnan(v)
     if not mask.any():  # infinite values, or sums that overflow: left to the transforms
         return u, v, None
+    # imported here, for the slabs with missing points only: scipy's sparse solvers took
+    # 0.1 s of every command's start
+    import scipy.sparse as sp
+    import scipy.sparse.linalg as spla
+
     nlat, nlon = u.shape
     uf = np.where(mask, 0.0, np.asarray(u, dtype=np.float64))
     vf = np.where(mask, 0.0, np.asarray(v, dtype=np.float64))

@@ -69,9 +69,10 @@ def test_command_line_help_loads_no_numerical_library():
 
 def test_a_decomposition_command_loads_neither_the_cluster_nor_the_grib_libraries(tmp_path):
     # Writing a NetCDF decomposition in the command's own process needs no dask.distributed
-    # (no client runs) and no cfgrib (the input is NetCDF): each cost 0.1-0.2 s a command.
-    # The command runs in the interpreter that reports its modules; both libraries are
-    # installed here (the dev extras), so the check could fail.
+    # (no client runs), no cfgrib (the input is NetCDF) and, with no missing point, none
+    # of scipy's sparse solvers: each cost 0.1-0.2 s a command. The command runs in the interpreter
+    # that reports its modules; the libraries are installed here (the dev extras, scipy),
+    # so the check could fail.
     from windfiles import small_global_file
 
     path = small_global_file(tmp_path, 2)
@@ -80,5 +81,6 @@ def test_a_decomposition_command_loads_neither_the_cluster_nor_the_grib_librarie
         "with contextlib.redirect_stdout(io.StringIO()):\n"
         f"    code = main(['decompose', {str(path)!r}, '-o', {str(tmp_path / 'out.nc')!r}, "
         "'--quiet'])\n"
-        "print(json.dumps([code, [m for m in ('distributed', 'cfgrib') if m in sys.modules]]))")
+        "print(json.dumps([code, [m for m in ('distributed', 'cfgrib', 'scipy.sparse.linalg') "
+        "if m in sys.modules]]))")
     assert found == [0, []]
