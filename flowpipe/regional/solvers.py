@@ -15,6 +15,7 @@ from __future__ import annotations
 import math
 import threading
 import time
+from collections.abc import Callable
 
 import numpy as np
 import scipy.fft
@@ -258,7 +259,13 @@ def _columns_dot(a: np.ndarray, b: np.ndarray) -> np.ndarray:
     return np.einsum("ij,ij->j", a, b)
 
 
-def _block_cg(apply, precondition, rhs: np.ndarray, tolerance: float, max_iterations: int,
+#: A solver of a linear system for columns of right-hand sides: ``(x, iterations)``.
+ColumnSolve = Callable[[np.ndarray], tuple[np.ndarray, int]]
+
+
+def _block_cg(apply: Callable[[np.ndarray], np.ndarray],
+              precondition: Callable[[np.ndarray], np.ndarray], rhs: np.ndarray,
+              tolerance: float, max_iterations: int,
               start: np.ndarray | None = None) -> tuple[np.ndarray, int]:
     """Preconditioned conjugate gradients on each column of ``rhs``, all columns in step.
 
@@ -324,7 +331,7 @@ def _block_cg(apply, precondition, rhs: np.ndarray, tolerance: float, max_iterat
     return x, iterations
 
 
-def schwarz_laplacian_solve(grid: StaggeredGrid, interior: np.ndarray):
+def schwarz_laplacian_solve(grid: StaggeredGrid, interior: np.ndarray) -> ColumnSolve:
     """Iterative solver of the five-point corner Laplacian on a masked grid's interior corners.
 
     Conjugate gradients on the Laplacian weighted by the corner areas (symmetric
@@ -421,7 +428,7 @@ class DirichletSolver:
                    "(symmetric multiplicative Schwarz), built once per grid and mask",
     }
 
-    def __init__(self, grid: StaggeredGrid, interior: np.ndarray, solve_columns,
+    def __init__(self, grid: StaggeredGrid, interior: np.ndarray, solve_columns: ColumnSolve,
                  kind: str) -> None:
         self.grid = grid
         self.interior = interior
@@ -442,7 +449,7 @@ class DirichletSolver:
         return psi, iterations
 
 
-def _direct(inverse: spla.LinearOperator):
+def _direct(inverse: spla.LinearOperator) -> ColumnSolve:
     """``solve_columns`` of a :class:`DirichletSolver` from an inverse as a LinearOperator."""
     return lambda columns: (inverse.matmat(columns), 0)
 
