@@ -375,6 +375,26 @@ def test_missing_wind_stops_the_parcel():
     assert status.values[1] == 0 and np.isfinite(tracks["longitude"].values[1]).all()
 
 
+@pytest.mark.parametrize("lowest", [1000.0, 850.0])
+def test_a_parcel_on_a_level_does_not_feel_a_missing_level_beside_it(lowest):
+    # Trajectories are independent of one another (common practice: each parcel solves its
+    # own ordinary differential equation). A parcel on the 700 hPa level over terrain where
+    # 850 hPa is missing needs no wind from 850 hPa; it must complete whether or not another
+    # parcel of the run starts between two levels, or on the lowest level.
+    wind = layered_wind([1000, 850, 700, 500], "pressure", lambda p: 5.0 + 0 * p)
+    blob = (np.abs(wind["latitude"] - 46.0) < 5) & (np.abs(wind["longitude"] - 10.0) < 8)
+    low = wind["level"] >= 850
+    for name in ("u", "v"):
+        wind[name] = wind[name].where(~(blob & low))
+    alpine = (46.0, 10.0, 700.0)
+    alone = advect(wind, [alpine], 12.0)
+    together = advect(wind, [alpine, (-20.0, 100.0, lowest), (10.0, 150.0, 600.0)], 12.0)
+    assert alone["status"].values[0] == 0  # completed
+    assert together["status"].values[0] == 0
+    for name in ("latitude", "longitude", "air_pressure"):
+        np.testing.assert_array_equal(together[name].values[0], alone[name].values[0])
+
+
 def _cells_by_trigonometry(vectors, lat, lon):
     """Reference cells: latitude and longitude by numpy's arctan2, cells by searchsorted."""
     x, y, z = vectors.T

@@ -320,13 +320,18 @@ def _space_time(field, s0, s1, a, b, k, j, i, i1, c, y, x):
 def _between_levels(field, s0, s1, a, b, k, j, i, i1, c, y, x, z):
     """:func:`_space_time`, linear between the levels ``k`` and ``k + 1`` (fraction ``z``).
 
+    A parcel on a level (``z`` 0 or 1) takes that level's value alone: the other level's
+    may be missing (below the ground), and a zero weight times NaN would stop it there,
+    and only when another parcel of its block lay between two levels.
+
     References
     ----------
     Linear interpolation in log-pressure (or height) between levels (common
     practice).
     """
-    return ((1.0 - z) * _space_time(field, s0, s1, a, b, k, j, i, i1, c, y, x)
-            + z * _space_time(field, s0, s1, a, b, k + 1, j, i, i1, c, y, x))
+    below = _space_time(field, s0, s1, a, b, k, j, i, i1, c, y, x)
+    above = _space_time(field, s0, s1, a, b, k + 1, j, i, i1, c, y, x)
+    return below if z == 0.0 else (above if z == 1.0 else (1.0 - z) * below + z * above)
 
 
 @numba.njit(**BLOCK_LOOP)
