@@ -70,12 +70,15 @@ COASTLINE_DIRS: tuple[str, ...] = ("/usr/share/cartopy/data",)
 #: The coarse GSHHS shoreline file, relative to a cartopy data directory.
 GSHHS_COARSE = Path("shapefiles", "gshhs", "c", "GSHHS_c_L1.shp")
 
-#: Perceptually uniform colour maps shipped with matplotlib: cividis is also
-#: optimised for colour-vision deficiency (Nunez, Anderton & Renslow 2018,
-#: PLoS ONE 13, e0199239); berlin is one of the scientific colour maps of
-#: Crameri, Shephard & Heron (2020, Nature Communications 11, 5444).
+#: Colour maps shipped with matplotlib: cividis, perceptually uniform and optimised for
+#: colour-vision deficiency (Nunez, Anderton & Renslow 2018, PLoS ONE 13, e0199239);
+#: coolwarm, a diverging map of even perceptual steps from blue through a light grey
+#: centre to red (Moreland 2009, "Diverging color maps for scientific visualization",
+#: ISVC 2009, LNCS 5876, 92-103), so that values near zero are pale and the zero line
+#: is soft (the dark centre of berlin, used before, made small positive and negative
+#: values look alike and the zero line a hard edge: a trial's finding).
 SEQUENTIAL = "cividis"
-DIVERGING = "berlin"
+DIVERGING = "coolwarm"
 TRACKS = "viridis"
 
 #: Fields that are signed by nature, whatever the values in one slab.

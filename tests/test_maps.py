@@ -3,9 +3,11 @@
 External references used here:
 * matplotlib's colour-map documentation ("Choosing Colormaps in Matplotlib"):
   the perceptually uniform sequential maps (viridis, plasma, inferno, magma,
-  cividis) and the perceptually uniform diverging maps added in matplotlib
-  3.10 (berlin, managua, vanimo; Crameri, Shephard & Heron 2020, Nature
-  Communications 11, 5444);
+  cividis) and the diverging maps it lists (ColorBrewer's, Moreland's coolwarm, and
+  berlin, managua, vanimo of Crameri, Shephard & Heron 2020, Nature Communications 11,
+  5444); a diverging map for signed fields here must have a light centre, lighter than
+  either end by relative luminance (ITU-R BT.709 coefficients), so that values near zero
+  are pale (common practice for maps of vorticity and divergence);
 * Snyder (1987), Map Projections - A Working Manual, USGS Professional Paper
   1395: polar stereographic for polar regions, an azimuthal equal-area
   projection centred on a limited area (common practice);
@@ -34,7 +36,14 @@ from flowpipe.cli import main
 from flowpipe.errors import InputError, UsageError
 
 SEQUENTIAL = {"viridis", "plasma", "inferno", "magma", "cividis"}
-DIVERGING = {"berlin", "managua", "vanimo"}
+DIVERGING = {"PiYG", "PRGn", "BrBG", "PuOr", "RdGy", "RdBu", "RdYlBu", "RdYlGn", "Spectral",
+             "coolwarm", "bwr", "seismic", "berlin", "managua", "vanimo"}
+
+
+def light_centre(cmap) -> bool:
+    """Whether a colour map's middle is lighter than both of its ends (BT.709 luminance)."""
+    luminance = [float(np.dot(cmap(x)[:3], (0.2126, 0.7152, 0.0722))) for x in (0.0, 0.5, 1.0)]
+    return luminance[1] > max(luminance[0], luminance[2])
 SIZE = (640, 420)
 #: Standard deviation of the grey levels (0..1) above which an image is not blank
 #: (a blank or single-colour image has 0; common practice).
@@ -144,7 +153,7 @@ def test_colour_bar_spans_the_data(figures, kind):
                                   "divergence") or low < 0 < high
     assert bar.vmin <= low and bar.vmax >= high
     if signed:  # diverging, centred on zero
-        assert name in DIVERGING
+        assert name in DIVERGING and light_centre(bar.cmap)
         assert bar.vmin == pytest.approx(-bar.vmax)
         assert bar.mappable.norm(0.0) == pytest.approx(0.5)
         assert bar.vmax - max(abs(low), abs(high)) < step
