@@ -7,7 +7,8 @@ with blobs of missing points below the ground at the three lowest levels), then 
 in a fresh process per measurement (imports, solver caches and peak memory its own),
 the two sides alternately. The other revision's ``flowpipe/`` is extracted from git
 (``git archive``). Prints per round and as medians the wall-clock seconds and the
-peak resident memory of each side and their ratios (working tree / other revision).
+peak resident memory of each side and their ratios (working tree / other revision), and
+whether the two sides wrote the same gridded means and circulation.
 
 Run: ``.venv/bin/python benchmarks/bench_circulation_regional.py [--base REV] [--rounds 3]``.
 """
@@ -114,6 +115,11 @@ def main() -> None:
               f"{np.median(t[:, 0] / b[:, 0]):>6.3f} {np.median(b[:, 1]):>9.0f} "
               f"{np.median(t[:, 1]):>9.0f} {np.median(t[:, 1] / b[:, 1]):>6.3f}")
         print(f"load average {os.getloadavg()[0]:.2f} at the end")
+        with xr.open_dataset(Path(tmp) / "base.nc") as one, \
+                xr.open_dataset(Path(tmp) / "tree.nc") as other:
+            same = {name: bool(one[name].equals(other[name])) for name in (
+                "mean_vorticity_gridded", "mean_divergence_gridded", "circulation")}
+        print(f"the same on both sides: {same}")
 
 
 if __name__ == "__main__":

@@ -734,8 +734,9 @@ def circulation(wind: xr.Dataset, contours: Sequence[Contour | MovingCircle], *,
     # the gridded vorticity and divergence only: on a regional grid both schemes take them
     # from the wind alone (flowpipe.regional.partitions), and Lynch's direct partition,
     # which the variational scheme also runs for its harmonic wind, skips that scheme's
-    # least-squares solver (the sparse LU of each mask: 0.05 x the time, measured by
-    # benchmarks/bench_circulation_regional.py); a global grid takes the spectral route
+    # least-squares solver and its sparse LU of each mask (the command in 0.19 x the time
+    # and 0.16 x the memory, benchmarks/bench_circulation_regional.py); a global grid
+    # takes the spectral route
     parts = decompose(wind, levels=None, scheme="dirichlet")
     parts = parts.sortby("latitude")
     step = xr.DataArray(np.arange(wind.sizes["time"]), dims="time") if moving else xr.DataArray(0)
