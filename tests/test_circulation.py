@@ -554,3 +554,19 @@ def test_sample_track_is_the_one_make_sample_data_writes(tmp_path, monkeypatch):
             found = calm.where(calm == calm.min(), drop=True)
             assert abs(float(found.latitude[0]) - lat) <= 0.25
             assert abs(float(found.longitude[0]) - lon) <= 0.25
+
+
+def test_circulation_shows_slabs_on_a_terminal_and_nothing_quiet(tmp_path):
+    # tqdm draws its bar with carriage returns and N/M counts (tqdm documentation, "Usage");
+    # the pseudo-terminal of the standard library's pty module is a terminal (isatty).
+    from test_progress import _on_terminal
+    from windfiles import small_global_file
+
+    wind = small_global_file(tmp_path, 3)
+    args = ["circulation", str(wind), "-o", str(tmp_path / "box.nc"), "--box", "30,60,-40,0"]
+    code, shown = _on_terminal(args)
+    assert code == 0
+    assert "circulation" in shown and "slab" in shown and "\r" in shown
+    assert "6/6" in shown  # 3 times x 2 levels, all integrated
+    code, shown = _on_terminal([*args, "--quiet"])
+    assert code == 0 and shown == ""
