@@ -702,7 +702,9 @@ def circulation(wind: xr.Dataset, contours: Sequence[Contour | MovingCircle], *,
     obrien : bool
         Apply the O'Brien correction so omega at the top level is ``top_omega``.
     surface_omega, top_omega : float
-        Omega (Pa s-1) at the lowest and (with ``obrien``) at the top level.
+        Omega (Pa s-1) at the base of each column (the lowest level with complete data
+        up to the top: :func:`kinematic_omega`; ``omega_base`` in the result) and (with
+        ``obrien``) at the top level.
 
     Returns
     -------

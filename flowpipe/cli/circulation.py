@@ -61,7 +61,8 @@ def register(sub: argparse._SubParsersAction, common: argparse.ArgumentParser) -
     parser.add_argument("--obrien", action="store_true",
                         help="O'Brien (1970) correction: omega brought to --top-omega at the top")
     parser.add_argument("--surface-omega", type=float, default=0.0, metavar="PA_S",
-                        help="omega at the lowest level (default 0)")
+                        help="omega at the base of each column: the lowest level, or the "
+                        "lowest with complete data above missing ones (default 0)")
     parser.add_argument("--top-omega", type=float, default=0.0, metavar="PA_S",
                         help="omega at the top level with --obrien (default 0)")
     parser.add_argument("--u", metavar="NAME", help="name of the eastward wind variable")
