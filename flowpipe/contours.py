@@ -33,6 +33,7 @@ from __future__ import annotations
 import csv
 import json
 import os
+import warnings
 from collections.abc import Sequence
 from dataclasses import dataclass
 from pathlib import Path
@@ -42,7 +43,7 @@ import scipy.sparse as sp
 import xarray as xr
 
 from .constants import EARTH_RADIUS
-from .errors import InputError, UsageError
+from .errors import FlowpipeWarning, InputError, UsageError
 from .grid import continuous_longitudes
 
 #: Contour points per grid spacing (at least).
@@ -543,42 +544,79 @@ def kinematic_omega(pressure: np.ndarray, divergence: np.ndarray, *, surface: fl
                     top: float | None = None) -> np.ndarray:
     """Kinematic omega (Pa s-1) of a column from its mean divergence on pressure levels.
 
+    Each column is integrated upward from its *base*: the lowest level from
+    which the divergence is finite at every level up to the top, where omega
+    is ``surface`` (the lower boundary condition). With complete data that is
+    the lowest level; where the lowest levels are missing (below the ground
+    of a limited-area model, say) it is the lowest level above them, and the
+    levels below it stay missing. A column whose top level is missing has no
+    base and is missing at every level. A :class:`flowpipe.errors.FlowpipeWarning`
+    says when a base lies above the lowest level or a column is missing.
+
     Parameters
     ----------
     pressure : numpy.ndarray
         Levels in Pa, shape ``(nlev,)``, any order.
     divergence : numpy.ndarray
-        Mean divergence in s-1, shape ``(..., nlev)``.
+        Mean divergence in s-1, shape ``(..., nlev)``; NaN where missing.
     surface : float
-        Omega at the lowest level (highest pressure).
+        Omega at each column's base.
     top : float, optional
-        When given, the O'Brien correction: a correction linear in pressure
-        that makes omega at the top level equal ``top``.
+        When given, the O'Brien correction: a correction linear in pressure,
+        zero at the base, that makes omega at the top level equal ``top``
+        (not applied to a column of one level).
 
     Returns
     -------
     numpy.ndarray
         Omega, same shape as ``divergence``; ``d omega / dp = -divergence``
-        integrated by the trapezoid rule from the lowest level upward.
+        integrated by the trapezoid rule from each column's base upward, NaN
+        below the base.
 
     References
     ----------
     Holton & Hakim (2013), An Introduction to Dynamic Meteorology, 5th ed.,
     section 3.5 (continuity in pressure coordinates); O'Brien (1970),
     "Alternative solutions to the classical vertical velocity problem",
-    J. Appl. Meteor. 9, 197-203.
+    J. Appl. Meteor. 9, 197-203 (the kinematic method: omega given at the
+    column's lower boundary, the divergence integrated up to the top, its
+    error spread linearly in pressure between the two).
     """
     p = np.asarray(pressure, float)
     order = np.argsort(-p)
     ps = p[order]
     d = np.asarray(divergence, float)[..., order]
-    layers = -(d[..., 1:] + d[..., :-1]) / 2 * np.diff(ps)
+    # complete[..., k]: the levels k (counted from the bottom) to the top are all finite
+    complete = np.flip(np.logical_and.accumulate(np.flip(np.isfinite(d), -1), -1), -1)
+    layers = np.where(complete[..., :-1], -(d[..., 1:] + d[..., :-1]) / 2 * np.diff(ps), 0.0)
     om = surface + np.concatenate([np.zeros(d.shape[:-1] + (1,)), np.cumsum(layers, -1)], -1)
-    if top is not None and len(ps) > 1:
-        om = om - (om[..., -1:] - top) * (ps - ps[0]) / (ps[-1] - ps[0])
+    if top is not None:
+        base = ps[np.argmax(complete, -1)][..., None]
+        depth = np.where(base > ps[-1], base - ps[-1], np.inf)  # one level: no correction
+        om = om - (om[..., -1:] - top) * (base - ps) / depth
+    om = np.where(complete, om, np.nan)
+    _tell_bases(ps, complete)
     out = np.empty_like(om)
     out[..., order] = om
     return out
+
+
+def _tell_bases(ps: np.ndarray, complete: np.ndarray) -> None:
+    """A warning when some columns of :func:`kinematic_omega` do not start at the lowest
+    level ``ps[0]`` (Pa, levels from the bottom), naming the levels where they start."""
+    raised = ~complete[..., 0] & complete[..., -1]
+    none = int((~complete[..., -1]).sum())
+    told, count = [], complete[..., 0].size
+    if raised.any():
+        starts = ", ".join(f"{s / 100.0:g}" for s in np.unique(ps[np.argmax(complete[raised], -1)]))
+        told.append(f"{int(raised.sum())} of {count} columns start at {starts} hPa, their lowest "
+                    "level with complete data up to the top (missing below)")
+    if none:
+        told.append(f"{none} of {count} columns are missing at every level (missing data at the "
+                    f"top, {ps[-1] / 100.0:g} hPa)")
+    if told:
+        warnings.warn("kinematic omega: " + "; ".join(told) + "; see the variable omega_base",
+                      FlowpipeWarning, stacklevel=3)
 
 
 def _slab_integrals(u, v, zeta, delta, step, *, lines, areas):
@@ -664,7 +702,9 @@ def circulation(wind: xr.Dataset, contours: Sequence[Contour | MovingCircle], *,
     obrien : bool
         Apply the O'Brien correction so omega at the top level is ``top_omega``.
     surface_omega, top_omega : float
-        Omega (Pa s-1) at the lowest and (with ``obrien``) at the top level.
+        Omega (Pa s-1) at the base of each column (the lowest level with complete data
+        up to the top: :func:`kinematic_omega`; ``omega_base`` in the result) and (with
+        ``obrien``) at the top level.
 
     Returns
     -------
@@ -693,7 +733,13 @@ def circulation(wind: xr.Dataset, contours: Sequence[Contour | MovingCircle], *,
     timed = "time" in wind.dims
     moving = any(isinstance(c, MovingCircle) for c in contours)
     lines, areas, first = _matrices(grid, contours, wind.time.values if timed else None)
-    parts = decompose(wind, levels=None)
+    # the gridded vorticity and divergence only: on a regional grid both schemes take them
+    # from the wind alone (flowpipe.regional.partitions), and Lynch's direct partition,
+    # which the variational scheme also runs for its harmonic wind, skips that scheme's
+    # least-squares solver and its sparse LU of each mask (the command in 0.19 x the time
+    # and 0.16 x the memory, benchmarks/bench_circulation_regional.py); a global grid
+    # takes the spectral route
+    parts = decompose(wind, levels=None, scheme="dirichlet")
     parts = parts.sortby("latitude")
     step = xr.DataArray(np.arange(wind.sizes["time"]), dims="time") if moving else xr.DataArray(0)
     hz = ["latitude", "longitude"]
@@ -721,11 +767,13 @@ def circulation(wind: xr.Dataset, contours: Sequence[Contour | MovingCircle], *,
         pa = wind.level.values * 100.0
         ds["omega"] = xr.apply_ufunc(
             lambda d, **kw: kinematic_omega(divergence=d, **kw),
-            ds.mean_divergence.transpose(..., "contour", "level").chunk({"level": -1}),
+            ds.mean_divergence.transpose(..., "contour", "level").chunk(-1),  # one task: one warning
             input_core_dims=[["level"]], output_core_dims=[["level"]],
             kwargs={"pressure": pa, "surface": surface_omega,
                     "top": top_omega if obrien else None},
             dask="parallelized", output_dtypes=[float])
+        # the base of each column: its lowest level with omega (kinematic_omega)
+        ds["omega_base"] = ds.level.where(ds.omega.notnull()).max("level")
     # members lead every flowpipe output; then the instance dimension (CF 1.11 section 2.4)
     ds = ds.transpose(*[d for d in ("realization", "contour") if d in ds.dims], ...,
                       *[d for d in ("time", "level") if d in ds.dims])
@@ -756,6 +804,8 @@ _ATTRS = {
     "vorticity_disagreement": ("1", "relative disagreement of line and area mean vorticity"),
     "divergence_disagreement": ("1", "relative disagreement of line and area mean divergence"),
     "omega": ("Pa s-1", "kinematic vertical velocity in pressure coordinates of the column"),
+    "omega_base": ("hPa", "pressure of the lowest level of the omega column, where omega is "
+                   "surface_omega: the lowest level with complete data up to the top"),
 }
 
 
@@ -788,8 +838,12 @@ def _describe(ds: xr.Dataset, contours, grid, pressure, obrien, surface, top) ->
     if "omega" in ds:
         ds["omega"].attrs["standard_name"] = "lagrangian_tendency_of_air_pressure"
         ds["omega"].attrs["comment"] = (
-            f"integrated from the lowest level (omega = {surface} Pa s-1) upward"
+            f"integrated upward from the column's base (omega_base, where omega = {surface} "
+            "Pa s-1): the lowest level, or where the contour misses data at the lowest "
+            "levels the lowest level with complete data up to the top; missing below it"
             + (f"; O'Brien (1970) correction to {top} Pa s-1 at the top" if obrien else ""))
+        ds["omega"].attrs["ancillary_variables"] = "omega_base"
+        ds["omega_base"].attrs["comment"] = "missing where the contour misses data at the top level"
     ds["vorticity_disagreement"].attrs["comment"] = "quality figure of mean_vorticity"
     ds["divergence_disagreement"].attrs["comment"] = "quality figure of mean_divergence"
 

@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import subprocess
 import sys
+import warnings
 from pathlib import Path
 
 import numpy as np
@@ -112,6 +113,79 @@ def test_kinematic_omega_constant_divergence_and_obrien():
     got = C.kinematic_omega(p, d, top=0.0)
     np.testing.assert_allclose(got, corrected, atol=1e-12)
     assert got[-1] == pytest.approx(0.0, abs=1e-15)
+
+
+def _trapezoid_omega(p: np.ndarray, d: np.ndarray, surface: float, top: float | None):
+    """Omega of one complete column (levels from the bottom) by numpy.trapezoid of
+    d omega / dp = -div from its lowest level, then O'Brien's (1970) linear correction."""
+    om = np.array([surface - np.trapezoid(d[:k + 1], p[:k + 1]) for k in range(len(p))])
+    if top is not None:
+        om = om - (om[-1] - top) * (p - p[0]) / (p[-1] - p[0])
+    return om
+
+
+@pytest.mark.parametrize("top", [None, 0.0, 0.05])
+def test_kinematic_omega_starts_at_the_lowest_complete_level(top):
+    # O'Brien (1970), J. Appl. Meteor. 9, 197-203, the kinematic method: omega is given
+    # at the column's lower boundary, the divergence integrated upward from there to the
+    # top, its error spread linearly in pressure between the two. Where a contour's lowest
+    # levels are missing (below the ground) that boundary is the lowest level with complete
+    # data above it (*common practice*: the surface, or the lowest level above the ground);
+    # the levels below stay missing. Reference: numpy.trapezoid of each complete column.
+    p = np.array([100000.0, 92500.0, 85000.0, 70000.0, 50000.0, 30000.0])
+    rng = np.random.default_rng(7)
+    d = rng.normal(0.0, 1e-5, (5, len(p)))
+    d[1, 0] = np.nan  # lowest level missing (terrain)
+    d[2, :2] = np.nan  # two lowest levels missing
+    d[3, 1] = np.nan  # a gap above the lowest level: the column starts above the gap
+    d[4, -1] = np.nan  # the top missing: no column reaches the top
+    surface = -0.02
+    shuffle = np.array([3, 0, 5, 1, 4, 2])  # levels in any order
+    with pytest.warns(C.FlowpipeWarning, match=r"3 of 5 columns start at 850, 925 hPa.*1 of 5 "
+                      r"columns are missing at every level"):
+        got = C.kinematic_omega(p[shuffle], d[:, shuffle], surface=surface, top=top)
+    got = got[:, np.argsort(shuffle)]
+    for column, base in ((0, 0), (1, 1), (2, 2), (3, 2)):
+        expect = np.full(len(p), np.nan)
+        expect[base:] = _trapezoid_omega(p[base:], d[column, base:], surface, top)
+        np.testing.assert_allclose(got[column], expect, rtol=1e-12, atol=1e-15)
+        assert np.isfinite(got[column, base:]).all() and np.isnan(got[column, :base]).all()
+    assert np.isnan(got[4]).all()
+    # a complete column is what it is alone (and says nothing): its neighbours' missing
+    # levels change nothing
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")
+        alone = C.kinematic_omega(p[shuffle], d[:1, shuffle], surface=surface, top=top)
+    np.testing.assert_array_equal(alone[:, np.argsort(shuffle)][0], got[0])
+
+
+def test_masked_lowest_level_gives_omega_above_it_and_says_so(tmp_path):
+    # A box touching a missing point (a plateau, invented) at 1000 hPa only: its column
+    # starts at 925 hPa (O'Brien 1970, lower boundary condition at the column's base; see
+    # the kernel test above), equal to numpy.trapezoid of the written mean divergence from
+    # there; a box away from it keeps its whole column; omega_base says which.
+    levels = (1000.0, 925.0, 850.0, 700.0, 500.0, 300.0)
+    wind = _wind(2.0, lambda p, lam: 10 * np.cos(p) + 3 * np.sin(2 * lam) * np.cos(p) ** 2,
+                 lambda p, lam: 4 * np.cos(3 * lam) * np.cos(p), levels)
+    scale = xr.DataArray(np.linspace(1.0, -0.6, len(levels)), dims="level",
+                         coords={"level": list(levels)})
+    plateau = (wind.level == 1000.0) & (abs(wind.latitude - 46) < 3) & (abs(wind.longitude - 10) < 3)
+    wind = wind.assign(u=(wind.u * scale).where(~plateau), v=(wind.v * scale).where(~plateau))
+    with pytest.warns(C.FlowpipeWarning, match=r"kinematic omega: 1 of 2 columns start at 925 hPa"):
+        out = C.circulation(wind, [C.box(40, 50, 0, 10), C.box(20, 30, 40, 60)], obrien=True,
+                            surface_omega=0.0, top_omega=0.0).compute()
+    p = np.array(levels) * 100.0
+    div = out.mean_divergence.isel(time=0).values
+    om = out.omega.isel(time=0).values
+    assert np.isnan(div[0, 0]) and np.isfinite(div[0, 1:]).all() and np.isfinite(div[1]).all()
+    np.testing.assert_allclose(om[0, 1:], _trapezoid_omega(p[1:], div[0, 1:], 0.0, 0.0),
+                               rtol=1e-10, atol=1e-15)
+    assert np.isnan(om[0, 0])
+    np.testing.assert_allclose(om[1], _trapezoid_omega(p, div[1], 0.0, 0.0), rtol=1e-10,
+                               atol=1e-15)
+    assert out.omega_base.values.ravel().tolist() == [925.0, 1000.0]
+    assert out.omega.attrs["ancillary_variables"] == "omega_base"
+    assert out.omega_base.attrs["units"] == "hPa"
 
 
 def test_rankine_vortex_on_limited_area():
@@ -480,3 +554,19 @@ def test_sample_track_is_the_one_make_sample_data_writes(tmp_path, monkeypatch):
             found = calm.where(calm == calm.min(), drop=True)
             assert abs(float(found.latitude[0]) - lat) <= 0.25
             assert abs(float(found.longitude[0]) - lon) <= 0.25
+
+
+def test_circulation_shows_slabs_on_a_terminal_and_nothing_quiet(tmp_path):
+    # tqdm draws its bar with carriage returns and N/M counts (tqdm documentation, "Usage");
+    # the pseudo-terminal of the standard library's pty module is a terminal (isatty).
+    from test_progress import _on_terminal
+    from windfiles import small_global_file
+
+    wind = small_global_file(tmp_path, 3)
+    args = ["circulation", str(wind), "-o", str(tmp_path / "box.nc"), "--box", "30,60,-40,0"]
+    code, shown = _on_terminal(args)
+    assert code == 0
+    assert "circulation" in shown and "slab" in shown and "\r" in shown
+    assert "6/6" in shown  # 3 times x 2 levels, all integrated
+    code, shown = _on_terminal([*args, "--quiet"])
+    assert code == 0 and shown == ""

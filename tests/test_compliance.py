@@ -152,6 +152,11 @@ def below_ground(wind):
     return wind.assign(u=u, v=wind["v"].where(u.notnull()))
 
 
+def lowest_below_ground(wind):
+    """The plateau of :func:`below_ground` at the lowest level only."""
+    return below_ground(wind).where(wind.level == wind.level.max(), wind)
+
+
 @pytest.fixture(scope="module")
 def outputs(tmp_path_factory) -> dict[str, Path]:
     """One small file of each kind flowpipe writes: synthetic, then from the real stages."""
@@ -179,6 +184,9 @@ def outputs(tmp_path_factory) -> dict[str, Path]:
             contours.box(46, 56, -26, -4), contours.circle(50, -20, 300),
             contours.read_track(ROOT / "sample_data" / "demo_storm_track.csv", 500)],
             obrien=True), False),
+        # a box whose column misses its lowest level (omega from 500 hPa up, omega_base)
+        "circulation-masked": (fp.circulation(lowest_below_ground(wind.isel(time=slice(0, 1))), [
+            contours.box(30, 50, 70, 110), contours.box(-20, 10, 0, 40)], obrien=True), False),
         # boxes across the date line, circles near and round either pole, boxes and a
         # polygon round a pole: simple anticlockwise polygons in the planar coordinates the
         # checker's section 7.5 orientation test uses (shapely's is_ccw on lon, lat)
@@ -206,7 +214,7 @@ def reports(outputs) -> dict[str, dict]:
 KINDS = ("global-decomposition", "regional-decomposition", "kinematics-float32",
          "trajectories-3d", "trajectories-2d", "decompose-spectral", "decompose-regional",
          "decompose-masked", "kinematics", "advect", "ftle", "decompose-quantized-zstd",
-         "decompose-wind-products", "circulation", "circulation-global")
+         "decompose-wind-products", "circulation", "circulation-masked", "circulation-global")
 
 
 @pytest.mark.parametrize("kind", KINDS)

@@ -3,16 +3,24 @@
 from __future__ import annotations
 
 import argparse
+import math
+from typing import TYPE_CHECKING
 
 from ..errors import UsageError
 from ._common import (
     add_forecast_options,
     add_output_options,
+    add_quiet_option,
     data_file,
     forecast_options,
     output_options,
 )
 from .decompose import _levels
+
+if TYPE_CHECKING:  # the command's libraries are imported when it runs: --help stays quick
+    import xarray as xr
+
+    from ..progress import TaskBar
 
 
 def _numbers(count: int, what: str):
@@ -53,14 +61,28 @@ def register(sub: argparse._SubParsersAction, common: argparse.ArgumentParser) -
     parser.add_argument("--obrien", action="store_true",
                         help="O'Brien (1970) correction: omega brought to --top-omega at the top")
     parser.add_argument("--surface-omega", type=float, default=0.0, metavar="PA_S",
-                        help="omega at the lowest level (default 0)")
+                        help="omega at the base of each column: the lowest level, or the "
+                        "lowest with complete data above missing ones (default 0)")
     parser.add_argument("--top-omega", type=float, default=0.0, metavar="PA_S",
                         help="omega at the top level with --obrien (default 0)")
     parser.add_argument("--u", metavar="NAME", help="name of the eastward wind variable")
     parser.add_argument("--v", metavar="NAME", help="name of the northward wind variable")
     add_output_options(parser)
     add_forecast_options(parser)
+    add_quiet_option(parser)
     return parser
+
+
+def write_progress(result: xr.Dataset, quiet: bool) -> TaskBar:
+    """Slabs of the wind integrated (one time and level: its line and area integrals, after
+    its gridded vorticity and divergence), rate and time left; the notes of the regional
+    solvers after them."""
+    from ..progress import TaskBar, bar, key_name
+
+    slabs = math.prod(n for d, n in result["circulation"].sizes.items() if d != "contour")
+    return TaskBar(bar(slabs, "slab", quiet, desc="circulation"),
+                   lambda key: key_name(key).lstrip("_").startswith("slab_integrals-"),
+                   notes=True)
 
 
 def run(args: argparse.Namespace) -> int:
@@ -77,7 +99,8 @@ def run(args: argparse.Namespace) -> int:
     wind = open_wind(args.files, u=args.u, v=args.v, **forecast_options(args))
     result = circulation(wind, contours, levels=args.levels, obrien=args.obrien,
                          surface_omega=args.surface_omega, top_omega=args.top_omega)
-    path = write(result, args.output, **options)
+    with write_progress(result, args.quiet):
+        path = write(result, args.output, **options)
     count = len(contours)
     print(f"wrote {path}: {count} contour{'' if count == 1 else 's'}")
     return 0
