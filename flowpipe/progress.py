@@ -13,6 +13,7 @@ from __future__ import annotations
 
 import sys
 import time
+import warnings
 from collections.abc import Callable, Hashable
 from contextlib import ExitStack
 
@@ -59,6 +60,10 @@ class TaskBar(Callback):
         Show the notes of the computation (:func:`flowpipe.notes.note`) after the counts,
         at most one every :data:`NOTE_INTERVAL` seconds; a note is cleared when the bar
         advances. Never on a disabled bar.
+
+    Warnings shown while the bar is drawn clear it first and have it redrawn below them
+    (:meth:`tqdm.tqdm.external_write_mode`), so that a warning is a line of its own, not
+    written over the end of the bar.
     """
 
     def __init__(self, progress: tqdm, counts: Callable[[Hashable], bool] | None = None,
@@ -74,6 +79,15 @@ class TaskBar(Callback):
         super().__enter__()
         if self._notes:
             self._stack.enter_context(listening(self._note))
+        if not self.progress.disable:
+            shown = warnings.showwarning
+
+            def around_bar(*args, **kwargs) -> None:
+                with tqdm.external_write_mode(file=self.progress.fp):
+                    shown(*args, **kwargs)
+
+            warnings.showwarning = around_bar
+            self._stack.callback(setattr, warnings, "showwarning", shown)
         return self
 
     def _note(self, text: str) -> None:

@@ -149,3 +149,33 @@ def test_a_bar_shows_the_iterations_of_a_slab(monkeypatch):
     with progress.TaskBar(tqdm(total=1, file=quiet, disable=True), notes=True):
         solver.solve(wind)
     assert quiet.getvalue() == ""
+
+
+
+def test_a_warning_clears_the_bar_and_has_a_line_of_its_own(monkeypatch):
+    """A warning shown while a bar is drawn: the bar's line is blanked and the cursor back at
+    its start (carriage return, spaces, carriage return: tqdm's own clearing, tqdm
+    documentation "Writing messages") before the warning, and the bar is drawn again after
+    it; once the bar is closed, warnings are shown as before."""
+    import warnings
+
+    from flowpipe import progress
+
+    shown = io.StringIO()
+
+    def show(message, *args, **kwargs):  # as the command shows them (flowpipe.cli)
+        print(f"warning: {message}", file=shown)
+
+    monkeypatch.setattr(warnings, "showwarning", show)
+    before = warnings.showwarning
+    with warnings.catch_warnings():
+        warnings.simplefilter("always")
+        with progress.TaskBar(tqdm(total=2, file=shown, disable=False, unit="slab")) as task:
+            task.progress.update(1)
+            warnings.warn("a level below the ground", UserWarning, stacklevel=1)
+            task.progress.update(1)
+    ahead, behind = shown.getvalue().split("a level below the ground", 1)
+    line = ahead.rsplit("\n", 1)[-1].split("\r")  # the warning's line, by carriage returns
+    assert "slab" not in line[-1] and line[-2].strip() == "" and "slab" in line[-3], line
+    assert "2/2" in behind.split("\n", 1)[1], behind  # the bar, drawn again below it
+    assert warnings.showwarning is before
