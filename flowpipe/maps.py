@@ -468,7 +468,8 @@ def _map_axes(fig: Figure, proj: ccrs.Projection, extent: list[float] | None,
                       crs=ccrs.PlateCarree(central_longitude=centre))
     _coastlines(ax)
     grid = ax.gridlines(draw_labels=True, linewidth=0.4, color="0.5", alpha=0.7, linestyle=":")
-    grid.top_labels = grid.right_labels = False
+    if not isinstance(proj, ccrs.Stereographic):  # a round cap: meridians named all round
+        grid.top_labels = grid.right_labels = False
     grid.xlabel_style = grid.ylabel_style = {"size": 7}
     return ax
 

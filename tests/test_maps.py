@@ -347,6 +347,24 @@ def test_projection_overrides(files):
     assert _map_axes(fig).projection == mine
 
 
+@pytest.mark.parametrize("projection,pole", [("south-cap", "S"), ("north-cap", "N")])
+def test_a_polar_cap_names_its_meridians_all_round(files, projection, pole):
+    # On a round polar map the meridians meet the edge all round: each is named where it
+    # does, the parallels along one meridian inside (polar stereographic maps, common
+    # practice); the labels cartopy's gridliner drew, read back after drawing.
+    import io
+
+    from cartopy.mpl.gridliner import Gridliner
+
+    fig = maps.render(files["global"], projection=projection, size=SIZE)
+    fig.savefig(io.BytesIO(), format="png")  # (the gridliner makes its labels when drawn)
+    (grid,) = [a for a in _map_axes(fig).artists if isinstance(a, Gridliner)]
+    meridians = {a.get_text() for a in grid.xlabel_artists if a.get_visible()}
+    assert meridians == {"0°", "60°E", "120°E", "180°", "120°W", "60°W"}
+    parallels = {a.get_text() for a in grid.ylabel_artists if a.get_visible()}
+    assert parallels and all(text.endswith(f"°{pole}") for text in parallels), parallels
+
+
 def test_in_memory_dataset_maps():
     # The canonical wind (flowpipe.open_wind) straight from memory, as the Python API allows.
     wind = fp.open_wind(GLOBAL)
