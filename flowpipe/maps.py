@@ -479,6 +479,22 @@ def _colour_bar(fig: Figure, ax, mappable):
     return fig.colorbar(mappable, cax=ax.inset_axes(COLOUR_BAR_BOX))
 
 
+def _label_bar(bar, text: str, units: str, largest: float, after: str = "", **style) -> None:
+    """Label a colour bar with its quantity and UDUNITS units, then ``after``; a scale
+    whose ``largest`` magnitude lies beyond 1e-3 to 1e4 puts its power of ten in the units
+    ("(10^-5 s-1)", common practice), not as a loose "1e-5" above the bar that reads like
+    a tick. ``style`` goes to the label's text."""
+    power = int(np.floor(np.log10(largest))) if largest > 0 and np.isfinite(largest) else 0
+    if power < -3 or power >= 4:
+        bar.formatter.set_powerlimits((power, power))
+        bar.ax.yaxis.offsetText.set_visible(False)
+        units = f"10$^{{{power}}}$ {_units_text(units)}".strip()
+    else:
+        units = _units_text(units)
+    bar.set_label(text + (f" ({units})" if units else "") + after, **style)
+    bar.update_ticks()
+
+
 @functools.cache
 def _shorelines(directory: str) -> cfeature.ShapelyFeature:
     """GSHHS coarse shorelines as lines, read once from ``directory``.
@@ -679,17 +695,7 @@ def _field_map(fig: Figure, ds: xr.Dataset, label: str, field: str | None, level
     bar = _colour_bar(fig, ax, contours)
     described = da.attrs.get("long_name") or str(da.attrs.get("standard_name", "")).replace("_", " ")
     long_name = str(described or field)
-    power = int(np.floor(np.log10(max(abs(levels[0]), abs(levels[-1])))))
-    if power < -3 or power >= 4:
-        # the multiplier goes into the label ("(10^-5 s-1)", common practice), not a
-        # loose "1e-5" above the bar that reads like a tick
-        bar.formatter.set_powerlimits((power, power))
-        bar.ax.yaxis.offsetText.set_visible(False)
-        units = f"10$^{{{power}}}$ {_units_text(units)}".strip()
-    else:
-        units = _units_text(units)
-    bar.set_label(long_name + (f" ({units})" if units else ""))
-    bar.update_ticks()
+    _label_bar(bar, long_name, units, max(abs(levels[0]), abs(levels[-1])))
 
     title = long_name[:1].upper() + long_name[1:] if described else field
     direction, hours = da.attrs.get("integration_direction"), da.attrs.get("integration_hours")

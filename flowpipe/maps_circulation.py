@@ -32,6 +32,7 @@ from .maps import (
     _colour_bar,
     _contour_levels,
     _domain_projection,
+    _label_bar,
     _map_axes,
     _members,
     _select,
@@ -99,11 +100,9 @@ def circulation_figure(fig: Figure, ds: xr.Dataset, label: str, field: str | Non
     if "centre_latitude" in ds:
         _tracks(ax, ds, proj)
     bar = _colour_bar(fig, ax, ScalarMappable(norm=norm, cmap=_cmap()))
-    units = str(da.attrs.get("units", ""))
     described = str(da.attrs.get("long_name") or field)
-    bar.set_label(described + (f" ({_units_text(units)})" if units else ""), fontsize=8)
-    bar.formatter.set_powerlimits((-3, 4))
-    bar.update_ticks()
+    _label_bar(bar, described, str(da.attrs.get("units", "")),
+               float(np.abs(norm.boundaries[[0, -1]]).max()), fontsize=8)
     ax.set_title(f"{described[:1].upper() + described[1:]}\n{' | '.join(words)}", loc="left",
                  fontsize=10)
     if {"time", "level"} <= set(ds.dims) and FILLED in ds:
@@ -209,11 +208,9 @@ def _sections(fig: Figure, ds: xr.Dataset) -> None:
             ax.tick_params(labelbottom=False)
     bar = fig.colorbar(mappable, cax=fig.add_axes((left + width + 0.015, bottom, 0.012,
                                                    top - bottom)))
-    bar.set_label(f"mean divergence ({_units_text('s-1')}); contours: omega "
-                  f"({_units_text('Pa s-1')}), dashed < 0", fontsize=7)
     bar.ax.tick_params(labelsize=6)
-    bar.formatter.set_powerlimits((-3, 4))
-    bar.update_ticks()
+    _label_bar(bar, "mean divergence", "s-1", float(np.abs(norm.boundaries[[0, -1]]).max()),
+               after=f"; contours: omega ({_units_text('Pa s-1')}), dashed < 0", fontsize=7)
     if ds.sizes["contour"] > count:
         fig.text(left, 0.02, f"sections of the first {count} of {ds.sizes['contour']} contours",
                  fontsize=7)

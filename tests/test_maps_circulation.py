@@ -83,6 +83,30 @@ def test_contours_coloured_by_their_value(files, key, options):
         fig).get_title(loc="left")
 
 
+def test_colour_bars_put_their_power_of_ten_in_the_label(files):
+    # vorticity and divergence of a few 1e-5 s-1: the power of ten is written in the units
+    # of the label, "(10^-5 s-1)", and the ticks are the values over it (common practice),
+    # with no loose "1e-5" offset above the bar; tick texts read back after drawing
+    import io
+    import re
+
+    fig = maps.render(files["storm"], size=SIZE)
+    fig.savefig(io.BytesIO(), format="png")
+    (map_bar,) = _map_axes(fig).child_axes
+    (section_bar,) = [ax for ax in fig.axes if "mean divergence" in ax.get_ylabel()]
+    for bar in (map_bar, section_bar):
+        label = bar.get_ylabel()
+        power = int(re.search(r"10\$\^\{(-?\d+)\}\$", label).group(1))
+        assert power < -3, label
+        offset = bar.yaxis.get_offset_text()
+        assert not (offset.get_visible() and offset.get_text()), offset.get_text()
+        ticks = [(t.get_loc(), t.label1.get_text().replace("\u2212", "-"))
+                 for t in bar.yaxis.get_major_ticks() if t.label1.get_text()]
+        assert len(ticks) >= 3
+        for location, text in ticks:
+            assert float(text) * 10.0**power == pytest.approx(location, abs=1e-3 * 10.0**power)
+
+
 def test_moving_circle_drawn_where_it_is_at_that_time(files):
     geod = pyproj.Geod(a=EARTH_RADIUS, b=EARTH_RADIUS)
     for time in ("2026-01-12T00:00", "2026-01-12T18:00"):
