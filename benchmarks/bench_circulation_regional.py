@@ -24,8 +24,7 @@ from pathlib import Path
 
 import numpy as np
 import xarray as xr
-
-ROOT = Path(__file__).resolve().parents[1]
+from _revisions import ROOT, flowpipe_at
 
 CHILD = """
 import resource, sys, time
@@ -92,11 +91,7 @@ def main() -> None:
     parser.add_argument("--rounds", type=int, default=3)
     args = parser.parse_args()
     with tempfile.TemporaryDirectory() as tmp:
-        base = Path(tmp) / "base"
-        base.mkdir()
-        archive = subprocess.run(["git", "-C", str(ROOT), "archive", args.base, "flowpipe"],
-                                 check=True, capture_output=True).stdout
-        subprocess.run(["tar", "-x", "-C", str(base)], input=archive, check=True)
+        base = flowpipe_at(args.base, Path(tmp))
         source = Path(tmp) / "lam.nc"
         limited_area_file(source)
         sides = {"base": base, "tree": ROOT}

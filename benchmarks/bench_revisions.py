@@ -37,7 +37,8 @@ import tempfile
 import time
 from pathlib import Path
 
-ROOT = Path(__file__).resolve().parents[1]
+from _revisions import ROOT, flowpipe_at
+
 PARCELS = 100_000
 HOURS = 3.0
 STEP_MINUTES = 7.5
@@ -126,11 +127,7 @@ def main() -> None:
         print(json.dumps(worker(args.worker)))
         return
     with tempfile.TemporaryDirectory() as tmp:
-        base = Path(tmp) / "base"
-        base.mkdir()
-        archive = subprocess.run(["git", "-C", str(ROOT), "archive", args.base, "flowpipe"],
-                                 check=True, capture_output=True).stdout
-        subprocess.run(["tar", "-x", "-C", str(base)], input=archive, check=True)
+        base = flowpipe_at(args.base, Path(tmp))
         sides = {"base": base, "tree": ROOT}
         caches = {side: Path(tmp) / f"cache-{side}" for side in sides}
         times: dict[str, dict[str, list[float]]] = {s: {} for s in sides}
