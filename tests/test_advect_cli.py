@@ -108,6 +108,7 @@ def test_bad_input_exits_2_and_writes_nothing(tmp_path, capsys, files, options, 
     if "--hours" not in options:
         options += ["--hours", "12"]
     out = tmp_path / "out" / "tracks.nc"
+    out.parent.mkdir()
     code = main(["advect", *files, "-o", str(out), *options])
     err = capsys.readouterr().err
     assert code == 2

@@ -63,6 +63,25 @@ def test_bad_arguments_are_refused_before_any_work(tmp_path, capsys, make_args, 
     assert not list(tmp_path.iterdir())
 
 
+@pytest.mark.parametrize("command, options", [
+    ("decompose", []), ("advect", ["--start", "50,0", "--hours", "6"]),
+    ("ftle", ["--hours", "6"]), ("circulation", ["--box", "40,50,0,10"]),
+    ("map", ["--field", "u"]),
+])
+def test_an_output_in_a_missing_directory_is_refused_and_not_created(tmp_path, capsys, command,
+                                                                      options):
+    # README.md ("How outputs are stored"): a single command writes into a directory that
+    # exists; a mistyped one is named, not silently created (common practice: cp, tar and
+    # the shell's redirection refuse a missing directory too).
+    typo = tmp_path / "outptu"
+    suffix = ".png" if command == "map" else ".nc"
+    with pytest.raises(SystemExit) as stop:
+        main([command, GLOBAL, "-o", str(typo / f"result{suffix}"), *options])
+    assert stop.value.code == 2
+    _one_error_line(capsys, f"the directory {str(typo)!r} does not exist; create it first")
+    assert not typo.exists()
+
+
 def test_a_southern_or_western_coordinate_first_is_taken_as_the_value(tmp_path):
     # argparse reads "-30,100,500" as an option, not as a value (Python documentation,
     # argparse, "Arguments containing -"); a contour or start in the southern or western

@@ -10,10 +10,18 @@ from ..choices import is_zarr_path, output_suffix_refusal
 
 
 def output_file(text: str) -> str:
-    """An ``-o`` argument: a file name, not a directory (checked before any work; missing
-    parent directories are created when the file is written). An existing Zarr store
-    under a ``.zarr`` name is replaced when the new one is complete, as a file is."""
+    """An ``-o`` argument: a file name, not a directory, in a directory that exists
+    (checked before any work: a mistyped directory is refused, not created; ``flowpipe
+    run`` creates the tree it owns). An existing Zarr store under a ``.zarr`` name is
+    replaced when the new one is complete, as a file is."""
     path = Path(text)
+    parent = path.parent
+    if parent.exists() and not parent.is_dir():
+        raise argparse.ArgumentTypeError(f"{text!r}: {str(parent)!r} is not a directory; "
+                                         "give a name in a directory")
+    if not parent.exists():
+        raise argparse.ArgumentTypeError(f"{text!r}: the directory {str(parent)!r} does not "
+                                         "exist; create it first, or correct the name")
     if path.is_dir():
         if is_zarr_path(path):
             from ..ingest import is_zarr_store
