@@ -82,6 +82,29 @@ def test_an_output_in_a_missing_directory_is_refused_and_not_created(tmp_path, c
     assert not typo.exists()
 
 
+@pytest.mark.parametrize("command, typo, meant", [
+    (["decompose", GLOBAL, "-o", "OUT"], ["--compresion", "zstd"], "--compression"),
+    (["map", GLOBAL, "-o", "OUT"], ["--feild=u"], "--field"),
+    (["advect", GLOBAL, "-o", "OUT", "--start", "50,0", "--hours", "6"], ["--xyz"], None),
+])
+def test_an_unknown_option_is_refused_by_its_command_with_the_closest(tmp_path, capsys, command,
+                                                                      typo, meant):
+    # The command's own parser refuses it and points at its own help; the suggestion is the
+    # closest of that command's options by difflib.get_close_matches (Python documentation,
+    # difflib; "did you mean" as git and many command lines say it: common practice).
+    args = [str(tmp_path / "out.nc") if a == "OUT" else a for a in command]
+    with pytest.raises(SystemExit) as stop:
+        main([*args, *typo])
+    assert stop.value.code == 2
+    (line,) = capsys.readouterr().err.strip().splitlines()
+    assert line.startswith(f"flowpipe: error: unrecognized arguments: {' '.join(typo)}")
+    assert line.endswith(f"(see 'flowpipe {command[0]} --help')")
+    assert ("did you mean" in line) == (meant is not None)
+    if meant is not None:
+        assert f"; did you mean {meant}?" in line
+    assert not list(tmp_path.iterdir())
+
+
 def test_a_southern_or_western_coordinate_first_is_taken_as_the_value(tmp_path):
     # argparse reads "-30,100,500" as an option, not as a value (Python documentation,
     # argparse, "Arguments containing -"); a contour or start in the southern or western
