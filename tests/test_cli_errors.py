@@ -199,3 +199,34 @@ def test_a_terminated_command_leaves_no_temporary_file(tmp_path):
     assert process.returncode == 128 + signal.SIGTERM, err
     assert "flowpipe: terminated" in err
     assert not list(out.iterdir())
+
+
+def _gappy_global(tmp_path: Path) -> str:
+    """The global sample, two times, with a gap on its first (850 hPa) level only."""
+    path = tmp_path / "gappy.nc"
+    with xr.open_dataset(GLOBAL) as ds:
+        ds = ds.isel(time=slice(0, 2)).load()
+    for name in ("u", "v"):
+        ds[name][:, 0, 30:40, 20:40] = np.nan
+    ds.to_netcdf(path)
+    return str(path)
+
+
+@pytest.mark.parametrize("make_args, hint", [
+    (lambda t: ["decompose", GLOBAL, "-o", str(t / "o.nc"), "--levels", "700"],
+     "choose among these with --levels (config: [decompose] levels)"),
+    (lambda t: ["decompose", _gappy_global(t), "-o", str(t / "o.nc"), "--kinematics"],
+     "choose the levels that have no missing points with --levels (config: [decompose] levels)"),
+    (lambda t: ["circulation", GLOBAL, "-o", str(t / "o.nc"), "--box", "40,50,0,10",
+                "--levels", "700"],
+     "choose among these with --levels (config: [circulation] levels)"),
+    (lambda t: ["ftle", GLOBAL, "-o", str(t / "o.nc"), "--hours", "6", "--level", "700"],
+     "choose among these with --level (config: [ftle] levels)"),
+])
+def test_a_hint_to_choose_levels_names_the_config_key_too(tmp_path, capsys, make_args, hint):
+    # README.md ("Exit codes"): the one line says what to do; the same choice in a batch run
+    # is the table's levels key (configs/README.md, [decompose], [circulation], [ftle]).
+    args = make_args(tmp_path)
+    assert main(args) == 2
+    _one_error_line(capsys, hint)
+    assert not (tmp_path / "o.nc").exists()
