@@ -230,3 +230,20 @@ def test_a_hint_to_choose_levels_names_the_config_key_too(tmp_path, capsys, make
     assert main(args) == 2
     _one_error_line(capsys, hint)
     assert not (tmp_path / "o.nc").exists()
+
+
+def test_kinematics_take_complete_global_levels_only(tmp_path, capsys):
+    # README.md (Commands, decompose): --kinematics is refused on a limited area before any
+    # work, and on a global level with missing points, nothing written; the complete levels
+    # of the same file are taken (spherical-harmonic analysis needs every quadrature node:
+    # Swarztrauber 1981, SIAM J. Numer. Anal. 18, 191-210).
+    out = tmp_path / "o.nc"
+    assert main(["decompose", REGIONAL, "-o", str(out), "--kinematics"]) == 2
+    _one_error_line(capsys, "--kinematics needs the spectral method")
+    gappy = _gappy_global(tmp_path)
+    assert main(["decompose", gappy, "-o", str(out), "--kinematics"]) == 2
+    _one_error_line(capsys, "u/v have 200 missing points in a latitude-longitude slab")  # 10 x 20
+    assert not out.exists()
+    assert main(["decompose", gappy, "-o", str(out), "--kinematics", "--levels", "500,250"]) == 0
+    with xr.open_dataset(out) as ds:
+        assert ds.sizes["level"] == 2 and "absolute_vorticity" in ds
