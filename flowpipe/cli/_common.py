@@ -98,14 +98,21 @@ def attribute(text: str) -> tuple[str, str]:
     return key.strip(), value
 
 
-def add_input_options(parser: argparse.ArgumentParser) -> None:
-    """Options of the plausibility check and the time series, shared by the commands
-    that read winds (see :func:`flowpipe.ingest.open_wind`)."""
-    from ..choices import DEFAULT_MAX_SPEED, IMPLAUSIBLE_CHOICES
+def add_max_speed_option(parser: argparse.ArgumentParser) -> None:
+    """``--max-speed M_S``: the limit of plausible wind speeds."""
+    from ..choices import DEFAULT_MAX_SPEED
 
     parser.add_argument("--max-speed", type=float, default=DEFAULT_MAX_SPEED, metavar="M_S",
                         help="largest plausible wind speed in m s-1 (default: "
                         f"{DEFAULT_MAX_SPEED:g}, above the largest speeds ever analysed)")
+
+
+def add_input_options(parser: argparse.ArgumentParser) -> None:
+    """Options of the plausibility check and the time series, shared by the commands
+    that read winds (see :func:`flowpipe.ingest.open_wind`)."""
+    from ..choices import IMPLAUSIBLE_CHOICES
+
+    add_max_speed_option(parser)
     parser.add_argument("--implausible", choices=IMPLAUSIBLE_CHOICES, default="refuse",
                         help="winds that are not finite or faster than --max-speed: refuse "
                         "the input (default) or treat them as missing")
