@@ -1304,6 +1304,31 @@ def _plausible(ds: xr.Dataset, max_speed: float, implausible: str) -> xr.Dataset
     return out
 
 
+def file_names(ds: xr.Dataset) -> dict[str, str]:
+    """The name each variable had in the input file, where flowpipe named it otherwise
+    (``u`` read from ``U``, say: the attribute ``source_name``)."""
+    return {str(n): str(ds[n].attrs["source_name"]) for n in ds.data_vars
+            if str(ds[n].attrs.get("source_name", n)) != str(n)}
+
+
+def variable_named(ds: xr.Dataset, name: str, among: Iterable[str]) -> str | None:
+    """The variable of ``among`` that ``name`` names, by flowpipe's name or by the file's
+    (:func:`file_names`); None when none."""
+    among = [str(n) for n in among]
+    if name in among:
+        return name
+    return next((n for n, given in file_names(ds).items() if given == name and n in among),
+                None)
+
+
+def names_text(ds: xr.Dataset, names: Iterable[str]) -> str:
+    """Variable names to choose from, each with the file's where it differs:
+    ``u (file: U), v (file: V), ta``."""
+    aliases = file_names(ds)
+    return ", ".join(f"{n} (file: {aliases[n]})" if n in aliases else str(n) for n in names) \
+        or "none"
+
+
 def input_notes(wind: xr.Dataset) -> dict:
     """Attributes of the wind that an output should carry (the plausibility check's count,
     lazy until written)."""

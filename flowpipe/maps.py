@@ -58,10 +58,12 @@ from .ingest import (
     is_grib,
     is_zarr_store,
     lead_hours,
+    names_text,
     open_store,
     open_wind,
     parse_iso,
     run_text,
+    variable_named,
 )
 from .store import atomic_path
 
@@ -170,6 +172,8 @@ def render(
         The variable to map (default: streamfunction, velocity potential,
         vorticity or divergence, whichever comes first, else the first
         mappable variable). For tracks, a sampled variable to colour them by.
+        By flowpipe's name or, where flowpipe renamed a variable on reading, by
+        the name the input file gave it (``u10`` of a GRIB file's ``u``).
     level : float, optional
         Value of the vertical coordinate, in the file's units (default: the first).
     time : str, optional
@@ -604,9 +608,11 @@ def _field_map(fig: Figure, ds: xr.Dataset, label: str, field: str | None, level
                          f"{', '.join(map(str, ds.data_vars)) or 'none'}")
     if field is None:
         field = next((f for f in DEFAULT_FIELDS if f in mappable), mappable[0])
-    if field not in mappable:
+    named = variable_named(ds, field, mappable)
+    if named is None:
         raise InputError(f"{label}: no mappable field {field!r}; fields in the file: "
-                         f"{', '.join(mappable)}")
+                         f"{names_text(ds, mappable)}")
+    field = named
     da = ds[field]
     lat_name, lon_name = _horizontal(ds, da)
     indexers, words = _select(ds, da, label, level, when)
@@ -853,10 +859,11 @@ def _track_map(fig: Figure, ds: xr.Dataset, label: str, field: str | None,
         raise InputError(f"{label}: the trajectories have no valid position")
     if field is not None:
         candidates = [str(n) for n in ds.data_vars if ds[n].dims == found["latitude"].dims]
-        if field not in candidates:
+        named = variable_named(ds, field, candidates)
+        if named is None:
             raise InputError(f"{label}: no variable {field!r} along the trajectories; "
-                             f"variables along them: {', '.join(candidates) or 'none'}")
-        colour, colour_label = ds[field], field
+                             f"variables along them: {names_text(ds, candidates)}")
+        colour, colour_label = ds[named], named
     elif "vertical" in found:
         colour, colour_label = found["vertical"], str(found["vertical"].attrs.get(
             "standard_name", found["vertical"].name)).replace("_", " ")
