@@ -727,7 +727,7 @@ def circulation(wind: xr.Dataset, contours: Sequence[Contour | MovingCircle], *,
 
     if not contours:
         raise UsageError("give at least one contour (--box, --circle, --polygon or --follow)")
-    wind = select_levels(wind, levels)
+    wind = select_levels(wind, levels, table="circulation")
     wind = wind.sortby("latitude")
     grid = _Grid(wind.latitude.values, wind.longitude.values)
     timed = "time" in wind.dims

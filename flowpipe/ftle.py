@@ -311,10 +311,12 @@ def ftle(
         for lv in chosen:
             if not np.any(np.abs(available - lv) < 1e-6):
                 raise InputError(f"{_name(wind)}: level {lv:g} is not among the input's levels "
-                                 f"({', '.join(f'{x:g}' for x in available)})")
+                                 f"({', '.join(f'{x:g}' for x in available)}); choose among "
+                                 "these with --level (config: [ftle] levels)")
     else:
         if levels:
-            raise InputError(f"{_name(wind)}: the input has no levels; leave out --level")
+            raise InputError(f"{_name(wind)}: the input has no levels; leave out --level "
+                             "(config: [ftle] levels)")
         chosen = np.zeros(1)
     total = hours * 3600.0
     if start is None:

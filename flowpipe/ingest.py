@@ -102,7 +102,7 @@ def open_wind(
     chunks: Mapping[str, int] | None = None,
     *,
     max_speed: float = DEFAULT_MAX_SPEED,
-    implausible: str = "refuse",
+    implausible: str | None = "refuse",
     allow_gaps: bool = False,
     run: str | None = None,
     leads: Iterable[float] | None = None,
@@ -123,14 +123,15 @@ def open_wind(
         latitude-longitude slab per chunk.
     max_speed : float
         Largest plausible wind speed in m s-1 (:data:`DEFAULT_MAX_SPEED`).
-    implausible : {"refuse", "missing"}
+    implausible : {"refuse", "missing"} or None
         What to do with wind values that are not finite (inf) or whose speed
         exceeds ``max_speed``: refuse the input (an :class:`InputError` naming
         the variable, the count and the first location, raised when the slab
         is computed), or treat them as missing (a warning per slab, and the
         lazily computed count in the attribute ``implausible_values``).
         The check runs inside each slab's dask task: building a result
-        computes nothing.
+        computes nothing. None: no check, the values as the file has them
+        (what :func:`implausible_values` describes).
     allow_gaps : bool
         Accept a time series whose spacing has gaps (refused by default; not
         checked when ``leads`` are chosen).
@@ -176,7 +177,8 @@ def open_wind(
     ds = ds.chunk({d: c for d, c in wanted.items() if d in ds.dims})
     ds = ds.assign_coords({n: ds[n].compute() for n in FORECAST_COORDINATES if n in ds.coords})
     ds.attrs["input_files"] = "\n".join(str(p) for p in files)
-    ds = _plausible(ds, max_speed, implausible)
+    if implausible is not None:
+        ds = _plausible(ds, max_speed, implausible)
     return ds
 
 
@@ -1160,8 +1162,17 @@ def missing_counts(ds: xr.Dataset, names: Iterable[str] = ("u", "v")) -> dict[st
     return result
 
 
+def _coordinate_values(ds: xr.Dataset, dims: Iterable) -> list[tuple[str, np.ndarray]]:
+    """Each dimension's coordinate values (its indices where it has no coordinate)."""
+    return [(str(d), ds[d].values if d in ds.coords else np.arange(ds.sizes[d])) for d in dims]
+
+
 def _first_location(bad: np.ndarray, coords: list[tuple[str, np.ndarray]]) -> str:
-    index = np.unravel_index(int(np.argmax(bad)), bad.shape)
+    return _point_text(np.unravel_index(int(np.argmax(bad)), bad.shape), coords)
+
+
+def _point_text(index: tuple[int, ...], coords: list[tuple[str, np.ndarray]]) -> str:
+    """``time 2026-01-12T00:00:00, level 500, latitude -70, longitude 40``."""
     parts = []
     for (dim, values), i in zip(coords, index, strict=True):
         value = values[i]
@@ -1181,8 +1192,7 @@ def _implausible_mask(u: np.ndarray, v: np.ndarray, *, max_speed: float, refuse:
     """True where a slab's wind is not finite or faster than ``max_speed`` (NaN is missing,
     not implausible); raises :class:`InputError` there when ``refuse``."""
     with np.errstate(over="ignore", invalid="ignore"):
-        speed = np.hypot(u, v)
-        bad = np.isinf(u) | np.isinf(v) | (speed > max_speed)
+        bad = implausible_points(u, v, max_speed)
     if bad.any():
         local = [(dim, values[o:o + n]) for (dim, values), o, n
                  in zip(coords, offsets, bad.shape, strict=True)]
@@ -1199,6 +1209,64 @@ def _implausible_mask(u: np.ndarray, v: np.ndarray, *, max_speed: float, refuse:
     return bad
 
 
+def implausible_points(u, v, max_speed: float):
+    """True where the wind is not finite (inf) or faster than ``max_speed`` m s-1; NaN is
+    missing, not implausible. NumPy or dask arrays (lazy for dask)."""
+    return np.isinf(u) | np.isinf(v) | (np.hypot(u, v) > max_speed)
+
+
+def _check_max_speed(max_speed: float) -> None:
+    if not (np.isfinite(max_speed) and max_speed > 0):
+        raise UsageError(f"the maximum speed must be a number above 0 m s-1, not {max_speed!r}")
+
+
+#: Values of u or v shown per variable when describing implausible winds.
+SHOWN_VALUES = 3
+
+
+def implausible_values(wind: xr.Dataset, max_speed: float = DEFAULT_MAX_SPEED) -> dict | None:
+    """Describe the implausible winds of a wind opened with ``implausible=None`` (computes).
+
+    Returns
+    -------
+    dict or None
+        None when every wind is plausible; else ``max_speed`` (m s-1), ``points`` (how
+        many points are not finite or faster), ``first`` (the first of them, in words),
+        ``values``: for each wind variable by its name in the file, its most common
+        implausible values in the file's units with their counts, and ``marker``: the
+        value that repeats most among them (None when none repeats). An out-of-range
+        value that repeats exactly is what an undeclared missing-value marker
+        (``_FillValue`` or ``missing_value``, CF 1.11 section 2.5.1) looks like; genuine
+        winds do not repeat a value far beyond the limit (*common practice*).
+    """
+    import dask
+    import dask.array as dsa
+
+    _check_max_speed(max_speed)
+    u, v = wind["u"], wind["v"]
+    udata, vdata = dsa.asarray(u.data), dsa.asarray(v.data)
+    with np.errstate(over="ignore", invalid="ignore"):
+        bad = implausible_points(udata, vdata, max_speed)
+        points, first, ubad, vbad = dask.compute(bad.sum(), dsa.argmax(bad.ravel()),
+                                                 udata[bad], vdata[bad])
+    if not points:
+        return None
+    values: dict[str, list[list[float | int]]] = {}
+    repeated: list[tuple[int, float]] = []
+    for da, found in ((u, ubad), (v, vbad)):
+        far = found[~(np.abs(found) <= max_speed)]  # this component's own implausible values
+        far = cf_units.Unit("m s-1").convert(far, da.attrs.get("source_units", "m s-1"))
+        kinds, counts = np.unique(far, return_counts=True)
+        order = np.argsort(-counts, kind="stable")[:SHOWN_VALUES]
+        name = str(da.attrs.get("source_name", da.name))
+        values[name] = [[float(kinds[i]), int(counts[i])] for i in order]
+        repeated += [(int(counts[i]), float(kinds[i])) for i in order if counts[i] > 1]
+    return {"max_speed": float(max_speed), "points": int(points),
+            "first": _point_text(np.unravel_index(int(first), bad.shape),
+                                 _coordinate_values(wind, u.dims)),
+            "values": values, "marker": max(repeated)[1] if repeated else None}
+
+
 def _plausible(ds: xr.Dataset, max_speed: float, implausible: str) -> xr.Dataset:
     """Refuse, or mask as missing, wind values that are not finite or implausibly fast.
 
@@ -1210,11 +1278,9 @@ def _plausible(ds: xr.Dataset, max_speed: float, implausible: str) -> xr.Dataset
     if implausible not in IMPLAUSIBLE_CHOICES:
         raise UsageError(f"implausible must be one of {', '.join(IMPLAUSIBLE_CHOICES)}, "
                          f"not {implausible!r}")
-    if not (np.isfinite(max_speed) and max_speed > 0):
-        raise UsageError(f"the maximum speed must be a number above 0 m s-1, not {max_speed!r}")
+    _check_max_speed(max_speed)
     u, v = ds["u"], ds["v"]
-    coords = [(str(d), ds[d].values if d in ds.coords else np.arange(ds.sizes[d]))
-              for d in u.dims]
+    coords = _coordinate_values(ds, u.dims)
     source = ds.attrs.get("input_files", "?").splitlines()[0]
     if len(ds.attrs.get("input_files", "").splitlines()) > 1:
         source += " ..."
@@ -1236,6 +1302,31 @@ def _plausible(ds: xr.Dataset, max_speed: float, implausible: str) -> xr.Dataset
     if not refuse:
         out.attrs["implausible_values"] = bad.sum()
     return out
+
+
+def file_names(ds: xr.Dataset) -> dict[str, str]:
+    """The name each variable had in the input file, where flowpipe named it otherwise
+    (``u`` read from ``U``, say: the attribute ``source_name``)."""
+    return {str(n): str(ds[n].attrs["source_name"]) for n in ds.data_vars
+            if str(ds[n].attrs.get("source_name", n)) != str(n)}
+
+
+def variable_named(ds: xr.Dataset, name: str, among: Iterable[str]) -> str | None:
+    """The variable of ``among`` that ``name`` names, by flowpipe's name or by the file's
+    (:func:`file_names`); None when none."""
+    among = [str(n) for n in among]
+    if name in among:
+        return name
+    return next((n for n, given in file_names(ds).items() if given == name and n in among),
+                None)
+
+
+def names_text(ds: xr.Dataset, names: Iterable[str]) -> str:
+    """Variable names to choose from, each with the file's where it differs:
+    ``u (file: U), v (file: V), ta``."""
+    aliases = file_names(ds)
+    return ", ".join(f"{n} (file: {aliases[n]})" if n in aliases else str(n) for n in names) \
+        or "none"
 
 
 def input_notes(wind: xr.Dataset) -> dict:

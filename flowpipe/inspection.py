@@ -7,8 +7,9 @@ import os
 import numpy as np
 import xarray as xr
 
+from .choices import DEFAULT_MAX_SPEED
 from .grid import describe_grid
-from .ingest import forecast_axes, missing_counts, open_wind, run_text
+from .ingest import forecast_axes, implausible_values, missing_counts, open_wind, run_text
 
 
 def _time_text(value) -> str:
@@ -17,14 +18,17 @@ def _time_text(value) -> str:
     return value.isoformat()  # cftime datetimes
 
 
-def describe_wind(wind: xr.Dataset) -> dict:
+def describe_wind(wind: xr.Dataset, max_speed: float = DEFAULT_MAX_SPEED) -> dict:
     """Describe a canonical wind Dataset as a JSON-friendly dict (computes missing counts).
 
     The keys are those of the contract's ``inspect --json`` (``u``, ``v``,
     ``grid``, ``latitudes``, ``poles``, ``pole_rows``, ``nlat``, ``nlon``, ``levels``,
     ``times``) and a few more; ``run`` is the forecast run the Dataset holds (ISO
     8601, ``None`` when it holds no forecast or several runs); ``members`` the number of
-    ensemble members (``realization``), ``None`` without them.
+    ensemble members (``realization``), ``None`` without them; ``implausible`` the
+    winds not finite or faster than ``max_speed`` m s-1
+    (:func:`flowpipe.ingest.implausible_values`, for a wind opened with
+    ``implausible=None``), ``None`` when there are none.
     """
     grid = describe_grid(wind)
     vertical = next((n for n in ("omega", "w") if n in wind), None)
@@ -50,16 +54,20 @@ def describe_wind(wind: xr.Dataset) -> dict:
                 if "forecast_reference_time" in wind.coords and
                 wind["forecast_reference_time"].ndim == 0 else None),
         "missing": missing_counts(wind, ("u", "v", "omega", "w")),
+        "implausible": implausible_values(wind, max_speed),
         "other_variables": sorted(str(n) for n in wind.data_vars if n not in ("u", "v", "omega", "w")),
     }
     return report
 
 
-def inspect_file(path: str | os.PathLike, u: str | None = None, v: str | None = None) -> dict:
-    """Open one file (or glob) and describe it, with ``file`` naming it."""
+def inspect_file(path: str | os.PathLike, u: str | None = None, v: str | None = None,
+                 max_speed: float = DEFAULT_MAX_SPEED) -> dict:
+    """Open one file (or glob) and describe it, with ``file`` naming it; implausible winds
+    (faster than ``max_speed`` m s-1, or not finite) are described, not refused."""
     runs, leads = forecast_axes(path, u=u, v=v)
     # several runs overlap in valid time: describe the newest, list them all
-    wind = open_wind(path, u=u, v=v, run="latest" if len(runs) > 1 else None)
-    return {"file": os.fspath(path), **describe_wind(wind),
+    wind = open_wind(path, u=u, v=v, run="latest" if len(runs) > 1 else None,
+                     implausible=None)
+    return {"file": os.fspath(path), **describe_wind(wind, max_speed),
             "runs": [run_text(r) for r in runs] if runs else None,
             "leads": leads or None}

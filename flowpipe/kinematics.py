@@ -137,7 +137,8 @@ def kinematics(
     # missing points are refused inside each slab task: building reads no data
     outputs = apply_slab_kernel(
         refuse_missing, wind, core, sizes={"total_wavenumber": n + 1},
-        kernel=kinematics_slab, what="kinematics", longitude=grid.longitude,
+        kernel=kinematics_slab, what="kinematics", table="decompose",
+        longitude=grid.longitude,
         geometry=geometry, truncation=n, radius=EARTH_RADIUS,
         rotation_rate=EARTH_ROTATION_RATE, latitude=grid.latitude,
     )

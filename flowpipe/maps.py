@@ -58,10 +58,12 @@ from .ingest import (
     is_grib,
     is_zarr_store,
     lead_hours,
+    names_text,
     open_store,
     open_wind,
     parse_iso,
     run_text,
+    variable_named,
 )
 from .store import atomic_path
 
@@ -170,6 +172,8 @@ def render(
         The variable to map (default: streamfunction, velocity potential,
         vorticity or divergence, whichever comes first, else the first
         mappable variable). For tracks, a sampled variable to colour them by.
+        By flowpipe's name or, where flowpipe renamed a variable on reading, by
+        the name the input file gave it (``u10`` of a GRIB file's ``u``).
     level : float, optional
         Value of the vertical coordinate, in the file's units (default: the first).
     time : str, optional
@@ -287,13 +291,22 @@ def _open(source: str | os.PathLike | xr.Dataset) -> tuple[xr.Dataset, str]:
 
 # ---------------------------------------------------------------- coordinates
 
+def _coordinate(ds: xr.Dataset, da: xr.DataArray, key: str, axis: str) -> Hashable | None:
+    """The coordinate of ``da`` that cf-xarray identifies as ``key`` or ``axis`` from its
+    CF attributes (standard_name, axis, positive, units); failing that, a dimension of
+    ``da`` that cf-xarray's ``guess_coord_axis`` takes for it (a time by its datetime
+    values, a vertical coordinate by names such as ``lev_p``), so that a file's own
+    dimension names need no list here."""
+    found = find_coordinate(ds, da, key, axis)
+    if found is None:
+        guessed = find_coordinate(ds.cf.guess_coord_axis(), da, key, axis)
+        found = guessed if guessed in da.dims else None
+    return found
+
+
 def _horizontal(ds: xr.Dataset, da: xr.DataArray) -> tuple[Hashable, Hashable] | None:
-    lat = find_coordinate(ds, da, "latitude", "Y")
-    lon = find_coordinate(ds, da, "longitude", "X")
-    if lat is None or lon is None:
-        guessed = ds.cf.guess_coord_axis()
-        lat = lat or find_coordinate(guessed, da, "latitude", "Y")
-        lon = lon or find_coordinate(guessed, da, "longitude", "X")
+    lat = _coordinate(ds, da, "latitude", "Y")
+    lon = _coordinate(ds, da, "longitude", "X")
     if lat is None or lon is None or ds[lat].ndim != 1 or ds[lon].ndim != 1:
         return None
     return lat, lon
@@ -344,7 +357,7 @@ def _select(ds: xr.Dataset, da: xr.DataArray, label: str, level: float | None,
     time, run, lead = when
     indexers: dict = {}
     words: list[str] = []
-    vertical = find_coordinate(ds, da, "vertical", "Z")
+    vertical = _coordinate(ds, da, "vertical", "Z")
     if vertical is not None and vertical in da.dims:
         # in hPa or m, as everywhere in flowpipe (inputs may say Pa or km)
         values, kind = canonical_levels(ds[vertical].values, ds[vertical].attrs.get("units"))
@@ -367,7 +380,7 @@ def _select(ds: xr.Dataset, da: xr.DataArray, label: str, level: float | None,
         raise InputError(f"{label}: {da.name} has no vertical coordinate; leave out the level")
     elif vertical is not None and ds[vertical].size == 1:  # a field on one level: 10 m, say
         words.append(_one_level(ds[vertical]))
-    tname = find_coordinate(ds, da, "time", "T")
+    tname = _coordinate(ds, da, "time", "T")
     if tname is not None and tname in da.dims:
         texts = [iso_time(t, "minutes") for t in ds[tname].values]
         runs, hours = _forecast_along(ds, tname, label)
@@ -621,9 +634,11 @@ def _field_map(fig: Figure, ds: xr.Dataset, label: str, field: str | None, level
                          f"{', '.join(map(str, ds.data_vars)) or 'none'}")
     if field is None:
         field = next((f for f in DEFAULT_FIELDS if f in mappable), mappable[0])
-    if field not in mappable:
+    named = variable_named(ds, field, mappable)
+    if named is None:
         raise InputError(f"{label}: no mappable field {field!r}; fields in the file: "
-                         f"{', '.join(mappable)}")
+                         f"{names_text(ds, mappable)}")
+    field = named
     da = ds[field]
     lat_name, lon_name = _horizontal(ds, da)
     indexers, words = _select(ds, da, label, level, when)
@@ -860,10 +875,11 @@ def _track_map(fig: Figure, ds: xr.Dataset, label: str, field: str | None,
         raise InputError(f"{label}: the trajectories have no valid position")
     if field is not None:
         candidates = [str(n) for n in ds.data_vars if ds[n].dims == found["latitude"].dims]
-        if field not in candidates:
+        named = variable_named(ds, field, candidates)
+        if named is None:
             raise InputError(f"{label}: no variable {field!r} along the trajectories; "
-                             f"variables along them: {', '.join(candidates) or 'none'}")
-        colour, colour_label = ds[field], field
+                             f"variables along them: {names_text(ds, candidates)}")
+        colour, colour_label = ds[named], named
     elif "vertical" in found:
         colour, colour_label = found["vertical"], str(found["vertical"].attrs.get(
             "standard_name", found["vertical"].name)).replace("_", " ")

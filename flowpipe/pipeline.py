@@ -224,7 +224,8 @@ class Runner:
         result.outputs[rel] = {
             "stage": stage, "unit": result.stem, "depends_on": depends,
             "config": bookkeeping.section_hash(tables), "config_tables": tables,
-            "flowpipe_version": __version__, "written": now_iso(), "facts": output_facts(out),
+            "flowpipe_version": __version__, "written": now_iso(), "seconds": round(elapsed, 3),
+            "facts": output_facts(out),
         }
         states[rel] = "written"
         result.written.append(out)

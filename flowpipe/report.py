@@ -4,7 +4,8 @@ It answers at a glance what the night produced: one status line that counts
 the inputs done and failed and the files written and already up to date; per
 input its valid period, status and error; per output its state (written now,
 or up to date and since when), the quality figures of decompositions and the
-counts by status of trajectory files, with links to every file.
+counts by status of trajectory files, the seconds it took to write, with links
+to every file.
 """
 
 from __future__ import annotations
@@ -171,9 +172,11 @@ def render_report(manifest: dict[str, Any], directory: Path) -> str:
             when = (f'<span class="stale">up to date, written {html.escape(str(info.get("written")))}'
                     "</span>" if state == "up to date" else "written")
             facts = info.get("facts", {})
+            seconds = f"{info['seconds']:.2f} s" if "seconds" in info else ""
             files.append(f"<tr><td>{shown}</td><td>{html.escape(unit)}</td>"
                          f"<td>{html.escape(str(info.get('stage', '')))}</td><td>{when}</td>"
-                         f"<td>{html.escape(_period(facts))}</td><td>{_quality(facts)}</td></tr>")
+                         f"<td>{html.escape(_period(facts))}</td><td>{_quality(facts)}</td>"
+                         f"<td>{seconds}</td></tr>")
     pictures = sorted(k for r in manifest.get("units", {}).values() for k in r.get("outputs", {})
                       if k.endswith(".png") and (directory / k).exists())
     timings = "".join(f"<tr><td>{html.escape(s)}</td><td>{t:.2f} s</td></tr>"
@@ -195,8 +198,8 @@ flowpipe {html.escape(str(manifest.get("flowpipe_version")))}, config
 <table><tr><th>input</th><th>status</th><th>valid period</th><th>error</th></tr>{"".join(inputs)}</table>
 <h2>Outputs</h2>
 <table><tr><th>file</th><th>input</th><th>stage</th><th>state</th><th>valid period</th>
-<th>quality figures (worst slab) and trajectory counts</th></tr>
-{"".join(files) or '<tr><td colspan="6">none</td></tr>'}</table>
+<th>quality figures (worst slab) and trajectory counts</th><th>time to write</th></tr>
+{"".join(files) or '<tr><td colspan="7">none</td></tr>'}</table>
 <h2>Maps</h2>
 {figures or "<p>none</p>"}
 <h2>Timings</h2>

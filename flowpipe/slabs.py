@@ -32,13 +32,20 @@ SPECTRAL_REFERENCES = (
 )
 
 
-def select_levels(wind: xr.Dataset, levels: Sequence[float] | None) -> xr.Dataset:
-    """The wind on the requested levels only (all levels when ``levels`` is None)."""
+def levels_hint(table: str) -> str:
+    """Where the levels are chosen: the option, and the key of the config table ``table``."""
+    return f"--levels (config: [{table}] levels)"
+
+
+def select_levels(wind: xr.Dataset, levels: Sequence[float] | None,
+                  table: str = "decompose") -> xr.Dataset:
+    """The wind on the requested levels only (all levels when ``levels`` is None);
+    ``table`` is the config table whose ``levels`` the messages name."""
     if levels is None:
         return wind
     if "level" not in wind.dims:
         raise UsageError("levels were requested but the input has no vertical dimension; "
-                         "drop --levels")
+                         f"drop {levels_hint(table)}")
     available = wind["level"].values.astype(np.float64)
     index = []
     for level in levels:
@@ -46,7 +53,7 @@ def select_levels(wind: xr.Dataset, levels: Sequence[float] | None) -> xr.Datase
         if found.size == 0:
             listed = ", ".join(f"{x:g}" for x in available)
             raise InputError(f"level {level:g} is not in the input (levels: {listed}); "
-                             "choose among these with --levels")
+                             f"choose among these with {levels_hint(table)}")
         index.append(int(found[0]))
     return wind.isel(level=index)
 
@@ -68,7 +75,7 @@ def missing_points(wind: xr.Dataset) -> int:
 
 
 def refuse_missing(u: np.ndarray, v: np.ndarray, *, kernel: Callable[..., tuple],
-                   latitude: np.ndarray, longitude: np.ndarray, what: str,
+                   latitude: np.ndarray, longitude: np.ndarray, what: str, table: str,
                    **kwargs) -> tuple[np.ndarray, ...]:
     """Run a kernel of one complete slab; refuse a slab with missing points.
 
@@ -85,6 +92,8 @@ def refuse_missing(u: np.ndarray, v: np.ndarray, *, kernel: Callable[..., tuple]
         Coordinates of the slab in degrees, for the message.
     what : str
         What needs complete fields, for the message.
+    table : str
+        The config table whose ``levels`` the message names (:func:`levels_hint`).
     **kwargs
         Passed to the kernel.
 
@@ -106,7 +115,7 @@ def refuse_missing(u: np.ndarray, v: np.ndarray, *, kernel: Callable[..., tuple]
             f"u/v have {int(missing.sum())} missing points in a latitude-longitude slab, within "
             f"latitudes {lats.min():g}..{lats.max():g} and longitudes {lons.min():g}.."
             f"{lons.max():g}; {what} need complete fields: choose the levels that have no "
-            "missing points (--levels, levels=...), or fill the gaps first")
+            f"missing points with {levels_hint(table)}, or fill the gaps first")
     return kernel(u, v, latitude=latitude, **kwargs)
 
 

@@ -108,6 +108,7 @@ def test_bad_input_exits_2_and_writes_nothing(tmp_path, capsys, files, options, 
     if "--hours" not in options:
         options += ["--hours", "12"]
     out = tmp_path / "out" / "tracks.nc"
+    out.parent.mkdir()
     code = main(["advect", *files, "-o", str(out), *options])
     err = capsys.readouterr().err
     assert code == 2
@@ -132,3 +133,28 @@ def test_a_series_of_files_gives_the_same_trajectories_as_one_file(tmp_path):
         for name in ("latitude", "longitude", "air_pressure", "ta"):
             np.testing.assert_array_equal(a[name].values, b[name].values)
         assert np.isfinite(a["latitude"].values).all()
+
+
+def test_sample_takes_the_input_file_own_names(tmp_path, capsys):
+    # The canonical wind keeps the file's names in source_name (README.md, "What flowpipe
+    # accepts"): --sample OMEGA of a file that calls omega so samples what --sample omega
+    # samples, under flowpipe's name with source_name beside it, and map --field takes the
+    # file's name too (common practice: a user names the variables as the file has them).
+    with xr.open_dataset(GLOBAL) as ds:
+        named = tmp_path / "named.nc"
+        ds.isel(time=slice(0, 3)).rename(u="U", v="V", omega="OMEGA").to_netcdf(named)
+    start = ["--start", "50,0,500", "--hours", "6"]
+    assert main(["advect", str(named), "-o", str(tmp_path / "a.nc"), *start,
+                 "--sample", "OMEGA,ta"]) == 0
+    assert main(["advect", str(named), "-o", str(tmp_path / "b.nc"), *start,
+                 "--sample", "omega,ta"]) == 0
+    with xr.open_dataset(tmp_path / "a.nc") as a, xr.open_dataset(tmp_path / "b.nc") as b:
+        assert np.isfinite(a["omega"]).all() and a["omega"].attrs["source_name"] == "OMEGA"
+        np.testing.assert_array_equal(a["omega"].values, b["omega"].values)
+    assert main(["map", str(tmp_path / "a.nc"), "-o", str(tmp_path / "a.png"),
+                 "--field", "OMEGA"]) == 0
+    assert "coloured by omega" in capsys.readouterr().out
+    assert main(["advect", str(named), "-o", str(tmp_path / "c.nc"), *start,
+                 "--sample", "W"]) == 2
+    err = capsys.readouterr().err
+    assert "(variables: omega (file: OMEGA), ta, u (file: U), v (file: V))" in err

@@ -63,6 +63,48 @@ def test_bad_arguments_are_refused_before_any_work(tmp_path, capsys, make_args, 
     assert not list(tmp_path.iterdir())
 
 
+@pytest.mark.parametrize("command, options", [
+    ("decompose", []), ("advect", ["--start", "50,0", "--hours", "6"]),
+    ("ftle", ["--hours", "6"]), ("circulation", ["--box", "40,50,0,10"]),
+    ("map", ["--field", "u"]),
+])
+def test_an_output_in_a_missing_directory_is_refused_and_not_created(tmp_path, capsys, command,
+                                                                      options):
+    # README.md ("How outputs are stored"): a single command writes into a directory that
+    # exists; a mistyped one is named, not silently created (common practice: cp, tar and
+    # the shell's redirection refuse a missing directory too).
+    typo = tmp_path / "outptu"
+    suffix = ".png" if command == "map" else ".nc"
+    with pytest.raises(SystemExit) as stop:
+        main([command, GLOBAL, "-o", str(typo / f"result{suffix}"), *options])
+    assert stop.value.code == 2
+    _one_error_line(capsys, f"the directory {str(typo)!r} does not exist; create it first")
+    assert not typo.exists()
+
+
+@pytest.mark.parametrize("command, typo, meant", [
+    (["decompose", GLOBAL, "-o", "OUT"], ["--compresion", "zstd"], "--compression"),
+    (["map", GLOBAL, "-o", "OUT"], ["--feild=u"], "--field"),
+    (["advect", GLOBAL, "-o", "OUT", "--start", "50,0", "--hours", "6"], ["--xyz"], None),
+])
+def test_an_unknown_option_is_refused_by_its_command_with_the_closest(tmp_path, capsys, command,
+                                                                      typo, meant):
+    # The command's own parser refuses it and points at its own help; the suggestion is the
+    # closest of that command's options by difflib.get_close_matches (Python documentation,
+    # difflib; "did you mean" as git and many command lines say it: common practice).
+    args = [str(tmp_path / "out.nc") if a == "OUT" else a for a in command]
+    with pytest.raises(SystemExit) as stop:
+        main([*args, *typo])
+    assert stop.value.code == 2
+    (line,) = capsys.readouterr().err.strip().splitlines()
+    assert line.startswith(f"flowpipe: error: unrecognized arguments: {' '.join(typo)}")
+    assert line.endswith(f"(see 'flowpipe {command[0]} --help')")
+    assert ("did you mean" in line) == (meant is not None)
+    if meant is not None:
+        assert f"; did you mean {meant}?" in line
+    assert not list(tmp_path.iterdir())
+
+
 def test_a_southern_or_western_coordinate_first_is_taken_as_the_value(tmp_path):
     # argparse reads "-30,100,500" as an option, not as a value (Python documentation,
     # argparse, "Arguments containing -"); a contour or start in the southern or western
@@ -157,3 +199,51 @@ def test_a_terminated_command_leaves_no_temporary_file(tmp_path):
     assert process.returncode == 128 + signal.SIGTERM, err
     assert "flowpipe: terminated" in err
     assert not list(out.iterdir())
+
+
+def _gappy_global(tmp_path: Path) -> str:
+    """The global sample, two times, with a gap on its first (850 hPa) level only."""
+    path = tmp_path / "gappy.nc"
+    with xr.open_dataset(GLOBAL) as ds:
+        ds = ds.isel(time=slice(0, 2)).load()
+    for name in ("u", "v"):
+        ds[name][:, 0, 30:40, 20:40] = np.nan
+    ds.to_netcdf(path)
+    return str(path)
+
+
+@pytest.mark.parametrize("make_args, hint", [
+    (lambda t: ["decompose", GLOBAL, "-o", str(t / "o.nc"), "--levels", "700"],
+     "choose among these with --levels (config: [decompose] levels)"),
+    (lambda t: ["decompose", _gappy_global(t), "-o", str(t / "o.nc"), "--kinematics"],
+     "choose the levels that have no missing points with --levels (config: [decompose] levels)"),
+    (lambda t: ["circulation", GLOBAL, "-o", str(t / "o.nc"), "--box", "40,50,0,10",
+                "--levels", "700"],
+     "choose among these with --levels (config: [circulation] levels)"),
+    (lambda t: ["ftle", GLOBAL, "-o", str(t / "o.nc"), "--hours", "6", "--level", "700"],
+     "choose among these with --level (config: [ftle] levels)"),
+])
+def test_a_hint_to_choose_levels_names_the_config_key_too(tmp_path, capsys, make_args, hint):
+    # README.md ("Exit codes"): the one line says what to do; the same choice in a batch run
+    # is the table's levels key (configs/README.md, [decompose], [circulation], [ftle]).
+    args = make_args(tmp_path)
+    assert main(args) == 2
+    _one_error_line(capsys, hint)
+    assert not (tmp_path / "o.nc").exists()
+
+
+def test_kinematics_take_complete_global_levels_only(tmp_path, capsys):
+    # README.md (Commands, decompose): --kinematics is refused on a limited area before any
+    # work, and on a global level with missing points, nothing written; the complete levels
+    # of the same file are taken (spherical-harmonic analysis needs every quadrature node:
+    # Swarztrauber 1981, SIAM J. Numer. Anal. 18, 191-210).
+    out = tmp_path / "o.nc"
+    assert main(["decompose", REGIONAL, "-o", str(out), "--kinematics"]) == 2
+    _one_error_line(capsys, "--kinematics needs the spectral method")
+    gappy = _gappy_global(tmp_path)
+    assert main(["decompose", gappy, "-o", str(out), "--kinematics"]) == 2
+    _one_error_line(capsys, "u/v have 200 missing points in a latitude-longitude slab")  # 10 x 20
+    assert not out.exists()
+    assert main(["decompose", gappy, "-o", str(out), "--kinematics", "--levels", "500,250"]) == 0
+    with xr.open_dataset(out) as ds:
+        assert ds.sizes["level"] == 2 and "absolute_vorticity" in ds

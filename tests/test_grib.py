@@ -264,3 +264,19 @@ def test_an_ensemble_grib_file_keeps_its_members(tmp_path):
     ratio = (wind["u"].isel(realization=2) / wind["u"].isel(realization=0)).values
     np.testing.assert_allclose(ratio[np.isfinite(ratio) & (np.abs(wind["u"].isel(
         realization=0).values) > 1)], 1.2, rtol=1e-3)
+
+
+def test_a_map_takes_the_grib_file_own_variable_names(grib, tmp_path):
+    # cfgrib names the 10 m winds u10 and v10 (their GRIB shortName 10u/10v, ECMWF
+    # parameter database), which flowpipe reads as u and v: --field takes either name,
+    # and a name it does not know is told with the file's names beside flowpipe's.
+    from flowpipe.maps import render
+
+    surface = tmp_path / "surface.grib2"
+    write_10m_wind(surface)
+    by_file, by_flowpipe = render(surface, field="u10"), render(surface, field="u")
+    titles = [f.axes[0].get_title(loc="left") for f in (by_file, by_flowpipe)]
+    assert titles[0] == titles[1] and "Eastward wind" in titles[0]
+    with pytest.raises(InputError, match=r"fields in the file: u \(file: u10\), "
+                                         r"v \(file: v10\)"):
+        render(surface, field="10u")

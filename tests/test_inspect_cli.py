@@ -19,6 +19,7 @@ import pytest
 import xarray as xr
 from windfiles import Encoding, encode, reference_field
 
+from flowpipe.choices import DEFAULT_MAX_SPEED
 from flowpipe.cli import main
 
 ROOT = Path(__file__).resolve().parents[1]
@@ -203,3 +204,52 @@ def test_usage_error_uses_the_contract_prefix(capsys):
         main(["inspect"])
     assert exc.value.code == 2
     assert capsys.readouterr().err.startswith("flowpipe: error:")
+
+
+def _with_values(tmp_path: Path, where: tuple, value: float, both: bool, **kw) -> Path:
+    """A good file, float32 with no missing value declared, holding ``value`` at ``where``
+    (index of time, level, latitude, longitude) in its eastward wind (and northward too)."""
+    source = _good(tmp_path, **kw)
+    with xr.open_dataset(source) as ds:
+        ds = ds.load()
+    for name in ("eastward", "northward") if both else ("eastward",):
+        ds[name][where] = value
+    path = tmp_path / "marked.nc"
+    ds.to_netcdf(path, encoding={n: {"dtype": "float32", "_FillValue": None}
+                                 for n in ("eastward", "northward")})
+    return path
+
+
+def test_an_undeclared_missing_value_marker_is_described_not_refused(tmp_path, capsys):
+    # -9999 is the usual marker of files that do not declare theirs (common practice); CF 1.11
+    # section 2.5.1 declares it with missing_value or _FillValue, in the variable's own units
+    # (here knots: UDUNITS' knot, 1852 m per hour), not as the m s-1 it would be read as.
+    path = _with_values(tmp_path, (0, 1, slice(2, 4), slice(3, 6)), -9999.0, both=True,
+                        wind_units="knots")
+    assert main(["inspect", str(path)]) == 0
+    out = capsys.readouterr().out
+    line = next(x for x in out.splitlines() if x.strip().startswith("implausible"))
+    assert "6 point(s) of eastward/northward not finite or faster than 250 m s-1" in line
+    assert f"the first at time 2001-02-27T00:00:00, level 500, latitude {LAT[2]:g}, " \
+           f"longitude {LON[3]:g}" in line
+    assert "eastward -9999 (6 times), northward -9999 (6 times)" in line
+    assert "looks like a missing-value marker" in line
+    assert "missing_value = -9999 (or _FillValue) on eastward and northward" in line
+    assert main(["inspect", "--json", str(path)]) == 0
+    found = json.loads(capsys.readouterr().out)["implausible"]
+    assert (found["points"], found["marker"]) == (6, -9999.0)
+    assert found["max_speed"] == DEFAULT_MAX_SPEED  # the limit decompose refuses by
+    # 9999 kn in each component is about 7275 m s-1 of speed: within a limit of 8000
+    assert main(["inspect", "--json", "--max-speed", "8000", str(path)]) == 0
+    assert json.loads(capsys.readouterr().out)["implausible"] is None
+
+
+def test_a_single_implausible_value_is_not_called_a_marker(tmp_path, capsys):
+    # one value beyond the limit does not repeat: nothing says it marks missing data
+    path = _with_values(tmp_path, (1, 0, 5, 7), 400.0, both=False)
+    assert main(["inspect", str(path)]) == 0
+    out = capsys.readouterr().out
+    assert "1 point(s) of eastward/northward" in out and "eastward 400 (once)" in out
+    assert "marker" not in out
+    assert main(["decompose", str(path), "-o", str(tmp_path / "o.nc")]) == 2  # what it warns of
+    assert "faster than 250 m s-1" in capsys.readouterr().err

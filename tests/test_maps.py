@@ -516,3 +516,25 @@ def test_a_hemisphere_is_drawn_on_its_polar_cap(tmp_path, south, north):
 
     assert shown(outer + 2.0 * np.sign(north + south))  # the outer rows are on the map
     assert not shown(-outer - 45.0 * np.sign(north + south))  # the other hemisphere is not
+
+
+def test_time_and_level_of_unusual_names_are_found_from_their_cf_attributes(tmp_path):
+    # CF 1.11 sections 4.3 and 4.4: a vertical coordinate is identified by units of pressure
+    # alone, a time coordinate by units of the form "hours since ..."; cf-xarray
+    # (guess_coord_axis) finds them under the file's own names, here valid and lev_p,
+    # which no attribute labels as an axis. The map of a slab is that of the same slab
+    # in the sample file, whose coordinates are the usual ones.
+    odd = tmp_path / "odd.nc"
+    with xr.open_dataset(GLOBAL) as ds:
+        renamed = ds.isel(time=slice(0, 3)).rename(time="valid", plev="lev_p")
+        renamed["valid"].attrs = {"long_name": "valid time"}
+        renamed["lev_p"].attrs = {"units": "hPa", "long_name": "pressure"}
+        renamed.to_netcdf(odd, encoding={"valid": {"units": "hours since 2026-01-12"}})
+    with xr.open_dataset(odd) as written:  # no attribute says axis or standard_name
+        assert not written.cf.axes.get("T") and not written.cf.axes.get("Z")
+    options = {"field": "u", "level": 500.0, "time": "2026-01-12T06:00", "size": SIZE}
+    figures = [maps.render(source, **options) for source in (odd, GLOBAL)]
+    titles = [_map_axes(f).get_title(loc="left") for f in figures]
+    assert titles[0] == titles[1] and "500 hPa" in titles[0] and "2026-01-12T06:00" in titles[0]
+    limits = [(_colour_bar(f).norm.vmin, _colour_bar(f).norm.vmax) for f in figures]
+    assert limits[0] == limits[1]

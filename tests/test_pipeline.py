@@ -459,3 +459,33 @@ def test_dry_run_lists_what_is_due_and_writes_nothing(tmp_path, capsys):
     lines = capsys.readouterr().out.splitlines()
     assert lines == ["model_1_decomposition.nc: input changed: model_1.nc (decompose)",
                      "maps of model_1_decomposition.nc: after the decompose output is made (maps)"]
+
+
+def test_manifest_and_report_give_the_seconds_each_output_took(tmp_path):
+    # configs/README.md ("What a run leaves behind"): each output's record keeps the seconds
+    # its making took, and a stage's timing is the sum over its outputs (bookkeeping, not
+    # a speed check); an output up to date keeps the seconds of the run that wrote it.
+    inputs = _inputs(tmp_path, 1)
+    config = _config(tmp_path, inputs, advect=False)
+    config.write_text(config.read_text().replace("levels = [500.0]", "levels = [850.0, 500.0]"))
+    assert main(["run", "--quiet", str(config)]) == 0
+    out = tmp_path / "out"
+    manifest = json.loads((out / "manifest.json").read_text())
+    outputs = manifest["outputs"]
+    assert {r["stage"] for r in outputs.values()} == {"decompose", "maps"}
+    assert sum(r["stage"] == "maps" for r in outputs.values()) == 2
+    for stage, total in manifest["timings"].items():
+        seconds = [r["seconds"] for r in outputs.values() if r["stage"] == stage]
+        assert all(s > 0 for s in seconds)
+        assert sum(seconds) == pytest.approx(total, abs=1e-3 * len(seconds))
+    rows = {row[0]: row for row in _report(out).rows if row}
+    assert rows["file"][-1] == "time to write"
+    for name, record in outputs.items():
+        assert rows[name][-1] == f"{record['seconds']:.2f} s"
+    assert main(["run", "--quiet", str(config)]) == 0  # nothing due
+    again = json.loads((out / "manifest.json").read_text())["outputs"]
+    assert {n: r["seconds"] for n, r in again.items()} == {
+        n: r["seconds"] for n, r in outputs.items()}
+    rows = {row[0]: row for row in _report(out).rows if row}
+    assert all(rows[n][3].startswith("up to date") and rows[n][-1] == f"{r['seconds']:.2f} s"
+               for n, r in outputs.items())

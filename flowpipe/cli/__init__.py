@@ -8,6 +8,7 @@ exit code).
 from __future__ import annotations
 
 import argparse
+import difflib
 import importlib
 import os
 import re
@@ -27,11 +28,29 @@ EXIT_INTERNAL = 3
 
 
 class _Parser(argparse.ArgumentParser):
-    """argparse, with usage errors in the contract's one-line form."""
+    """argparse, with usage errors in the contract's one-line form; arguments a command
+    does not know are refused by that command's parser, with the closest of its options."""
 
     def error(self, message: str):  # type: ignore[override]
         print(f"flowpipe: error: {message} (see '{self.prog} --help')", file=sys.stderr)
         sys.exit(2)
+
+    def parse_known_args(self, args=None, namespace=None):  # type: ignore[override]
+        namespace, extras = super().parse_known_args(args, namespace)
+        if extras:
+            self.error(f"unrecognized arguments: {' '.join(extras)}{self._suggestion(extras)}")
+        return namespace, extras
+
+    def _suggestion(self, extras: list[str]) -> str:
+        """``; did you mean --compression?`` for the first unknown option that is close to
+        one of this parser's (difflib's ratio, at its default cutoff of 0.6)."""
+        options = [o for o in self._option_string_actions if o.startswith("--")]
+        for word in extras:
+            if word.startswith("--"):
+                close = difflib.get_close_matches(word.partition("=")[0], options, n=1)
+                if close:
+                    return f"; did you mean {close[0]}?"
+        return ""
 
 
 #: What every command reads as a value, not an option, though it begins with a minus sign:

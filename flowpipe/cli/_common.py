@@ -10,10 +10,18 @@ from ..choices import is_zarr_path, output_suffix_refusal
 
 
 def output_file(text: str) -> str:
-    """An ``-o`` argument: a file name, not a directory (checked before any work; missing
-    parent directories are created when the file is written). An existing Zarr store
-    under a ``.zarr`` name is replaced when the new one is complete, as a file is."""
+    """An ``-o`` argument: a file name, not a directory, in a directory that exists
+    (checked before any work: a mistyped directory is refused, not created; ``flowpipe
+    run`` creates the tree it owns). An existing Zarr store under a ``.zarr`` name is
+    replaced when the new one is complete, as a file is."""
     path = Path(text)
+    parent = path.parent
+    if parent.exists() and not parent.is_dir():
+        raise argparse.ArgumentTypeError(f"{text!r}: {str(parent)!r} is not a directory; "
+                                         "give a name in a directory")
+    if not parent.exists():
+        raise argparse.ArgumentTypeError(f"{text!r}: the directory {str(parent)!r} does not "
+                                         "exist; create it first, or correct the name")
     if path.is_dir():
         if is_zarr_path(path):
             from ..ingest import is_zarr_store
@@ -90,14 +98,21 @@ def attribute(text: str) -> tuple[str, str]:
     return key.strip(), value
 
 
-def add_input_options(parser: argparse.ArgumentParser) -> None:
-    """Options of the plausibility check and the time series, shared by the commands
-    that read winds (see :func:`flowpipe.ingest.open_wind`)."""
-    from ..choices import DEFAULT_MAX_SPEED, IMPLAUSIBLE_CHOICES
+def add_max_speed_option(parser: argparse.ArgumentParser) -> None:
+    """``--max-speed M_S``: the limit of plausible wind speeds."""
+    from ..choices import DEFAULT_MAX_SPEED
 
     parser.add_argument("--max-speed", type=float, default=DEFAULT_MAX_SPEED, metavar="M_S",
                         help="largest plausible wind speed in m s-1 (default: "
                         f"{DEFAULT_MAX_SPEED:g}, above the largest speeds ever analysed)")
+
+
+def add_input_options(parser: argparse.ArgumentParser) -> None:
+    """Options of the plausibility check and the time series, shared by the commands
+    that read winds (see :func:`flowpipe.ingest.open_wind`)."""
+    from ..choices import IMPLAUSIBLE_CHOICES
+
+    add_max_speed_option(parser)
     parser.add_argument("--implausible", choices=IMPLAUSIBLE_CHOICES, default="refuse",
                         help="winds that are not finite or faster than --max-speed: refuse "
                         "the input (default) or treat them as missing")

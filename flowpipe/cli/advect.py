@@ -44,7 +44,8 @@ def register(sub: argparse._SubParsersAction, common: argparse.ArgumentParser) -
     parser.add_argument("--step-minutes", type=float, metavar="M",
                         help="integration step (default: a Courant-number rule)")
     parser.add_argument("--sample", metavar="VAR,...",
-                        help="input variables to interpolate along the trajectories")
+                        help="input variables to interpolate along the trajectories, by "
+                        "flowpipe's name or the input file's (omega or OMEGA)")
     parser.add_argument("--vertical", choices=("omega", "w"),
                         help="3-D trajectories with this vertical velocity (default: parcels "
                         "stay on their level)")

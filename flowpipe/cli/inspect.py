@@ -5,17 +5,21 @@ from __future__ import annotations
 import argparse
 import json
 
+from ._common import add_max_speed_option
+
 
 def register(sub: argparse._SubParsersAction, common: argparse.ArgumentParser) -> argparse.ArgumentParser:
     parser = sub.add_parser(
         "inspect", parents=[common], help="describe the wind, grid and times found in files",
         description="Describe the wind variables, grid, levels and times flowpipe finds in "
-        "each file, and how many points are missing.",
+        "each file, how many points are missing, and winds that are not finite or faster "
+        "than --max-speed (described, not refused).",
     )
     parser.add_argument("files", nargs="+", metavar="FILE", help="NetCDF files or globs")
     parser.add_argument("--json", action="store_true", help="print one JSON object per file")
     parser.add_argument("--u", metavar="NAME", help="name of the eastward wind variable")
     parser.add_argument("--v", metavar="NAME", help="name of the northward wind variable")
+    add_max_speed_option(parser)
     return parser
 
 
@@ -24,7 +28,7 @@ def run(args: argparse.Namespace) -> int:
     from ..inspection import inspect_file
 
     for path in expand_paths(args.files):  # one report per file, globs expanded here too
-        report = inspect_file(path, u=args.u, v=args.v)
+        report = inspect_file(path, u=args.u, v=args.v, max_speed=args.max_speed)
         if args.json:
             print(json.dumps(report))
         else:
@@ -36,6 +40,23 @@ def _pole_text(pole_rows: list[str]) -> str:
     if len(pole_rows) == 2:
         return " with pole rows"
     return f" with a {pole_rows[0]} pole row" if pole_rows else ""
+
+
+def _implausible_text(found: dict) -> str:
+    """The implausible winds in words, with how to declare a missing-value marker."""
+    names = list(found["values"])
+    shown = ", ".join(f"{name} {value:g} ({'once' if count == 1 else f'{count} times'})"
+                      for name, pairs in found["values"].items() for value, count in pairs)
+    text = (f"{found['points']} point(s) of {'/'.join(names)} not finite or faster than "
+            f"{found['max_speed']:g} m s-1 (--max-speed), the first at {found['first']}; "
+            f"values beyond the limit: {shown}")
+    marker = found["marker"]
+    if marker is not None:
+        text += (f"; {marker:g} repeats: it looks like a missing-value marker the file does "
+                 f"not declare; declare it with the attribute missing_value = {marker:g} (or "
+                 f"_FillValue) on {' and '.join(names)} (CF 1.11 section 2.5.1)")
+    return text + ("; or let the commands treat such winds as missing with --implausible "
+                   "missing (config: [input] implausible = \"missing\")")
 
 
 def format_report(report: dict) -> str:
@@ -76,6 +97,8 @@ def format_report(report: dict) -> str:
         lines.insert(-1, f"  ensemble   {report['members']} member"
                      f"{'s' if report['members'] != 1 else ''} (realization "
                      f"{members[0]}{'' if len(members) == 1 else f'..{members[-1]}'})")
+    if report["implausible"]:
+        lines.append(f"  implausible {_implausible_text(report['implausible'])}")
     if report["other_variables"]:
         lines.append(f"  also       {', '.join(report['other_variables'])}")
     return "\n".join(lines)

@@ -24,7 +24,8 @@ def register(sub: argparse._SubParsersAction, common: argparse.ArgumentParser) -
     parser.add_argument("--field", metavar="NAME",
                         help="variable to draw (default: streamfunction, velocity_potential, "
                         "vorticity or divergence, else the first mappable one); for "
-                        "trajectories, a sampled variable to colour the tracks by")
+                        "trajectories, a sampled variable to colour the tracks by; flowpipe's "
+                        "name or the input file's (such as u10 for a GRIB file's u)")
     parser.add_argument("--level", type=float, metavar="L",
                         help="vertical level, in the file's units (default: the first)")
     parser.add_argument("--time", metavar="T", help="valid time, ISO 8601 (default: the first)")

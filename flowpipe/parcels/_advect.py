@@ -21,6 +21,7 @@ from ..choices import STATUS_MEANINGS, VERTICAL
 from ..constants import EARTH_RADIUS
 from ..errors import FlowpipeWarning, InputError, UsageError
 from ..grid import describe_grid
+from ..ingest import names_text, variable_named
 from . import _kernels as K
 from ._geometry import latitude_longitude, unit_vectors
 from ._window import SliceGrid, SliceWindow, slice_grid
@@ -162,14 +163,25 @@ def _check_wind(wind: xr.Dataset, vertical: str | None, sample: Sequence[str],
             raise InputError(f"{_name(wind)}: --vertical {vertical} needs {needed} levels, but "
                              f"the input has {level_type} levels")
     for name in sample:
-        if name not in wind:
-            raise UsageError(f"--sample {name}: no such variable in {_name(wind)} (variables: "
-                             f"{', '.join(sorted(map(str, wind.data_vars)))})")
         if not set(wind[name].dims) <= set(wind["u"].dims) or not {
                 "latitude", "longitude"} <= set(wind[name].dims):
             raise UsageError(f"--sample {name}: dimensions {wind[name].dims} are not on the "
                              "wind's grid")
     return scale
+
+
+def _sampled(wind: xr.Dataset, sample: Sequence[str]) -> tuple[str, ...]:
+    """The variables to sample, by flowpipe's name or by the name the input file gave them
+    (``omega`` or ``OMEGA``); an unknown name is refused, listing both names of each."""
+    found = []
+    for name in sample:
+        variable = variable_named(wind, name, wind.data_vars)
+        if variable is None:
+            names = sorted(map(str, wind.data_vars))
+            raise UsageError(f"--sample {name}: no such variable in {_name(wind)} (variables: "
+                             f"{names_text(wind, names)})")
+        found.append(variable)
+    return tuple(found)
 
 
 def _level_text(wind: xr.Dataset) -> str:
@@ -342,7 +354,9 @@ def advect(
         pressure levels) or ``w`` (m s-1, on height levels); by default
         parcels stay on their start level (level-following 2-D).
     sample : sequence of str
-        Input variables interpolated along the paths at the recorded times.
+        Input variables interpolated along the paths at the recorded times, by
+        flowpipe's name or the input file's (``source_name``); written under
+        flowpipe's, with ``source_name``.
     steady : bool
         Treat the wind as frozen at its first time (required for a single
         time).
@@ -402,7 +416,7 @@ def advect(
         raise UsageError(f"record_minutes {record_minutes:g}: must be positive")
     if not courant > 0:
         raise UsageError(f"courant {courant:g}: must be positive")
-    sample = tuple(sample)
+    sample = _sampled(wind, sample)
     vertical_scale = _check_wind(wind, vertical, sample, members=True)
     clock = _clock(wind, steady)
     kind = describe_grid(wind).kind
@@ -679,7 +693,7 @@ def _trajectory_dataset(wind, clock, start, sign, offsets, tracks, status, sampl
         "flag_meanings": " ".join(STATUS_MEANINGS)})}
     for i, name in enumerate(sample):
         attrs = {k: v for k, v in wind[name].attrs.items()
-                 if k in ("units", "standard_name", "long_name")}
+                 if k in ("units", "standard_name", "long_name", "source_name")}
         attrs["long_name"] = f"{attrs.get('long_name', name)} along the trajectory"
         data[name] = (dims, out_sample[:, :, i], attrs)
     data["wind_speed"] = (dims, out_speed, {
