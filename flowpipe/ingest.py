@@ -395,11 +395,19 @@ def _find_variable(
 
 
 def find_coordinate(ds: xr.Dataset, da: xr.DataArray, key: str, axis: str) -> str | None:
-    """Name of the coordinate of ``da`` that cf-xarray identifies as ``key`` (or by ``axis``)."""
-    candidates = list(ds.cf.coordinates.get(key, [])) + list(ds.cf.axes.get(axis, []))
-    for name in candidates:
-        if name in da.coords or name in da.dims:
-            return name
+    """Name of the coordinate of ``da`` that cf-xarray identifies as ``key`` (or by ``axis``).
+
+    First from its CF attributes (standard_name, axis, positive, units); failing that, as
+    cf-xarray's ``guess_coord_axis`` takes it (a time by its datetime values, a vertical
+    coordinate or latitude by names such as ``lev_p`` or ``lat``), so that a file's own
+    names need no list here.
+    """
+    for source in (ds, None):
+        source = ds.cf.guess_coord_axis() if source is None else source
+        candidates = list(source.cf.coordinates.get(key, [])) + list(source.cf.axes.get(axis, []))
+        for name in candidates:
+            if name in da.coords or name in da.dims:
+                return name
     return None
 
 
@@ -437,10 +445,6 @@ def _canonical(raw: xr.Dataset, path: Path, u_name: str | None, v_name: str | No
     ds = raw
     lat = find_coordinate(ds, ds[un], "latitude", "Y")
     lon = find_coordinate(ds, ds[un], "longitude", "X")
-    if lat is None or lon is None:
-        ds = ds.cf.guess_coord_axis()
-        lat = lat or find_coordinate(ds, ds[un], "latitude", "Y")
-        lon = lon or find_coordinate(ds, ds[un], "longitude", "X")
     if lat is None or lon is None:
         raise InputError(
             f"{path}: {un} has no latitude/longitude coordinates that CF attributes identify "

@@ -291,22 +291,9 @@ def _open(source: str | os.PathLike | xr.Dataset) -> tuple[xr.Dataset, str]:
 
 # ---------------------------------------------------------------- coordinates
 
-def _coordinate(ds: xr.Dataset, da: xr.DataArray, key: str, axis: str) -> Hashable | None:
-    """The coordinate of ``da`` that cf-xarray identifies as ``key`` or ``axis`` from its
-    CF attributes (standard_name, axis, positive, units); failing that, a dimension of
-    ``da`` that cf-xarray's ``guess_coord_axis`` takes for it (a time by its datetime
-    values, a vertical coordinate by names such as ``lev_p``), so that a file's own
-    dimension names need no list here."""
-    found = find_coordinate(ds, da, key, axis)
-    if found is None:
-        guessed = find_coordinate(ds.cf.guess_coord_axis(), da, key, axis)
-        found = guessed if guessed in da.dims else None
-    return found
-
-
 def _horizontal(ds: xr.Dataset, da: xr.DataArray) -> tuple[Hashable, Hashable] | None:
-    lat = _coordinate(ds, da, "latitude", "Y")
-    lon = _coordinate(ds, da, "longitude", "X")
+    lat = find_coordinate(ds, da, "latitude", "Y")
+    lon = find_coordinate(ds, da, "longitude", "X")
     if lat is None or lon is None or ds[lat].ndim != 1 or ds[lon].ndim != 1:
         return None
     return lat, lon
@@ -357,7 +344,7 @@ def _select(ds: xr.Dataset, da: xr.DataArray, label: str, level: float | None,
     time, run, lead = when
     indexers: dict = {}
     words: list[str] = []
-    vertical = _coordinate(ds, da, "vertical", "Z")
+    vertical = find_coordinate(ds, da, "vertical", "Z")
     if vertical is not None and vertical in da.dims:
         # in hPa or m, as everywhere in flowpipe (inputs may say Pa or km)
         values, kind = canonical_levels(ds[vertical].values, ds[vertical].attrs.get("units"))
@@ -380,7 +367,7 @@ def _select(ds: xr.Dataset, da: xr.DataArray, label: str, level: float | None,
         raise InputError(f"{label}: {da.name} has no vertical coordinate; leave out the level")
     elif vertical is not None and ds[vertical].size == 1:  # a field on one level: 10 m, say
         words.append(_one_level(ds[vertical]))
-    tname = _coordinate(ds, da, "time", "T")
+    tname = find_coordinate(ds, da, "time", "T")
     if tname is not None and tname in da.dims:
         texts = [iso_time(t, "minutes") for t in ds[tname].values]
         runs, hours = _forecast_along(ds, tname, label)

@@ -15,6 +15,7 @@ import tempfile
 from pathlib import Path
 
 import cf_units
+import cf_xarray  # noqa: F401  (registers the .cf accessor)
 import numpy as np
 import pytest
 import xarray as xr
@@ -171,3 +172,25 @@ def test_regional_grid_across_the_date_line_stays_continuous(tmp_path):
     np.testing.assert_allclose(steps, 5.0)
     np.testing.assert_allclose(np.mod(wind["longitude"].values, 360.0), np.mod(lon, 360.0))
     np.testing.assert_allclose(wind["u"].values, ref["u"])
+
+
+def test_time_and_level_under_the_files_own_names_without_axis_attributes(tmp_path):
+    # CF 1.11 sections 4.3 and 4.4: a vertical coordinate is identified by units of pressure,
+    # a time coordinate by units "hours since ..."; cf-xarray's guess_coord_axis finds them
+    # under the file's own names (valid, lev_p) where no attribute says axis or
+    # standard_name. The canonical wind is that of the sample file whose names are usual.
+    root = Path(__file__).resolve().parents[1] / "sample_data"
+    odd = tmp_path / "odd.nc"
+    with xr.open_dataset(root / "demo_global.nc") as ds:
+        renamed = ds.isel(time=slice(0, 3)).rename(time="valid", plev="lev_p")
+        renamed["valid"].attrs = {"long_name": "valid time"}
+        renamed["lev_p"].attrs = {"units": "hPa", "long_name": "pressure"}
+        renamed.to_netcdf(odd, encoding={"valid": {"units": "hours since 2026-01-12"}})
+    with xr.open_dataset(odd) as written:  # no attribute says axis or standard_name
+        assert not written.cf.axes.get("T") and not written.cf.axes.get("Z")
+    got = fp.open_wind(odd)
+    expected = fp.open_wind(root / "demo_global.nc").isel(time=slice(0, 3))
+    assert got["u"].dims == expected["u"].dims == ("time", "level", "latitude", "longitude")
+    np.testing.assert_array_equal(got["time"].values, expected["time"].values)
+    np.testing.assert_array_equal(got["level"].values, expected["level"].values)
+    np.testing.assert_array_equal(got["u"].values, expected["u"].values)
