@@ -758,10 +758,12 @@ def circulation(wind: xr.Dataset, contours: Sequence[Contour | MovingCircle], *,
         "mean_vorticity": circ / a, "mean_divergence": flux / a,
         "mean_vorticity_gridded": zeta_int / a, "mean_divergence_gridded": delta_int / a,
     })
-    ds["vorticity_disagreement"] = abs(ds.mean_vorticity - ds.mean_vorticity_gridded) / abs(
-        ds.mean_vorticity_gridded)
-    ds["divergence_disagreement"] = abs(ds.mean_divergence - ds.mean_divergence_gridded) / abs(
-        ds.mean_divergence_gridded)
+    # relative to the larger of the contour's two gridded means, the scale of its kinematics:
+    # the divergence of a non-divergent flow is zero to rounding on both sides, and their
+    # difference over it alone meant nothing (a trial saw 3e19 for solid-body rotation)
+    scale = np.maximum(abs(ds.mean_vorticity_gridded), abs(ds.mean_divergence_gridded))
+    ds["vorticity_disagreement"] = abs(ds.mean_vorticity - ds.mean_vorticity_gridded) / scale
+    ds["divergence_disagreement"] = abs(ds.mean_divergence - ds.mean_divergence_gridded) / scale
     pressure = wind.attrs.get("level_type") == "pressure" and "level" in ds.dims
     if pressure:
         pa = wind.level.values * 100.0
@@ -801,8 +803,10 @@ _ATTRS = {
     "mean_divergence": ("s-1", "area-mean divergence from the line integral"),
     "mean_vorticity_gridded": ("s-1", "area-mean of the gridded relative vorticity"),
     "mean_divergence_gridded": ("s-1", "area-mean of the gridded divergence"),
-    "vorticity_disagreement": ("1", "relative disagreement of line and area mean vorticity"),
-    "divergence_disagreement": ("1", "relative disagreement of line and area mean divergence"),
+    "vorticity_disagreement": ("1", "disagreement of line and area mean vorticity, relative to "
+                               "the larger of the area mean vorticity and divergence"),
+    "divergence_disagreement": ("1", "disagreement of line and area mean divergence, relative to "
+                                "the larger of the area mean vorticity and divergence"),
     "omega": ("Pa s-1", "kinematic vertical velocity in pressure coordinates of the column"),
     "omega_base": ("hPa", "pressure of the lowest level of the omega column, where omega is "
                    "surface_omega: the lowest level with complete data up to the top"),

@@ -251,6 +251,19 @@ def test_dateline_box_and_off_centre_polar_circle_match_area_integrals():
     assert out.circulation.values.ravel()[0] == pytest.approx(exact, rel=1e-4)
 
 
+def test_divergence_disagreement_of_a_non_divergent_flow_is_small():
+    # Solid-body rotation (Williamson et al. 1992, test case 1) has no divergence: line and
+    # area mean divergence are both zero to rounding, and their disagreement, on the scale of
+    # the contour's kinematics (its mean vorticity, 2 U sin(phi) / a), is as small as the
+    # vorticity's, not the ratio of two rounding errors.
+    out = C.circulation(_solid(0.5), [C.box(30, 60, 0, 90), C.circle(90, 0, 1000),
+                                      C.box(20, 50, 170, -160)]).compute()
+    assert np.all(np.abs(out.mean_divergence_gridded.values) < 1e-12 * np.abs(
+        out.mean_vorticity_gridded.values))  # the case: no divergence
+    assert np.all(out.divergence_disagreement.values < 1e-3), out.divergence_disagreement.values
+    assert np.all(out.vorticity_disagreement.values < 1e-3)
+
+
 def test_line_vs_area_on_rossby_haurwitz_second_order():
     # Williamson et al. (1992) test case 6 (tests/reference_winds.py): the disagreement of line and
     # gridded-area mean vorticity falls at second order with refinement (measured order
