@@ -1171,10 +1171,6 @@ def _coordinate_values(ds: xr.Dataset, dims: Iterable) -> list[tuple[str, np.nda
     return [(str(d), ds[d].values if d in ds.coords else np.arange(ds.sizes[d])) for d in dims]
 
 
-def _first_location(bad: np.ndarray, coords: list[tuple[str, np.ndarray]]) -> str:
-    return _point_text(np.unravel_index(int(np.argmax(bad)), bad.shape), coords)
-
-
 def _point_text(index: tuple[int, ...], coords: list[tuple[str, np.ndarray]]) -> str:
     """``time 2026-01-12T00:00:00, level 500, latitude -70, longitude 40``."""
     parts = []
@@ -1200,15 +1196,24 @@ def _implausible_mask(u: np.ndarray, v: np.ndarray, *, max_speed: float, refuse:
     if bad.any():
         local = [(dim, values[o:o + n]) for (dim, values), o, n
                  in zip(coords, offsets, bad.shape, strict=True)]
-        where = _first_location(bad, local)
+        first = np.unravel_index(int(np.argmax(bad)), bad.shape)
         count = int(bad.sum())
         nonfinite = int((np.isinf(u) | np.isinf(v)).sum())
-        what = (f"{count} point(s) of {names[0]}/{names[1]} not finite or faster than "
-                f"{max_speed:g} m s-1 ({nonfinite} not finite), one of them at {where}")
+        # a block is one slab as files are read (or the whole of an in-memory wind): its
+        # count is the slab's, and which slab is met first depends on the scheduler
+        slabs = int(np.prod(bad.shape[:-2], dtype=int))
+        slab = _point_text(first[:-2], local[:-2])
+        scope = (f"in {slabs} slabs" if slabs > 1 else f"in the slab of {slab}" if slab
+                 else "in the slab")
+        where = _point_text(first[-2:] if slabs == 1 else first,
+                            local[-2:] if slabs == 1 else local)
+        what = (f"{count} point(s) of {names[0]}/{names[1]} {scope} not finite or faster than "
+                f"{max_speed:g} m s-1 ({nonfinite} not finite), the first at {where}")
         if refuse:
-            raise InputError(f"{source}: {what}; fix the file, or treat them as missing with "
-                             "--implausible missing (config: [input] implausible = \"missing\") "
-                             "or raise the limit with --max-speed")
+            raise InputError(f"{source}: {what}; flowpipe inspect counts those of every slab; fix "
+                             "the file, or treat them as missing with --implausible missing "
+                             "(config: [input] implausible = \"missing\") or raise the limit with "
+                             "--max-speed")
         warnings.warn(f"{source}: {what}: treated as missing", FlowpipeWarning, stacklevel=2)
     return bad
 

@@ -62,6 +62,28 @@ def test_fill_value_written_as_data_is_refused(tmp_path):
         assert list(outdir.iterdir()) == []  # no output, no temporary file
 
 
+def test_the_count_refused_is_that_of_the_slab_named(tmp_path):
+    # -9999 written into several slabs, a different number of points in each: whichever slab
+    # the refusal meets first, the count it gives is that slab's own (counted here with
+    # numpy from the file), and it points to inspect for the whole file
+    with xr.open_dataset(SAMPLE) as src:
+        ds = src.isel(time=slice(0, 3)).load()
+    u = ds["u"].values.copy()
+    for t in range(3):
+        u[t, 0, 10:12, 20:20 + 3 * (t + 1)] = -9999.0  # 6, 12 and 18 points
+    ds["u"] = (ds["u"].dims, u, ds["u"].attrs)
+    source = _write(tmp_path / "marker.nc", ds)
+    run = _run("decompose", source, "-o", tmp_path / "d.nc")
+    assert run.returncode == 2, run.stderr
+    (error,) = _error_lines(run.stderr)
+    with xr.open_dataset(source) as ds:
+        counts = {str(t)[:19]: int((np.abs(ds["u"].sel(time=t, plev=850.0)) > 250.0).sum())
+                  for t in ds.time.values}
+    named = [t for t in counts if f"in the slab of time {t}, level 850 " in error]
+    assert len(named) == 1, error
+    assert f" {counts[named[0]]} point(s) " in error and "flowpipe inspect" in error, error
+
+
 def test_infinity_is_counted_as_not_finite(tmp_path):
     src = _bad_file(tmp_path, np.inf, np.float32)
     run = _run("decompose", src, "-o", tmp_path / "d.nc")
