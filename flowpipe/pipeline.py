@@ -114,7 +114,7 @@ class Progress:
     def __init__(self, total: int, quiet: bool) -> None:
         from .progress import bar
 
-        self.bar = bar(total, "step", quiet)
+        self.bar = bar(total, "step", quiet, desc="run")
 
     def advance(self, steps: int, text: str) -> None:
         self.bar.set_postfix_str(f"last: {text[:50]}", refresh=False)

@@ -93,6 +93,7 @@ def test_batch_run_shows_steps_on_a_terminal(wind_file, tmp_path):
     code, shown = _on_terminal(["run", str(config)])
     assert code == 0
     assert "1/1" in shown and "step" in shown
+    assert "run: " in shown  # the bar says what it counts, as decompose's does
 
 
 @pytest.fixture(scope="module")
