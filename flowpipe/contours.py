@@ -34,9 +34,10 @@ import csv
 import json
 import os
 import warnings
-from collections.abc import Sequence
+from collections.abc import Iterable, Sequence
 from dataclasses import dataclass
 from pathlib import Path
+from typing import Any
 
 import numpy as np
 import scipy.sparse as sp
@@ -254,21 +255,21 @@ def read_track(path: str | os.PathLike, radius_km: float) -> MovingCircle:
     return follow(times, lat, lon, radius_km, name=p.stem)
 
 
-def gather(boxes: Sequence[Sequence[float]] = (), circles: Sequence[Sequence[float]] = (),
-           polygons: Sequence[str | os.PathLike] = (), tracks: Sequence[str | os.PathLike] = (),
+def gather(items: Iterable[tuple[str, Any]],
            track_radius_km: float | None = None) -> list[Contour | MovingCircle]:
-    """Contours in the order the command line and batch configs list them.
+    """Contours in the order given: the command line's, in a batch config by kind.
 
-    ``boxes`` as ``[S, N, W, E]``, ``circles`` as ``[lat, lon, radius_km]``, ``polygons``
-    and ``tracks`` as files (:func:`read_polygon`, :func:`read_track`), the tracks' circles
-    of radius ``track_radius_km``.
+    ``items`` are pairs ``(kind, value)``: ``("box", [S, N, W, E])``, ``("circle", [lat,
+    lon, radius_km])``, ``("polygon", file)`` (:func:`read_polygon`) and ``("track",
+    file)`` (:func:`read_track`), the tracks' circles of radius ``track_radius_km``.
     """
-    if tracks and track_radius_km is None:
+    items = list(items)
+    if any(kind == "track" for kind, _ in items) and track_radius_km is None:
         raise UsageError("a track needs the radius of its circle (--radius-km, or "
                          "track_radius_km in [circulation])")
-    return ([box(*b) for b in boxes] + [circle(*c) for c in circles]
-            + [read_polygon(p) for p in polygons]
-            + [read_track(t, track_radius_km) for t in tracks])
+    made = {"box": lambda b: box(*b), "circle": lambda c: circle(*c), "polygon": read_polygon,
+            "track": lambda t: read_track(t, track_radius_km)}
+    return [made[kind](value) for kind, value in items]
 
 
 def _read_text(path: Path, what: str) -> str:

@@ -341,7 +341,10 @@ class Runner:
 
         def make(path: Path) -> None:
             polygons, tracks = files[:len(cfg["polygons"])], files[len(cfg["polygons"]):]
-            contours = gather(cfg["boxes"], cfg["circles"], polygons, tracks, cfg["track_radius_km"])
+            contours = gather([*(("box", b) for b in cfg["boxes"]),
+                               *(("circle", c) for c in cfg["circles"]),
+                               *(("polygon", p) for p in polygons),
+                               *(("track", t) for t in tracks)], cfg["track_radius_km"])
             self._write(circulation(self._wind(unit), contours, levels=cfg["levels"],
                                     obrien=cfg["obrien"], surface_omega=cfg["surface_omega"],
                                     top_omega=cfg["top_omega"]), path)

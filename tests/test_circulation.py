@@ -520,12 +520,12 @@ def test_readme_storm_example_stores_centre_and_geometry(tmp_path):
         assert nc["centre_latitude"].dimensions == ("contour", "time")  # CF-1.11 section 2.4
         assert nc["centre_longitude"].dimensions == ("contour", "time")
         names = list(nc["contour_name"][:])
-        assert names == ["box 46,56,-26,-4", "demo_storm_track"]  # boxes come first
-        lat = nc["centre_latitude"][:].filled(np.nan)[::-1].T  # (time, contour), track first
-        lon = nc["centre_longitude"][:].filled(np.nan)[::-1].T
+        assert names == ["demo_storm_track", "box 46,56,-26,-4"]  # the command line's order
+        lat = nc["centre_latitude"][:].filled(np.nan).T  # (time, contour), track first
+        lon = nc["centre_longitude"][:].filled(np.nan).T
         radius = nc["radius"][:].filled(np.nan)
-        assert np.isnan(lat[:, 1]).all() and np.isnan(radius[0])  # the box has none
-        assert radius[1] == 500e3
+        assert np.isnan(lat[:, 1]).all() and np.isnan(radius[1])  # the box has none
+        assert radius[0] == 500e3
         np.testing.assert_allclose(lat[::2, 0], [50.0, 51.2, 52.4], atol=1e-9)
         np.testing.assert_allclose(lon[::2, 0], [-20.0, -15.2, -10.4], atol=1e-9)
         _, _, d1 = geod.inv(lon[0, 0], lat[0, 0], lon[1, 0], lat[1, 0])
@@ -534,14 +534,14 @@ def test_readme_storm_example_stores_centre_and_geometry(tmp_path):
         assert d1 == pytest.approx(d / 2, rel=1e-9) and d2 == pytest.approx(d / 2, rel=1e-9)
         geometry = nc[nc["circulation"].geometry]
         assert geometry.geometry_type == "polygon"
-        first, count = nc[geometry.node_count][:]  # the box's nodes, then the circle's
+        count = nc[geometry.node_count][0]  # the circle's nodes, then the box's
         xname, yname = geometry.node_coordinates.split()
-        node_lon, node_lat = nc[xname][first:first + count], nc[yname][first:first + count]
+        node_lon, node_lat = nc[xname][:count], nc[yname][:count]
         _, _, r = geod.inv(np.full(count, lon[0, 0]), np.full(count, lat[0, 0]),
                            node_lon, node_lat)
         np.testing.assert_allclose(r, 500e3, rtol=1e-9)
         assert nc["circulation"].dimensions == ("contour", "time", "level")
-        circ = nc["circulation"][1]
+        circ = nc["circulation"][0]
     # the README's claim: the following circle keeps the storm's circulation (to 0.3 %)
     assert np.ptp(circ, axis=0).max() < 3e-3 * np.abs(circ).min()
 
@@ -583,3 +583,20 @@ def test_circulation_shows_slabs_on_a_terminal_and_nothing_quiet(tmp_path):
     assert "6/6" in shown  # 3 times x 2 levels, all integrated
     code, shown = _on_terminal([*args, "--quiet"])
     assert code == 0 and shown == ""
+
+
+def test_contours_are_written_in_the_order_the_command_line_gives(tmp_path, capsys):
+    # the contour dimension follows the command line, whatever the kinds (common practice:
+    # a user reads contour k as the k-th given); twice in one process, so that nothing of
+    # the first call's list is carried into the second
+    for first, second in ((["--circle", "90,0,1000"], ["--box", "30,60,0,90"]),
+                          (["--box", "30,60,0,90"], ["--circle", "90,0,1000"])):
+        out = tmp_path / f"{first[0].strip('-')}.nc"
+        code, _ = _cli(capsys, "sample_data/demo_global.nc", "-o", str(out), "--quiet",
+                       *first, *second, "--circle", "-45,100,800")
+        assert code == 0
+        with xr.open_dataset(out) as ds:
+            names = [str(n) for n in ds.contour_name.values]
+        assert len(names) == 3 and names[2] == "circle -45,100,800km", names
+        assert names[0].startswith(first[0].strip("-")) and names[1].startswith(
+            second[0].strip("-")), names

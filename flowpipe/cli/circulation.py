@@ -35,6 +35,14 @@ def _numbers(count: int, what: str):
     return parse
 
 
+class _InOrder(argparse.Action):
+    """Collect the contour options in ``contours`` as ``(kind, value)`` pairs, in the order
+    the command line gives them (the output's contours follow it)."""
+
+    def __call__(self, parser, namespace, values, option_string=None) -> None:
+        namespace.contours = [*(getattr(namespace, "contours", None) or []), (self.const, values)]
+
+
 def register(sub: argparse._SubParsersAction, common: argparse.ArgumentParser) -> argparse.ArgumentParser:
     parser = sub.add_parser(
         "circulation", parents=[common],
@@ -45,14 +53,15 @@ def register(sub: argparse._SubParsersAction, common: argparse.ArgumentParser) -
     )
     parser.add_argument("files", nargs="+", metavar="FILE", help="NetCDF files or globs")
     parser.add_argument("-o", "--output", required=True, type=data_file, metavar="OUT.nc")
-    parser.add_argument("--box", action="append", default=[], metavar="S,N,W,E",
+    parser.add_argument("--box", action=_InOrder, const="box", dest="contours", metavar="S,N,W,E",
                         type=_numbers(4, "S,N,W,E in degrees"),
                         help="box bounded by latitudes S, N and meridians W to E (eastward)")
-    parser.add_argument("--circle", action="append", default=[], metavar="LAT,LON,RADIUS_KM",
+    parser.add_argument("--circle", action=_InOrder, const="circle", dest="contours",
+                        metavar="LAT,LON,RADIUS_KM",
                         type=_numbers(3, "LAT,LON,RADIUS_KM"), help="great-circle-radius circle")
-    parser.add_argument("--polygon", action="append", default=[], metavar="FILE",
+    parser.add_argument("--polygon", action=_InOrder, const="polygon", dest="contours", metavar="FILE",
                         help="CSV of latitude,longitude vertices, or GeoJSON polygon")
-    parser.add_argument("--follow", action="append", default=[], metavar="TRACK.csv",
+    parser.add_argument("--follow", action=_InOrder, const="track", dest="contours", metavar="TRACK.csv",
                         help="a circle of --radius-km whose centre follows a track (CSV "
                         "time,latitude,longitude; interpolated in time along great circles)")
     parser.add_argument("--radius-km", type=float, metavar="R",
@@ -91,9 +100,10 @@ def run(args: argparse.Namespace) -> int:
     from ..store import write
 
     options = output_options(args)
-    if args.radius_km is not None and not args.follow:
+    given = args.contours or []
+    if args.radius_km is not None and not any(kind == "track" for kind, _ in given):
         raise UsageError("--radius-km is the radius of --follow circles; give --follow TRACK.csv")
-    contours = gather(args.box, args.circle, args.polygon, args.follow, args.radius_km)
+    contours = gather(given, args.radius_km)
     if not contours:
         raise UsageError("give at least one contour: --box, --circle, --polygon or --follow")
     wind = open_wind(args.files, u=args.u, v=args.v, **forecast_options(args))
