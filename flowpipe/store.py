@@ -23,6 +23,7 @@ from concurrent.futures import ThreadPoolExecutor
 from pathlib import Path
 
 import dask
+import dask.threaded
 import netCDF4
 import numpy as np
 import xarray as xr
@@ -36,7 +37,7 @@ from .choices import (
     encoding_refusal,
     is_zarr_path,
 )
-from .cluster import distributed_client
+from .cluster import THREADED, distributed_client, local_threads
 from .errors import (
     NO_SPACE_ERRNOS,
     FlowpipeError,
@@ -503,10 +504,11 @@ def write(ds: xr.Dataset, path: str | os.PathLike, *, precision: str = "input",
     certain, upper = _stored_bytes(out, encoding)
     check_space(final, certain, upper)
     if is_zarr_path(final):
-        with atomic_path(final, sources(ds), needed=upper) as tmp:
+        with atomic_path(final, sources(ds), needed=upper) as tmp, _quiet_on_failure():
             _write_zarr(out, tmp, _zarr_encoding(out, encoding, compression), lazy)
         return final
-    with atomic_path(final, sources(ds), needed=upper) as tmp, _write_chunk_cache():
+    with atomic_path(final, sources(ds), needed=upper) as tmp, _write_chunk_cache(), \
+            _quiet_on_failure():
         if compression != "none" and significant_digits is None \
                 and distributed_client() is None:  # (workers cannot share an open HDF5 file)
             values = _write_netcdf_chunks(out, tmp, encoding, lazy)
@@ -529,6 +531,33 @@ def write(ds: xr.Dataset, path: str | os.PathLike, *, precision: str = "input",
                 if significant_digits is not None:
                     _drop_library_quantization_attrs(nc)
     return final
+
+
+@contextlib.contextmanager
+def _quiet_on_failure() -> Iterator[None]:
+    """Run the computations inside on dask's local threads, in a pool of their own that is
+    quiet again before an error leaves.
+
+    dask's local scheduler raises the first error of a task (or an interrupt) at once,
+    while its other threads go on writing chunks: the temporary output that
+    :func:`atomic_path` then removes would refuse to go ("Directory not empty") or
+    reappear in part. Here the tasks not started are dropped and the running ones
+    finish before the error goes on (:meth:`concurrent.futures.Executor.shutdown`). The
+    pool has the threads the scheduler would have (:func:`flowpipe.cluster.local_threads`);
+    a dask.distributed client or another scheduler is left to compute as configured.
+    """
+    scheduler = dask.config.get("scheduler", None)
+    if distributed_client() is not None or not (scheduler in THREADED
+                                                or scheduler is dask.threaded.get):
+        yield
+        return
+    # (dask's own kind of pool: the tasks see the context variables of the caller)
+    pool = dask.threaded.ContextAwareThreadPoolExecutor(local_threads())
+    try:
+        with dask.config.set(scheduler=dask.threaded.get, pool=pool):
+            yield
+    finally:
+        pool.shutdown(wait=True, cancel_futures=True)
 
 
 #: The names in the dask keys of the tasks that write computed chunks: xarray's own

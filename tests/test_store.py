@@ -14,8 +14,12 @@ External references used here:
 
 from __future__ import annotations
 
+import asyncio
 import os
+import threading
+import time
 import zlib
+from collections.abc import Callable
 
 import dask
 import dask.array as da
@@ -247,3 +251,97 @@ def test_chunks_compressed_in_the_tasks_read_back_as_netcdf_c_writes_them(parts,
                                for s, c, n in zip(start, shape, dataset.shape, strict=True))
                 within = tuple(slice(0, r.stop - r.start) for r in inside)
                 np.testing.assert_array_equal(values.reshape(shape)[within], stored[inside])
+
+
+
+class _SlowFirstChunk:
+    """The first chunk write of a computation held back until slab ``bad`` has begun, then
+    slow; slab ``bad`` fails while that write runs (so the failure always meets a chunk
+    write under way, whatever order dask runs the tasks in)."""
+
+    def __init__(self, broken: BaseException) -> None:
+        self.broken, self.running, self.first = broken, 0, True
+        self.lock, self.bad_began = threading.Lock(), threading.Event()
+
+    def write(self, write: Callable[[], None]) -> None:
+        with self.lock:
+            first, self.first = self.first, False
+            self.running += first
+        if not first:
+            return write()
+        self.bad_began.wait(60)
+        time.sleep(0.5)
+        try:
+            return write()
+        finally:
+            with self.lock:
+                self.running -= 1
+
+    def fail(self) -> None:
+        self.bad_began.set()
+        deadline = time.monotonic() + 60
+        while not self.running and time.monotonic() < deadline:
+            time.sleep(0.01)
+        raise self.broken
+
+
+def _slab_stack(n: int, bad: int, chunks: _SlowFirstChunk) -> xr.Dataset:
+    """``n`` slabs of a lazy field of ones, each large enough to be a chunk of its own;
+    slab ``bad`` fails (``chunks.fail``)."""
+    def block(x, block_info=None):
+        if block_info[0]["chunk-location"][0] == bad:
+            chunks.fail()
+        return x
+
+    data = da.map_blocks(block, da.ones((n, 1, 91, 180), chunks=(1, 1, 91, 180)), dtype=float)
+    return xr.Dataset(
+        {"vorticity": (("time", "level", "latitude", "longitude"), data,
+                       {"units": "s-1", "standard_name": "atmosphere_relative_vorticity"})},
+        coords={"time": np.arange(n).astype("datetime64[h]").astype("datetime64[ns]"),
+                "level": ("level", [500.0], {"units": "hPa"}),
+                "latitude": ("latitude", np.linspace(-90, 90, 91), {"units": "degrees_north"}),
+                "longitude": ("longitude", np.arange(0, 360, 2.0), {"units": "degrees_east"})})
+
+
+@pytest.mark.parametrize("suffix", [".nc", ".zarr"])
+@pytest.mark.parametrize("broken", [RuntimeError("slab 5 broken"), KeyboardInterrupt()],
+                         ids=["error", "interrupt"])
+def test_a_failed_write_waits_for_its_chunk_writes_then_raises_its_own_error(
+        tmp_path, monkeypatch, suffix, broken):
+    # One slab fails (or the user interrupts) while another thread is storing a chunk:
+    # the write must raise that slab's error (not the "Directory not empty" of removing a
+    # store still being written) only once no chunk write runs any more, and leave nothing
+    # beside the final name, not even a temporary store that a late chunk recreated
+    # (outputs appear only complete, under a temporary name first: common practice).
+    import zarr.storage
+
+    chunks = _SlowFirstChunk(broken)
+    if suffix == ".zarr":
+        plain_set = zarr.storage.LocalStore.set
+
+        async def slow_set(self, key, value):
+            if key.startswith("vorticity/c."):  # a chunk the tasks write (not metadata,
+                # nor coordinates, written before the computation)
+                await asyncio.to_thread(chunks.write, lambda: None)  # (zarr's loop stays free)
+            return await plain_set(self, key, value)
+
+        monkeypatch.setattr(zarr.storage.LocalStore, "set", slow_set)
+    else:
+        plain_writer = store._chunk_writer
+
+        def slow_writer(dataset, unencoded=False):
+            put = plain_writer(dataset, unencoded)
+            return lambda block, start: chunks.write(lambda: put(block, start))
+
+        monkeypatch.setattr(store, "_chunk_writer", slow_writer)
+    target = tmp_path / f"out{suffix}"
+    with dask.config.set(scheduler="threads", num_workers=3), \
+            pytest.raises(type(broken), match=str(broken) or None):
+        fp.write(_slab_stack(12, 5, chunks), target)
+    still_running = chunks.running
+    deadline = time.monotonic() + 60  # (a late chunk write of a writer that did not wait)
+    while chunks.running and time.monotonic() < deadline:
+        time.sleep(0.05)
+    assert chunks.bad_began.is_set()
+    assert still_running == 0
+    assert sorted(p.name for p in tmp_path.iterdir()) == []
