@@ -103,7 +103,9 @@ def atomic_path(path: str | os.PathLike, protect: Iterable[str | os.PathLike] = 
     choose the format from it (matplotlib) see the right one. Errors of the
     user's environment while writing (permissions, a read-only or full disk)
     become one-line :class:`~flowpipe.errors.EnvironmentProblem` errors that
-    name the final path, and the temporary file is removed.
+    name the final path, and the temporary file is removed. Other errors that
+    name the temporary path (the libraries writing the file know only that one)
+    name the final one instead.
 
     Parameters
     ----------
@@ -118,7 +120,7 @@ def atomic_path(path: str | os.PathLike, protect: Iterable[str | os.PathLike] = 
     Raises
     ------
     flowpipe.errors.UsageError
-        When ``path`` is one of ``protect``.
+        When ``path`` is one of ``protect``, or too long for its temporary name.
     flowpipe.errors.EnvironmentProblem
         When the operating system refuses the write.
     """
@@ -131,6 +133,8 @@ def atomic_path(path: str | os.PathLike, protect: Iterable[str | os.PathLike] = 
     except OSError as exc:
         raise from_os_error(exc) from None
     tmp = temporary_name(final)
+    # (an earlier store under the final name is first moved to a name of its own)
+    _check_name_length(final, temporary_name(final, OLD_TAG) if final.is_dir() else tmp)
     try:
         yield tmp
         if tmp.is_dir():  # a store of many files (Zarr)
@@ -144,17 +148,21 @@ def atomic_path(path: str | os.PathLike, protect: Iterable[str | os.PathLike] = 
     except OSError as exc:
         if exc.errno in NO_SPACE_ERRNOS:
             raise no_space(final, needed or _size(tmp)) from None
-        # an input that fails while it is read for the write is named as itself
-        named = exc.filename if exc.filename and Path(exc.filename) != tmp else final
-        raise from_os_error(exc, named) from None
+        _name_final(exc, tmp, final)
+        # (an input that fails while it is read for the write is named as itself)
+        raise from_os_error(exc, exc.filename or final) from None
     except Exception as exc:
         # netCDF-C reports a full disk as "NetCDF: HDF error" (no errno): look at the disk
         if shutil.disk_usage(final.parent).free < FULL_DISK_BYTES:
             raise no_space(final, needed or _size(tmp)) from exc
+        _name_final(exc, tmp, final)
         raise
     finally:
-        # (a read-only file system refuses even to remove what is not there)
-        with contextlib.suppress(FileNotFoundError):
+        # What cannot be removed (a read-only file system refuses even to look at what is
+        # not there; a name too long for it) is left to the sweep of the next run
+        # (flowpipe.bookkeeping.sweep_temporaries): the error that led here is the one to
+        # report. (On success nothing is left to remove.)
+        with contextlib.suppress(OSError):
             if tmp.is_dir() and not tmp.is_symlink():
                 shutil.rmtree(tmp)
             elif os.path.lexists(tmp):
@@ -162,6 +170,39 @@ def atomic_path(path: str | os.PathLike, protect: Iterable[str | os.PathLike] = 
                 # close a file it could not flush), and its blocks would stay taken
                 os.truncate(tmp, 0)
                 tmp.unlink()
+
+
+#: The longest file name POSIX file systems take (NAME_MAX), where the system cannot say.
+NAME_MAX = 255
+
+
+def _check_name_length(final: Path, tmp: Path) -> None:
+    """Refuse a name whose temporary name is longer than the file system takes (netCDF-C
+    would report "Permission denied", of the temporary name), saying how long it may be."""
+    try:
+        limit = os.pathconf(final.parent, "PC_NAME_MAX")
+    except (OSError, ValueError):
+        limit = NAME_MAX
+    extra = len(os.fsencode(tmp.name)) - len(os.fsencode(final.name))
+    if len(os.fsencode(final.name)) + extra > limit:
+        raise UsageError(f"{final}: file name too long: written first under a temporary name "
+                         f"{extra} bytes longer, it may have at most {limit - extra} bytes "
+                         "here; choose a shorter name")
+
+
+def _name_final(exc: BaseException, tmp: Path, final: Path) -> None:
+    """Make ``exc`` name ``final`` wherever it names the temporary path ``tmp`` or a path in
+    it (the libraries that write the file know only that one): as its file names
+    (``final`` itself) and in its text."""
+    old, new = str(tmp), str(final)
+    exc.args = tuple(a.replace(old, new) if isinstance(a, str) else a for a in exc.args)
+    if isinstance(exc, OSError):
+        for attr in ("filename", "filename2"):
+            name = getattr(exc, attr)
+            if isinstance(name, str | bytes | os.PathLike) and Path(os.fsdecode(name)).is_relative_to(tmp):
+                setattr(exc, attr, new)
+        if exc.strerror:
+            exc.strerror = exc.strerror.replace(old, new)
 
 
 def temporary_name(final: Path, tag: str = "") -> Path:
@@ -188,6 +229,10 @@ def _fsync_file(path: Path) -> None:
 FSYNC_THREADS = 8
 
 
+#: What the temporary name of an earlier store being replaced ends with.
+OLD_TAG = "-old"
+
+
 def _publish_directory(tmp: Path, final: Path) -> None:
     """Rename a complete directory store into place, its files flushed to disk first.
 
@@ -206,7 +251,7 @@ def _publish_directory(tmp: Path, final: Path) -> None:
         list(pool.map(_fsync_directory, directories))
     old = None
     if final.is_dir() and not final.is_symlink():
-        old = temporary_name(final, "-old")
+        old = temporary_name(final, OLD_TAG)
         os.replace(final, old)
     os.replace(tmp, final)
     if old is not None:

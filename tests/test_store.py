@@ -15,7 +15,9 @@ External references used here:
 from __future__ import annotations
 
 import asyncio
+import errno
 import os
+import re
 import threading
 import time
 import zlib
@@ -28,11 +30,12 @@ import netCDF4
 import numpy as np
 import pytest
 import xarray as xr
+import zarr.storage
 from test_compliance import GLOBAL, decomposition_like, trajectory_like
 
 import flowpipe as fp
 from flowpipe import store
-from flowpipe.errors import UsageError
+from flowpipe.errors import FlowpipeError, UsageError
 
 #: IEEE 754 binary32 unit roundoff, and the largest rounding error of a subnormal
 #: (half their spacing 2**-149), for values below the smallest normal 2**-126.
@@ -313,8 +316,6 @@ def test_a_failed_write_waits_for_its_chunk_writes_then_raises_its_own_error(
     # store still being written) only once no chunk write runs any more, and leave nothing
     # beside the final name, not even a temporary store that a late chunk recreated
     # (outputs appear only complete, under a temporary name first: common practice).
-    import zarr.storage
-
     chunks = _SlowFirstChunk(broken)
     if suffix == ".zarr":
         plain_set = zarr.storage.LocalStore.set
@@ -345,3 +346,72 @@ def test_a_failed_write_waits_for_its_chunk_writes_then_raises_its_own_error(
     assert chunks.bad_began.is_set()
     assert still_running == 0
     assert sorted(p.name for p in tmp_path.iterdir()) == []
+
+
+@pytest.mark.parametrize("suffix", [".nc", ".zarr"])
+@pytest.mark.parametrize("lazy", [False, True], ids=["in_memory", "lazy"])
+def test_a_name_too_long_for_its_temporary_name_is_refused_naming_it(parts, tmp_path, suffix,
+                                                                     lazy):
+    # POSIX pathconf(_PC_NAME_MAX): the longest file name the directory takes. A name
+    # within it whose temporary name is not is refused in one line naming it (neither the
+    # temporary name, nor "Permission denied" as netCDF-C says), with the length that
+    # works: that length does, one byte more does not.
+    limit = os.pathconf(tmp_path, "PC_NAME_MAX")
+    data = parts.chunk({"time": 1}) if lazy else parts
+    final = tmp_path / ("a" * (limit - len(suffix)) + suffix)
+    with pytest.raises(UsageError) as refused:
+        fp.write(data, final)
+    message = str(refused.value)
+    assert message.startswith(f"{final}: file name too long") and ".tmp-" not in message
+    longest = int(re.search(r"at most (\d+) bytes", message).group(1))
+    fits = tmp_path / ("b" * (longest - len(suffix)) + suffix)
+    fp.write(data, fits)
+    with pytest.raises(UsageError):
+        fp.write(data, tmp_path / ("c" * (longest + 1 - len(suffix)) + suffix))
+    assert [p.name for p in tmp_path.iterdir()] == [fits.name]
+
+
+def _zarr_chunk_fails(monkeypatch, error: Callable[[zarr.storage.LocalStore, str], Exception]):
+    """Writing a chunk of a Zarr store raises ``error(store, key)``."""
+    plain_set = zarr.storage.LocalStore.set
+
+    async def failing_set(self, key, value):
+        if "/c." in key:
+            raise error(self, key)
+        return await plain_set(self, key, value)
+
+    monkeypatch.setattr(zarr.storage.LocalStore, "set", failing_set)
+
+
+def _hdf5_open_fails(monkeypatch):
+    """Opening the file with h5py (to write its chunks) raises an error naming it in its
+    text, as h5py words HDF5's errors (from memory)."""
+    def failing_file(name, mode="r", **kwargs):
+        raise OSError(f"Unable to synchronously open file (unable to open file: name = "
+                      f"'{name}', errno = 5, error message = 'Input/output error', "
+                      "flags = 1, o_flags = 2)")
+
+    monkeypatch.setattr(h5py, "File", failing_file)
+
+
+@pytest.mark.parametrize(("suffix", "fail", "kind"), [
+    # the operating system's error for a chunk file inside the temporary store
+    (".zarr", lambda mp: _zarr_chunk_fails(mp, lambda store, key: OSError(
+        errno.EIO, os.strerror(errno.EIO), os.path.join(str(store.root), key))),
+     FlowpipeError),
+    # a library's error naming the temporary store in its text (an internal error)
+    (".zarr", lambda mp: _zarr_chunk_fails(mp, lambda store, key: ValueError(
+        f"cannot store {key} in {store!r}")), ValueError),
+    (".nc", _hdf5_open_fails, FlowpipeError),
+], ids=["zarr_os_error", "zarr_library_error", "hdf5_error"])
+def test_errors_while_writing_name_the_final_path_not_the_temporary_one(
+        parts, tmp_path, monkeypatch, suffix, fail, kind):
+    # The user typed the final name: an error met while the data are written under the
+    # temporary name (CF-NetCDF through HDF5, Zarr) names that one, once, in one line.
+    fail(monkeypatch)
+    final = tmp_path / f"out{suffix}"
+    with pytest.raises(kind) as failed:
+        fp.write(parts.chunk({"time": 1}), final)
+    message = str(failed.value)
+    assert str(final) in message and ".tmp-" not in message and "\n" not in message
+    assert list(tmp_path.iterdir()) == []
