@@ -800,7 +800,12 @@ def _write_zarr(out: xr.Dataset, tmp: Path, encoding: dict[str, dict], lazy: dic
     Dask-backed variables are rechunked to the store's chunks first, so every
     chunk is written by exactly one task; under a dask.distributed client the
     workers write them in parallel. Attributes that are dask arrays are
-    computed in the same pass and added to the metadata afterwards.
+    computed in the same pass and added to the metadata afterwards. Text
+    (trajectory identifiers, say) is stored as variable-length UTF-8 strings,
+    Zarr's ``string`` data type with the ``vlen-utf8`` codec, which every Zarr
+    format 3 reader decodes to strings; NumPy's fixed-width strings would be
+    stored as ``fixed_length_utf32``, a type zarr-python warns has no Zarr
+    format 3 specification (zarr-extensions, "data-types").
     """
     import zarr
 
@@ -809,6 +814,11 @@ def _write_zarr(out: xr.Dataset, tmp: Path, encoding: dict[str, dict], lazy: dic
         var = out.variables[name]
         if "chunks" in enc and dask.is_dask_collection(var.data):
             out[name] = var.chunk(dict(zip(var.dims, enc["chunks"], strict=True)))
+        elif _is_text(var) and var.ndim:
+            text = var.values
+            if text.dtype.kind == "S":
+                text = np.char.decode(text, "utf-8")
+            out[name] = var.copy(data=text.astype(object))  # (xarray's way to ask for them)
     with warnings.catch_warnings():
         # zarr-python writes consolidated metadata for format 3 ahead of the specification
         warnings.filterwarnings("ignore", message=".*[Cc]onsolidated metadata", category=UserWarning)

@@ -143,6 +143,30 @@ def test_quantization_is_refused_for_zarr_in_one_line(wind_file, tmp_path, capsy
     assert not list(tmp_path.iterdir())
 
 
+
+def test_trajectory_ids_in_a_store_are_variable_length_utf8_strings(tmp_path):
+    # The ids are text: the store holds Zarr's "string" data type with the "vlen-utf8"
+    # codec (zarr-extensions registry, data-types/string; from memory), not fixed-width
+    # UTF-32 nor bytes; zarr-python and xarray read them back as Python str, the same ids
+    # as xarray reads from the NetCDF output.
+    sample = Path(__file__).parents[1] / "sample_data" / "demo_global.nc"
+    outputs = {kind: tmp_path / f"tracks.{kind}" for kind in ("nc", "zarr")}
+    for path in outputs.values():
+        assert main(["advect", str(sample), "--start", "52,4,850", "--start", "40,-30,500",
+                     "--hours", "6", "-o", str(path)]) == 0
+    with xr.open_dataset(outputs["nc"]) as nc:
+        expected = list(nc["trajectory_id"].values)
+    assert len(expected) == 2 and all(type(i) is str and i.startswith("fp") for i in expected)
+    metadata = json.loads((outputs["zarr"] / "trajectory_id" / "zarr.json").read_text())
+    assert metadata["data_type"] == "string"
+    assert metadata["codecs"][0]["name"] == "vlen-utf8"
+    by_zarr = list(zarr.open_group(outputs["zarr"], mode="r")["trajectory_id"][:])
+    with xr.open_zarr(outputs["zarr"]) as store:
+        by_xarray = list(store["trajectory_id"].values)
+    for ids in (by_zarr, by_xarray):
+        assert ids == expected
+        assert all(type(i) is str for i in ids)  # (not numpy.str_ of a fixed width, not bytes)
+
 SLOW_WRITE = """
 import sys, time
 import dask.array as da, numpy as np, xarray as xr
