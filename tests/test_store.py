@@ -415,3 +415,43 @@ def test_errors_while_writing_name_the_final_path_not_the_temporary_one(
     message = str(failed.value)
     assert str(final) in message and ".tmp-" not in message and "\n" not in message
     assert list(tmp_path.iterdir()) == []
+
+
+@pytest.mark.parametrize("processes", [False, True], ids=["threads", "processes"])
+def test_netcdf_written_under_a_distributed_client_equals_the_local_file(parts, tmp_path,
+                                                                         processes):
+    # Under a dask.distributed client (LocalCluster, two workers) every way of writing a
+    # NetCDF file (the workers compute the data; one process writes the file, as HDF5
+    # cannot be shared between writers) gives the file the local threads write, as
+    # xarray's NetCDF reader reads it: lazy and in-memory data, an attribute computed with
+    # the data, quantization (with and without such an attribute), other compressions.
+    from distributed import Client, LocalCluster, get_task_stream
+    from test_zarr import WRITE_TIMES
+
+    from flowpipe.progress import key_name
+
+    lazy = parts.chunk({"time": 1})
+    with_attribute = lazy.assign_attrs(largest_vorticity=abs(lazy["vorticity"]).max().data)
+    cases = {"lazy": (lazy, {}), "in_memory": (parts, {}), "attribute": (with_attribute, {}),
+             "quantized": (lazy, {"significant_digits": 3}),
+             "quantized_attribute": (with_attribute, {"significant_digits": 3}),
+             "uncompressed": (lazy, {"compression": "none"}),
+             "zstd": (lazy, {"compression": "zstd"})}
+    for name, (data, options) in cases.items():
+        fp.write(data, tmp_path / f"local_{name}.nc", **options)
+    with LocalCluster(n_workers=2, threads_per_worker=1, processes=processes,
+                      dashboard_address=None) as cluster, Client(cluster) as client, \
+            get_task_stream(client) as tasks:
+        for name, (data, options) in cases.items():
+            fp.write(data, tmp_path / f"cluster_{name}.nc", **options)
+    # dask.distributed's record of the tasks: the workers stored the chunks
+    assert len({t["worker"] for t in tasks.data if "store-map" in key_name(t["key"])}) == 2
+    for name in cases:
+        with xr.open_dataset(tmp_path / f"local_{name}.nc") as a, \
+                xr.open_dataset(tmp_path / f"cluster_{name}.nc") as b:
+            for key in WRITE_TIMES:
+                a.attrs.pop(key, None)
+                b.attrs.pop(key, None)
+            xr.testing.assert_identical(b, a)
+            assert ("largest_vorticity" in b.attrs) == ("attribute" in name)
+    assert _leftovers(tmp_path) == []
