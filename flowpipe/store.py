@@ -590,6 +590,14 @@ def _quiet_on_failure() -> Iterator[None]:
     finish before the error goes on (:meth:`concurrent.futures.Executor.shutdown`). The
     pool has the threads the scheduler would have (:func:`flowpipe.cluster.local_threads`);
     a dask.distributed client or another scheduler is left to compute as configured.
+
+    Under a client this cannot be had: distributed cancels the tasks of a failed
+    computation but does not wait for those running on the workers (nor says when they
+    end), so a chunk of a Zarr store a worker is writing then can land after the
+    temporary store is removed and recreate part of it (``.NAME.tmp-PID-HEX.zarr/VAR/
+    c.…``) beside the final name, which :func:`flowpipe.bookkeeping.sweep_temporaries`
+    removes at the next batch run. Never under the final name: the store is renamed
+    into place only once every task has succeeded.
     """
     scheduler = dask.config.get("scheduler", None)
     if distributed_client() is not None or not (scheduler in THREADED

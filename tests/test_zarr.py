@@ -280,6 +280,37 @@ def test_distributed_run_writing_zarr_equals_the_local_run(wind_file, tmp_path):
     assert os.path.isdir(cluster_dir / "out" / name)
 
 
+def _second_time_broken(block, block_info=None):
+    if block_info[0]["chunk-location"][0] == 1:
+        raise RuntimeError("second time broken")
+    return block
+
+
+def test_a_failed_task_on_a_cluster_leaves_no_store_under_the_final_name(written, tmp_path):
+    # Workers write the chunks of a store in parallel (LocalCluster, two workers); when a
+    # task fails, its error is raised and no store appears under the final name, nor is
+    # an earlier one there replaced (POSIX rename(2): the store is renamed into place only
+    # once complete).
+    import dask.array as da
+    from distributed import Client, LocalCluster
+
+    with xr.open_zarr(written["zarr"]) as ds:
+        ds = ds.load()
+    field = ds["vorticity"].chunk({"time": 1, "level": 1})
+    bad = ds.assign(vorticity=field.copy(data=da.map_blocks(_second_time_broken, field.data,
+                                                                      dtype=field.dtype)))
+    assert bad["vorticity"].data.numblocks[0] == 2  # (the first time's slabs are written)
+    earlier = tmp_path / "earlier.zarr"
+    fp.write(ds[["streamfunction"]], earlier)
+    with LocalCluster(n_workers=2, threads_per_worker=2, processes=False,
+                      dashboard_address=None) as cluster, Client(cluster):
+        for target in (tmp_path / "new.zarr", earlier):
+            with pytest.raises(RuntimeError, match="second time broken"):
+                fp.write(bad, target)
+    assert not (tmp_path / "new.zarr").exists()
+    with xr.open_zarr(earlier) as again:
+        assert "streamfunction" in again and "vorticity" not in again
+
 def test_map_of_a_zarr_decomposition(written, tmp_path):
     # The same map as from the NetCDF file: the colour bar spans the same values
     # (matplotlib's ScalarMappable limits).
