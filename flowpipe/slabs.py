@@ -10,7 +10,6 @@ budget of the transforms. Used by :mod:`flowpipe.decompose` and
 
 from __future__ import annotations
 
-import os
 from collections.abc import Callable, Sequence
 from functools import partial
 
@@ -19,7 +18,7 @@ import numpy as np
 import xarray as xr
 
 from . import spectral
-from .cluster import distributed_client
+from .cluster import SYNCHRONOUS, cores, distributed_client, local_threads
 from .errors import InputError, UsageError
 from .grid import GridInfo
 
@@ -182,15 +181,14 @@ def transform_threads(n_tasks: int) -> int:
     ----------
     Avoiding oversubscription when nesting thread pools (common practice).
     """
-    cores = dask.config.get("flowpipe.cores", None) or len(os.sched_getaffinity(0))
     client = distributed_client()
     if client is not None:
         workers = sum(client.nthreads().values())
-    elif dask.config.get("scheduler", None) in ("sync", "synchronous", "single-threaded"):
+    elif dask.config.get("scheduler", None) in SYNCHRONOUS:
         workers = 1
     else:
-        workers = dask.config.get("num_workers", None) or cores
-    return max(1, cores // max(1, min(workers, n_tasks)))
+        workers = local_threads()
+    return max(1, cores() // max(1, min(workers, n_tasks)))
 
 
 def over_slabs(slab_kernel: Callable[..., tuple], u: np.ndarray, v: np.ndarray,

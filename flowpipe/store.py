@@ -23,6 +23,7 @@ from concurrent.futures import ThreadPoolExecutor
 from pathlib import Path
 
 import dask
+import dask.threaded
 import netCDF4
 import numpy as np
 import xarray as xr
@@ -36,7 +37,7 @@ from .choices import (
     encoding_refusal,
     is_zarr_path,
 )
-from .cluster import distributed_client
+from .cluster import THREADED, distributed_client, local_threads
 from .errors import (
     NO_SPACE_ERRNOS,
     FlowpipeError,
@@ -102,7 +103,9 @@ def atomic_path(path: str | os.PathLike, protect: Iterable[str | os.PathLike] = 
     choose the format from it (matplotlib) see the right one. Errors of the
     user's environment while writing (permissions, a read-only or full disk)
     become one-line :class:`~flowpipe.errors.EnvironmentProblem` errors that
-    name the final path, and the temporary file is removed.
+    name the final path, and the temporary file is removed. Other errors that
+    name the temporary path (the libraries writing the file know only that one)
+    name the final one instead.
 
     Parameters
     ----------
@@ -117,7 +120,7 @@ def atomic_path(path: str | os.PathLike, protect: Iterable[str | os.PathLike] = 
     Raises
     ------
     flowpipe.errors.UsageError
-        When ``path`` is one of ``protect``.
+        When ``path`` is one of ``protect``, or too long for its temporary name.
     flowpipe.errors.EnvironmentProblem
         When the operating system refuses the write.
     """
@@ -130,6 +133,8 @@ def atomic_path(path: str | os.PathLike, protect: Iterable[str | os.PathLike] = 
     except OSError as exc:
         raise from_os_error(exc) from None
     tmp = temporary_name(final)
+    # (an earlier store under the final name is first moved to a name of its own)
+    _check_name_length(final, temporary_name(final, OLD_TAG) if final.is_dir() else tmp)
     try:
         yield tmp
         if tmp.is_dir():  # a store of many files (Zarr)
@@ -143,17 +148,21 @@ def atomic_path(path: str | os.PathLike, protect: Iterable[str | os.PathLike] = 
     except OSError as exc:
         if exc.errno in NO_SPACE_ERRNOS:
             raise no_space(final, needed or _size(tmp)) from None
-        # an input that fails while it is read for the write is named as itself
-        named = exc.filename if exc.filename and Path(exc.filename) != tmp else final
-        raise from_os_error(exc, named) from None
+        _name_final(exc, tmp, final)
+        # (an input that fails while it is read for the write is named as itself)
+        raise from_os_error(exc, exc.filename or final) from None
     except Exception as exc:
         # netCDF-C reports a full disk as "NetCDF: HDF error" (no errno): look at the disk
         if shutil.disk_usage(final.parent).free < FULL_DISK_BYTES:
             raise no_space(final, needed or _size(tmp)) from exc
+        _name_final(exc, tmp, final)
         raise
     finally:
-        # (a read-only file system refuses even to remove what is not there)
-        with contextlib.suppress(FileNotFoundError):
+        # What cannot be removed (a read-only file system refuses even to look at what is
+        # not there; a name too long for it) is left to the sweep of the next run
+        # (flowpipe.bookkeeping.sweep_temporaries): the error that led here is the one to
+        # report. (On success nothing is left to remove.)
+        with contextlib.suppress(OSError):
             if tmp.is_dir() and not tmp.is_symlink():
                 shutil.rmtree(tmp)
             elif os.path.lexists(tmp):
@@ -161,6 +170,39 @@ def atomic_path(path: str | os.PathLike, protect: Iterable[str | os.PathLike] = 
                 # close a file it could not flush), and its blocks would stay taken
                 os.truncate(tmp, 0)
                 tmp.unlink()
+
+
+#: The longest file name POSIX file systems take (NAME_MAX), where the system cannot say.
+NAME_MAX = 255
+
+
+def _check_name_length(final: Path, tmp: Path) -> None:
+    """Refuse a name whose temporary name is longer than the file system takes (netCDF-C
+    would report "Permission denied", of the temporary name), saying how long it may be."""
+    try:
+        limit = os.pathconf(final.parent, "PC_NAME_MAX")
+    except (OSError, ValueError):
+        limit = NAME_MAX
+    extra = len(os.fsencode(tmp.name)) - len(os.fsencode(final.name))
+    if len(os.fsencode(final.name)) + extra > limit:
+        raise UsageError(f"{final}: file name too long: written first under a temporary name "
+                         f"{extra} bytes longer, it may have at most {limit - extra} bytes "
+                         "here; choose a shorter name")
+
+
+def _name_final(exc: BaseException, tmp: Path, final: Path) -> None:
+    """Make ``exc`` name ``final`` wherever it names the temporary path ``tmp`` or a path in
+    it (the libraries that write the file know only that one): as its file names
+    (``final`` itself) and in its text."""
+    old, new = str(tmp), str(final)
+    exc.args = tuple(a.replace(old, new) if isinstance(a, str) else a for a in exc.args)
+    if isinstance(exc, OSError):
+        for attr in ("filename", "filename2"):
+            name = getattr(exc, attr)
+            if isinstance(name, str | bytes | os.PathLike) and Path(os.fsdecode(name)).is_relative_to(tmp):
+                setattr(exc, attr, new)
+        if exc.strerror:
+            exc.strerror = exc.strerror.replace(old, new)
 
 
 def temporary_name(final: Path, tag: str = "") -> Path:
@@ -187,6 +229,10 @@ def _fsync_file(path: Path) -> None:
 FSYNC_THREADS = 8
 
 
+#: What the temporary name of an earlier store being replaced ends with.
+OLD_TAG = "-old"
+
+
 def _publish_directory(tmp: Path, final: Path) -> None:
     """Rename a complete directory store into place, its files flushed to disk first.
 
@@ -205,7 +251,7 @@ def _publish_directory(tmp: Path, final: Path) -> None:
         list(pool.map(_fsync_directory, directories))
     old = None
     if final.is_dir() and not final.is_symlink():
-        old = temporary_name(final, "-old")
+        old = temporary_name(final, OLD_TAG)
         os.replace(final, old)
     os.replace(tmp, final)
     if old is not None:
@@ -503,10 +549,11 @@ def write(ds: xr.Dataset, path: str | os.PathLike, *, precision: str = "input",
     certain, upper = _stored_bytes(out, encoding)
     check_space(final, certain, upper)
     if is_zarr_path(final):
-        with atomic_path(final, sources(ds), needed=upper) as tmp:
+        with atomic_path(final, sources(ds), needed=upper) as tmp, _quiet_on_failure():
             _write_zarr(out, tmp, _zarr_encoding(out, encoding, compression), lazy)
         return final
-    with atomic_path(final, sources(ds), needed=upper) as tmp, _write_chunk_cache():
+    with atomic_path(final, sources(ds), needed=upper) as tmp, _write_chunk_cache(), \
+            _quiet_on_failure():
         if compression != "none" and significant_digits is None \
                 and distributed_client() is None:  # (workers cannot share an open HDF5 file)
             values = _write_netcdf_chunks(out, tmp, encoding, lazy)
@@ -529,6 +576,41 @@ def write(ds: xr.Dataset, path: str | os.PathLike, *, precision: str = "input",
                 if significant_digits is not None:
                     _drop_library_quantization_attrs(nc)
     return final
+
+
+@contextlib.contextmanager
+def _quiet_on_failure() -> Iterator[None]:
+    """Run the computations inside on dask's local threads, in a pool of their own that is
+    quiet again before an error leaves.
+
+    dask's local scheduler raises the first error of a task (or an interrupt) at once,
+    while its other threads go on writing chunks: the temporary output that
+    :func:`atomic_path` then removes would refuse to go ("Directory not empty") or
+    reappear in part. Here the tasks not started are dropped and the running ones
+    finish before the error goes on (:meth:`concurrent.futures.Executor.shutdown`). The
+    pool has the threads the scheduler would have (:func:`flowpipe.cluster.local_threads`);
+    a dask.distributed client or another scheduler is left to compute as configured.
+
+    Under a client this cannot be had: distributed cancels the tasks of a failed
+    computation but does not wait for those running on the workers (nor says when they
+    end), so a chunk of a Zarr store a worker is writing then can land after the
+    temporary store is removed and recreate part of it (``.NAME.tmp-PID-HEX.zarr/VAR/
+    c.…``) beside the final name, which :func:`flowpipe.bookkeeping.sweep_temporaries`
+    removes at the next batch run. Never under the final name: the store is renamed
+    into place only once every task has succeeded.
+    """
+    scheduler = dask.config.get("scheduler", None)
+    if distributed_client() is not None or not (scheduler in THREADED
+                                                or scheduler is dask.threaded.get):
+        yield
+        return
+    # (dask's own kind of pool: the tasks see the context variables of the caller)
+    pool = dask.threaded.ContextAwareThreadPoolExecutor(local_threads())
+    try:
+        with dask.config.set(scheduler=dask.threaded.get, pool=pool):
+            yield
+    finally:
+        pool.shutdown(wait=True, cancel_futures=True)
 
 
 #: The names in the dask keys of the tasks that write computed chunks: xarray's own
@@ -726,7 +808,12 @@ def _write_zarr(out: xr.Dataset, tmp: Path, encoding: dict[str, dict], lazy: dic
     Dask-backed variables are rechunked to the store's chunks first, so every
     chunk is written by exactly one task; under a dask.distributed client the
     workers write them in parallel. Attributes that are dask arrays are
-    computed in the same pass and added to the metadata afterwards.
+    computed in the same pass and added to the metadata afterwards. Text
+    (trajectory identifiers, say) is stored as variable-length UTF-8 strings,
+    Zarr's ``string`` data type with the ``vlen-utf8`` codec, which every Zarr
+    format 3 reader decodes to strings; NumPy's fixed-width strings would be
+    stored as ``fixed_length_utf32``, a type zarr-python warns has no Zarr
+    format 3 specification (zarr-extensions, "data-types").
     """
     import zarr
 
@@ -735,6 +822,11 @@ def _write_zarr(out: xr.Dataset, tmp: Path, encoding: dict[str, dict], lazy: dic
         var = out.variables[name]
         if "chunks" in enc and dask.is_dask_collection(var.data):
             out[name] = var.chunk(dict(zip(var.dims, enc["chunks"], strict=True)))
+        elif _is_text(var) and var.ndim:
+            text = var.values
+            if text.dtype.kind == "S":
+                text = np.char.decode(text, "utf-8")
+            out[name] = var.copy(data=text.astype(object))  # (xarray's way to ask for them)
     with warnings.catch_warnings():
         # zarr-python writes consolidated metadata for format 3 ahead of the specification
         warnings.filterwarnings("ignore", message=".*[Cc]onsolidated metadata", category=UserWarning)

@@ -14,8 +14,14 @@ External references used here:
 
 from __future__ import annotations
 
+import asyncio
+import errno
 import os
+import re
+import threading
+import time
 import zlib
+from collections.abc import Callable
 
 import dask
 import dask.array as da
@@ -24,11 +30,12 @@ import netCDF4
 import numpy as np
 import pytest
 import xarray as xr
+import zarr.storage
 from test_compliance import GLOBAL, decomposition_like, trajectory_like
 
 import flowpipe as fp
 from flowpipe import store
-from flowpipe.errors import UsageError
+from flowpipe.errors import FlowpipeError, UsageError
 
 #: IEEE 754 binary32 unit roundoff, and the largest rounding error of a subnormal
 #: (half their spacing 2**-149), for values below the smallest normal 2**-126.
@@ -247,3 +254,204 @@ def test_chunks_compressed_in_the_tasks_read_back_as_netcdf_c_writes_them(parts,
                                for s, c, n in zip(start, shape, dataset.shape, strict=True))
                 within = tuple(slice(0, r.stop - r.start) for r in inside)
                 np.testing.assert_array_equal(values.reshape(shape)[within], stored[inside])
+
+
+
+class _SlowFirstChunk:
+    """The first chunk write of a computation held back until slab ``bad`` has begun, then
+    slow; slab ``bad`` fails while that write runs (so the failure always meets a chunk
+    write under way, whatever order dask runs the tasks in)."""
+
+    def __init__(self, broken: BaseException) -> None:
+        self.broken, self.running, self.first = broken, 0, True
+        self.lock, self.bad_began = threading.Lock(), threading.Event()
+
+    def write(self, write: Callable[[], None]) -> None:
+        with self.lock:
+            first, self.first = self.first, False
+            self.running += first
+        if not first:
+            return write()
+        self.bad_began.wait(60)
+        time.sleep(0.5)
+        try:
+            return write()
+        finally:
+            with self.lock:
+                self.running -= 1
+
+    def fail(self) -> None:
+        self.bad_began.set()
+        deadline = time.monotonic() + 60
+        while not self.running and time.monotonic() < deadline:
+            time.sleep(0.01)
+        raise self.broken
+
+
+def _slab_stack(n: int, bad: int, chunks: _SlowFirstChunk) -> xr.Dataset:
+    """``n`` slabs of a lazy field of ones, each large enough to be a chunk of its own;
+    slab ``bad`` fails (``chunks.fail``)."""
+    def block(x, block_info=None):
+        if block_info[0]["chunk-location"][0] == bad:
+            chunks.fail()
+        return x
+
+    data = da.map_blocks(block, da.ones((n, 1, 91, 180), chunks=(1, 1, 91, 180)), dtype=float)
+    return xr.Dataset(
+        {"vorticity": (("time", "level", "latitude", "longitude"), data,
+                       {"units": "s-1", "standard_name": "atmosphere_relative_vorticity"})},
+        coords={"time": np.arange(n).astype("datetime64[h]").astype("datetime64[ns]"),
+                "level": ("level", [500.0], {"units": "hPa"}),
+                "latitude": ("latitude", np.linspace(-90, 90, 91), {"units": "degrees_north"}),
+                "longitude": ("longitude", np.arange(0, 360, 2.0), {"units": "degrees_east"})})
+
+
+@pytest.mark.parametrize("suffix", [".nc", ".zarr"])
+@pytest.mark.parametrize("broken", [RuntimeError("slab 5 broken"), KeyboardInterrupt()],
+                         ids=["error", "interrupt"])
+def test_a_failed_write_waits_for_its_chunk_writes_then_raises_its_own_error(
+        tmp_path, monkeypatch, suffix, broken):
+    # One slab fails (or the user interrupts) while another thread is storing a chunk:
+    # the write must raise that slab's error (not the "Directory not empty" of removing a
+    # store still being written) only once no chunk write runs any more, and leave nothing
+    # beside the final name, not even a temporary store that a late chunk recreated
+    # (outputs appear only complete, under a temporary name first: common practice).
+    chunks = _SlowFirstChunk(broken)
+    if suffix == ".zarr":
+        plain_set = zarr.storage.LocalStore.set
+
+        async def slow_set(self, key, value):
+            if key.startswith("vorticity/c."):  # a chunk the tasks write (not metadata,
+                # nor coordinates, written before the computation)
+                await asyncio.to_thread(chunks.write, lambda: None)  # (zarr's loop stays free)
+            return await plain_set(self, key, value)
+
+        monkeypatch.setattr(zarr.storage.LocalStore, "set", slow_set)
+    else:
+        plain_writer = store._chunk_writer
+
+        def slow_writer(dataset, unencoded=False):
+            put = plain_writer(dataset, unencoded)
+            return lambda block, start: chunks.write(lambda: put(block, start))
+
+        monkeypatch.setattr(store, "_chunk_writer", slow_writer)
+    target = tmp_path / f"out{suffix}"
+    with dask.config.set(scheduler="threads", num_workers=3), \
+            pytest.raises(type(broken), match=str(broken) or None):
+        fp.write(_slab_stack(12, 5, chunks), target)
+    still_running = chunks.running
+    deadline = time.monotonic() + 60  # (a late chunk write of a writer that did not wait)
+    while chunks.running and time.monotonic() < deadline:
+        time.sleep(0.05)
+    assert chunks.bad_began.is_set()
+    assert still_running == 0
+    assert sorted(p.name for p in tmp_path.iterdir()) == []
+
+
+@pytest.mark.parametrize("suffix", [".nc", ".zarr"])
+@pytest.mark.parametrize("lazy", [False, True], ids=["in_memory", "lazy"])
+def test_a_name_too_long_for_its_temporary_name_is_refused_naming_it(parts, tmp_path, suffix,
+                                                                     lazy):
+    # POSIX pathconf(_PC_NAME_MAX): the longest file name the directory takes. A name
+    # within it whose temporary name is not is refused in one line naming it (neither the
+    # temporary name, nor "Permission denied" as netCDF-C says), with the length that
+    # works: that length does, one byte more does not.
+    limit = os.pathconf(tmp_path, "PC_NAME_MAX")
+    data = parts.chunk({"time": 1}) if lazy else parts
+    final = tmp_path / ("a" * (limit - len(suffix)) + suffix)
+    with pytest.raises(UsageError) as refused:
+        fp.write(data, final)
+    message = str(refused.value)
+    assert message.startswith(f"{final}: file name too long") and ".tmp-" not in message
+    longest = int(re.search(r"at most (\d+) bytes", message).group(1))
+    fits = tmp_path / ("b" * (longest - len(suffix)) + suffix)
+    fp.write(data, fits)
+    with pytest.raises(UsageError):
+        fp.write(data, tmp_path / ("c" * (longest + 1 - len(suffix)) + suffix))
+    assert [p.name for p in tmp_path.iterdir()] == [fits.name]
+
+
+def _zarr_chunk_fails(monkeypatch, error: Callable[[zarr.storage.LocalStore, str], Exception]):
+    """Writing a chunk of a Zarr store raises ``error(store, key)``."""
+    plain_set = zarr.storage.LocalStore.set
+
+    async def failing_set(self, key, value):
+        if "/c." in key:
+            raise error(self, key)
+        return await plain_set(self, key, value)
+
+    monkeypatch.setattr(zarr.storage.LocalStore, "set", failing_set)
+
+
+def _hdf5_open_fails(monkeypatch):
+    """Opening the file with h5py (to write its chunks) raises an error naming it in its
+    text, as h5py words HDF5's errors (from memory)."""
+    def failing_file(name, mode="r", **kwargs):
+        raise OSError(f"Unable to synchronously open file (unable to open file: name = "
+                      f"'{name}', errno = 5, error message = 'Input/output error', "
+                      "flags = 1, o_flags = 2)")
+
+    monkeypatch.setattr(h5py, "File", failing_file)
+
+
+@pytest.mark.parametrize(("suffix", "fail", "kind"), [
+    # the operating system's error for a chunk file inside the temporary store
+    (".zarr", lambda mp: _zarr_chunk_fails(mp, lambda store, key: OSError(
+        errno.EIO, os.strerror(errno.EIO), os.path.join(str(store.root), key))),
+     FlowpipeError),
+    # a library's error naming the temporary store in its text (an internal error)
+    (".zarr", lambda mp: _zarr_chunk_fails(mp, lambda store, key: ValueError(
+        f"cannot store {key} in {store!r}")), ValueError),
+    (".nc", _hdf5_open_fails, FlowpipeError),
+], ids=["zarr_os_error", "zarr_library_error", "hdf5_error"])
+def test_errors_while_writing_name_the_final_path_not_the_temporary_one(
+        parts, tmp_path, monkeypatch, suffix, fail, kind):
+    # The user typed the final name: an error met while the data are written under the
+    # temporary name (CF-NetCDF through HDF5, Zarr) names that one, once, in one line.
+    fail(monkeypatch)
+    final = tmp_path / f"out{suffix}"
+    with pytest.raises(kind) as failed:
+        fp.write(parts.chunk({"time": 1}), final)
+    message = str(failed.value)
+    assert str(final) in message and ".tmp-" not in message and "\n" not in message
+    assert list(tmp_path.iterdir()) == []
+
+
+@pytest.mark.parametrize("processes", [False, True], ids=["threads", "processes"])
+def test_netcdf_written_under_a_distributed_client_equals_the_local_file(parts, tmp_path,
+                                                                         processes):
+    # Under a dask.distributed client (LocalCluster, two workers) every way of writing a
+    # NetCDF file (the workers compute the data; one process writes the file, as HDF5
+    # cannot be shared between writers) gives the file the local threads write, as
+    # xarray's NetCDF reader reads it: lazy and in-memory data, an attribute computed with
+    # the data, quantization (with and without such an attribute), other compressions.
+    from distributed import Client, LocalCluster, get_task_stream
+    from test_zarr import WRITE_TIMES
+
+    from flowpipe.progress import key_name
+
+    lazy = parts.chunk({"time": 1})
+    with_attribute = lazy.assign_attrs(largest_vorticity=abs(lazy["vorticity"]).max().data)
+    cases = {"lazy": (lazy, {}), "in_memory": (parts, {}), "attribute": (with_attribute, {}),
+             "quantized": (lazy, {"significant_digits": 3}),
+             "quantized_attribute": (with_attribute, {"significant_digits": 3}),
+             "uncompressed": (lazy, {"compression": "none"}),
+             "zstd": (lazy, {"compression": "zstd"})}
+    for name, (data, options) in cases.items():
+        fp.write(data, tmp_path / f"local_{name}.nc", **options)
+    with LocalCluster(n_workers=2, threads_per_worker=1, processes=processes,
+                      dashboard_address=None) as cluster, Client(cluster) as client, \
+            get_task_stream(client) as tasks:
+        for name, (data, options) in cases.items():
+            fp.write(data, tmp_path / f"cluster_{name}.nc", **options)
+    # dask.distributed's record of the tasks: the workers stored the chunks
+    assert len({t["worker"] for t in tasks.data if "store-map" in key_name(t["key"])}) == 2
+    for name in cases:
+        with xr.open_dataset(tmp_path / f"local_{name}.nc") as a, \
+                xr.open_dataset(tmp_path / f"cluster_{name}.nc") as b:
+            for key in WRITE_TIMES:
+                a.attrs.pop(key, None)
+                b.attrs.pop(key, None)
+            xr.testing.assert_identical(b, a)
+            assert ("largest_vorticity" in b.attrs) == ("attribute" in name)
+    assert _leftovers(tmp_path) == []

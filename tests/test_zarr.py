@@ -143,6 +143,30 @@ def test_quantization_is_refused_for_zarr_in_one_line(wind_file, tmp_path, capsy
     assert not list(tmp_path.iterdir())
 
 
+
+def test_trajectory_ids_in_a_store_are_variable_length_utf8_strings(tmp_path):
+    # The ids are text: the store holds Zarr's "string" data type with the "vlen-utf8"
+    # codec (zarr-extensions registry, data-types/string; from memory), not fixed-width
+    # UTF-32 nor bytes; zarr-python and xarray read them back as Python str, the same ids
+    # as xarray reads from the NetCDF output.
+    sample = Path(__file__).parents[1] / "sample_data" / "demo_global.nc"
+    outputs = {kind: tmp_path / f"tracks.{kind}" for kind in ("nc", "zarr")}
+    for path in outputs.values():
+        assert main(["advect", str(sample), "--start", "52,4,850", "--start", "40,-30,500",
+                     "--hours", "6", "-o", str(path)]) == 0
+    with xr.open_dataset(outputs["nc"]) as nc:
+        expected = list(nc["trajectory_id"].values)
+    assert len(expected) == 2 and all(type(i) is str and i.startswith("fp") for i in expected)
+    metadata = json.loads((outputs["zarr"] / "trajectory_id" / "zarr.json").read_text())
+    assert metadata["data_type"] == "string"
+    assert metadata["codecs"][0]["name"] == "vlen-utf8"
+    by_zarr = list(zarr.open_group(outputs["zarr"], mode="r")["trajectory_id"][:])
+    with xr.open_zarr(outputs["zarr"]) as store:
+        by_xarray = list(store["trajectory_id"].values)
+    for ids in (by_zarr, by_xarray):
+        assert ids == expected
+        assert all(type(i) is str for i in ids)  # (not numpy.str_ of a fixed width, not bytes)
+
 SLOW_WRITE = """
 import sys, time
 import dask.array as da, numpy as np, xarray as xr
@@ -255,6 +279,37 @@ def test_distributed_run_writing_zarr_equals_the_local_run(wind_file, tmp_path):
     assert not [p for p in (cluster_dir / "out").iterdir() if ".tmp-" in p.name]
     assert os.path.isdir(cluster_dir / "out" / name)
 
+
+def _second_time_broken(block, block_info=None):
+    if block_info[0]["chunk-location"][0] == 1:
+        raise RuntimeError("second time broken")
+    return block
+
+
+def test_a_failed_task_on_a_cluster_leaves_no_store_under_the_final_name(written, tmp_path):
+    # Workers write the chunks of a store in parallel (LocalCluster, two workers); when a
+    # task fails, its error is raised and no store appears under the final name, nor is
+    # an earlier one there replaced (POSIX rename(2): the store is renamed into place only
+    # once complete).
+    import dask.array as da
+    from distributed import Client, LocalCluster
+
+    with xr.open_zarr(written["zarr"]) as ds:
+        ds = ds.load()
+    field = ds["vorticity"].chunk({"time": 1, "level": 1})
+    bad = ds.assign(vorticity=field.copy(data=da.map_blocks(_second_time_broken, field.data,
+                                                                      dtype=field.dtype)))
+    assert bad["vorticity"].data.numblocks[0] == 2  # (the first time's slabs are written)
+    earlier = tmp_path / "earlier.zarr"
+    fp.write(ds[["streamfunction"]], earlier)
+    with LocalCluster(n_workers=2, threads_per_worker=2, processes=False,
+                      dashboard_address=None) as cluster, Client(cluster):
+        for target in (tmp_path / "new.zarr", earlier):
+            with pytest.raises(RuntimeError, match="second time broken"):
+                fp.write(bad, target)
+    assert not (tmp_path / "new.zarr").exists()
+    with xr.open_zarr(earlier) as again:
+        assert "streamfunction" in again and "vorticity" not in again
 
 def test_map_of_a_zarr_decomposition(written, tmp_path):
     # The same map as from the NetCDF file: the colour bar spans the same values
