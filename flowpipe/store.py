@@ -153,7 +153,8 @@ def atomic_path(path: str | os.PathLike, protect: Iterable[str | os.PathLike] = 
         raise from_os_error(exc, exc.filename or final) from None
     except Exception as exc:
         # netCDF-C reports a full disk as "NetCDF: HDF error" (no errno): look at the disk
-        if shutil.disk_usage(final.parent).free < FULL_DISK_BYTES:
+        usage = shutil.disk_usage(final.parent)
+        if 0 < usage.total and usage.free < FULL_DISK_BYTES:
             raise no_space(final, needed or _size(tmp)) from exc
         _name_final(exc, tmp, final)
         raise
@@ -290,7 +291,10 @@ def check_space(path: str | os.PathLike, certain: int, upper: int) -> None:
     where = existing_directory(path)
     if read_only(path):
         raise os_problem(errno.EROFS, path)
-    free = shutil.disk_usage(where).free
+    usage = shutil.disk_usage(where)
+    if usage.total == 0:  # no blocks to count (/proc, /sys): the write itself will tell
+        return
+    free = usage.free
     if free < certain:
         raise no_space(path, certain)
     if free < upper:

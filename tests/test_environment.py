@@ -109,6 +109,15 @@ def test_a_file_in_the_way_of_the_output_directory(tmp_path):
     _one_line(proc, str(tmp_path / "maps"), "not a directory")
 
 
+@pytest.mark.skipif(not Path("/proc/self").is_dir(), reason="needs Linux's /proc")
+def test_a_file_system_without_blocks_is_not_called_full():
+    # /proc counts no blocks (statvfs: 0 in all, 0 free; proc(5)): a write there is refused
+    # by the system itself, and the message says what the system said, not "no space left"
+    proc = _flowpipe("decompose", REGIONAL, "-o", "/proc/flowpipe-out.nc")
+    line = _one_line(proc, "/proc/flowpipe-out.nc")
+    assert "no space" not in line and "permission denied" in line, line
+
+
 @needs_root
 def test_a_read_only_file_system(tmp_path):
     with _tmpfs(tmp_path / "ro", "ro", "size=1m") as ro:
