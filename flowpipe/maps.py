@@ -545,6 +545,14 @@ def _units_text(units: str) -> str:
     return re.sub(r"\b([A-Za-z]+)(-?\d+)\b", r"\1$^{\2}$", units)
 
 
+def plain_text(text: str) -> str:
+    """A figure's text for a terminal: the exponents :func:`_units_text` raised written
+    back as UDUNITS writes them (``m$^{2}$ s$^{-1}$`` -> ``m2 s-1``), a power of ten
+    as ``10^-5``."""
+    text = re.sub(r"\b10\$\^\{(-?\d+)\}\$", r"10^\1", text)
+    return re.sub(r"\$\^\{(-?\d+)\}\$", r"\1", text)
+
+
 def _contour_levels(low: float, high: float, signed: bool) -> np.ndarray:
     """Round contour levels just covering [low, high]; symmetric about 0 when signed."""
     if signed:

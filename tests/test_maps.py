@@ -406,6 +406,24 @@ def test_a_field_zero_to_rounding_is_titled_so_and_not_coloured(files, tmp_path)
     assert "zero to rounding" not in title
 
 
+def test_the_terminal_line_writes_units_as_udunits_does(files, tmp_path, capsys):
+    # The figure raises exponents with matplotlib mathtext ("m$^{2}$ s$^{-1}$"); a terminal
+    # shows no mathtext, so the line printed gives the units as UDUNITS-2 writes them
+    # ("m2 s-1": its unit-string grammar, exponents as plain integers after the symbol).
+    with xr.open_dataset(files["global"]) as ds:
+        ds = ds.load()
+    ds["velocity_potential"] = (ds["streamfunction"] * 1e-9).assign_attrs(
+        ds["velocity_potential"].attrs)
+    path = fp.write(ds, tmp_path / "tiny.nc", precision="single")
+    out = tmp_path / "tiny.png"
+    assert main(["map", str(path), "-o", str(out), "--field", "velocity_potential"]) == 0
+    line = capsys.readouterr().out.strip()
+    assert "zero to rounding" in line and " m2 s-1 " in line
+    assert "$" not in line and "^" not in line
+    title = _map_axes(maps.render(path, field="velocity_potential", size=SIZE)).get_title(loc="left")
+    assert "m$^{2}$ s$^{-1}$" in title  # the figure keeps its raised exponents
+
+
 @pytest.mark.parametrize("bounds", [(-60.0, 60.0, 0.0, 360.0), (30.0, 60.0, 0.0, 30.0),
                                     (-10.0, 10.0, 0.0, 360.0)])
 def test_arrow_count_follows_the_domain_not_its_shape(bounds):
