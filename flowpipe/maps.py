@@ -112,6 +112,10 @@ COLOUR_BAR_BOX = (1.03, 0.0, 0.025, 1.0)
 AREA_SPAN = 120.0
 #: Arrows on a map, about: evenly spaced on the sphere whatever the domain's shape.
 ARROWS = 400
+#: Where the reference arrow goes (the map's axes fraction): under the colour bar, out of
+#: the way of the title above the map, however long that is (a trial saw a long title
+#: run into the key when it stood above the map's right corner).
+WIND_KEY = (1.04, -0.05)
 
 #: One knot in m s-1: the international nautical mile of 1852 m per hour (exact by
 #: definition; BIPM SI Brochure, 9th ed., 2019, table 8 - from memory).
@@ -714,7 +718,8 @@ def _field_map(fig: Figure, ds: xr.Dataset, label: str, field: str | None, level
     wind = _wind_names(ds, field)
     if wind is not None:
         kind = wind[0][2:] if wind[0].startswith("u_") else ""
-        title += f", with the {kind} wind".replace("  ", " ")
+        if field not in wind:  # (a component of the wind drawn needs no "with" it)
+            title += f", with the {kind} wind".replace("  ", " ")
         _arrows(ax, slab(wind[0]), slab(wind[1]), lat, lon, barbs)
     ax.set_title(f"{title}\n{' | '.join(words)}", loc="left", fontsize=10)
 
@@ -810,7 +815,7 @@ def _arrows(ax, u: xr.DataArray, v: xr.DataArray, lat: np.ndarray, lon: np.ndarr
                        transform=ccrs.PlateCarree(), color="white", edgecolor="black",
                        linewidth=0.5, zorder=4, scale=float(np.nanpercentile(speed, 99)) * across * 1.2,
                        scale_units="width", width=0.0022)
-    ax.quiverkey(arrows, X=0.8, Y=1.03, U=reference, label=f"{reference:g} m s$^{{-1}}$",
+    ax.quiverkey(arrows, X=WIND_KEY[0], Y=WIND_KEY[1], U=reference, label=f"{reference:g} m s$^{{-1}}$",
                  labelpos="E", coordinates="axes", fontproperties={"size": 8},
                  color="black")
 

@@ -28,6 +28,7 @@ import matplotlib.image
 import numpy as np
 import pytest
 import xarray as xr
+from matplotlib.transforms import Bbox
 from test_compliance import GLOBAL, REGIONAL, decomposition_like, trajectory_like
 
 import flowpipe as fp
@@ -422,6 +423,37 @@ def test_the_terminal_line_writes_units_as_udunits_does(files, tmp_path, capsys)
     assert "$" not in line and "^" not in line
     title = _map_axes(maps.render(path, field="velocity_potential", size=SIZE)).get_title(loc="left")
     assert "m$^{2}$ s$^{-1}$" in title  # the figure keeps its raised exponents
+
+
+@pytest.mark.parametrize("size", [(1200, 800), SIZE])
+def test_the_wind_key_never_meets_the_title(files, tmp_path, size):
+    # A harmonic-wind map under a long title: the reference arrow's key (matplotlib
+    # QuiverKey: its arrow and its label) and the title, read back as window extents after
+    # drawing, do not overlap (text over text is unreadable: common practice). A field
+    # that is itself a component of the wind drawn does not say "with" that wind again.
+    with xr.open_dataset(files["regional"]) as ds:
+        ds = ds.load()
+    ds["u_harmonic"].attrs["long_name"] = ("eastward component of the harmonic wind, " * 4)[:-2]
+    fig = maps.render(fp.write(ds, tmp_path / "harmonic.nc"), field="u_harmonic", size=size)
+    ax = _map_axes(fig)
+    title = ax.get_title(loc="left")
+    assert title.splitlines()[0].endswith("harmonic wind")
+    assert "with the harmonic wind" not in title
+    fig.draw_without_rendering()
+    (key,) = [a for a in ax.get_children() if type(a).__name__ == "QuiverKey"]
+    heading = ax._left_title.get_window_extent()
+    assert heading.width > 0.5 * fig.bbox.width  # a long title indeed
+    # the arrow: its polygon (in its own transform) placed at its offset (matplotlib
+    # QuiverKey.vector, a PolyCollection with one offset)
+    vector = key.vector
+    at = vector.get_offset_transform().transform(vector.get_offsets())
+    corners = at + vector.get_transform().transform(vector.get_paths()[0].vertices)
+    arrow = Bbox.from_extents(*corners.min(axis=0), *corners.max(axis=0))
+    assert arrow.width > 3  # the arrow itself, not an empty box
+    for part in (key.text.get_window_extent(), arrow):
+        assert not part.overlaps(heading)
+    streamfunction = _map_axes(maps.render(files["regional"], field="streamfunction", size=size))
+    assert "with the rotational wind" in streamfunction.get_title(loc="left")
 
 
 @pytest.mark.parametrize("bounds", [(-60.0, 60.0, 0.0, 360.0), (30.0, 60.0, 0.0, 30.0),
