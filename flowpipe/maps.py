@@ -919,8 +919,7 @@ def _track_map(fig: Figure, ds: xr.Dataset, label: str, field: str | None,
                            linewidths=1.8, zorder=4, transform=proj)
     ax.add_collection(lines)
     _domain_outline(ax, ds)
-    if elapsed is not None:
-        _time_marks(ax, lat, lon, elapsed, marks)
+    labels = _time_marks(ax, lat, lon, elapsed, marks) if elapsed is not None else []
     valid = np.isfinite(lat) & np.isfinite(lon)
     first = np.argmax(valid, axis=1)
     last = lat.shape[1] - 1 - np.argmax(valid[:, ::-1], axis=1)
@@ -931,7 +930,7 @@ def _track_map(fig: Figure, ds: xr.Dataset, label: str, field: str | None,
                marker="o", s=28, facecolor="white", edgecolor="black", linewidth=1.0, zorder=5,
                label="start" if every == 1 else f"start (1 in {every} of {rows.size})")
     _end_markers(ax, ds, lat[rows, last], lon[rows, last])
-    ax.legend(loc="lower left", fontsize=7, framealpha=0.8)
+    legend = ax.legend(loc="lower left", fontsize=7, framealpha=0.8)
     bar = _colour_bar(fig, ax, lines)
     bar.set_label(colour_label)
     if colour is not None and colour.attrs.get("positive") == "down":
@@ -945,6 +944,58 @@ def _track_map(fig: Figure, ds: xr.Dataset, label: str, field: str | None,
         title = (f"{head}, member {member}" if member is not None else
                  f"{head}, {count} member{'s' if count != 1 else ''}") + newline + rest
     ax.set_title(title, loc="left", fontsize=10)
+    fig.draw_without_rendering()  # the map's final place on the figure, and its texts' sizes
+    kept = _apart(labels)
+    _legend_clear_of(ax, legend, segments[keep], [b.get_points().mean(axis=0) for b in kept])
+
+
+def _apart(texts: list) -> list:
+    """Remove each text whose drawn extent overlaps one kept before it (time labels where a
+    track loops or crosses another); the extents of those kept (display coordinates)."""
+    kept = []
+    for text in texts:
+        extent = text.get_window_extent()
+        if any(extent.overlaps(other) for other in kept):
+            text.remove()
+        else:
+            kept.append(extent)
+    return kept
+
+
+#: Where a legend may stand inside the map: matplotlib's names, in the order its
+#: ``loc="best"`` tries them, with the place of the legend's box across the room left
+#: inside the axes' padding (0 left or bottom, 1 right or top).
+LEGEND_PLACES = {"upper right": (1.0, 1.0), "upper left": (0.0, 1.0), "lower left": (0.0, 0.0),
+                 "lower right": (1.0, 0.0), "center left": (0.0, 0.5),
+                 "center right": (1.0, 0.5), "lower center": (0.5, 0.0),
+                 "upper center": (0.5, 1.0)}
+#: Points along each drawn track segment that a legend's box should not hide.
+SEGMENT_SAMPLES = 8
+
+
+def _legend_clear_of(ax, legend, segments: np.ndarray, points: list) -> None:
+    """Put the legend in the place of :data:`LEGEND_PLACES` that hides the fewest track
+    points (``segments`` in map coordinates, sampled along) and ``points`` (display).
+
+    matplotlib's own ``loc="best"`` counts the vertices of lines and the offsets of
+    collections, not the segments of a LineCollection: it would put the legend over a
+    track (a trial's start sat hidden under it). Needs a drawn figure.
+    """
+    along = np.linspace(0.0, 1.0, SEGMENT_SAMPLES)[:, None, None]
+    sampled = (segments[None, :, 0] * (1 - along) + segments[None, :, 1] * along).reshape(-1, 2)
+    shown = np.concatenate([ax.transData.transform(sampled).reshape(-1, 2),
+                            np.reshape(points, (-1, 2))])
+    box = legend.get_window_extent()
+    pad = legend.borderaxespad * legend.prop.get_size_in_points() * ax.figure.dpi / 72.0
+    room = ax.bbox.padded(-pad)
+
+    def hidden(place: tuple[float, float]) -> int:
+        x0 = room.x0 + place[0] * (room.width - box.width)
+        y0 = room.y0 + place[1] * (room.height - box.height)
+        return int(np.sum((shown[:, 0] >= x0) & (shown[:, 0] <= x0 + box.width)
+                          & (shown[:, 1] >= y0) & (shown[:, 1] <= y0 + box.height)))
+
+    legend.set_loc(min(LEGEND_PLACES, key=lambda name: hidden(LEGEND_PLACES[name])))
 
 
 def _domain_outline(ax, ds: xr.Dataset) -> None:
@@ -968,22 +1019,21 @@ def _domain_outline(ax, ds: xr.Dataset) -> None:
 
 
 def _time_marks(ax, lat: np.ndarray, lon: np.ndarray, elapsed: np.ndarray,
-                hours: float) -> None:
+                hours: float) -> list:
     """Dots where each track has travelled a whole multiple of ``hours``; the first
-    track's marks labelled with their hours (a few tracks: every track's)."""
+    track's marks labelled with their hours (a few tracks: every track's); the labels."""
     if not np.isfinite(elapsed).any() or not hours > 0:
-        return
+        return []
     steps = np.abs(elapsed) / hours
     marked = np.isfinite(steps) & np.isclose(steps, np.round(steps)) & (np.round(steps) > 0)
     if not marked.any():
-        return
+        return []
     ax.scatter(lon[marked], lat[marked], transform=ccrs.PlateCarree(), marker=".", s=30,
                color="black", zorder=6, label=f"every {hours:g} h")
-    for i in range(min(lat.shape[0], LABELLED_TRACKS)):
-        for j in np.flatnonzero(marked[i]):
-            ax.annotate(f"{elapsed[i, j]:+.0f} h", (lon[i, j], lat[i, j]),
+    return [ax.annotate(f"{elapsed[i, j]:+.0f} h", (lon[i, j], lat[i, j]),
                         xycoords=ccrs.PlateCarree()._as_mpl_transform(ax),
                         xytext=(3, 3), textcoords="offset points", fontsize=6, zorder=6)
+            for i in range(min(lat.shape[0], LABELLED_TRACKS)) for j in np.flatnonzero(marked[i])]
 
 
 def _end_markers(ax, ds: xr.Dataset, lat: np.ndarray, lon: np.ndarray) -> None:

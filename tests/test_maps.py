@@ -517,6 +517,51 @@ def test_a_start_outside_the_domain_does_not_stretch_the_track_map(tmp_path):
     assert west <= np.nanmin(track_lon) and np.nanmax(track_lon) <= east < 50.0
 
 
+@pytest.fixture(scope="module")
+def looping_tracks(tmp_path_factory):
+    # the trial's tracks: one starting in the map's lower-left corner, two crossing in a loop
+    path = tmp_path_factory.mktemp("loops") / "loops.nc"
+    assert main(["advect", str(REGIONAL), "--start", "47,-18,850", "--start", "50,-10,850",
+                 "--start", "60,5,850", "--hours", "24", "-o", str(path)]) == 0
+    return path
+
+
+@pytest.mark.parametrize("projection", ["auto", "lat-lon"])
+def test_track_map_shows_every_track_point_clear_of_legend_and_labels(looping_tracks,
+                                                                      projection):
+    # Read back from the drawn figure (matplotlib window extents, cartopy transforms of
+    # the file's positions): every start and track point lies inside the map with a margin;
+    # the legend's box hides none of them (sampled along each recorded segment); no two
+    # time labels overlap (overlapping text is unreadable: common practice).
+    fig = maps.render(looping_tracks, size=(1200, 800), projection=projection)
+    ax = _map_axes(fig)
+    fig.draw_without_rendering()
+    with xr.open_dataset(looping_tracks) as ds:
+        lat, lon = ds["latitude"].values, ds["longitude"].values
+    xy = ax.projection.transform_points(ccrs.Geodetic(), lon.ravel(), lat.ravel())[:, :2]
+    xy = xy.reshape(*lat.shape, 2)
+    (x0, x1), (y0, y1) = ax.get_xlim(), ax.get_ylim()
+    margin_x, margin_y = 0.01 * (x1 - x0), 0.01 * (y1 - y0)
+    finite = np.isfinite(xy).all(axis=-1)
+    assert finite[:, 0].all() and finite.sum() > 30
+    inside = ((xy[..., 0] > x0 + margin_x) & (xy[..., 0] < x1 - margin_x)
+              & (xy[..., 1] > y0 + margin_y) & (xy[..., 1] < y1 - margin_y))
+    assert inside[finite].all()
+    along = np.linspace(0.0, 1.0, 11)[:, None, None, None]
+    sampled = xy[None, :, :-1] * (1 - along) + xy[None, :, 1:] * along
+    sampled = sampled[np.isfinite(sampled).all(axis=-1)]
+    shown = ax.transData.transform(sampled)
+    legend = ax.get_legend().get_window_extent()
+    hidden = ((shown[:, 0] >= legend.x0) & (shown[:, 0] <= legend.x1)
+              & (shown[:, 1] >= legend.y0) & (shown[:, 1] <= legend.y1))
+    assert not hidden.any()
+    labels = [t for t in ax.texts if t.get_visible() and t.get_text().endswith(" h")]
+    assert len(labels) >= 4  # labels are still drawn
+    extents = [t.get_window_extent() for t in labels]
+    for i, one in enumerate(extents):
+        assert not any(one.overlaps(other) for other in extents[i + 1:])
+
+
 def test_many_starts_are_thinned(tmp_path):
     tracks = trajectory_like()
     many = xr.concat([tracks] * 150, dim="trajectory")
