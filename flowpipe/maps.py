@@ -139,6 +139,15 @@ END_MARKERS = {
 #: double, the accuracy the spectral decomposition holds on analytic winds
 #: (1e-10 of the wind, tests/test_decompose.py). *Common practice.*
 ROUNDING = {4: 1e-6, 8: 1e-10}
+#: Whole-integration stretch that a finite-time Lyapunov exponent resolves: an exponent
+#: lambda with |lambda| T below it (lengths within 1 % of their start after the time T)
+#: is zero to the stencil's accuracy. The exponent is ln(stretch) / T, so its scale is
+#: 1 / T, not its own largest value (the noise itself where nothing stretches). On a rigid
+#: rotation, an isometry, flowpipe's exponents reach |lambda| T = 1.4e-3 over 48 h on a
+#: 2-degree wind (the case of tests/test_ftle.py); this leaves a sevenfold margin for
+#: coarser winds and still draws exponents of 1e-7 s-1 over a day, a hundredth of those
+#: of the Rossby-Haurwitz wave there.
+FTLE_STRETCH = 1e-2
 #: Share of a slab's valid points at each end that may lie beyond the colour scale, drawn
 #: in its end colours and marked by the colour bar's arrows: a handful of extremes (a
 #: cyclone's core, the lee of a mountain) would otherwise set the scale and leave the rest
@@ -662,10 +671,10 @@ def _field_map(fig: Figure, ds: xr.Dataset, label: str, field: str | None, level
     proj, extent = _domain_projection(lat, lon, projection, step)
     ax = _map_axes(fig, proj, extent)
 
-    rounding, companion = _rounding_level(ds, da, field, values, slab)
+    rounding, basis = _rounding_level(ds, da, field, values, slab)
     values = np.where(np.abs(values) <= rounding, 0.0, values)
     if not np.any(values):  # nothing above rounding: say so rather than colour the noise
-        _zero_map(ax, da, field, words, rounding, companion)
+        _zero_map(ax, da, field, words, rounding, basis)
         return
     low, high = (float(q) for q in np.nanquantile(values, [BEYOND_SCALE, 1 - BEYOND_SCALE]))
     names = (field, str(da.attrs.get("standard_name", "")))
@@ -726,14 +735,21 @@ def _field_map(fig: Figure, ds: xr.Dataset, label: str, field: str | None, level
 
 def _rounding_level(ds: xr.Dataset, da: xr.DataArray, field: str, values: np.ndarray,
                     slab) -> tuple[float, str]:
-    """Magnitude below which a slab's values are rounding noise, and what it is relative to.
+    """Magnitude below which a slab's values are rounding noise, and what it is relative
+    to (words for a title: "the rounding level of the streamfunction's largest value").
 
     :data:`ROUNDING` (by the precision the field is stored in) of the largest
     magnitude among the slab's fields of the same units and dimensions: the
     velocity potential of a non-divergent wind is measured against the
     streamfunction, its divergence against the vorticity. ``values`` is the slab
-    of ``field`` already read; ``slab(name)`` reads that of another field.
+    of ``field`` already read; ``slab(name)`` reads that of another field. A
+    finite-time Lyapunov exponent with its integration time: :data:`FTLE_STRETCH`
+    over that time.
     """
+    hours = da.attrs.get("integration_hours")
+    if _from_zero(field, da) and hours is not None and float(hours) > 0:
+        return (FTLE_STRETCH / (float(hours) * 3600.0),
+                f"lengths stretched by less than {FTLE_STRETCH:.0%} over the {float(hours):g} h")
     stored = np.dtype(da.encoding.get("dtype", da.dtype))
     relative = ROUNDING.get(stored.itemsize, ROUNDING[8]) if stored.kind == "f" else 0.0
     units = da.attrs.get("units")
@@ -746,18 +762,18 @@ def _rounding_level(ds: xr.Dataset, da: xr.DataArray, field: str, values: np.nda
                                     initial=0.0))
         if magnitude > largest:
             largest, companion = magnitude, str(name)
-    return relative * largest, companion
+    against = "its own" if companion == field else f"the {companion.replace('_', ' ')}'s"
+    return relative * largest, f"the rounding level of {against} largest value"
 
 
 def _zero_map(ax, da: xr.DataArray, field: str, words: list[str], rounding: float,
-              companion: str) -> None:
+              basis: str) -> None:
     """A field that is zero to rounding: an empty map whose title says so."""
     units = _units_text(str(da.attrs.get("units", "")))
     name = str(da.attrs.get("long_name") or field)
-    against = "its own" if companion == field else f"the {companion.replace('_', ' ')}'s"
     ax.set_title(f"{name[:1].upper() + name[1:]}: zero to rounding (every value within "
-                 f"{rounding:.1e} {units} of zero, the rounding level of {against} largest "
-                 f"value)\n{' | '.join(words)}", loc="left", fontsize=10)
+                 f"{rounding:.1e} {units} of zero, {basis})\n{' | '.join(words)}", loc="left",
+                 fontsize=10)
     ax.text(0.5, 0.5, "zero to rounding", transform=ax.transAxes, ha="center", va="center",
             fontsize=14, color="0.3")
 

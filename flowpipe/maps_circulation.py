@@ -35,6 +35,7 @@ from .maps import (
     _label_bar,
     _map_axes,
     _members,
+    _rounding_level,
     _select,
     _units_text,
 )
@@ -72,6 +73,7 @@ def circulation_figure(fig: Figure, ds: xr.Dataset, label: str, field: str | Non
     indexers, words = _select(ds, da, label, level, when)
     words += chosen
     values = np.asarray(da.isel(indexers).transpose("contour", ...).values, float).reshape(-1)
+    values = _above_rounding(ds, da, field, values, lambda name: ds[name].isel(indexers))
     names = [str(n) for n in ds["contour_name"].values]
     rings = _rings(ds, indexers.get("time"))
     lat = np.concatenate([r[0] for r in rings])
@@ -103,8 +105,9 @@ def circulation_figure(fig: Figure, ds: xr.Dataset, label: str, field: str | Non
     described = str(da.attrs.get("long_name") or field)
     _label_bar(bar, described, str(da.attrs.get("units", "")),
                float(np.abs(norm.boundaries[[0, -1]]).max()), fontsize=8)
-    ax.set_title(f"{described[:1].upper() + described[1:]}\n{' | '.join(words)}", loc="left",
-                 fontsize=10)
+    zero = "" if np.any(values[np.isfinite(values)]) else ": zero to rounding"
+    ax.set_title(f"{described[:1].upper() + described[1:]}{zero}\n{' | '.join(words)}",
+                 loc="left", fontsize=10)
     if {"time", "level"} <= set(ds.dims) and FILLED in ds:
         _sections(fig, ds)
 
@@ -127,6 +130,20 @@ def _drawn(proj: ccrs.Projection, lat: np.ndarray, lon: np.ndarray) -> list[np.n
                                                  for g in shapely.get_parts(projected)]))
     return [np.asarray(g.exterior.coords) for g in shapely.get_parts(merged)
             if g.geom_type == "Polygon" and g.area > 0]
+
+
+def _above_rounding(ds: xr.Dataset, da: xr.DataArray, field: str, values: np.ndarray,
+                    slab, depth: float = 0.0) -> np.ndarray:
+    """``values`` with those that are zero to rounding (:func:`maps._rounding_level`, against
+    the contours' variables of the same units: a mean divergence against the mean
+    vorticity) set to zero. ``depth`` (Pa) gives a vertical integral of the mean divergence
+    (omega) the rounding of that divergence times the depth integrated over as well."""
+    rounding, _ = _rounding_level(ds, da, field, values, slab)
+    if depth:
+        below, _ = _rounding_level(ds, ds[FILLED], FILLED, np.asarray(slab(FILLED).values,
+                                                                     float), slab)
+        rounding = max(rounding, below * depth)
+    return np.where(np.abs(values) <= rounding, 0.0, values)
 
 
 def _cmap() -> Colormap:
@@ -171,13 +188,19 @@ def _sections(fig: Figure, ds: xr.Dataset) -> None:
     order = np.argsort(ds["level"].values)[::-1]  # high pressure first: at the bottom
     pressure = ds["level"].values[order]
     times = mdates.date2num(ds["time"].values)
-    div = ds[FILLED].isel(contour=slice(0, count)).transpose("contour", "level", "time")
-    div = np.asarray(div.values, float)[:, order]
+    def slab(name: str) -> xr.DataArray:
+        return ds[name].isel(contour=slice(0, count))
+
+    div = slab(FILLED).transpose("contour", "level", "time")
+    div = _above_rounding(ds, ds[FILLED], FILLED, np.asarray(div.values, float)[:, order], slab)
     top_value = float(np.nanmax(np.abs(div))) if np.isfinite(div).any() else 1.0
     levels = _contour_levels(-top_value, top_value, signed=True)
     norm = BoundaryNorm(levels, 256)
-    omega = (np.asarray(ds[LINES].isel(contour=slice(0, count)).transpose(
-        "contour", "level", "time").values, float)[:, order] if LINES in ds else None)
+    omega = None
+    if LINES in ds:  # omega = omega at the base - the integral of the divergence over p
+        depth = 100.0 * float(np.ptp(pressure))  # hPa -> Pa
+        omega = _above_rounding(ds, ds[LINES], LINES, np.asarray(slab(LINES).transpose(
+            "contour", "level", "time").values, float)[:, order], slab, depth)
     names = [str(n) for n in ds["contour_name"].values[:count]]
     mappable = None
     for k in range(count):
@@ -197,7 +220,8 @@ def _sections(fig: Figure, ds: xr.Dataset) -> None:
             lines.set_label("omega")
             ax.clabel(lines, fontsize=6, fmt="%.3g")
         ax.set_ylim(pressure.max(), pressure.min())  # pressure decreases upward
-        ax.set_title(names[k], fontsize=8, loc="left")
+        ax.set_title(names[k] if np.any(div[k][np.isfinite(div[k])]) else
+                     f"{names[k]}: divergence zero to rounding", fontsize=8, loc="left")
         ax.tick_params(labelsize=6)
         ax.set_ylabel("hPa", fontsize=7)
         locator = mdates.AutoDateLocator(maxticks=5)

@@ -77,6 +77,9 @@ def test_contours_coloured_by_their_value(files, key, options):
     patches = _patches(fig)
     assert sorted(patches) == sorted(names)
     for name, value in zip(names, values, strict=True):
+        # a value a trillionth of the largest is rounding (binary64 keeps about 16 digits,
+        # IEEE 754), drawn as zero: the equatorial box of this symmetric flow (1e-22 s-1)
+        value = 0.0 if abs(value) <= 1e-12 * np.abs(values).max() else value
         expect = cmap(norm(value))  # BoundaryNorm: the colour of the value's band
         np.testing.assert_allclose(patches[name].get_facecolor(), expect)
     assert ("divergence" if field == "mean_divergence" else "vorticity") in _map_axes(
@@ -163,6 +166,50 @@ def test_bad_level_and_time_name_what_is_available(files):
         maps.render(files["storm"], level=300.0)
     with pytest.raises(InputError, match="2026-01-12T00:00Z"):
         maps.render(files["storm"], time="2026-02-01T00:00")
+
+
+def test_sections_of_a_non_divergent_flow_are_zero_to_rounding(tmp_path):
+    # Solid-body rotation (Williamson et al. 1992, test case 1, alpha = 0: u = U cos(lat),
+    # v = 0) has no divergence, so no omega either (omega is the vertical integral of the
+    # divergence, O'Brien 1970, J. Appl. Meteor. 9, 197-203); the file holds rounding
+    # (1e-22 s-1, 1e-18 Pa s-1). The map and the sections colour nothing but the bands at
+    # zero, draw no omega contours and say so.
+    lat, lon = np.linspace(-90, 90, 91), np.arange(0, 360, 2.0)
+    u = np.broadcast_to(38.61 * np.cos(np.radians(lat))[:, None], (3, 3, lat.size, lon.size))
+    dims = ("time", "level", "latitude", "longitude")
+    wind = xr.Dataset(
+        {"u": (dims, u.copy(), {"units": "m s-1", "standard_name": "eastward_wind"}),
+         "v": (dims, 0 * u, {"units": "m s-1", "standard_name": "northward_wind"})},
+        coords={"time": np.array(["2026-01-01T00", "2026-01-01T06", "2026-01-01T12"],
+                                 dtype="datetime64[ns]"),
+                "level": ("level", [850.0, 500.0, 250.0], {"units": "hPa",
+                                                           "standard_name": "air_pressure"}),
+                "latitude": ("latitude", lat, {"units": "degrees_north"}),
+                "longitude": ("longitude", lon, {"units": "degrees_east"})})
+    wind.to_netcdf(tmp_path / "solid.nc")
+    out = fp.circulation(fp.open_wind(tmp_path / "solid.nc"),
+                         [contours.box(30, 60, 0, 90), contours.circle(90, 0, 1000)])
+    path = fp.write(out, tmp_path / "solid_c.nc")
+    with xr.open_dataset(path) as ds:
+        assert np.any(ds.mean_divergence.values != 0) and np.any(ds.omega.values != 0)
+        assert np.all(np.abs(ds.mean_divergence) < 1e-12 * np.abs(ds.mean_vorticity))
+    fig = maps.render(path, size=SIZE, field="mean_divergence")
+    assert "zero to rounding" in _map_axes(fig).get_title(loc="left")
+    (bar,) = _map_axes(fig).child_axes
+    (solids,) = [c for c in bar.collections if type(c).__name__ == "QuadMesh"]
+    for patch in _patches(fig).values():  # BoundaryNorm: the colour of the band at zero
+        assert patch.get_facecolor() == pytest.approx(solids.cmap(solids.norm(0.0)))
+    sections = _sections(fig)
+    assert len(sections) == 2
+    for ax in sections:
+        assert "zero to rounding" in ax.get_title(loc="left")
+        assert not [c for c in ax.collections if c.get_label() == "omega"]
+        assert not ax.texts  # no omega contour labels
+        (filled,) = [c for c in ax.collections if hasattr(c, "levels")]
+        bands = [(low, high) for low, high, path in zip(
+            filled.levels[:-1], filled.levels[1:], filled.get_paths(), strict=True)
+            if len(path.vertices)]
+        assert bands and all(0.0 in band for band in bands)  # only the bands at zero
 
 
 @pytest.mark.parametrize("projection,pole", [("globe", 90), ("north-cap", 90),
