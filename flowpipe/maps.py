@@ -530,8 +530,14 @@ def _without_cuts(ring: np.ndarray) -> list[LineString]:
     x, y = ring[:, 0], ring[:, 1]
     along_meridian = (x[:-1] == x[1:]) & np.isin(x[:-1], (0.0, 180.0, -180.0))
     along_pole = (np.abs(y[:-1]) >= 90.0 - 1e-9) & (np.abs(y[1:]) >= 90.0 - 1e-9)
-    bounds = [-1, *np.flatnonzero(along_meridian | along_pole), len(ring) - 1]
-    return [LineString(ring[a + 1: b + 1]) for a, b in zip(bounds[:-1], bounds[1:], strict=True)
+    return [LineString(piece) for piece in _split_at(ring, along_meridian | along_pole)]
+
+
+def _split_at(ring: np.ndarray, cut: np.ndarray) -> list[np.ndarray]:
+    """The pieces of a line of nodes ``ring`` (n, 2) between its segments where ``cut``
+    (n - 1) is true; pieces of one node left out."""
+    bounds = [-1, *np.flatnonzero(cut), len(ring) - 1]
+    return [ring[a + 1: b + 1] for a, b in zip(bounds[:-1], bounds[1:], strict=True)
             if b - a >= 2]
 
 

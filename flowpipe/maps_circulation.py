@@ -37,6 +37,7 @@ from .maps import (
     _members,
     _rounding_level,
     _select,
+    _split_at,
     _units_text,
 )
 
@@ -84,17 +85,19 @@ def circulation_figure(fig: Figure, ds: xr.Dataset, label: str, field: str | Non
     top = float(np.abs(finite).max()) if finite.size else 1.0
     levels = _contour_levels(-top, top, signed=True)
     norm = BoundaryNorm(levels, 256)
-    drawn = [(parts, value, name) for (ring_lat, ring_lon), value, name
+    drawn = [(parts, value, name, ring) for ring, value, name
              in zip(rings, values, names, strict=True)
-             if (parts := _drawn(proj, ring_lat, ring_lon))]  # (none: off this map)
+             if (parts := _drawn(proj, *ring))]  # (none: off this map)
     # the largest first, so that a contour inside another (a small circle on the pole in
     # a cap round it) is drawn over it and stays in sight
     drawn.sort(key=lambda item: -sum(ShapelyPolygon(xy).area for xy in item[0]))
-    for parts, value, name in drawn:
+    for parts, value, name, ring in drawn:
         colour = _cmap()(norm(value)) if np.isfinite(value) else "none"
         ax.add_patch(PathPatch(Path.make_compound_path(*[Path(xy, closed=True) for xy in parts]),
-                               facecolor=colour, edgecolor="black", linewidth=1.0, zorder=2,
-                               label=name))
+                               facecolor=colour, edgecolor="none", zorder=2, label=name))
+        for piece in _outline(*ring):
+            ax.plot(piece[:, 0], piece[:, 1], transform=ccrs.PlateCarree(), color="black",
+                    linewidth=1.0, zorder=2.5, label=f"outline of {name}")
         xyz = max(parts, key=lambda xy: ShapelyPolygon(xy).area)
         top = xyz[np.argmax(xyz[:, 1])]  # the name just inside the contour's top
         ax.text(xyz[:, 0].mean(), top[1], name, fontsize=7, ha="center", va="top", zorder=4,
@@ -144,6 +147,17 @@ def _above_rounding(ds: xr.Dataset, da: xr.DataArray, field: str, values: np.nda
                                                                      float), slab)
         rounding = max(rounding, below * depth)
     return np.where(np.abs(values) <= rounding, 0.0, values)
+
+
+def _outline(lat: np.ndarray, lon: np.ndarray) -> list[np.ndarray]:
+    """The edge of a contour to draw, as pieces of (longitude, latitude) nodes: its ring
+    in the longitude-latitude plane (:func:`contours.plane_ring`) closed, less the
+    segments to or along a pole, where the ring of a polar cap closes in the plane but
+    the region has no edge on the sphere (drawn, a spoke from the pole on a polar map)."""
+    x, y = plane_ring(lat, lon)
+    ring = np.column_stack([np.append(x, x[:1]), np.append(y, y[:1])])
+    at_pole = np.abs(ring[:, 1]) >= 90.0 - 1e-9
+    return _split_at(ring, at_pole[:-1] | at_pole[1:])
 
 
 def _cmap() -> Colormap:

@@ -13,6 +13,7 @@ External references used here:
 from __future__ import annotations
 
 import cartopy.crs as ccrs
+import matplotlib.colors
 import matplotlib.dates as mdates
 import matplotlib.image
 import numpy as np
@@ -234,6 +235,37 @@ def test_a_contour_round_the_pole_is_drawn(tmp_path, projection, pole):
     extent = drawn[0].get_window_extent()
     assert extent.height > 2  # not a degenerate sliver
     assert extent.x0 <= inside[0] <= extent.x1 and extent.y0 - 1 <= inside[1] <= extent.y1 + 1
+
+
+@pytest.mark.parametrize("projection", [None, "north-cap", "globe"])
+def test_a_polar_circles_outline_has_no_spoke_to_the_pole(tmp_path, projection):
+    # A circle of 1000 km round the north pole is the cap poleward of latitude
+    # 90 - 1000 / (pi a / 180) = 81.0 (great-circle distance, common practice): its edge
+    # on the sphere is that parallel alone. Every line drawn for it (matplotlib artists of
+    # its name with a visible edge), read back in map coordinates and inverted to
+    # latitude with cartopy/PROJ, stays on that parallel: no segment to or along the pole,
+    # while the filled patch still covers the pole side.
+    cap = fp.circulation(fp.open_wind(GLOBAL).isel(time=slice(0, 1)),
+                         [contours.circle(90, 0, 1000)])
+    fig = maps.render(fp.write(cap, tmp_path / "cap.nc"), size=SIZE, projection=projection)
+    ax = _map_axes(fig)
+    fig.draw_without_rendering()
+    name = "circle 90,0,1000km"
+    edge = 90.0 - np.degrees(1000e3 / EARTH_RADIUS)
+    lines = [a for a in ax.get_children() if name in str(a.get_label())
+             and a.get_visible() and a.get_linewidth() > 0
+             and matplotlib.colors.to_rgba(a.get_edgecolor() if isinstance(a, PathPatch)
+                                           else a.get_color())[3] > 0]
+    assert lines
+    for line in lines:
+        vertices = (line.get_transform() - ax.transData).transform_path(line.get_path()).vertices
+        lat = ccrs.PlateCarree().transform_points(ax.projection, *vertices.T)[:, 1]
+        assert np.all(np.abs(lat - edge) < 0.5), lat.max()
+    patch = _patches(fig)[name]
+    inside = ax.projection.transform_point(30.0, 0.5 * (edge + 90.0), ccrs.PlateCarree())
+    assert patch.get_path().contains_point(inside)
+    assert not patch.get_path().contains_point(
+        ax.projection.transform_point(30.0, edge - 3.0, ccrs.PlateCarree()))
 
 
 @pytest.mark.parametrize("centre", [0.0, 180.0])
