@@ -47,7 +47,7 @@ from shapely.geometry import LineString
 
 from ._version import __version__
 from .annotate import CAUTION_SHORT, iso_time
-from .choices import PROJECTIONS
+from .choices import PROJECTIONS, SCHEMES
 from .errors import FlowpipeWarning, InputError, UsageError
 from .ingest import (
     as_timedelta,
@@ -96,6 +96,14 @@ WIND_FOR = {
     "velocity_potential": ("u_divergent", "v_divergent"),
     "divergence": ("u_divergent", "v_divergent"),
 }
+#: Fields of a variational split that carry a share of the harmonic flow (the rotational and
+#: divergent parts, which alone add up to the wind), and the share of the slab's kinetic
+#: energy in that harmonic flow (``harmonic_energy_share``) above which a map says so: then
+#: most of the energy is in a part that the boundary, not the data, decides, shared evenly
+#: between the two (a solid-body rotation gets a divergent wind of half its speed).
+SHARED_HARMONIC = ("streamfunction", "velocity_potential", "u_rotational", "v_rotational",
+                   "u_divergent", "v_divergent")
+HARMONIC_SHARE = 0.5
 #: Preferred default fields of a decomposition file, in order.
 DEFAULT_FIELDS = ("streamfunction", "velocity_potential", "vorticity", "divergence")
 
@@ -736,7 +744,21 @@ def _field_map(fig: Figure, ds: xr.Dataset, label: str, field: str | None, level
         if field not in wind:  # (a component of the wind drawn needs no "with" it)
             title += f", with the {kind} wind".replace("  ", " ")
         _arrows(ax, slab(wind[0]), slab(wind[1]), lat, lon, barbs)
-    ax.set_title(f"{title}\n{' | '.join(words)}", loc="left", fontsize=10)
+    ax.set_title(f"{title}\n{' | '.join(words)}{_harmonic_note(ds, field, indexers)}",
+                 loc="left", fontsize=10)
+
+
+def _harmonic_note(ds: xr.Dataset, field: str, indexers: dict) -> str:
+    """A line for the title of a variational split's part whose slab has most of its energy
+    in the harmonic flow (:data:`HARMONIC_SHARE`), else nothing."""
+    share = ds.get("harmonic_energy_share")
+    if field not in SHARED_HARMONIC or share is None or ds.attrs.get("scheme") != SCHEMES[0]:
+        return ""
+    value = float(share.isel({d: indexers[d] for d in share.dims if d in indexers}).max())
+    if not value > HARMONIC_SHARE:
+        return ""
+    return (f"\nharmonic flow: {value:.0%} of the energy, shared by both parts (variational; "
+            "see harmonic_energy_share)")
 
 
 def _rounding_level(ds: xr.Dataset, da: xr.DataArray, field: str, values: np.ndarray,

@@ -456,6 +456,60 @@ def test_the_wind_key_never_meets_the_title(files, tmp_path, size):
     assert "with the rotational wind" in streamfunction.get_title(loc="left")
 
 
+def _limited_area_wind(path, u_fn):
+    """A CF wind on 20-60 N, 150 E-150 W at 1 degree, one time, from u_fn(lat, lon) -> (u, v)."""
+    lat, lon = np.arange(20.0, 60.01, 1.0), np.arange(150.0, 210.01, 1.0)
+    u, v = u_fn(*np.meshgrid(lat, lon, indexing="ij"))
+    dims = ("time", "latitude", "longitude")
+    xr.Dataset({"u": (dims, u[None], {"units": "m s-1", "standard_name": "eastward_wind"}),
+                "v": (dims, v[None], {"units": "m s-1", "standard_name": "northward_wind"})},
+               coords={"time": ("time", [np.datetime64("2026-01-01T00", "ns")]),
+                       "latitude": ("latitude", lat, {"units": "degrees_north",
+                                                      "standard_name": "latitude"}),
+                       "longitude": ("longitude", lon, {"units": "degrees_east",
+                                                        "standard_name": "longitude"})},
+               attrs={"Conventions": "CF-1.11"}).to_netcdf(path)
+    return path
+
+
+def _vortex(lat, lon):
+    # a Gaussian vortex in the middle of the area, psi = -P exp(-r^2 / L^2) on the tangent
+    # plane (u = -dpsi/dy, v = dpsi/dx): its wind dies out well inside the boundary
+    x = np.radians(lon - 180.0) * 6.371e6 * np.cos(np.radians(40.0))
+    y = np.radians(lat - 40.0) * 6.371e6
+    scale = 8e5
+    bump = np.exp(-(x**2 + y**2) / scale**2) * 20.0 / scale
+    return y * bump, -x * bump
+
+
+@pytest.mark.parametrize("field", ["velocity_potential", "u_divergent", "streamfunction"])
+def test_a_variational_split_mostly_harmonic_says_so(tmp_path, field):
+    # Solid-body rotation on a limited area (Williamson et al. 1992, test case 1 with
+    # alpha = 0: u = U cos(lat), v = 0) has no divergence and a vorticity 2 U sin(lat) / a:
+    # on the area, most of its energy is in a harmonic flow, which the variational split
+    # (Li, Chao & McWilliams 2006, Mon. Wea. Rev. 134, 3384-3394) shares between the
+    # rotational and the divergent part. The file's harmonic_energy_share says how much; the
+    # map of either part says so under its title. A vortex that dies out inside the area
+    # has little harmonic energy, and no such line.
+    rotation = _limited_area_wind(tmp_path / "rotation.nc",
+                                  lambda lat, lon: (38.61 * np.cos(np.radians(lat)), 0 * lat))
+    parts = fp.write(fp.decompose(fp.open_wind(rotation)), tmp_path / "rotation_parts.nc")
+    with xr.open_dataset(parts) as ds:
+        share = float(ds["harmonic_energy_share"].values.max())
+        assert ds.attrs["scheme"] == "variational" and share > 0.5
+    title = _map_axes(maps.render(parts, field=field, size=SIZE)).get_title(loc="left")
+    (note,) = [line for line in title.splitlines() if line.startswith("harmonic flow")]
+    assert f"{share:.0%} of the energy" in note and "harmonic_energy_share" in note
+    divergence = _map_axes(maps.render(parts, field="divergence", size=SIZE))
+    assert "harmonic flow" not in divergence.get_title(loc="left")
+    vortex = _limited_area_wind(tmp_path / "vortex.nc", _vortex)
+    parts = fp.write(fp.decompose(fp.open_wind(vortex)), tmp_path / "vortex_parts.nc")
+    with xr.open_dataset(parts) as ds:
+        assert float(ds["harmonic_energy_share"].values.max()) < 0.1
+    title = _map_axes(maps.render(parts, field=field, size=SIZE)).get_title(loc="left")
+    assert "harmonic flow" not in title
+
+
 @pytest.mark.parametrize("bounds", [(-60.0, 60.0, 0.0, 360.0), (30.0, 60.0, 0.0, 30.0),
                                     (-10.0, 10.0, 0.0, 360.0)])
 def test_arrow_count_follows_the_domain_not_its_shape(bounds):
