@@ -47,7 +47,7 @@ from shapely.geometry import LineString
 
 from ._version import __version__
 from .annotate import CAUTION_SHORT, iso_time
-from .choices import PROJECTIONS
+from .choices import PROJECTIONS, SCHEMES
 from .errors import FlowpipeWarning, InputError, UsageError
 from .ingest import (
     as_timedelta,
@@ -96,6 +96,14 @@ WIND_FOR = {
     "velocity_potential": ("u_divergent", "v_divergent"),
     "divergence": ("u_divergent", "v_divergent"),
 }
+#: Fields of a variational split that carry a share of the harmonic flow (the rotational and
+#: divergent parts, which alone add up to the wind), and the share of the slab's kinetic
+#: energy in that harmonic flow (``harmonic_energy_share``) above which a map says so: then
+#: most of the energy is in a part that the boundary, not the data, decides, shared evenly
+#: between the two (a solid-body rotation gets a divergent wind of half its speed).
+SHARED_HARMONIC = ("streamfunction", "velocity_potential", "u_rotational", "v_rotational",
+                   "u_divergent", "v_divergent")
+HARMONIC_SHARE = 0.5
 #: Preferred default fields of a decomposition file, in order.
 DEFAULT_FIELDS = ("streamfunction", "velocity_potential", "vorticity", "divergence")
 
@@ -112,6 +120,10 @@ COLOUR_BAR_BOX = (1.03, 0.0, 0.025, 1.0)
 AREA_SPAN = 120.0
 #: Arrows on a map, about: evenly spaced on the sphere whatever the domain's shape.
 ARROWS = 400
+#: Where the reference arrow goes (the map's axes fraction): under the colour bar, out of
+#: the way of the title above the map, however long that is (a trial saw a long title
+#: run into the key when it stood above the map's right corner).
+WIND_KEY = (1.04, -0.05)
 
 #: One knot in m s-1: the international nautical mile of 1852 m per hour (exact by
 #: definition; BIPM SI Brochure, 9th ed., 2019, table 8 - from memory).
@@ -135,6 +147,15 @@ END_MARKERS = {
 #: double, the accuracy the spectral decomposition holds on analytic winds
 #: (1e-10 of the wind, tests/test_decompose.py). *Common practice.*
 ROUNDING = {4: 1e-6, 8: 1e-10}
+#: Whole-integration stretch that a finite-time Lyapunov exponent resolves: an exponent
+#: lambda with |lambda| T below it (lengths within 1 % of their start after the time T)
+#: is zero to the stencil's accuracy. The exponent is ln(stretch) / T, so its scale is
+#: 1 / T, not its own largest value (the noise itself where nothing stretches). On a rigid
+#: rotation, an isometry, flowpipe's exponents reach |lambda| T = 1.4e-3 over 48 h on a
+#: 2-degree wind (the case of tests/test_ftle.py); this leaves a sevenfold margin for
+#: coarser winds and still draws exponents of 1e-7 s-1 over a day, a hundredth of those
+#: of the Rossby-Haurwitz wave there.
+FTLE_STRETCH = 1e-2
 #: Share of a slab's valid points at each end that may lie beyond the colour scale, drawn
 #: in its end colours and marked by the colour bar's arrows: a handful of extremes (a
 #: cyclone's core, the lee of a mountain) would otherwise set the scale and leave the rest
@@ -517,8 +538,14 @@ def _without_cuts(ring: np.ndarray) -> list[LineString]:
     x, y = ring[:, 0], ring[:, 1]
     along_meridian = (x[:-1] == x[1:]) & np.isin(x[:-1], (0.0, 180.0, -180.0))
     along_pole = (np.abs(y[:-1]) >= 90.0 - 1e-9) & (np.abs(y[1:]) >= 90.0 - 1e-9)
-    bounds = [-1, *np.flatnonzero(along_meridian | along_pole), len(ring) - 1]
-    return [LineString(ring[a + 1: b + 1]) for a, b in zip(bounds[:-1], bounds[1:], strict=True)
+    return [LineString(piece) for piece in _split_at(ring, along_meridian | along_pole)]
+
+
+def _split_at(ring: np.ndarray, cut: np.ndarray) -> list[np.ndarray]:
+    """The pieces of a line of nodes ``ring`` (n, 2) between its segments where ``cut``
+    (n - 1) is true; pieces of one node left out."""
+    bounds = [-1, *np.flatnonzero(cut), len(ring) - 1]
+    return [ring[a + 1: b + 1] for a, b in zip(bounds[:-1], bounds[1:], strict=True)
             if b - a >= 2]
 
 
@@ -543,6 +570,14 @@ def _coastlines(ax) -> bool:
 def _units_text(units: str) -> str:
     """UDUNITS text with exponents raised: ``m2 s-1`` -> m² s⁻¹ (mathtext)."""
     return re.sub(r"\b([A-Za-z]+)(-?\d+)\b", r"\1$^{\2}$", units)
+
+
+def plain_text(text: str) -> str:
+    """A figure's text for a terminal: the exponents :func:`_units_text` raised written
+    back as UDUNITS writes them (``m$^{2}$ s$^{-1}$`` -> ``m2 s-1``), a power of ten
+    as ``10^-5``."""
+    text = re.sub(r"\b10\$\^\{(-?\d+)\}\$", r"10^\1", text)
+    return re.sub(r"\$\^\{(-?\d+)\}\$", r"\1", text)
 
 
 def _contour_levels(low: float, high: float, signed: bool) -> np.ndarray:
@@ -650,10 +685,10 @@ def _field_map(fig: Figure, ds: xr.Dataset, label: str, field: str | None, level
     proj, extent = _domain_projection(lat, lon, projection, step)
     ax = _map_axes(fig, proj, extent)
 
-    rounding, companion = _rounding_level(ds, da, field, values, slab)
+    rounding, basis = _rounding_level(ds, da, field, values, slab)
     values = np.where(np.abs(values) <= rounding, 0.0, values)
     if not np.any(values):  # nothing above rounding: say so rather than colour the noise
-        _zero_map(ax, da, field, words, rounding, companion)
+        _zero_map(ax, da, field, words, rounding, basis)
         return
     low, high = (float(q) for q in np.nanquantile(values, [BEYOND_SCALE, 1 - BEYOND_SCALE]))
     names = (field, str(da.attrs.get("standard_name", "")))
@@ -706,21 +741,43 @@ def _field_map(fig: Figure, ds: xr.Dataset, label: str, field: str | None, level
     wind = _wind_names(ds, field)
     if wind is not None:
         kind = wind[0][2:] if wind[0].startswith("u_") else ""
-        title += f", with the {kind} wind".replace("  ", " ")
+        if field not in wind:  # (a component of the wind drawn needs no "with" it)
+            title += f", with the {kind} wind".replace("  ", " ")
         _arrows(ax, slab(wind[0]), slab(wind[1]), lat, lon, barbs)
-    ax.set_title(f"{title}\n{' | '.join(words)}", loc="left", fontsize=10)
+    ax.set_title(f"{title}\n{' | '.join(words)}{_harmonic_note(ds, field, indexers)}",
+                 loc="left", fontsize=10)
+
+
+def _harmonic_note(ds: xr.Dataset, field: str, indexers: dict) -> str:
+    """A line for the title of a variational split's part whose slab has most of its energy
+    in the harmonic flow (:data:`HARMONIC_SHARE`), else nothing."""
+    share = ds.get("harmonic_energy_share")
+    if field not in SHARED_HARMONIC or share is None or ds.attrs.get("scheme") != SCHEMES[0]:
+        return ""
+    value = float(share.isel({d: indexers[d] for d in share.dims if d in indexers}).max())
+    if not value > HARMONIC_SHARE:
+        return ""
+    return (f"\nharmonic flow: {value:.0%} of the energy, shared by both parts (variational; "
+            "see harmonic_energy_share)")
 
 
 def _rounding_level(ds: xr.Dataset, da: xr.DataArray, field: str, values: np.ndarray,
                     slab) -> tuple[float, str]:
-    """Magnitude below which a slab's values are rounding noise, and what it is relative to.
+    """Magnitude below which a slab's values are rounding noise, and what it is relative
+    to (words for a title: "the rounding level of the streamfunction's largest value").
 
     :data:`ROUNDING` (by the precision the field is stored in) of the largest
     magnitude among the slab's fields of the same units and dimensions: the
     velocity potential of a non-divergent wind is measured against the
     streamfunction, its divergence against the vorticity. ``values`` is the slab
-    of ``field`` already read; ``slab(name)`` reads that of another field.
+    of ``field`` already read; ``slab(name)`` reads that of another field. A
+    finite-time Lyapunov exponent with its integration time: :data:`FTLE_STRETCH`
+    over that time.
     """
+    hours = da.attrs.get("integration_hours")
+    if _from_zero(field, da) and hours is not None and float(hours) > 0:
+        return (FTLE_STRETCH / (float(hours) * 3600.0),
+                f"lengths stretched by less than {FTLE_STRETCH:.0%} over the {float(hours):g} h")
     stored = np.dtype(da.encoding.get("dtype", da.dtype))
     relative = ROUNDING.get(stored.itemsize, ROUNDING[8]) if stored.kind == "f" else 0.0
     units = da.attrs.get("units")
@@ -733,18 +790,18 @@ def _rounding_level(ds: xr.Dataset, da: xr.DataArray, field: str, values: np.nda
                                     initial=0.0))
         if magnitude > largest:
             largest, companion = magnitude, str(name)
-    return relative * largest, companion
+    against = "its own" if companion == field else f"the {companion.replace('_', ' ')}'s"
+    return relative * largest, f"the rounding level of {against} largest value"
 
 
 def _zero_map(ax, da: xr.DataArray, field: str, words: list[str], rounding: float,
-              companion: str) -> None:
+              basis: str) -> None:
     """A field that is zero to rounding: an empty map whose title says so."""
     units = _units_text(str(da.attrs.get("units", "")))
     name = str(da.attrs.get("long_name") or field)
-    against = "its own" if companion == field else f"the {companion.replace('_', ' ')}'s"
     ax.set_title(f"{name[:1].upper() + name[1:]}: zero to rounding (every value within "
-                 f"{rounding:.1e} {units} of zero, the rounding level of {against} largest "
-                 f"value)\n{' | '.join(words)}", loc="left", fontsize=10)
+                 f"{rounding:.1e} {units} of zero, {basis})\n{' | '.join(words)}", loc="left",
+                 fontsize=10)
     ax.text(0.5, 0.5, "zero to rounding", transform=ax.transAxes, ha="center", va="center",
             fontsize=14, color="0.3")
 
@@ -802,7 +859,7 @@ def _arrows(ax, u: xr.DataArray, v: xr.DataArray, lat: np.ndarray, lon: np.ndarr
                        transform=ccrs.PlateCarree(), color="white", edgecolor="black",
                        linewidth=0.5, zorder=4, scale=float(np.nanpercentile(speed, 99)) * across * 1.2,
                        scale_units="width", width=0.0022)
-    ax.quiverkey(arrows, X=0.8, Y=1.03, U=reference, label=f"{reference:g} m s$^{{-1}}$",
+    ax.quiverkey(arrows, X=WIND_KEY[0], Y=WIND_KEY[1], U=reference, label=f"{reference:g} m s$^{{-1}}$",
                  labelpos="E", coordinates="axes", fontproperties={"size": 8},
                  color="black")
 
@@ -906,8 +963,7 @@ def _track_map(fig: Figure, ds: xr.Dataset, label: str, field: str | None,
                            linewidths=1.8, zorder=4, transform=proj)
     ax.add_collection(lines)
     _domain_outline(ax, ds)
-    if elapsed is not None:
-        _time_marks(ax, lat, lon, elapsed, marks)
+    labels = _time_marks(ax, lat, lon, elapsed, marks) if elapsed is not None else []
     valid = np.isfinite(lat) & np.isfinite(lon)
     first = np.argmax(valid, axis=1)
     last = lat.shape[1] - 1 - np.argmax(valid[:, ::-1], axis=1)
@@ -918,7 +974,7 @@ def _track_map(fig: Figure, ds: xr.Dataset, label: str, field: str | None,
                marker="o", s=28, facecolor="white", edgecolor="black", linewidth=1.0, zorder=5,
                label="start" if every == 1 else f"start (1 in {every} of {rows.size})")
     _end_markers(ax, ds, lat[rows, last], lon[rows, last])
-    ax.legend(loc="lower left", fontsize=7, framealpha=0.8)
+    legend = ax.legend(loc="lower left", fontsize=7, framealpha=0.8)
     bar = _colour_bar(fig, ax, lines)
     bar.set_label(colour_label)
     if colour is not None and colour.attrs.get("positive") == "down":
@@ -932,6 +988,58 @@ def _track_map(fig: Figure, ds: xr.Dataset, label: str, field: str | None,
         title = (f"{head}, member {member}" if member is not None else
                  f"{head}, {count} member{'s' if count != 1 else ''}") + newline + rest
     ax.set_title(title, loc="left", fontsize=10)
+    fig.draw_without_rendering()  # the map's final place on the figure, and its texts' sizes
+    kept = _apart(labels)
+    _legend_clear_of(ax, legend, segments[keep], [b.get_points().mean(axis=0) for b in kept])
+
+
+def _apart(texts: list) -> list:
+    """Remove each text whose drawn extent overlaps one kept before it (time labels where a
+    track loops or crosses another); the extents of those kept (display coordinates)."""
+    kept = []
+    for text in texts:
+        extent = text.get_window_extent()
+        if any(extent.overlaps(other) for other in kept):
+            text.remove()
+        else:
+            kept.append(extent)
+    return kept
+
+
+#: Where a legend may stand inside the map: matplotlib's names, in the order its
+#: ``loc="best"`` tries them, with the place of the legend's box across the room left
+#: inside the axes' padding (0 left or bottom, 1 right or top).
+LEGEND_PLACES = {"upper right": (1.0, 1.0), "upper left": (0.0, 1.0), "lower left": (0.0, 0.0),
+                 "lower right": (1.0, 0.0), "center left": (0.0, 0.5),
+                 "center right": (1.0, 0.5), "lower center": (0.5, 0.0),
+                 "upper center": (0.5, 1.0)}
+#: Points along each drawn track segment that a legend's box should not hide.
+SEGMENT_SAMPLES = 8
+
+
+def _legend_clear_of(ax, legend, segments: np.ndarray, points: list) -> None:
+    """Put the legend in the place of :data:`LEGEND_PLACES` that hides the fewest track
+    points (``segments`` in map coordinates, sampled along) and ``points`` (display).
+
+    matplotlib's own ``loc="best"`` counts the vertices of lines and the offsets of
+    collections, not the segments of a LineCollection: it would put the legend over a
+    track (a trial's start sat hidden under it). Needs a drawn figure.
+    """
+    along = np.linspace(0.0, 1.0, SEGMENT_SAMPLES)[:, None, None]
+    sampled = (segments[None, :, 0] * (1 - along) + segments[None, :, 1] * along).reshape(-1, 2)
+    shown = np.concatenate([ax.transData.transform(sampled).reshape(-1, 2),
+                            np.reshape(points, (-1, 2))])
+    box = legend.get_window_extent()
+    pad = legend.borderaxespad * legend.prop.get_size_in_points() * ax.figure.dpi / 72.0
+    room = ax.bbox.padded(-pad)
+
+    def hidden(place: tuple[float, float]) -> int:
+        x0 = room.x0 + place[0] * (room.width - box.width)
+        y0 = room.y0 + place[1] * (room.height - box.height)
+        return int(np.sum((shown[:, 0] >= x0) & (shown[:, 0] <= x0 + box.width)
+                          & (shown[:, 1] >= y0) & (shown[:, 1] <= y0 + box.height)))
+
+    legend.set_loc(min(LEGEND_PLACES, key=lambda name: hidden(LEGEND_PLACES[name])))
 
 
 def _domain_outline(ax, ds: xr.Dataset) -> None:
@@ -955,22 +1063,21 @@ def _domain_outline(ax, ds: xr.Dataset) -> None:
 
 
 def _time_marks(ax, lat: np.ndarray, lon: np.ndarray, elapsed: np.ndarray,
-                hours: float) -> None:
+                hours: float) -> list:
     """Dots where each track has travelled a whole multiple of ``hours``; the first
-    track's marks labelled with their hours (a few tracks: every track's)."""
+    track's marks labelled with their hours (a few tracks: every track's); the labels."""
     if not np.isfinite(elapsed).any() or not hours > 0:
-        return
+        return []
     steps = np.abs(elapsed) / hours
     marked = np.isfinite(steps) & np.isclose(steps, np.round(steps)) & (np.round(steps) > 0)
     if not marked.any():
-        return
+        return []
     ax.scatter(lon[marked], lat[marked], transform=ccrs.PlateCarree(), marker=".", s=30,
                color="black", zorder=6, label=f"every {hours:g} h")
-    for i in range(min(lat.shape[0], LABELLED_TRACKS)):
-        for j in np.flatnonzero(marked[i]):
-            ax.annotate(f"{elapsed[i, j]:+.0f} h", (lon[i, j], lat[i, j]),
+    return [ax.annotate(f"{elapsed[i, j]:+.0f} h", (lon[i, j], lat[i, j]),
                         xycoords=ccrs.PlateCarree()._as_mpl_transform(ax),
                         xytext=(3, 3), textcoords="offset points", fontsize=6, zorder=6)
+            for i in range(min(lat.shape[0], LABELLED_TRACKS)) for j in np.flatnonzero(marked[i])]
 
 
 def _end_markers(ax, ds: xr.Dataset, lat: np.ndarray, lon: np.ndarray) -> None:

@@ -35,7 +35,9 @@ from .maps import (
     _label_bar,
     _map_axes,
     _members,
+    _rounding_level,
     _select,
+    _split_at,
     _units_text,
 )
 
@@ -72,6 +74,7 @@ def circulation_figure(fig: Figure, ds: xr.Dataset, label: str, field: str | Non
     indexers, words = _select(ds, da, label, level, when)
     words += chosen
     values = np.asarray(da.isel(indexers).transpose("contour", ...).values, float).reshape(-1)
+    values = _above_rounding(ds, da, field, values, lambda name: ds[name].isel(indexers))
     names = [str(n) for n in ds["contour_name"].values]
     rings = _rings(ds, indexers.get("time"))
     lat = np.concatenate([r[0] for r in rings])
@@ -82,17 +85,19 @@ def circulation_figure(fig: Figure, ds: xr.Dataset, label: str, field: str | Non
     top = float(np.abs(finite).max()) if finite.size else 1.0
     levels = _contour_levels(-top, top, signed=True)
     norm = BoundaryNorm(levels, 256)
-    drawn = [(parts, value, name) for (ring_lat, ring_lon), value, name
+    drawn = [(parts, value, name, ring) for ring, value, name
              in zip(rings, values, names, strict=True)
-             if (parts := _drawn(proj, ring_lat, ring_lon))]  # (none: off this map)
+             if (parts := _drawn(proj, *ring))]  # (none: off this map)
     # the largest first, so that a contour inside another (a small circle on the pole in
     # a cap round it) is drawn over it and stays in sight
     drawn.sort(key=lambda item: -sum(ShapelyPolygon(xy).area for xy in item[0]))
-    for parts, value, name in drawn:
+    for parts, value, name, ring in drawn:
         colour = _cmap()(norm(value)) if np.isfinite(value) else "none"
         ax.add_patch(PathPatch(Path.make_compound_path(*[Path(xy, closed=True) for xy in parts]),
-                               facecolor=colour, edgecolor="black", linewidth=1.0, zorder=2,
-                               label=name))
+                               facecolor=colour, edgecolor="none", zorder=2, label=name))
+        for piece in _outline(*ring):
+            ax.plot(piece[:, 0], piece[:, 1], transform=ccrs.PlateCarree(), color="black",
+                    linewidth=1.0, zorder=2.5, label=f"outline of {name}")
         xyz = max(parts, key=lambda xy: ShapelyPolygon(xy).area)
         top = xyz[np.argmax(xyz[:, 1])]  # the name just inside the contour's top
         ax.text(xyz[:, 0].mean(), top[1], name, fontsize=7, ha="center", va="top", zorder=4,
@@ -103,8 +108,9 @@ def circulation_figure(fig: Figure, ds: xr.Dataset, label: str, field: str | Non
     described = str(da.attrs.get("long_name") or field)
     _label_bar(bar, described, str(da.attrs.get("units", "")),
                float(np.abs(norm.boundaries[[0, -1]]).max()), fontsize=8)
-    ax.set_title(f"{described[:1].upper() + described[1:]}\n{' | '.join(words)}", loc="left",
-                 fontsize=10)
+    zero = "" if np.any(values[np.isfinite(values)]) else ": zero to rounding"
+    ax.set_title(f"{described[:1].upper() + described[1:]}{zero}\n{' | '.join(words)}",
+                 loc="left", fontsize=10)
     if {"time", "level"} <= set(ds.dims) and FILLED in ds:
         _sections(fig, ds)
 
@@ -127,6 +133,31 @@ def _drawn(proj: ccrs.Projection, lat: np.ndarray, lon: np.ndarray) -> list[np.n
                                                  for g in shapely.get_parts(projected)]))
     return [np.asarray(g.exterior.coords) for g in shapely.get_parts(merged)
             if g.geom_type == "Polygon" and g.area > 0]
+
+
+def _above_rounding(ds: xr.Dataset, da: xr.DataArray, field: str, values: np.ndarray,
+                    slab, depth: float = 0.0) -> np.ndarray:
+    """``values`` with those that are zero to rounding (:func:`maps._rounding_level`, against
+    the contours' variables of the same units: a mean divergence against the mean
+    vorticity) set to zero. ``depth`` (Pa) gives a vertical integral of the mean divergence
+    (omega) the rounding of that divergence times the depth integrated over as well."""
+    rounding, _ = _rounding_level(ds, da, field, values, slab)
+    if depth:
+        below, _ = _rounding_level(ds, ds[FILLED], FILLED, np.asarray(slab(FILLED).values,
+                                                                     float), slab)
+        rounding = max(rounding, below * depth)
+    return np.where(np.abs(values) <= rounding, 0.0, values)
+
+
+def _outline(lat: np.ndarray, lon: np.ndarray) -> list[np.ndarray]:
+    """The edge of a contour to draw, as pieces of (longitude, latitude) nodes: its ring
+    in the longitude-latitude plane (:func:`contours.plane_ring`) closed, less the
+    segments to or along a pole, where the ring of a polar cap closes in the plane but
+    the region has no edge on the sphere (drawn, a spoke from the pole on a polar map)."""
+    x, y = plane_ring(lat, lon)
+    ring = np.column_stack([np.append(x, x[:1]), np.append(y, y[:1])])
+    at_pole = np.abs(ring[:, 1]) >= 90.0 - 1e-9
+    return _split_at(ring, at_pole[:-1] | at_pole[1:])
 
 
 def _cmap() -> Colormap:
@@ -171,13 +202,19 @@ def _sections(fig: Figure, ds: xr.Dataset) -> None:
     order = np.argsort(ds["level"].values)[::-1]  # high pressure first: at the bottom
     pressure = ds["level"].values[order]
     times = mdates.date2num(ds["time"].values)
-    div = ds[FILLED].isel(contour=slice(0, count)).transpose("contour", "level", "time")
-    div = np.asarray(div.values, float)[:, order]
+    def slab(name: str) -> xr.DataArray:
+        return ds[name].isel(contour=slice(0, count))
+
+    div = slab(FILLED).transpose("contour", "level", "time")
+    div = _above_rounding(ds, ds[FILLED], FILLED, np.asarray(div.values, float)[:, order], slab)
     top_value = float(np.nanmax(np.abs(div))) if np.isfinite(div).any() else 1.0
     levels = _contour_levels(-top_value, top_value, signed=True)
     norm = BoundaryNorm(levels, 256)
-    omega = (np.asarray(ds[LINES].isel(contour=slice(0, count)).transpose(
-        "contour", "level", "time").values, float)[:, order] if LINES in ds else None)
+    omega = None
+    if LINES in ds:  # omega = omega at the base - the integral of the divergence over p
+        depth = 100.0 * float(np.ptp(pressure))  # hPa -> Pa
+        omega = _above_rounding(ds, ds[LINES], LINES, np.asarray(slab(LINES).transpose(
+            "contour", "level", "time").values, float)[:, order], slab, depth)
     names = [str(n) for n in ds["contour_name"].values[:count]]
     mappable = None
     for k in range(count):
@@ -197,7 +234,8 @@ def _sections(fig: Figure, ds: xr.Dataset) -> None:
             lines.set_label("omega")
             ax.clabel(lines, fontsize=6, fmt="%.3g")
         ax.set_ylim(pressure.max(), pressure.min())  # pressure decreases upward
-        ax.set_title(names[k], fontsize=8, loc="left")
+        ax.set_title(names[k] if np.any(div[k][np.isfinite(div[k])]) else
+                     f"{names[k]}: divergence zero to rounding", fontsize=8, loc="left")
         ax.tick_params(labelsize=6)
         ax.set_ylabel("hPa", fontsize=7)
         locator = mdates.AutoDateLocator(maxticks=5)

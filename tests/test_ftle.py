@@ -128,6 +128,19 @@ def test_solid_body_rotation_stretches_nothing(rotation_file):
     assert np.max(np.abs(value)) <= 1e-3 * OMEGA
 
 
+def test_map_of_a_rotations_ftle_is_zero_to_rounding(rotation_file, tmp_path):
+    # A rotation stretches nothing (Williamson et al. 1992, test case 1: an isometry), so
+    # its exponents are noise; lambda = ln(stretch) / T puts their scale at 1 / T, and the
+    # map draws no colours where every |lambda| T is below maps.FTLE_STRETCH, saying so.
+    from flowpipe import maps
+
+    out = ftle(fp.open_wind(rotation_file), hours=24, spacing=4.0)
+    assert float(np.abs(out["ftle"]).max()) > 0  # noise that would be coloured
+    ax = maps.render(fp.write(out, tmp_path / "rot.nc"), field="ftle", size=(640, 360)).axes[0]
+    assert "zero to rounding" in ax.get_title(loc="left") and "24 h" in ax.get_title(loc="left")
+    assert not [c for c in ax.collections if getattr(c, "colorbar", None) is not None]
+
+
 def _zonal_rotation(la, lo, t):
     # Williamson et al. (1992) test case 1 with alpha = 0: rotation about the polar axis.
     return OMEGA * A * np.cos(np.radians(la)), 0.0 * la

@@ -28,6 +28,7 @@ import matplotlib.image
 import numpy as np
 import pytest
 import xarray as xr
+from matplotlib.transforms import Bbox
 from test_compliance import GLOBAL, REGIONAL, decomposition_like, trajectory_like
 
 import flowpipe as fp
@@ -406,6 +407,109 @@ def test_a_field_zero_to_rounding_is_titled_so_and_not_coloured(files, tmp_path)
     assert "zero to rounding" not in title
 
 
+def test_the_terminal_line_writes_units_as_udunits_does(files, tmp_path, capsys):
+    # The figure raises exponents with matplotlib mathtext ("m$^{2}$ s$^{-1}$"); a terminal
+    # shows no mathtext, so the line printed gives the units as UDUNITS-2 writes them
+    # ("m2 s-1": its unit-string grammar, exponents as plain integers after the symbol).
+    with xr.open_dataset(files["global"]) as ds:
+        ds = ds.load()
+    ds["velocity_potential"] = (ds["streamfunction"] * 1e-9).assign_attrs(
+        ds["velocity_potential"].attrs)
+    path = fp.write(ds, tmp_path / "tiny.nc", precision="single")
+    out = tmp_path / "tiny.png"
+    assert main(["map", str(path), "-o", str(out), "--field", "velocity_potential"]) == 0
+    line = capsys.readouterr().out.strip()
+    assert "zero to rounding" in line and " m2 s-1 " in line
+    assert "$" not in line and "^" not in line
+    title = _map_axes(maps.render(path, field="velocity_potential", size=SIZE)).get_title(loc="left")
+    assert "m$^{2}$ s$^{-1}$" in title  # the figure keeps its raised exponents
+
+
+@pytest.mark.parametrize("size", [(1200, 800), SIZE])
+def test_the_wind_key_never_meets_the_title(files, tmp_path, size):
+    # A harmonic-wind map under a long title: the reference arrow's key (matplotlib
+    # QuiverKey: its arrow and its label) and the title, read back as window extents after
+    # drawing, do not overlap (text over text is unreadable: common practice). A field
+    # that is itself a component of the wind drawn does not say "with" that wind again.
+    with xr.open_dataset(files["regional"]) as ds:
+        ds = ds.load()
+    ds["u_harmonic"].attrs["long_name"] = ("eastward component of the harmonic wind, " * 4)[:-2]
+    fig = maps.render(fp.write(ds, tmp_path / "harmonic.nc"), field="u_harmonic", size=size)
+    ax = _map_axes(fig)
+    title = ax.get_title(loc="left")
+    assert title.splitlines()[0].endswith("harmonic wind")
+    assert "with the harmonic wind" not in title
+    fig.draw_without_rendering()
+    (key,) = [a for a in ax.get_children() if type(a).__name__ == "QuiverKey"]
+    heading = ax._left_title.get_window_extent()
+    assert heading.width > 0.5 * fig.bbox.width  # a long title indeed
+    # the arrow: its polygon (in its own transform) placed at its offset (matplotlib
+    # QuiverKey.vector, a PolyCollection with one offset)
+    vector = key.vector
+    at = vector.get_offset_transform().transform(vector.get_offsets())
+    corners = at + vector.get_transform().transform(vector.get_paths()[0].vertices)
+    arrow = Bbox.from_extents(*corners.min(axis=0), *corners.max(axis=0))
+    assert arrow.width > 3  # the arrow itself, not an empty box
+    for part in (key.text.get_window_extent(), arrow):
+        assert not part.overlaps(heading)
+    streamfunction = _map_axes(maps.render(files["regional"], field="streamfunction", size=size))
+    assert "with the rotational wind" in streamfunction.get_title(loc="left")
+
+
+def _limited_area_wind(path, u_fn):
+    """A CF wind on 20-60 N, 150 E-150 W at 1 degree, one time, from u_fn(lat, lon) -> (u, v)."""
+    lat, lon = np.arange(20.0, 60.01, 1.0), np.arange(150.0, 210.01, 1.0)
+    u, v = u_fn(*np.meshgrid(lat, lon, indexing="ij"))
+    dims = ("time", "latitude", "longitude")
+    xr.Dataset({"u": (dims, u[None], {"units": "m s-1", "standard_name": "eastward_wind"}),
+                "v": (dims, v[None], {"units": "m s-1", "standard_name": "northward_wind"})},
+               coords={"time": ("time", [np.datetime64("2026-01-01T00", "ns")]),
+                       "latitude": ("latitude", lat, {"units": "degrees_north",
+                                                      "standard_name": "latitude"}),
+                       "longitude": ("longitude", lon, {"units": "degrees_east",
+                                                        "standard_name": "longitude"})},
+               attrs={"Conventions": "CF-1.11"}).to_netcdf(path)
+    return path
+
+
+def _vortex(lat, lon):
+    # a Gaussian vortex in the middle of the area, psi = -P exp(-r^2 / L^2) on the tangent
+    # plane (u = -dpsi/dy, v = dpsi/dx): its wind dies out well inside the boundary
+    x = np.radians(lon - 180.0) * 6.371e6 * np.cos(np.radians(40.0))
+    y = np.radians(lat - 40.0) * 6.371e6
+    scale = 8e5
+    bump = np.exp(-(x**2 + y**2) / scale**2) * 20.0 / scale
+    return y * bump, -x * bump
+
+
+@pytest.mark.parametrize("field", ["velocity_potential", "u_divergent", "streamfunction"])
+def test_a_variational_split_mostly_harmonic_says_so(tmp_path, field):
+    # Solid-body rotation on a limited area (Williamson et al. 1992, test case 1 with
+    # alpha = 0: u = U cos(lat), v = 0) has no divergence and a vorticity 2 U sin(lat) / a:
+    # on the area, most of its energy is in a harmonic flow, which the variational split
+    # (Li, Chao & McWilliams 2006, Mon. Wea. Rev. 134, 3384-3394) shares between the
+    # rotational and the divergent part. The file's harmonic_energy_share says how much; the
+    # map of either part says so under its title. A vortex that dies out inside the area
+    # has little harmonic energy, and no such line.
+    rotation = _limited_area_wind(tmp_path / "rotation.nc",
+                                  lambda lat, lon: (38.61 * np.cos(np.radians(lat)), 0 * lat))
+    parts = fp.write(fp.decompose(fp.open_wind(rotation)), tmp_path / "rotation_parts.nc")
+    with xr.open_dataset(parts) as ds:
+        share = float(ds["harmonic_energy_share"].values.max())
+        assert ds.attrs["scheme"] == "variational" and share > 0.5
+    title = _map_axes(maps.render(parts, field=field, size=SIZE)).get_title(loc="left")
+    (note,) = [line for line in title.splitlines() if line.startswith("harmonic flow")]
+    assert f"{share:.0%} of the energy" in note and "harmonic_energy_share" in note
+    divergence = _map_axes(maps.render(parts, field="divergence", size=SIZE))
+    assert "harmonic flow" not in divergence.get_title(loc="left")
+    vortex = _limited_area_wind(tmp_path / "vortex.nc", _vortex)
+    parts = fp.write(fp.decompose(fp.open_wind(vortex)), tmp_path / "vortex_parts.nc")
+    with xr.open_dataset(parts) as ds:
+        assert float(ds["harmonic_energy_share"].values.max()) < 0.1
+    title = _map_axes(maps.render(parts, field=field, size=SIZE)).get_title(loc="left")
+    assert "harmonic flow" not in title
+
+
 @pytest.mark.parametrize("bounds", [(-60.0, 60.0, 0.0, 360.0), (30.0, 60.0, 0.0, 30.0),
                                     (-10.0, 10.0, 0.0, 360.0)])
 def test_arrow_count_follows_the_domain_not_its_shape(bounds):
@@ -465,6 +569,51 @@ def test_a_start_outside_the_domain_does_not_stretch_the_track_map(tmp_path):
     with xr.open_dataset(path) as ds:
         track_lon = ds["longitude"].values[0]
     assert west <= np.nanmin(track_lon) and np.nanmax(track_lon) <= east < 50.0
+
+
+@pytest.fixture(scope="module")
+def looping_tracks(tmp_path_factory):
+    # the trial's tracks: one starting in the map's lower-left corner, two crossing in a loop
+    path = tmp_path_factory.mktemp("loops") / "loops.nc"
+    assert main(["advect", str(REGIONAL), "--start", "47,-18,850", "--start", "50,-10,850",
+                 "--start", "60,5,850", "--hours", "24", "-o", str(path)]) == 0
+    return path
+
+
+@pytest.mark.parametrize("projection", ["auto", "lat-lon"])
+def test_track_map_shows_every_track_point_clear_of_legend_and_labels(looping_tracks,
+                                                                      projection):
+    # Read back from the drawn figure (matplotlib window extents, cartopy transforms of
+    # the file's positions): every start and track point lies inside the map with a margin;
+    # the legend's box hides none of them (sampled along each recorded segment); no two
+    # time labels overlap (overlapping text is unreadable: common practice).
+    fig = maps.render(looping_tracks, size=(1200, 800), projection=projection)
+    ax = _map_axes(fig)
+    fig.draw_without_rendering()
+    with xr.open_dataset(looping_tracks) as ds:
+        lat, lon = ds["latitude"].values, ds["longitude"].values
+    xy = ax.projection.transform_points(ccrs.Geodetic(), lon.ravel(), lat.ravel())[:, :2]
+    xy = xy.reshape(*lat.shape, 2)
+    (x0, x1), (y0, y1) = ax.get_xlim(), ax.get_ylim()
+    margin_x, margin_y = 0.01 * (x1 - x0), 0.01 * (y1 - y0)
+    finite = np.isfinite(xy).all(axis=-1)
+    assert finite[:, 0].all() and finite.sum() > 30
+    inside = ((xy[..., 0] > x0 + margin_x) & (xy[..., 0] < x1 - margin_x)
+              & (xy[..., 1] > y0 + margin_y) & (xy[..., 1] < y1 - margin_y))
+    assert inside[finite].all()
+    along = np.linspace(0.0, 1.0, 11)[:, None, None, None]
+    sampled = xy[None, :, :-1] * (1 - along) + xy[None, :, 1:] * along
+    sampled = sampled[np.isfinite(sampled).all(axis=-1)]
+    shown = ax.transData.transform(sampled)
+    legend = ax.get_legend().get_window_extent()
+    hidden = ((shown[:, 0] >= legend.x0) & (shown[:, 0] <= legend.x1)
+              & (shown[:, 1] >= legend.y0) & (shown[:, 1] <= legend.y1))
+    assert not hidden.any()
+    labels = [t for t in ax.texts if t.get_visible() and t.get_text().endswith(" h")]
+    assert len(labels) >= 4  # labels are still drawn
+    extents = [t.get_window_extent() for t in labels]
+    for i, one in enumerate(extents):
+        assert not any(one.overlaps(other) for other in extents[i + 1:])
 
 
 def test_many_starts_are_thinned(tmp_path):

@@ -13,6 +13,7 @@ External references used here:
 from __future__ import annotations
 
 import cartopy.crs as ccrs
+import matplotlib.colors
 import matplotlib.dates as mdates
 import matplotlib.image
 import numpy as np
@@ -77,6 +78,9 @@ def test_contours_coloured_by_their_value(files, key, options):
     patches = _patches(fig)
     assert sorted(patches) == sorted(names)
     for name, value in zip(names, values, strict=True):
+        # a value a trillionth of the largest is rounding (binary64 keeps about 16 digits,
+        # IEEE 754), drawn as zero: the equatorial box of this symmetric flow (1e-22 s-1)
+        value = 0.0 if abs(value) <= 1e-12 * np.abs(values).max() else value
         expect = cmap(norm(value))  # BoundaryNorm: the colour of the value's band
         np.testing.assert_allclose(patches[name].get_facecolor(), expect)
     assert ("divergence" if field == "mean_divergence" else "vorticity") in _map_axes(
@@ -165,6 +169,50 @@ def test_bad_level_and_time_name_what_is_available(files):
         maps.render(files["storm"], time="2026-02-01T00:00")
 
 
+def test_sections_of_a_non_divergent_flow_are_zero_to_rounding(tmp_path):
+    # Solid-body rotation (Williamson et al. 1992, test case 1, alpha = 0: u = U cos(lat),
+    # v = 0) has no divergence, so no omega either (omega is the vertical integral of the
+    # divergence, O'Brien 1970, J. Appl. Meteor. 9, 197-203); the file holds rounding
+    # (1e-22 s-1, 1e-18 Pa s-1). The map and the sections colour nothing but the bands at
+    # zero, draw no omega contours and say so.
+    lat, lon = np.linspace(-90, 90, 91), np.arange(0, 360, 2.0)
+    u = np.broadcast_to(38.61 * np.cos(np.radians(lat))[:, None], (3, 3, lat.size, lon.size))
+    dims = ("time", "level", "latitude", "longitude")
+    wind = xr.Dataset(
+        {"u": (dims, u.copy(), {"units": "m s-1", "standard_name": "eastward_wind"}),
+         "v": (dims, 0 * u, {"units": "m s-1", "standard_name": "northward_wind"})},
+        coords={"time": np.array(["2026-01-01T00", "2026-01-01T06", "2026-01-01T12"],
+                                 dtype="datetime64[ns]"),
+                "level": ("level", [850.0, 500.0, 250.0], {"units": "hPa",
+                                                           "standard_name": "air_pressure"}),
+                "latitude": ("latitude", lat, {"units": "degrees_north"}),
+                "longitude": ("longitude", lon, {"units": "degrees_east"})})
+    wind.to_netcdf(tmp_path / "solid.nc")
+    out = fp.circulation(fp.open_wind(tmp_path / "solid.nc"),
+                         [contours.box(30, 60, 0, 90), contours.circle(90, 0, 1000)])
+    path = fp.write(out, tmp_path / "solid_c.nc")
+    with xr.open_dataset(path) as ds:
+        assert np.any(ds.mean_divergence.values != 0) and np.any(ds.omega.values != 0)
+        assert np.all(np.abs(ds.mean_divergence) < 1e-12 * np.abs(ds.mean_vorticity))
+    fig = maps.render(path, size=SIZE, field="mean_divergence")
+    assert "zero to rounding" in _map_axes(fig).get_title(loc="left")
+    (bar,) = _map_axes(fig).child_axes
+    (solids,) = [c for c in bar.collections if type(c).__name__ == "QuadMesh"]
+    for patch in _patches(fig).values():  # BoundaryNorm: the colour of the band at zero
+        assert patch.get_facecolor() == pytest.approx(solids.cmap(solids.norm(0.0)))
+    sections = _sections(fig)
+    assert len(sections) == 2
+    for ax in sections:
+        assert "zero to rounding" in ax.get_title(loc="left")
+        assert not [c for c in ax.collections if c.get_label() == "omega"]
+        assert not ax.texts  # no omega contour labels
+        (filled,) = [c for c in ax.collections if hasattr(c, "levels")]
+        bands = [(low, high) for low, high, path in zip(
+            filled.levels[:-1], filled.levels[1:], filled.get_paths(), strict=True)
+            if len(path.vertices)]
+        assert bands and all(0.0 in band for band in bands)  # only the bands at zero
+
+
 @pytest.mark.parametrize("projection,pole", [("globe", 90), ("north-cap", 90),
                                              ("globe", -90), ("south-cap", -90)])
 def test_a_contour_round_the_pole_is_drawn(tmp_path, projection, pole):
@@ -187,6 +235,37 @@ def test_a_contour_round_the_pole_is_drawn(tmp_path, projection, pole):
     extent = drawn[0].get_window_extent()
     assert extent.height > 2  # not a degenerate sliver
     assert extent.x0 <= inside[0] <= extent.x1 and extent.y0 - 1 <= inside[1] <= extent.y1 + 1
+
+
+@pytest.mark.parametrize("projection", [None, "north-cap", "globe"])
+def test_a_polar_circles_outline_has_no_spoke_to_the_pole(tmp_path, projection):
+    # A circle of 1000 km round the north pole is the cap poleward of latitude
+    # 90 - 1000 / (pi a / 180) = 81.0 (great-circle distance, common practice): its edge
+    # on the sphere is that parallel alone. Every line drawn for it (matplotlib artists of
+    # its name with a visible edge), read back in map coordinates and inverted to
+    # latitude with cartopy/PROJ, stays on that parallel: no segment to or along the pole,
+    # while the filled patch still covers the pole side.
+    cap = fp.circulation(fp.open_wind(GLOBAL).isel(time=slice(0, 1)),
+                         [contours.circle(90, 0, 1000)])
+    fig = maps.render(fp.write(cap, tmp_path / "cap.nc"), size=SIZE, projection=projection)
+    ax = _map_axes(fig)
+    fig.draw_without_rendering()
+    name = "circle 90,0,1000km"
+    edge = 90.0 - np.degrees(1000e3 / EARTH_RADIUS)
+    lines = [a for a in ax.get_children() if name in str(a.get_label())
+             and a.get_visible() and a.get_linewidth() > 0
+             and matplotlib.colors.to_rgba(a.get_edgecolor() if isinstance(a, PathPatch)
+                                           else a.get_color())[3] > 0]
+    assert lines
+    for line in lines:
+        vertices = (line.get_transform() - ax.transData).transform_path(line.get_path()).vertices
+        lat = ccrs.PlateCarree().transform_points(ax.projection, *vertices.T)[:, 1]
+        assert np.all(np.abs(lat - edge) < 0.5), lat.max()
+    patch = _patches(fig)[name]
+    inside = ax.projection.transform_point(30.0, 0.5 * (edge + 90.0), ccrs.PlateCarree())
+    assert patch.get_path().contains_point(inside)
+    assert not patch.get_path().contains_point(
+        ax.projection.transform_point(30.0, edge - 3.0, ccrs.PlateCarree()))
 
 
 @pytest.mark.parametrize("centre", [0.0, 180.0])

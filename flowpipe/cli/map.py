@@ -61,7 +61,7 @@ def parse_size(text: str) -> tuple[int, int]:
 
 
 def run(args: argparse.Namespace) -> int:
-    from ..maps import image_format, render, save
+    from ..maps import image_format, plain_text, render, save
 
     if args.lead and len(args.lead) > 1:
         raise UsageError("a map shows one lead time: give --lead HOURS once (one value)")
@@ -74,5 +74,5 @@ def run(args: argparse.Namespace) -> int:
                     marks_hours=args.marks)
     path = save(figure, args.output, protect=(args.file,))
     title = next((ax.get_title(loc="left") for ax in figure.axes if ax.get_title(loc="left")), "")
-    print(f"wrote {path}: {title.splitlines()[0] if title else 'map'}")
+    print(f"wrote {path}: {plain_text(title.splitlines()[0]) if title else 'map'}")
     return 0
