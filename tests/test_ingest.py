@@ -21,7 +21,7 @@ import pytest
 import xarray as xr
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
-from windfiles import KNOT, Encoding, encode, reference_field
+from windfiles import KNOT, Encoding, encode, reference_field, unusual_names_file
 
 import flowpipe as fp
 from flowpipe.errors import InputError
@@ -180,12 +180,7 @@ def test_time_and_level_under_the_files_own_names_without_axis_attributes(tmp_pa
     # under the file's own names (valid, lev_p) where no attribute says axis or
     # standard_name. The canonical wind is that of the sample file whose names are usual.
     root = Path(__file__).resolve().parents[1] / "sample_data"
-    odd = tmp_path / "odd.nc"
-    with xr.open_dataset(root / "demo_global.nc") as ds:
-        renamed = ds.isel(time=slice(0, 3)).rename(time="valid", plev="lev_p")
-        renamed["valid"].attrs = {"long_name": "valid time"}
-        renamed["lev_p"].attrs = {"units": "hPa", "long_name": "pressure"}
-        renamed.to_netcdf(odd, encoding={"valid": {"units": "hours since 2026-01-12"}})
+    odd = unusual_names_file(root / "demo_global.nc", tmp_path / "odd.nc")
     with xr.open_dataset(odd) as written:  # no attribute says axis or standard_name
         assert not written.cf.axes.get("T") and not written.cf.axes.get("Z")
     got = fp.open_wind(odd)

@@ -30,6 +30,7 @@ import pytest
 import xarray as xr
 from matplotlib.transforms import Bbox
 from test_compliance import GLOBAL, REGIONAL, decomposition_like, trajectory_like
+from windfiles import unusual_names_file
 
 import flowpipe as fp
 from flowpipe import annotate, maps
@@ -673,12 +674,7 @@ def test_time_and_level_of_unusual_names_are_found_from_their_cf_attributes(tmp_
     # (guess_coord_axis) finds them under the file's own names, here valid and lev_p,
     # which no attribute labels as an axis. The map of a slab is that of the same slab
     # in the sample file, whose coordinates are the usual ones.
-    odd = tmp_path / "odd.nc"
-    with xr.open_dataset(GLOBAL) as ds:
-        renamed = ds.isel(time=slice(0, 3)).rename(time="valid", plev="lev_p")
-        renamed["valid"].attrs = {"long_name": "valid time"}
-        renamed["lev_p"].attrs = {"units": "hPa", "long_name": "pressure"}
-        renamed.to_netcdf(odd, encoding={"valid": {"units": "hours since 2026-01-12"}})
+    odd = unusual_names_file(GLOBAL, tmp_path / "odd.nc")
     with xr.open_dataset(odd) as written:  # no attribute says axis or standard_name
         assert not written.cf.axes.get("T") and not written.cf.axes.get("Z")
     options = {"field": "u", "level": 500.0, "time": "2026-01-12T06:00", "size": SIZE}

@@ -111,3 +111,14 @@ def small_global_file(directory: Path, ntime: int) -> Path:
     (path,) = encode(reference_field(SMALL_LAT, SMALL_LON, SMALL_LEVELS, ntime),
                      SMALL_LAT, SMALL_LON, SMALL_LEVELS, Encoding(), directory)
     return path
+
+
+def unusual_names_file(sample: Path, path: Path) -> Path:
+    """The first three times of a sample file with time and level under names no CF
+    attribute labels as axes (``valid`` in "hours since", ``lev_p`` in hPa)."""
+    with xr.open_dataset(sample) as ds:
+        renamed = ds.isel(time=slice(0, 3)).rename(time="valid", plev="lev_p")
+        renamed["valid"].attrs = {"long_name": "valid time"}
+        renamed["lev_p"].attrs = {"units": "hPa", "long_name": "pressure"}
+        renamed.to_netcdf(path, encoding={"valid": {"units": "hours since 2026-01-12"}})
+    return path
