@@ -400,14 +400,23 @@ def find_coordinate(ds: xr.Dataset, da: xr.DataArray, key: str, axis: str) -> st
     First from its CF attributes (standard_name, axis, positive, units); failing that, as
     cf-xarray's ``guess_coord_axis`` takes it (a time by its datetime values, a vertical
     coordinate or latitude by names such as ``lev_p`` or ``lat``), so that a file's own
-    names need no list here.
+    names need no list here. The guess (a copy of the dataset's coordinates and a scan of
+    them) is made only when some dimension of ``da`` is one no CF attribute names.
     """
-    for source in (ds, None):
-        source = ds.cf.guess_coord_axis() if source is None else source
-        candidates = list(source.cf.coordinates.get(key, [])) + list(source.cf.axes.get(axis, []))
-        for name in candidates:
-            if name in da.coords or name in da.dims:
-                return name
+    found = _named(ds, da, key, axis)
+    if found is None:
+        claimed = {name for names in (*ds.cf.coordinates.values(), *ds.cf.axes.values())
+                   for name in names}
+        if any(dim not in claimed for dim in da.dims):
+            found = _named(ds.cf.guess_coord_axis(), da, key, axis)
+    return found
+
+
+def _named(ds: xr.Dataset, da: xr.DataArray, key: str, axis: str) -> str | None:
+    """The coordinate of ``da`` that the CF attributes of ``ds`` name ``key`` or ``axis``."""
+    for name in [*ds.cf.coordinates.get(key, []), *ds.cf.axes.get(axis, [])]:
+        if name in da.coords or name in da.dims:
+            return name
     return None
 
 
