@@ -824,13 +824,13 @@ def _write_zarr(out: xr.Dataset, tmp: Path, encoding: dict[str, dict], lazy: dic
     out = out.copy()
     for name, enc in encoding.items():
         var = out.variables[name]
-        if "chunks" in enc and dask.is_dask_collection(var.data):
-            out[name] = var.chunk(dict(zip(var.dims, enc["chunks"], strict=True)))
-        elif _is_text(var) and var.ndim:
+        if _is_text(var) and var.ndim:  # (small: read here even when lazy)
             text = var.values
             if text.dtype.kind == "S":
                 text = np.char.decode(text, "utf-8")
             out[name] = var.copy(data=text.astype(object))  # (xarray's way to ask for them)
+        elif "chunks" in enc and dask.is_dask_collection(var.data):
+            out[name] = var.chunk(dict(zip(var.dims, enc["chunks"], strict=True)))
     with warnings.catch_warnings():
         # zarr-python writes consolidated metadata for format 3 ahead of the specification
         warnings.filterwarnings("ignore", message=".*[Cc]onsolidated metadata", category=UserWarning)

@@ -167,6 +167,20 @@ def test_trajectory_ids_in_a_store_are_variable_length_utf8_strings(tmp_path):
         assert ids == expected
         assert all(type(i) is str for i in ids)  # (not numpy.str_ of a fixed width, not bytes)
 
+
+def test_lazy_text_is_stored_as_strings_too(tmp_path):
+    # the same for text held as a dask array (a trajectory file reopened lazily, say):
+    # Zarr's "string" data type, read back as the same str (zarr-extensions, from memory)
+    ids = np.array(["fp-a", "fp-bb", "fp-ccc"])
+    ds = xr.Dataset({"speed": ("trajectory", np.arange(3.0), {"units": "m s-1"})},
+                    coords={"trajectory_id": ("trajectory", ids)}).chunk({"trajectory": 2})
+    assert fp.write(ds, tmp_path / "t.zarr") == tmp_path / "t.zarr"
+    metadata = json.loads((tmp_path / "t.zarr" / "trajectory_id" / "zarr.json").read_text())
+    assert metadata["data_type"] == "string"
+    with xr.open_zarr(tmp_path / "t.zarr") as back:
+        assert [type(i) for i in back["trajectory_id"].values] == [str] * 3
+        assert list(back["trajectory_id"].values) == list(ids)
+
 SLOW_WRITE = """
 import sys, time
 import dask.array as da, numpy as np, xarray as xr
