@@ -1195,6 +1195,11 @@ def _point_text(index: tuple[int, ...], coords: list[tuple[str, np.ndarray]]) ->
     return ", ".join(parts)
 
 
+#: How to have implausible winds treated as missing, for the messages that tell of them.
+TREAT_AS_MISSING = ("treat such winds as missing with --implausible missing (config: [input] "
+                    "implausible = \"missing\")")
+
+
 def _implausible_mask(u: np.ndarray, v: np.ndarray, *, max_speed: float, refuse: bool,
                       coords: list[tuple[str, np.ndarray]], offsets: tuple[int, ...],
                       source: str, names: tuple[str, str]) -> np.ndarray:
@@ -1220,9 +1225,7 @@ def _implausible_mask(u: np.ndarray, v: np.ndarray, *, max_speed: float, refuse:
                 f"{max_speed:g} m s-1 ({nonfinite} not finite), the first at {where}")
         if refuse:
             raise InputError(f"{source}: {what}; flowpipe inspect counts those of every slab; fix "
-                             "the file, or treat them as missing with --implausible missing "
-                             "(config: [input] implausible = \"missing\") or raise the limit with "
-                             "--max-speed")
+                             f"the file, or {TREAT_AS_MISSING} or raise the limit with --max-speed")
         warnings.warn(f"{source}: {what}: treated as missing", FlowpipeWarning, stacklevel=2)
     return bad
 

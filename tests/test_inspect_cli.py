@@ -253,3 +253,14 @@ def test_a_single_implausible_value_is_not_called_a_marker(tmp_path, capsys):
     assert "marker" not in out
     assert main(["decompose", str(path), "-o", str(tmp_path / "o.nc")]) == 2  # what it warns of
     assert "faster than 250 m s-1" in capsys.readouterr().err
+
+
+def test_a_speed_beyond_the_limit_with_each_component_within_it(tmp_path, capsys):
+    # 200 m s-1 in each component is 283 m s-1 of speed (Pythagoras): beyond the limit of
+    # 250 though neither component is; the line says so instead of an empty list of values
+    path = _with_values(tmp_path, (1, 0, 5, 7), 200.0, both=True)
+    assert main(["inspect", str(path)]) == 0
+    line = next(x for x in capsys.readouterr().out.splitlines()
+                if x.strip().startswith("implausible"))
+    assert "1 point(s) of eastward/northward" in line
+    assert "values beyond the limit: ;" not in line and "no component alone" in line, line

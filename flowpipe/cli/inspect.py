@@ -44,19 +44,21 @@ def _pole_text(pole_rows: list[str]) -> str:
 
 def _implausible_text(found: dict) -> str:
     """The implausible winds in words, with how to declare a missing-value marker."""
+    from ..ingest import TREAT_AS_MISSING
+
     names = list(found["values"])
     shown = ", ".join(f"{name} {value:g} ({'once' if count == 1 else f'{count} times'})"
                       for name, pairs in found["values"].items() for value, count in pairs)
     text = (f"{found['points']} point(s) of {'/'.join(names)} not finite or faster than "
             f"{found['max_speed']:g} m s-1 (--max-speed), the first at {found['first']}; "
-            f"values beyond the limit: {shown}")
+            + (f"values beyond the limit: {shown}" if shown else
+               "no component alone is beyond the limit, their speed is"))
     marker = found["marker"]
     if marker is not None:
         text += (f"; {marker:g} repeats: it looks like a missing-value marker the file does "
                  f"not declare; declare it with the attribute missing_value = {marker:g} (or "
                  f"_FillValue) on {' and '.join(names)} (CF 1.11 section 2.5.1)")
-    return text + ("; or let the commands treat such winds as missing with --implausible "
-                   "missing (config: [input] implausible = \"missing\")")
+    return text + f"; or let the commands {TREAT_AS_MISSING}"
 
 
 def format_report(report: dict) -> str:
