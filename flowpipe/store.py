@@ -153,8 +153,8 @@ def atomic_path(path: str | os.PathLike, protect: Iterable[str | os.PathLike] = 
         raise from_os_error(exc, exc.filename or final) from None
     except Exception as exc:
         # netCDF-C reports a full disk as "NetCDF: HDF error" (no errno): look at the disk
-        usage = shutil.disk_usage(final.parent)
-        if 0 < usage.total and usage.free < FULL_DISK_BYTES:
+        free = _free_bytes(final.parent)
+        if free is not None and free < FULL_DISK_BYTES:
             raise no_space(final, needed or _size(tmp)) from exc
         _name_final(exc, tmp, final)
         raise
@@ -271,6 +271,13 @@ def _size(path: Path) -> int | None:
         return None
 
 
+def _free_bytes(directory: Path) -> int | None:
+    """Bytes free on the file system of ``directory``; None on one that counts no blocks
+    (/proc, /sys: statvfs gives 0 in all and 0 free), which cannot be called full."""
+    usage = shutil.disk_usage(directory)
+    return usage.free if usage.total else None
+
+
 def check_space(path: str | os.PathLike, certain: int, upper: int) -> None:
     """Refuse a write that cannot fit on its disk; warn when it may not.
 
@@ -291,10 +298,9 @@ def check_space(path: str | os.PathLike, certain: int, upper: int) -> None:
     where = existing_directory(path)
     if read_only(path):
         raise os_problem(errno.EROFS, path)
-    usage = shutil.disk_usage(where)
-    if usage.total == 0:  # no blocks to count (/proc, /sys): the write itself will tell
+    free = _free_bytes(where)
+    if free is None:  # the write itself will tell
         return
-    free = usage.free
     if free < certain:
         raise no_space(path, certain)
     if free < upper:
@@ -591,7 +597,9 @@ def _quiet_on_failure() -> Iterator[None]:
     while its other threads go on writing chunks: the temporary output that
     :func:`atomic_path` then removes would refuse to go ("Directory not empty") or
     reappear in part. Here the tasks not started are dropped and the running ones
-    finish before the error goes on (:meth:`concurrent.futures.Executor.shutdown`). The
+    finish before the error goes on (:meth:`concurrent.futures.Executor.shutdown`): the
+    chunk writes and also the slab transforms of the write's graph that had started, so
+    an interrupt or SIGTERM takes effect once the longest of them ends. The
     pool has the threads the scheduler would have (:func:`flowpipe.cluster.local_threads`);
     a dask.distributed client or another scheduler is left to compute as configured.
 

@@ -154,13 +154,13 @@ def main(argv: Sequence[str] | None = None) -> int:
     except KeyboardInterrupt:
         print("flowpipe: interrupted", file=sys.stderr)
         return 130
-    except _Terminated:  # the temporary outputs are gone by now: the writer let the chunk
-        # writes running at the signal finish first (flowpipe.store), then removed them
+    except _Terminated:  # the temporary outputs are gone by now: the writer let its tasks
+        # running at the signal finish first (flowpipe.store), then removed them
         print("flowpipe: terminated", file=sys.stderr)
         sys.stderr.flush()
         sys.stdout.flush()
-        # At once: an orderly exit would first wait for the other computations still
-        # running in dask's worker threads (transforms whose results nothing will write).
+        # At once: an orderly exit would first wait for any computation still running in
+        # dask's worker threads outside a write.
         os._exit(128 + signal.SIGTERM)
     except Exception as exc:  # a bug: one line, unless --debug
         if args.debug:
