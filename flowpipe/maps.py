@@ -476,9 +476,10 @@ def _domain_projection(lat: np.ndarray, lon: np.ndarray, name: str | ccrs.Projec
 def _map_axes(fig: Figure, proj: ccrs.Projection, extent: list[float] | None,
               box: tuple[float, float, float, float] = MAP_BOX):
     ax = fig.add_axes(box, projection=proj)
+    round_cap = extent is not None and isinstance(proj, ccrs.Stereographic)
     if extent is None:
         ax.set_global()
-    elif isinstance(proj, ccrs.Stereographic):
+    elif round_cap:
         ax.set_extent(extent, crs=ccrs.PlateCarree())
         theta = np.linspace(0, 2 * np.pi, 200)  # a round cap, not a square
         circle = MplPath(np.column_stack([np.cos(theta), np.sin(theta)]) * 0.5 + 0.5)
@@ -489,7 +490,7 @@ def _map_axes(fig: Figure, proj: ccrs.Projection, extent: list[float] | None,
                       crs=ccrs.PlateCarree(central_longitude=centre))
     _coastlines(ax)
     grid = ax.gridlines(draw_labels=True, linewidth=0.4, color="0.5", alpha=0.7, linestyle=":")
-    if not isinstance(proj, ccrs.Stereographic):  # a round cap: meridians named all round
+    if not round_cap:  # a round cap names its meridians all round
         grid.top_labels = grid.right_labels = False
     grid.xlabel_style = grid.ylabel_style = {"size": 7}
     return ax
