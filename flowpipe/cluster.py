@@ -16,6 +16,10 @@ from typing import Any
 #: time, in the calling thread.
 SYNCHRONOUS = ("sync", "synchronous", "single-threaded")
 
+#: dask config key: the cores the computations of this process may use (a batch run gives
+#: each of its worker processes its share; read by the transform kernels and the writer).
+CORES_KEY = "flowpipe.cores"
+
 #: The names of dask's local threaded scheduler, or none given (dask's default for arrays).
 THREADED = (None, "threads", "threading")
 
@@ -39,7 +43,7 @@ def cores() -> int:
     run on."""
     import dask
 
-    return dask.config.get("flowpipe.cores", None) or len(os.sched_getaffinity(0))
+    return dask.config.get(CORES_KEY, None) or len(os.sched_getaffinity(0))
 
 
 def local_threads() -> int:

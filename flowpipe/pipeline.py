@@ -34,6 +34,7 @@ import xarray as xr
 from . import bookkeeping
 from ._version import __version__
 from .annotate import iso_time, now_iso
+from .cluster import CORES_KEY
 from .config import STORAGE_KEYS, Config, load_config, render_template
 from .errors import EnvironmentProblem, FlowpipeError, FlowpipeWarning, from_os_error
 from .planner import why_due
@@ -41,8 +42,6 @@ from .report import output_facts, write_report
 
 log = logging.getLogger("flowpipe.run")
 LOG_NAME = "flowpipe.log"
-#: dask config key: the cores one task may use (read by the transform kernels).
-CORES_KEY = "flowpipe.cores"
 #: Input files kept open at once: a run reads a long series a time slice after
 #: another, and every open NetCDF-4 file holds about a MiB of library caches.
 OPEN_FILES = 16
