@@ -198,3 +198,9 @@ def encoding_refusal(precision: str = "input", compression: str | None = None,
             return (f"significant digits must be 1 to {most} (at most 7 for single precision), "
                     f"not {significant_digits}")
     return None
+
+
+def levels_hint(table: str, option: str = "--levels") -> str:
+    """Where the levels are chosen, for messages: the command's ``option``, and the key of
+    the config table ``table``."""
+    return f"{option} (config: [{table}] levels)"

@@ -23,6 +23,7 @@ import numpy as np
 import xarray as xr
 
 from . import annotate
+from .choices import levels_hint
 from .errors import InputError, UsageError
 from .grid import continuous_longitudes, describe_grid
 from .ingest import PERIOD_ATTRS, REFERENCE_ATTRS
@@ -312,11 +313,11 @@ def ftle(
             if not np.any(np.abs(available - lv) < 1e-6):
                 raise InputError(f"{_name(wind)}: level {lv:g} is not among the input's levels "
                                  f"({', '.join(f'{x:g}' for x in available)}); choose among "
-                                 "these with --level (config: [ftle] levels)")
+                                 f"these with {levels_hint('ftle', '--level')}")
     else:
         if levels:
-            raise InputError(f"{_name(wind)}: the input has no levels; leave out --level "
-                             "(config: [ftle] levels)")
+            raise InputError(f"{_name(wind)}: the input has no levels; leave out "
+                             f"{levels_hint('ftle', '--level')}")
         chosen = np.zeros(1)
     total = hours * 3600.0
     if start is None:

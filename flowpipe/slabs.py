@@ -18,6 +18,7 @@ import numpy as np
 import xarray as xr
 
 from . import spectral
+from .choices import levels_hint
 from .cluster import SYNCHRONOUS, cores, distributed_client, local_threads
 from .errors import InputError, UsageError
 from .grid import GridInfo
@@ -29,11 +30,6 @@ SPECTRAL_REFERENCES = (
     "cosmic microwave background (de-)lensing using general spherical harmonic transforms, "
     "Astron. Astrophys. 678, A165 (ducc0)"
 )
-
-
-def levels_hint(table: str) -> str:
-    """Where the levels are chosen: the option, and the key of the config table ``table``."""
-    return f"--levels (config: [{table}] levels)"
 
 
 def select_levels(wind: xr.Dataset, levels: Sequence[float] | None,
@@ -92,7 +88,8 @@ def refuse_missing(u: np.ndarray, v: np.ndarray, *, kernel: Callable[..., tuple]
     what : str
         What needs complete fields, for the message.
     table : str
-        The config table whose ``levels`` the message names (:func:`levels_hint`).
+        The config table whose ``levels`` the message names
+        (:func:`flowpipe.choices.levels_hint`).
     **kwargs
         Passed to the kernel.
 
