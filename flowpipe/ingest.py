@@ -38,7 +38,7 @@ import datetime as _dt
 import glob
 import os
 import warnings
-from collections.abc import Iterable, Mapping
+from collections.abc import Callable, Iterable, Mapping
 from pathlib import Path
 
 import cf_units
@@ -1202,9 +1202,11 @@ TREAT_AS_MISSING = ("treat such winds as missing with --implausible missing (con
 
 def _implausible_mask(u: np.ndarray, v: np.ndarray, *, max_speed: float, refuse: bool,
                       coords: list[tuple[str, np.ndarray]], offsets: tuple[int, ...],
-                      source: str, names: tuple[str, str]) -> np.ndarray:
+                      source: str, names: tuple[str, str],
+                      tell: Callable[[], bool]) -> np.ndarray:
     """True where a slab's wind is not finite or faster than ``max_speed`` (NaN is missing,
-    not implausible); raises :class:`InputError` there when ``refuse``."""
+    not implausible); raises :class:`InputError` there when ``refuse``, else warns of them
+    when ``tell()`` says this slab is the first to have some."""
     with np.errstate(over="ignore", invalid="ignore"):
         bad = implausible_points(u, v, max_speed)
     if bad.any():
@@ -1226,7 +1228,10 @@ def _implausible_mask(u: np.ndarray, v: np.ndarray, *, max_speed: float, refuse:
         if refuse:
             raise InputError(f"{source}: {what}; flowpipe inspect counts those of every slab; fix "
                              f"the file, or {TREAT_AS_MISSING} or raise the limit with --max-speed")
-        warnings.warn(f"{source}: {what}: treated as missing", FlowpipeWarning, stacklevel=2)
+        if tell():
+            warnings.warn(f"{source}: {what}: treated as missing, as are those of any other "
+                          "slab (the output's implausible_values counts them all)",
+                          FlowpipeWarning, stacklevel=2)
     return bad
 
 
@@ -1308,10 +1313,19 @@ def _plausible(ds: xr.Dataset, max_speed: float, implausible: str) -> xr.Dataset
     names = (u.attrs.get("source_name", "u"), v.attrs.get("source_name", "v"))
     refuse = implausible == "refuse"
 
+    told: list[object] = []  # treated as missing: told of the first slab met only
+
+    def first() -> bool:
+        # (list.append is atomic: the one slab whose mark comes first is told; no lock, so
+        # that the graph still pickles for dask.distributed workers, each with its own list)
+        mark = object()
+        told.append(mark)
+        return told[0] is mark
+
     def block(ub, vb, block_info=None):
         offsets = tuple(lo for lo, _ in block_info[0]["array-location"])
         return _implausible_mask(ub, vb, max_speed=max_speed, refuse=refuse, coords=coords,
-                                 offsets=offsets, source=source, names=names)
+                                 offsets=offsets, source=source, names=names, tell=first)
 
     udata = u.data if isinstance(u.data, dsa.Array) else dsa.from_array(u.data)
     vdata = v.data if isinstance(v.data, dsa.Array) else dsa.from_array(v.data)

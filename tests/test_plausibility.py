@@ -84,6 +84,29 @@ def test_the_count_refused_is_that_of_the_slab_named(tmp_path):
     assert f" {counts[named[0]]} point(s) " in error and "flowpipe inspect" in error, error
 
 
+def test_treated_as_missing_one_warning_and_the_whole_count(tmp_path):
+    # the same file of 6, 12 and 18 marked points in three slabs: treated as missing, one
+    # warning (of the first slab met), and the output's count is that of the whole file
+    # (counted here with numpy)
+    with xr.open_dataset(SAMPLE) as src:
+        ds = src.isel(time=slice(0, 3)).load()
+    u = ds["u"].values.copy()
+    for t in range(3):
+        u[t, 0, 10:12, 20:20 + 3 * (t + 1)] = -9999.0
+    ds["u"] = (ds["u"].dims, u, ds["u"].attrs)
+    source = _write(tmp_path / "marker.nc", ds)
+    out = tmp_path / "d.nc"
+    run = _run("decompose", source, "-o", out, "--implausible", "missing")
+    assert run.returncode == 0, run.stderr
+    warned = [line for line in run.stderr.splitlines() if "treated as missing" in line]
+    assert len(warned) == 1, run.stderr
+    assert "implausible_values counts them all" in warned[0]
+    with xr.open_dataset(source) as ds:
+        expected = int((np.abs(ds["u"]) > 250.0).sum())
+    with xr.open_dataset(out) as ds:
+        assert int(ds.attrs["implausible_values"]) == expected == 36
+
+
 def test_infinity_is_counted_as_not_finite(tmp_path):
     src = _bad_file(tmp_path, np.inf, np.float32)
     run = _run("decompose", src, "-o", tmp_path / "d.nc")
