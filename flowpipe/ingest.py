@@ -127,11 +127,11 @@ def open_wind(
         What to do with wind values that are not finite (inf) or whose speed
         exceeds ``max_speed``: refuse the input (an :class:`InputError` naming
         the variable, the count and the first location, raised when the slab
-        is computed), or treat them as missing (a warning per slab, and the
+        is computed), or treat them as missing (a warning of the first slab met, and the
         lazily computed count in the attribute ``implausible_values``).
         The check runs inside each slab's dask task: building a result
         computes nothing. None: no check, the values as the file has them
-        (what :func:`implausible_values` describes).
+        (what :func:`wind_checks` describes).
     allow_gaps : bool
         Accept a time series whose spacing has gaps (refused by default; not
         checked when ``leads`` are chosen).
@@ -1165,7 +1165,11 @@ def missing_counts(ds: xr.Dataset, names: Iterable[str] = ("u", "v")) -> dict[st
     import dask
 
     names = [n for n in names if n in ds]
-    counts = dask.compute(*[ds[n].isnull().sum() for n in names])
+    return _missing_result(ds, names, dask.compute(*[ds[n].isnull().sum() for n in names]))
+
+
+def _missing_result(ds: xr.Dataset, names: list[str], counts) -> dict[str, int]:
+    """:func:`missing_counts` from the computed counts of ``names``."""
     result = {n: int(c) for n, c in zip(names, counts, strict=True)}
     for name, count in result.items():
         if count == ds[name].size:
@@ -1250,12 +1254,17 @@ def _check_max_speed(max_speed: float) -> None:
 SHOWN_VALUES = 3
 
 
-def implausible_values(wind: xr.Dataset, max_speed: float = DEFAULT_MAX_SPEED) -> dict | None:
-    """Describe the implausible winds of a wind opened with ``implausible=None`` (computes).
+def wind_checks(wind: xr.Dataset, names: Iterable[str] = ("u", "v"),
+                max_speed: float = DEFAULT_MAX_SPEED) -> tuple[dict[str, int], dict | None]:
+    """The missing points of the variables ``names`` (:func:`missing_counts`) and the
+    implausible winds of a wind opened with ``implausible=None``, in one pass over the data
+    (computes).
 
     Returns
     -------
-    dict or None
+    missing : dict
+        As :func:`missing_counts`.
+    implausible : dict or None
         None when every wind is plausible; else ``max_speed`` (m s-1), ``points`` (how
         many points are not finite or faster), ``first`` (the first of them, in words),
         ``values``: for each wind variable by its name in the file, its most common
@@ -1273,10 +1282,13 @@ def implausible_values(wind: xr.Dataset, max_speed: float = DEFAULT_MAX_SPEED) -
     udata, vdata = dsa.asarray(u.data), dsa.asarray(v.data)
     with np.errstate(over="ignore", invalid="ignore"):
         bad = implausible_points(udata, vdata, max_speed)
-        points, first, ubad, vbad = dask.compute(bad.sum(), dsa.argmax(bad.ravel()),
-                                                 udata[bad], vdata[bad])
+        names = [n for n in names if n in wind]
+        points, first, ubad, vbad, *counts = dask.compute(
+            bad.sum(), dsa.argmax(bad.ravel()), udata[bad], vdata[bad],
+            *[wind[n].isnull().sum() for n in names])
+    missing = _missing_result(wind, names, counts)
     if not points:
-        return None
+        return missing, None
     values: dict[str, list[list[float | int]]] = {}
     repeated: list[tuple[int, float]] = []
     for da, found in ((u, ubad), (v, vbad)):
@@ -1287,10 +1299,10 @@ def implausible_values(wind: xr.Dataset, max_speed: float = DEFAULT_MAX_SPEED) -
         name = str(da.attrs.get("source_name", da.name))
         values[name] = [[float(kinds[i]), int(counts[i])] for i in order]
         repeated += [(int(counts[i]), float(kinds[i])) for i in order if counts[i] > 1]
-    return {"max_speed": float(max_speed), "points": int(points),
-            "first": _point_text(np.unravel_index(int(first), bad.shape),
-                                 _coordinate_values(wind, u.dims)),
-            "values": values, "marker": max(repeated)[1] if repeated else None}
+    return missing, {"max_speed": float(max_speed), "points": int(points),
+                     "first": _point_text(np.unravel_index(int(first), bad.shape),
+                                          _coordinate_values(wind, u.dims)),
+                     "values": values, "marker": max(repeated)[1] if repeated else None}
 
 
 def _plausible(ds: xr.Dataset, max_speed: float, implausible: str) -> xr.Dataset:

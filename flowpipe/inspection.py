@@ -9,7 +9,7 @@ import xarray as xr
 
 from .choices import DEFAULT_MAX_SPEED
 from .grid import describe_grid
-from .ingest import forecast_axes, implausible_values, missing_counts, open_wind, run_text
+from .ingest import forecast_axes, open_wind, run_text, wind_checks
 
 
 def _time_text(value) -> str:
@@ -27,10 +27,12 @@ def describe_wind(wind: xr.Dataset, max_speed: float = DEFAULT_MAX_SPEED) -> dic
     8601, ``None`` when it holds no forecast or several runs); ``members`` the number of
     ensemble members (``realization``), ``None`` without them; ``implausible`` the
     winds not finite or faster than ``max_speed`` m s-1
-    (:func:`flowpipe.ingest.implausible_values`, for a wind opened with
-    ``implausible=None``), ``None`` when there are none.
+    (:func:`flowpipe.ingest.wind_checks`, for a wind opened with
+    ``implausible=None``), ``None`` when there are none; the missing points and the
+    implausible winds are found in one pass over the data.
     """
     grid = describe_grid(wind)
+    missing, implausible = wind_checks(wind, ("u", "v", "omega", "w"), max_speed)
     vertical = next((n for n in ("omega", "w") if n in wind), None)
     times = wind["time"].values if "time" in wind.dims else np.array([])
     report = {
@@ -53,8 +55,8 @@ def describe_wind(wind: xr.Dataset, max_speed: float = DEFAULT_MAX_SPEED) -> dic
         "run": (run_text(wind["forecast_reference_time"].values[()])
                 if "forecast_reference_time" in wind.coords and
                 wind["forecast_reference_time"].ndim == 0 else None),
-        "missing": missing_counts(wind, ("u", "v", "omega", "w")),
-        "implausible": implausible_values(wind, max_speed),
+        "missing": missing,
+        "implausible": implausible,
         "other_variables": sorted(str(n) for n in wind.data_vars if n not in ("u", "v", "omega", "w")),
     }
     return report

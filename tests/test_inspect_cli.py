@@ -264,3 +264,31 @@ def test_a_speed_beyond_the_limit_with_each_component_within_it(tmp_path, capsys
                 if x.strip().startswith("implausible"))
     assert "1 point(s) of eastward/northward" in line
     assert "values beyond the limit: ;" not in line and "no component alone" in line, line
+
+
+def test_inspect_reads_the_wind_once(tmp_path, monkeypatch):
+    # the missing points and the implausible winds are found in one pass over the data: the
+    # values read of the eastward wind through xarray's netCDF4 backend (counted at its
+    # array wrapper) add up to the variable's size once, not twice (a few single values
+    # read to describe the grid aside); the counts equal those numpy makes of the file
+    from xarray.backends.netCDF4_ import NetCDF4ArrayWrapper
+
+    from flowpipe.inspection import inspect_file
+
+    read: dict[str, int] = {}
+    getitem = NetCDF4ArrayWrapper.__getitem__
+
+    def counting(self, key):
+        values = getitem(self, key)
+        read[self.variable_name] = read.get(self.variable_name, 0) + np.size(values)
+        return values
+
+    path = _with_values(tmp_path, (0, 1, slice(2, 4), slice(3, 6)), -9999.0, both=True)
+    with xr.open_dataset(path) as ds:
+        size = ds["eastward"].size
+        expected = int((np.abs(ds["eastward"]) > 250.0).sum())
+    monkeypatch.setattr(NetCDF4ArrayWrapper, "__getitem__", counting)
+    report = inspect_file(path)
+    assert size <= read["eastward"] < 1.5 * size, (read, size)
+    assert report["implausible"]["points"] == expected == 6
+    assert report["missing"]["u"] == 0 and report["missing"]["v"] == 0
