@@ -1154,31 +1154,6 @@ def _check_gaps(times: np.ndarray, owners: list[Path]) -> None:
                 "--allow-gaps (config: [input] allow_gaps = true)")
 
 
-def missing_counts(ds: xr.Dataset, names: Iterable[str] = ("u", "v")) -> dict[str, int]:
-    """Number of missing (NaN) points of each named variable (computes).
-
-    Raises
-    ------
-    flowpipe.errors.InputError
-        When a variable has no valid point at all.
-    """
-    import dask
-
-    names = [n for n in names if n in ds]
-    return _missing_result(ds, names, dask.compute(*[ds[n].isnull().sum() for n in names]))
-
-
-def _missing_result(ds: xr.Dataset, names: list[str], counts) -> dict[str, int]:
-    """:func:`missing_counts` from the computed counts of ``names``."""
-    result = {n: int(c) for n, c in zip(names, counts, strict=True)}
-    for name, count in result.items():
-        if count == ds[name].size:
-            source = ds[name].attrs.get("source_name", name)
-            raise InputError(f"{ds.attrs.get('input_files', '?').splitlines()[0]}: variable "
-                             f"{source} has no valid value (every point is missing)")
-    return result
-
-
 def _coordinate_values(ds: xr.Dataset, dims: Iterable) -> list[tuple[str, np.ndarray]]:
     """Each dimension's coordinate values (its indices where it has no coordinate)."""
     return [(str(d), ds[d].values if d in ds.coords else np.arange(ds.sizes[d])) for d in dims]
@@ -1256,14 +1231,13 @@ SHOWN_VALUES = 3
 
 def wind_checks(wind: xr.Dataset, names: Iterable[str] = ("u", "v"),
                 max_speed: float = DEFAULT_MAX_SPEED) -> tuple[dict[str, int], dict | None]:
-    """The missing points of the variables ``names`` (:func:`missing_counts`) and the
-    implausible winds of a wind opened with ``implausible=None``, in one pass over the data
-    (computes).
+    """The missing (NaN) points of the variables ``names`` and the implausible winds of a
+    wind opened with ``implausible=None``, in one pass over the data (computes).
 
     Returns
     -------
     missing : dict
-        As :func:`missing_counts`.
+        The number of missing points of each of ``names`` the wind has.
     implausible : dict or None
         None when every wind is plausible; else ``max_speed`` (m s-1), ``points`` (how
         many points are not finite or faster), ``first`` (the first of them, in words),
@@ -1273,6 +1247,11 @@ def wind_checks(wind: xr.Dataset, names: Iterable[str] = ("u", "v"),
         value that repeats exactly is what an undeclared missing-value marker
         (``_FillValue`` or ``missing_value``, CF 1.11 section 2.5.1) looks like; genuine
         winds do not repeat a value far beyond the limit (*common practice*).
+
+    Raises
+    ------
+    flowpipe.errors.InputError
+        When one of ``names`` has no valid point at all.
     """
     import dask
     import dask.array as dsa
@@ -1286,7 +1265,12 @@ def wind_checks(wind: xr.Dataset, names: Iterable[str] = ("u", "v"),
         points, first, ubad, vbad, *counts = dask.compute(
             bad.sum(), dsa.argmax(bad.ravel()), udata[bad], vdata[bad],
             *[wind[n].isnull().sum() for n in names])
-    missing = _missing_result(wind, names, counts)
+    missing = {n: int(c) for n, c in zip(names, counts, strict=True)}
+    for name, count in missing.items():
+        if count == wind[name].size:
+            source = wind[name].attrs.get("source_name", name)
+            raise InputError(f"{wind.attrs.get('input_files', '?').splitlines()[0]}: variable "
+                             f"{source} has no valid value (every point is missing)")
     if not points:
         return missing, None
     values: dict[str, list[list[float | int]]] = {}

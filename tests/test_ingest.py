@@ -142,9 +142,9 @@ def test_fill_values_become_nan_and_are_counted(tmp_path):
         assert raw["eastward"].values[0, 0, 2, 3] == -9999.0  # CF 2.5.1: stored as _FillValue
     wind = fp.open_wind(tmp_path / "holes.nc")
     assert np.isnan(wind["u"].values[0, 0, 2, 3])
-    from flowpipe.ingest import missing_counts
+    from flowpipe.ingest import wind_checks
 
-    assert missing_counts(wind) == {"u": 1, "v": 0}
+    assert wind_checks(wind)[0] == {"u": 1, "v": 0}
 
 
 def test_sample_files_are_described_correctly():
