@@ -960,7 +960,8 @@ def _track_map(fig: Figure, ds: xr.Dataset, label: str, field: str | None,
     keep = (np.isfinite(segments).all(axis=(1, 2)) & np.isfinite(middle)
             & (np.abs(segments[:, 1, 0] - segments[:, 0, 0]) < 0.5 * width))
     norm = Normalize(float(np.nanmin(values)), float(np.nanmax(values)))
-    lines = LineCollection(segments[keep], array=middle[keep], cmap=TRACKS, norm=norm,
+    segments = segments[keep]
+    lines = LineCollection(segments, array=middle[keep], cmap=TRACKS, norm=norm,
                            linewidths=1.8, zorder=4, transform=proj)
     ax.add_collection(lines)
     _domain_outline(ax, ds)
@@ -991,7 +992,7 @@ def _track_map(fig: Figure, ds: xr.Dataset, label: str, field: str | None,
     ax.set_title(title, loc="left", fontsize=10)
     fig.draw_without_rendering()  # the map's final place on the figure, and its texts' sizes
     kept = _apart(labels)
-    _legend_clear_of(ax, legend, segments[keep], [b.get_points().mean(axis=0) for b in kept])
+    _legend_clear_of(ax, legend, segments, [b.get_points().mean(axis=0) for b in kept])
 
 
 def _apart(texts: list) -> list:
